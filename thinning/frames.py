@@ -1,0 +1,318 @@
+"""Frame sources: any recording opened as a stream of grey frames in constant memory.
+
+One class per backend (video file through OpenCV's FFmpeg backend, multi-page
+TIFF through tifffile, a folder of images in natural order), one small
+contract (:class:`FrameSource`), and :func:`open_source`, which picks the
+backend by what the path is. Frames are 2-D ``uint8`` or ``uint16`` arrays,
+yielded in order; random access is not offered because some containers
+cannot seek exactly.
+
+To add a backend: subclass :class:`FrameSource`, implement ``_frames()`` and
+the metadata, and add it to :func:`open_source` (see DEVELOPERS.md).
+"""
+
+from __future__ import annotations
+
+import collections
+import hashlib
+import logging
+import os
+import re
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+
+log = logging.getLogger(__name__)
+
+VIDEO_SUFFIXES = {".avi", ".mp4", ".mov", ".mkv", ".m4v", ".wmv", ".mpg", ".mpeg", ".webm", ".ogv"}
+TIFF_SUFFIXES = {".tif", ".tiff"}
+IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".pgm", ".ppm"}
+
+
+class UnusableSource(ValueError):
+    """The path cannot be read as a recording (message: one sentence for the user)."""
+
+
+def natural_key(name: str):
+    """Sort key putting ``frame_2`` before ``frame_10``."""
+    return [int(tok) if tok.isdigit() else tok.lower() for tok in re.split(r"(\d+)", name)]
+
+
+def _to_grey(image: np.ndarray) -> np.ndarray:
+    if image.ndim == 3:
+        import cv2
+
+        if image.shape[2] == 4:
+            image = image[:, :, :3]
+        if image.shape[2] == 1:
+            return image[:, :, 0]
+        return cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
+    return image
+
+
+def sha256_of_files(paths, *, chunk=1 << 20) -> str:
+    """sha256 of the files' bytes concatenated in the given order (hex)."""
+    digest = hashlib.sha256()
+    for path in paths:
+        with open(path, "rb") as fh:
+            while block := fh.read(chunk):
+                digest.update(block)
+    return digest.hexdigest()
+
+
+def _quiet_opencv(cv2):
+    """Keep OpenCV's own log lines (pixel-format notes) off the user's terminal."""
+    try:
+        cv2.utils.logging.setLogLevel(cv2.utils.logging.LOG_LEVEL_ERROR)
+    except AttributeError:
+        cv2.setLogLevel(2)
+
+
+class FrameSource:
+    """A recording as an ordered stream of grey frames.
+
+    Attributes: ``path`` (as given), ``n_frames`` (expected count, from the
+    container; the count actually read is ``frames_read`` after iteration),
+    ``fps`` (container rate in 1/s, or None: for high-speed cameras usually a
+    playback rate), ``shape`` (height, width), ``dtype``, ``bit_depth``.
+    After iterating, ``broken_off`` is True when the stream ended before the
+    container said it would.
+    """
+
+    path: str
+    n_frames: int
+    fps: float | None
+    shape: tuple[int, int]
+    dtype: np.dtype
+    bit_depth: int
+
+    def __init__(self, path):
+        self.path = str(path)
+        self.frames_read = 0
+        self.broken_off = False
+        self._sha256 = None
+
+    def __iter__(self):
+        self.frames_read = 0
+        self.broken_off = False
+        for frame in self._frames():
+            self.frames_read += 1
+            yield frame
+        if self.frames_read < self.n_frames:
+            self.broken_off = True
+
+    def __len__(self):
+        return self.n_frames
+
+    def _frames(self):
+        raise NotImplementedError
+
+    def _hashed_files(self):
+        return [self.path]
+
+    @property
+    def sha256(self) -> str:
+        """sha256 of the file (or of the frame files concatenated in natural order)."""
+        if self._sha256 is None:
+            self._sha256 = sha256_of_files(self._hashed_files())
+        return self._sha256
+
+    def close(self):
+        """Release the file; idempotent."""
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+class VideoSource(FrameSource):
+    """A video file read through OpenCV's FFmpeg backend, grey frames without colour conversion.
+
+    MJPG files are read as compressed packets and decoded in a small thread
+    pool (OpenCV releases the GIL), the fastest route measured on this kind
+    of machine (``shared/reference/platform-notes.md``).
+    """
+
+    def __init__(self, path, *, decode_threads=2):
+        super().__init__(path)
+        import cv2
+
+        _quiet_opencv(cv2)
+        self._cv2 = cv2
+        self._threads = decode_threads
+        cap = self._open()
+        ok, first = cap.read()
+        if not ok or first is None:
+            cap.release()
+            raise UnusableSource(f"{path}: no frame could be decoded from this video.")
+        first = _to_grey(first)
+        self.shape = first.shape[:2]
+        self.dtype = first.dtype
+        self.bit_depth = 16 if first.dtype == np.uint16 else 8
+        count = int(cap.get(cv2.CAP_PROP_FRAME_COUNT) or 0)
+        self.n_frames = max(count, 1)
+        rate = float(cap.get(cv2.CAP_PROP_FPS) or 0.0)
+        self.fps = rate if rate > 0 and np.isfinite(rate) else None
+        fourcc = int(cap.get(cv2.CAP_PROP_FOURCC) or 0)
+        self.codec = "".join(chr((fourcc >> (8 * i)) & 0xFF) for i in range(4)).strip("\x00 ")
+        cap.release()
+
+    def _open(self, *, packets=False):
+        cv2 = self._cv2
+        if packets:
+            cap = cv2.VideoCapture(self.path, cv2.CAP_FFMPEG)
+            cap.set(cv2.CAP_PROP_FORMAT, -1)
+        else:
+            cap = cv2.VideoCapture(self.path, cv2.CAP_FFMPEG, [cv2.CAP_PROP_CONVERT_RGB, 0])
+        if not cap.isOpened():
+            cap.release()
+            raise UnusableSource(f"{self.path}: not a video OpenCV can open.")
+        return cap
+
+    def _frames(self):
+        if self.codec.upper() == "MJPG":
+            yield from self._mjpg_frames()
+            return
+        cap = self._open()
+        try:
+            while True:
+                ok, frame = cap.read()
+                if not ok or frame is None:
+                    break
+                yield _to_grey(frame)
+        finally:
+            cap.release()
+
+    def _mjpg_frames(self):
+        cv2 = self._cv2
+        cap = self._open(packets=True)
+        window = collections.deque()
+        depth = 4 * self._threads
+
+        def decode(packet):
+            return cv2.imdecode(packet, cv2.IMREAD_GRAYSCALE)
+
+        try:
+            with ThreadPoolExecutor(max_workers=self._threads) as pool:
+                while True:
+                    ok, packet = cap.read()
+                    if ok and packet is not None:
+                        window.append(pool.submit(decode, packet.reshape(-1).copy()))
+                    if window and (len(window) >= depth or not ok):
+                        image = window.popleft().result()
+                        if image is None:
+                            break
+                        yield image
+                    elif not ok:
+                        break
+        finally:
+            cap.release()
+
+
+class TiffSource(FrameSource):
+    """A multi-page TIFF (8- or 16-bit), streamed page by page."""
+
+    def __init__(self, path):
+        super().__init__(path)
+        import tifffile
+
+        try:
+            self._tif = tifffile.TiffFile(self.path)
+            pages = self._tif.pages
+            pages.cache = False
+            pages.useframes = True
+            first = pages.first.asarray()
+        except Exception as exc:
+            raise UnusableSource(f"{path}: not a readable TIFF ({type(exc).__name__}).") from None
+        self._planes_per_page = first.shape[0] if first.ndim == 3 and first.shape[-1] > 4 else 1
+        plane = first[0] if self._planes_per_page > 1 else _to_grey(first)
+        self.shape = plane.shape[:2]
+        self.dtype = plane.dtype
+        self.bit_depth = int(pages.first.bitspersample)
+        self.n_frames = len(pages) * self._planes_per_page
+        self.fps = None
+
+    def _frames(self):
+        for page in self._tif.pages:
+            try:
+                data = page.asarray()
+            except Exception:
+                log.warning("%s: page unreadable, stream stops here", self.path)
+                return
+            if self._planes_per_page > 1:
+                yield from data
+            else:
+                yield _to_grey(data)
+
+    def close(self):
+        self._tif.close()
+
+
+class ImageFolderSource(FrameSource):
+    """A folder of image files in natural sort order (``.json`` files are never frames)."""
+
+    def __init__(self, path):
+        super().__init__(path)
+        folder = Path(path)
+        files = [p for p in folder.iterdir()
+                 if p.is_file() and p.suffix.lower() in IMAGE_SUFFIXES and not p.name.startswith(".")]
+        if not files:
+            raise UnusableSource(f"{path}: the folder holds no image files (PNG, TIFF, BMP, JPEG).")
+        self._files = sorted(files, key=lambda p: natural_key(p.name))
+        first = self._read(self._files[0])
+        if first is None:
+            raise UnusableSource(f"{self._files[0]}: not a readable image.")
+        self.shape = first.shape[:2]
+        self.dtype = first.dtype
+        self.bit_depth = 16 if first.dtype == np.uint16 else 8
+        self.n_frames = len(self._files)
+        self.fps = None
+
+    @staticmethod
+    def _read(file):
+        import cv2
+
+        image = cv2.imread(str(file), cv2.IMREAD_UNCHANGED)
+        return None if image is None else _to_grey(image)
+
+    def _frames(self):
+        for file in self._files:
+            image = self._read(file)
+            if image is None or image.shape[:2] != self.shape:
+                log.warning("%s: unreadable or of another size, stream stops here", file)
+                return
+            yield image
+
+    def _hashed_files(self):
+        return self._files
+
+
+def open_source(path) -> FrameSource:
+    """Open ``path`` as a recording: a video file, a multi-page TIFF or a folder of images.
+
+    Raises :class:`UnusableSource` with one sentence when nothing can read it.
+    """
+    p = Path(path)
+    if not p.exists():
+        raise UnusableSource(f"{path}: no such file or folder.")
+    if p.is_dir():
+        return ImageFolderSource(path)
+    if not os.access(p, os.R_OK):
+        raise UnusableSource(f"{path}: the file cannot be read (permissions).")
+    if p.stat().st_size == 0:
+        raise UnusableSource(f"{path}: the file is empty.")
+    suffix = p.suffix.lower()
+    if suffix == ".json":
+        raise UnusableSource(f"{path}: a .json file is never read as a recording.")
+    if suffix in TIFF_SUFFIXES:
+        return TiffSource(path)
+    reasons = []
+    for backend in (VideoSource, TiffSource):
+        try:
+            return backend(path)
+        except UnusableSource as exc:
+            reasons.append(str(exc).split(": ", 1)[-1])
+    raise UnusableSource(f"{path}: not a recording this tool can read ({'; '.join(dict.fromkeys(reasons))}).")
