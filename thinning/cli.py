@@ -1,0 +1,189 @@
+"""The ``thinning`` command: parse, call, print, exit (contract: shared/design/interface.md).
+
+Exit status: 0 done, 2 bad usage or unusable input (one sentence, no
+traceback), 1 internal error. Heavy modules are imported inside commands so
+``thinning --help`` starts fast.
+"""
+
+from __future__ import annotations
+
+import importlib
+import logging
+import os
+import sys
+
+import click
+
+from . import __version__
+from .units import QUANTITIES, BadQuantity, GEOMETRIES, options_from_text
+
+#: subcommands living in their own modules: name → "module:attribute"
+_LAZY_COMMANDS = {
+    "batch": "thinning.cli_batch:batch",
+    "records": "thinning.cli_records:records",
+    "report": "thinning.cli_records:report",
+    "demo": "thinning.demo:demo",
+}
+
+ANALYSIS_OPTION_HELP = {
+    "fps": "Camera frame rate, e.g. '10kHz' or '25000/s'. Overrides the container's rate, which "
+           "for high-speed cameras is usually a playback rate.",
+    "pixel_size": "Image scale: object size of one pixel, e.g. '4.2um' or '4.2 µm/px'.",
+    "reference_width": "Instead of --pixel-size: true width of the plates (or the nozzle's outer "
+                       "diameter) seen in the frame, e.g. '3mm'; the tool measures it in pixels.",
+    "surface_tension": "Surface tension of the liquid, e.g. '35mN/m' (required).",
+    "density": "Density, e.g. '998kg/m^3' (optional: inertial time, Ohnesorge and Bond numbers).",
+    "solvent_viscosity": "Solvent viscosity, e.g. '1.2mPa*s' (optional: regime checks).",
+    "zero_shear_viscosity": "Zero-shear viscosity, e.g. '5mPa*s' (optional: Ohnesorge number and "
+                            "Trouton ratio; falls back to the solvent viscosity).",
+}
+
+
+class FriendlyError(click.ClickException):
+    """A one-sentence error, exit status 2."""
+
+    exit_code = 2
+
+    def show(self, file=None):
+        click.echo(f"thinning: {self.format_message()}", err=True)
+
+
+def analysis_options(func):
+    """Decorate a command with every ``analyse`` option (shared by analyse and batch)."""
+    decorators = [
+        click.option("--fps", help=f"{ANALYSIS_OPTION_HELP['fps']} Default unit: 1/s."),
+        click.option("--pixel-size", help=f"{ANALYSIS_OPTION_HELP['pixel_size']} Default unit: µm."),
+        click.option("--reference-width",
+                     help=f"{ANALYSIS_OPTION_HELP['reference_width']} Default unit: mm."),
+        click.option("--surface-tension",
+                     help=f"{ANALYSIS_OPTION_HELP['surface_tension']} Default unit: mN/m."),
+        click.option("--density", help=f"{ANALYSIS_OPTION_HELP['density']} Default unit: kg/m³."),
+        click.option("--solvent-viscosity",
+                     help=f"{ANALYSIS_OPTION_HELP['solvent_viscosity']} Default unit: mPa·s."),
+        click.option("--zero-shear-viscosity",
+                     help=f"{ANALYSIS_OPTION_HELP['zero_shear_viscosity']} Default unit: mPa·s."),
+        click.option("--geometry", type=click.Choice(GEOMETRIES), default=None,
+                     help="'plates': step stretch between two end plates (default); "
+                          "'dripping': dripping onto a substrate from a nozzle."),
+        click.option("--roi", help="Crop 'x0,y0,x1,y1' in pixels (keeps x0 <= x < x1, y0 <= y < y1); "
+                                   "found automatically otherwise. Example: '100,0,400,256'."),
+    ]
+    for decorator in reversed(decorators):
+        func = decorator(func)
+    return func
+
+
+OPTION_NAMES = tuple(QUANTITIES) + ("geometry", "roi")
+
+
+def parse_analysis_options(values: dict):
+    """Command-line strings → :class:`~thinning.units.AnalysisOptions`, or a one-sentence exit 2."""
+    try:
+        return options_from_text({name: values.get(name) for name in OPTION_NAMES})
+    except BadQuantity as exc:
+        raise FriendlyError(str(exc)) from None
+
+
+class LazyGroup(click.Group):
+    """A group whose subcommands are imported only when used."""
+
+    def list_commands(self, ctx):
+        return sorted(set(super().list_commands(ctx)) | set(_LAZY_COMMANDS))
+
+    def get_command(self, ctx, name):
+        if name in _LAZY_COMMANDS:
+            module_name, attribute = _LAZY_COMMANDS[name].split(":")
+            return getattr(importlib.import_module(module_name), attribute)
+        return super().get_command(ctx, name)
+
+
+@click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="thinning")
+@click.option("-v", "--verbose", count=True, help="More log lines on stderr (-vv for debug).")
+def cli(verbose):
+    """Capillary-thinning extensional rheometry from high-speed recordings.
+
+    Measures the minimum neck diameter of a thinning filament in every frame,
+    locates the thinning regimes, fits the relaxation time and apparent
+    extensional viscosity with uncertainty, and keeps per-lot QC records.
+    """
+    level = logging.WARNING - 10 * verbose
+    logging.basicConfig(level=max(level, logging.DEBUG), format="%(levelname)s %(name)s: %(message)s")
+
+
+@cli.command()
+@click.argument("source", type=click.Path())
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
+              help="Output folder (created if needed); the tool's files in it are replaced atomically.")
+@analysis_options
+def analyse(source, out_dir, **values):
+    """Analyse one recording: a video file, a multi-page TIFF or a folder of images.
+
+    Writes OUT/result.json, OUT/diameter.csv, figures and OUT/report.html, and
+    prints a short summary.
+
+    Example:
+
+      thinning analyse bridge.avi --out results/bridge --fps 10kHz
+      --pixel-size 8um --surface-tension 38mN/m
+    """
+    from .analysis import UnusableInput, analyse as run
+
+    options = parse_analysis_options(values)
+    try:
+        result = run(source, out_dir, options)
+    except UnusableInput as exc:
+        raise FriendlyError(str(exc)) from None
+    click.echo(summary_text(result, out_dir))
+
+
+def _fmt(value, unit, scale=1.0, digits=3):
+    if value is None:
+        return "—"
+    return f"{value * scale:.{digits}g} {unit}"
+
+
+def summary_text(result: dict, out_dir) -> str:
+    """A few human lines: λ with its interval, regime, quality, warnings."""
+    lam = result.get("relaxation_time_s")
+    ci = result.get("relaxation_time_ci95_s")
+    lines = [f"{result['source']['path']}: {result['source']['n_frames']} frames at "
+             f"{result['fps_hz']:g}/s, {result['pixel_size_m'] * 1e6:.4g} µm per pixel"]
+    if lam is not None:
+        scale, unit = (1e3, "ms") if lam < 1 else (1.0, "s")
+        interval = f" (95 % interval {ci[0] * scale:.3g}–{ci[1] * scale:.3g} {unit})" if ci else ""
+        lines.append(f"  relaxation time      {lam * scale:.4g} {unit}{interval}")
+    else:
+        lines.append("  relaxation time      — (no elasto-capillary stretch located)")
+    lines.append(f"  regime               {result['regime']}")
+    if result.get("shear_viscosity_Pa_s") is not None:
+        lines.append(f"  shear viscosity      {_fmt(result['shear_viscosity_Pa_s'], 'mPa·s', 1e3, 4)}")
+    if result.get("extensional_viscosity_max_Pa_s") is not None:
+        lines.append(f"  ext. viscosity max   {_fmt(result['extensional_viscosity_max_Pa_s'], 'Pa·s')}")
+    lines.append(f"  breakup time         {_fmt(result.get('breakup_time_s'), 'ms', 1e3, 4)}")
+    lines.append(f"  quality              {result['quality']}")
+    for warning in result.get("warnings", []):
+        lines.append(f"  warning: {warning}")
+    lines.append(f"  written to {out_dir}")
+    return "\n".join(lines)
+
+
+def main(argv=None):
+    """Entry point: run the CLI with exit statuses 0 / 1 / 2."""
+    try:
+        cli.main(args=argv, prog_name="thinning", standalone_mode=True)
+    except SystemExit:
+        raise
+    except KeyboardInterrupt:
+        click.echo("thinning: interrupted.", err=True)
+        sys.exit(130)
+    except Exception as exc:  # internal error: one line, exit 1; THINNING_DEBUG=1 for the traceback
+        if os.environ.get("THINNING_DEBUG"):
+            raise
+        click.echo(f"thinning: internal error: {type(exc).__name__}: {exc} "
+                   "(set THINNING_DEBUG=1 for details).", err=True)
+        sys.exit(1)
+
+
+if __name__ == "__main__":
+    main()
