@@ -1,0 +1,132 @@
+"""One contract suite for every frame backend, against frames saved as arrays."""
+
+import hashlib
+import tracemalloc
+
+import cv2
+import numpy as np
+import pytest
+import tifffile
+
+from thinning.frames import UnusableSource, natural_key, open_source
+
+
+def _frames(n=12, shape=(40, 64), dtype=np.uint8, seed=0):
+    rng = np.random.default_rng(seed)
+    top = 255 if dtype == np.uint8 else 4095
+    return [rng.integers(0, top, size=shape, dtype=dtype) for _ in range(n)]
+
+
+def _write_png_folder(path, frames):
+    path.mkdir()
+    for i, f in enumerate(frames):
+        cv2.imwrite(str(path / f"img_{i}.png"), f)   # img_2 must come before img_10
+    (path / "notes.json").write_text("{}")           # never read as a frame
+    return path
+
+
+def _write_tiff(path, frames):
+    with tifffile.TiffWriter(path) as tw:
+        for f in frames:
+            tw.write(f, contiguous=True, metadata=None)
+    return path
+
+
+def _write_raw_avi(path, frames):
+    h, w = frames[0].shape
+    writer = cv2.VideoWriter(str(path), cv2.CAP_FFMPEG, 0, 25.0, (w, h), False)
+    for f in frames:
+        writer.write(f)
+    writer.release()
+    return path
+
+
+BACKENDS = {
+    "png-folder-8": (lambda p, f: _write_png_folder(p / "frames", f), np.uint8),
+    "png-folder-16": (lambda p, f: _write_png_folder(p / "frames", f), np.uint16),
+    "tiff-8": (lambda p, f: _write_tiff(p / "stack.tif", f), np.uint8),
+    "tiff-16": (lambda p, f: _write_tiff(p / "stack.tif", f), np.uint16),
+    "avi-raw": (lambda p, f: _write_raw_avi(p / "clip.avi", f), np.uint8),
+}
+
+
+@pytest.mark.parametrize("backend", sorted(BACKENDS))
+def test_backend_contract(tmp_path, backend):
+    writer, dtype = BACKENDS[backend]
+    expected = _frames(n=12, dtype=dtype)
+    path = writer(tmp_path, expected)
+    with open_source(path) as source:
+        assert source.n_frames == len(expected)
+        assert source.shape == expected[0].shape
+        assert source.dtype == dtype
+        got = list(source)
+        assert source.frames_read == len(expected) and not source.broken_off
+        assert len(source.sha256) == 64
+    for g, e in zip(got, expected):
+        assert g.shape == e.shape and g.dtype == e.dtype
+        np.testing.assert_array_equal(g, e)   # all of these formats are lossless
+
+
+def test_folder_hash_is_frames_bytes_in_natural_order(tmp_path):
+    frames = _frames(n=11)
+    folder = _write_png_folder(tmp_path / "f", frames)
+    names = sorted((p.name for p in folder.glob("*.png")), key=natural_key)
+    assert names[:3] == ["img_0.png", "img_1.png", "img_2.png"] and names[-1] == "img_10.png"
+    digest = hashlib.sha256(b"".join((folder / n).read_bytes() for n in names)).hexdigest()
+    assert open_source(folder).sha256 == digest
+
+
+def test_mjpg_is_decoded_grey(tmp_path):
+    frames = [np.full((48, 64), 40 + 10 * i, np.uint8) for i in range(8)]
+    path = tmp_path / "clip.avi"
+    writer = cv2.VideoWriter(str(path), cv2.VideoWriter_fourcc(*"MJPG"), 25.0, (64, 48), False)
+    for f in frames:
+        writer.write(f)
+    writer.release()
+    source = open_source(path)
+    assert source.codec == "MJPG" and source.fps == 25.0
+    got = list(source)
+    assert len(got) == 8 and got[0].ndim == 2
+    assert [int(round(g.mean())) for g in got] == [40 + 10 * i for i in range(8)]  # lossy, ±1
+
+
+def test_truncated_video_reports_broken_off(tmp_path):
+    path = _write_raw_avi(tmp_path / "clip.avi", _frames(n=40, shape=(64, 64)))
+    data = path.read_bytes()
+    cut = tmp_path / "cut.avi"
+    cut.write_bytes(data[: len(data) // 2])
+    source = open_source(cut)
+    n = sum(1 for _ in source)
+    assert 0 < n < 40 and source.broken_off
+
+
+@pytest.mark.parametrize("name, content, message", [
+    ("missing.avi", None, "no such file"),
+    ("empty", "folder", "no image files"),
+    ("zero.avi", b"", "empty"),
+    ("junk.avi", b"not a video at all" * 100, "not a"),
+    ("junk.tif", b"II*\x00garbage", "TIFF"),
+    ("t.json", b"{}", "json"),
+])
+def test_unusable_sources_say_why(tmp_path, name, content, message):
+    path = tmp_path / name
+    if content == "folder":
+        path.mkdir()
+    elif content is not None:
+        path.write_bytes(content)
+    with pytest.raises(UnusableSource, match=message):
+        open_source(path)
+
+
+def test_tiff_streams_in_constant_memory(tmp_path):
+    path = tmp_path / "long.tif"
+    with tifffile.TiffWriter(path) as tw:
+        for i in range(600):
+            tw.write(np.full((128, 128), i % 255, np.uint8), contiguous=True, metadata=None)
+    source = open_source(path)
+    tracemalloc.start()
+    count = sum(1 for _ in source)
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    assert count == 600
+    assert peak < 600 * 128 * 128 / 10   # far below holding all frames (9.8 MB)
