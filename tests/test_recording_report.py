@@ -1,0 +1,167 @@
+"""The one-page HTML report of one recording."""
+
+from __future__ import annotations
+
+import base64
+import re
+
+import numpy as np
+import pytest
+
+from thinning.report import recording
+from thinning.report.recording import format_interval, format_quantity, write_recording_report
+
+EVIL = "<script>alert('x')</script>"
+
+
+def _png(path, rng):
+    """A small real PNG (random pixels) written with matplotlib."""
+    import matplotlib.image
+
+    matplotlib.image.imsave(path, rng.random((8, 8)), metadata={"Software": None})
+    return path
+
+
+@pytest.fixture
+def figures(tmp_path):
+    rng = np.random.default_rng(7)
+    fig_dir = tmp_path / "figs"
+    fig_dir.mkdir()
+    return {name: _png(fig_dir / f"{name}.png", rng)
+            for name in ("diameter", "strain_rate", "extensional_viscosity", "frames")}
+
+
+def _result(**changes):
+    result = {
+        "schema": "thinning.result/1", "tool_version": "0.1.0",
+        "source": {"path": f"/lab/{EVIL}.avi", "sha256": "0123456789abcdef" * 4, "n_frames": 400,
+                   "width_px": 256, "height_px": 512, "bit_depth": 8},
+        "fps_hz": 10000.0, "pixel_size_m": 4.2e-6,
+        "options": {"fps_hz": 10000.0, "pixel_size_m": 4.2e-6, "reference_width_m": None,
+                    "surface_tension_N_m": 0.035, "density_kg_m3": None,
+                    "solvent_viscosity_Pa_s": None, "zero_shear_viscosity_Pa_s": None,
+                    "geometry": "plates", "roi_px": None},
+        "regime": "elasto-capillary",
+        "regimes": [{"kind": "visco-capillary", "t_start_s": 0.0, "t_end_s": 0.002},
+                    {"kind": "elasto-capillary", "t_start_s": 0.003, "t_end_s": 0.03}],
+        "relaxation_time_s": 0.0052, "relaxation_time_ci95_s": [0.005, 0.0054],
+        "fit_window_s": [0.004, 0.028], "fit_window_frames": 241,
+        "free_thinning_start_s": 0.001, "initial_diameter_m": 4.5e-4,
+        "elastic_modulus_Pa": 12.5, "shear_viscosity_Pa_s": None,
+        "extensional_viscosity_max_Pa_s": 84.2, "extensional_viscosity_terminal_Pa_s": None,
+        "breakup_time_s": 0.0831, "filament_lifetime_s": 0.0821,
+        "warnings": ["Beads form on the thread after 25 ms."],
+        "quality": "good", "quality_reasons": [],
+        "sample": EVIL,
+    }
+    result.update(changes)
+    return result
+
+
+def _visible(html):
+    """The page without its embedded images (base64 may spell anything)."""
+    return re.sub(r"data:image/png;base64,[A-Za-z0-9+/=]+", "data:…", html)
+
+
+def test_report_is_written_with_the_numbers(tmp_path, figures):
+    path = write_recording_report(tmp_path / "out", _result(), figures)
+    assert path == tmp_path / "out" / "report.html"
+    html = _visible(path.read_text(encoding="utf-8"))
+    for text in ("5.2 ms", "5 – 5.4 ms", "12.5 Pa", "84.2 Pa·s", "83.1 ms", "82.1 ms", "450 µm",
+                 "4 – 28 ms (241 frames)", "35 mN/m", "4.2 µm", "10 kHz", "0.1.0",
+                 "0123456789abcdef" * 4, "elasto-capillary", "Beads form on the thread after 25 ms."):
+        assert text in html, text
+    for caution in ("reference fluid", "hazardous liquids", "quality decisions"):
+        assert caution in html
+    assert sorted(p.name for p in path.parent.iterdir()) == ["report.html"]  # no temp left
+
+
+def test_user_names_are_escaped(tmp_path, figures):
+    html = write_recording_report(tmp_path, _result(), figures,
+                                  details={"lot": EVIL, "product": "ink & co"}).read_text("utf-8")
+    assert "<script" not in html.lower()
+    assert "&lt;script&gt;alert(&#39;x&#39;)&lt;/script&gt;" in html
+    assert "ink &amp; co" in html
+
+
+def test_no_external_resource_and_figures_embedded(tmp_path, figures):
+    html = write_recording_report(tmp_path, _result(), figures).read_text("utf-8")
+    for forbidden in ("http://", "https://", "<link", "<script", "url(", "@import", "href="):
+        assert forbidden not in html.lower(), forbidden
+    sources = re.findall(r'src="([^"]*)"', html)
+    assert len(sources) == 4
+    assert all(s.startswith("data:image/png;base64,") for s in sources)
+    embedded = base64.b64decode(sources[0].split(",", 1)[1])
+    assert embedded == figures["diameter"].read_bytes()  # diameter comes first
+
+
+def test_newtonian_result_shows_dashes_with_reasons_not_nan(tmp_path, figures):
+    result = _result(regime="visco-capillary", relaxation_time_s=None, relaxation_time_ci95_s=None,
+                     elastic_modulus_Pa=None, shear_viscosity_Pa_s=0.48, breakup_time_s=None,
+                     filament_lifetime_s=None, extensional_viscosity_max_Pa_s=float("nan"),
+                     fit_window_s=[0.001, 0.01], fit_window_frames=91)
+    html = _visible(write_recording_report(tmp_path, result, figures).read_text("utf-8"))
+    assert "— (no elasto-capillary fit in this record)" in html
+    assert "— (the filament did not break within the record)" in html
+    assert "— (none resolved above the resolution floor)" in html  # NaN shown as missing
+    assert "480 mPa·s" in html
+    text = re.sub(r"<[^>]*>", " ", re.sub(r"<style>.*?</style>", "", html, flags=re.DOTALL))
+    assert not re.search(r"\b(nan|null|inf|infinity)\b", text, flags=re.IGNORECASE)
+    assert not re.search(r"\bNone\b", text)
+
+
+def test_doubtful_quality_reasons_are_prominent(tmp_path, figures):
+    reason = "Only 6 frames in the fit window."
+    result = _result(quality="doubtful", quality_reasons=[reason], warnings=[reason])
+    html = write_recording_report(tmp_path, result, figures).read_text("utf-8")
+    alert = re.search(r'<div class="alert".*?</div>', html, flags=re.DOTALL)
+    assert alert and reason in alert.group(0)
+    assert html.index(reason) < html.index("Headline numbers")  # before the numbers
+    good = write_recording_report(tmp_path / "g", _result(), figures).read_text("utf-8")
+    assert 'class="alert"' not in good
+
+
+def test_report_is_byte_identical_on_repeat(tmp_path, figures):
+    a = write_recording_report(tmp_path / "a", _result(), figures).read_bytes()
+    b = write_recording_report(tmp_path / "b", _result(), figures).read_bytes()
+    assert a == b
+
+
+def test_missing_figure_file_is_reported_not_fatal(tmp_path, figures):
+    figures = dict(figures, frames=tmp_path / "gone.png")
+    html = write_recording_report(tmp_path, _result(), figures).read_text("utf-8")
+    assert "— (figure file not found)" in html
+
+
+def test_name_falls_back_to_the_source_file_name():
+    result = _result()
+    del result["sample"]
+    result["source"]["path"] = "/lab/run 7/lot-3_a.avi"
+    assert recording.recording_name(result) == "lot-3_a.avi"
+    assert recording.recording_name({}) == "recording"
+
+
+@pytest.mark.parametrize(("value", "unit", "text"), [
+    # hand-checked conversions (common practice for SI prefixes)
+    (0.0052, "s", "5.2 ms"),
+    (2.5e-5, "s", "25 µs"),
+    (1.5, "s", "1.5 s"),
+    (4.5e-4, "m", "450 µm"),
+    (0.0012, "m", "1.2 mm"),
+    (0.0012, "Pa·s", "1.2 mPa·s"),
+    (1234.5, "Pa·s", "1.234 kPa·s"),
+    (0.035, "N/m", "35 mN/m"),
+    (0.0, "s", "0 s"),
+    (None, "s", "—"),
+    (float("nan"), "Pa", "—"),
+    (float("inf"), "Pa", "—"),
+])
+def test_format_quantity(value, unit, text):
+    assert format_quantity(value, unit) == text
+
+
+def test_format_quantity_reason_and_interval():
+    assert format_quantity(None, "s", missing="not given") == "— (not given)"
+    assert format_interval([0.005, 0.0054], "s", like=0.0052) == "5 – 5.4 ms"
+    assert format_interval([0.005, None], "s") is None
+    assert format_interval(None, "s") is None

@@ -1,0 +1,439 @@
+"""Figures for one analysed recording (matplotlib, Agg, no pyplot state).
+
+Every function takes plain data: the per-frame ``table`` (the columns of
+``diameter.csv``), the ``result`` dict (the keys of ``result.json``) and, for
+the frame strip, a list of snapshots. Each ``plot_*`` function draws on the
+``ax`` it is given (or on a fresh :class:`~matplotlib.figure.Figure`) and
+returns it; nothing is shown. :func:`write_figures` writes the four PNGs
+atomically and byte-identically for the same input.
+
+Fit curves
+----------
+``fit_curves`` maps a regime kind (``"elasto-capillary"``, ``"visco-capillary"``,
+``"inertio-capillary"``, ``"finite-extensibility"``) to ``(time_s, diameter_m)``
+arrays already evaluated by the caller. Without it, curves are evaluated with
+the closed-form laws of :mod:`thinning.laws` from ``result["fits"]`` when that
+key is present (``{name: {"model": kind, "values": {...}, "window_s": [a, b]}}``,
+the values named like the laws' keyword arguments, with or without a unit
+suffix), otherwise from the headline elasto-capillary numbers of ``result``
+(λ, G, D0, t0 and the surface tension in ``options``).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import inspect
+import logging
+import math
+import os
+import tempfile
+from pathlib import Path
+
+import matplotlib
+import numpy as np
+from matplotlib.figure import Figure
+
+from thinning import laws
+
+logger = logging.getLogger(__name__)
+
+#: Fixed resolution of every PNG (dots per inch).
+DPI = 110
+#: PNG metadata that keeps the bytes identical from run to run.
+PNG_METADATA = {"Software": None}
+
+#: Our palette: (shading of the stretch, colour of its fit line) per regime kind.
+REGIME_COLOURS = {
+    "inertio-capillary": ("#f6d8a8", "#b4690e"),
+    "visco-capillary": ("#c9e3f2", "#1f6f9c"),
+    "elasto-capillary": ("#d3ecc1", "#3d7a1c"),
+    "finite-extensibility": ("#f1cfd6", "#a23b54"),
+    "undetermined": ("#e4e4e4", "#555555"),
+}
+DATA_COLOUR = "#22303c"
+MARK_COLOUR = "#7a2e8e"
+FLOOR_COLOUR = "#8a8a8a"
+
+#: The look we want, independent of the user's matplotlibrc.
+_STYLE = {
+    "font.family": "DejaVu Sans",
+    "font.size": 9.0,
+    "axes.titlesize": 10.0,
+    "axes.labelsize": 9.0,
+    "axes.edgecolor": "#4a4a4a",
+    "axes.linewidth": 0.8,
+    "axes.grid": True,
+    "axes.axisbelow": True,
+    "grid.color": "#dddddd",
+    "grid.linewidth": 0.6,
+    "legend.fontsize": 8.0,
+    "legend.frameon": False,
+    "lines.linewidth": 1.4,
+    "savefig.dpi": DPI,
+    "image.interpolation": "nearest",
+    "path.simplify": True,
+    "svg.hashsalt": "thinning",
+}
+
+FIGSIZE_IN = (7.6, 3.9)
+
+_ALIASES = {  # result-style names → keyword names of thinning.laws
+    "relaxation_time_s": "relaxation_time",
+    "elastic_modulus_Pa": "elastic_modulus",
+    "initial_diameter_m": "initial_diameter",
+    "surface_tension_N_m": "surface_tension",
+    "density_kg_m3": "density",
+    "shear_viscosity_Pa_s": "viscosity",
+    "viscosity_Pa_s": "viscosity",
+    "breakup_time_s": "t_b",
+    "pinch_off_time_s": "t_c",
+    "t0_s": "t0",
+    "t_b_s": "t_b",
+    "t_c_s": "t_c",
+    "terminal_extensional_viscosity_Pa_s": "terminal_extensional_viscosity",
+    "extensional_viscosity_terminal_Pa_s": "terminal_extensional_viscosity",
+}
+
+_LAWS = {
+    "elasto-capillary": laws.elasto_capillary_diameter,
+    "visco-capillary": laws.visco_capillary_diameter,
+    "inertio-capillary": laws.inertio_capillary_diameter,
+    "finite-extensibility": laws.finite_extensibility_diameter,
+}
+
+
+@contextlib.contextmanager
+def _style():
+    with matplotlib.rc_context(_STYLE):
+        yield
+
+
+def _new_axes(ax):
+    if ax is not None:
+        return ax
+    fig = Figure(figsize=FIGSIZE_IN, dpi=DPI, layout="constrained")
+    return fig.add_subplot()
+
+
+def _column(table, name):
+    """Float array of column ``name`` (all NaN when the column is missing)."""
+    if table is not None and name in getattr(table, "columns", ()):
+        return np.asarray(table[name], dtype=float)
+    n = 0 if table is None else len(table)
+    return np.full(n, np.nan)
+
+
+def _number(value):
+    """``value`` as a finite float, else None."""
+    if value is None or isinstance(value, bool):
+        return None
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        return None
+    return x if math.isfinite(x) else None
+
+
+def _time_scale(table, result):
+    """(factor, unit) so the time axis reads in s or ms."""
+    times = [_column(table, "time_s")]
+    times.append(np.array([_number(result.get("breakup_time_s")) or np.nan]))
+    t = np.concatenate(times)
+    t = t[np.isfinite(t)]
+    span = float(np.max(np.abs(t))) if t.size else 1.0
+    return (1e3, "ms") if span < 1.0 else (1.0, "s")
+
+
+def _diameter_scale(d):
+    d = d[np.isfinite(d) & (d > 0)]
+    top = float(np.max(d)) if d.size else 1e-3
+    return (1e3, "mm") if top >= 1e-2 else (1e6, "µm")
+
+
+def _no_data(ax, text):
+    ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center",
+            color=FLOOR_COLOUR, fontsize=9)
+
+
+def _shade_regimes(ax, result, t_factor):
+    """Shade each located stretch in its own colour; return legend handles."""
+    seen = set()
+    for regime in result.get("regimes") or []:
+        kind = regime.get("kind", "undetermined")
+        t0, t1 = _number(regime.get("t_start_s")), _number(regime.get("t_end_s"))
+        if t0 is None or t1 is None:
+            continue
+        shade, _ = REGIME_COLOURS.get(kind, REGIME_COLOURS["undetermined"])
+        ax.axvspan(t0 * t_factor, t1 * t_factor, color=shade, alpha=0.85, lw=0,
+                   label=None if kind in seen else kind, zorder=0)
+        seen.add(kind)
+
+
+def _mark_breakup(ax, result, t_factor):
+    tb = _number(result.get("breakup_time_s"))
+    if tb is not None:
+        ax.axvline(tb * t_factor, color=MARK_COLOUR, ls="--", lw=1.0, label="breakup")
+
+
+def _law_kwargs(law, values, result):
+    """Keyword arguments of ``law`` from fit ``values``, completed from ``result``."""
+    params = {_ALIASES.get(k, k): v for k, v in (values or {}).items()}
+    options = result.get("options") or {}
+    fallback = {
+        "surface_tension": options.get("surface_tension_N_m"),
+        "density": options.get("density_kg_m3"),
+        "initial_diameter": result.get("initial_diameter_m"),
+        "t0": result.get("free_thinning_start_s"),
+        "t_b": result.get("breakup_time_s"),
+        "t_c": result.get("breakup_time_s"),
+    }
+    kwargs = {}
+    for name, p in inspect.signature(law).parameters.items():
+        if p.kind is not inspect.Parameter.KEYWORD_ONLY:
+            continue
+        value = _number(params.get(name, fallback.get(name)))
+        if value is None:
+            if p.default is inspect.Parameter.empty:
+                return None
+            continue
+        kwargs[name] = value
+    return kwargs
+
+
+def fit_curves_from_result(result, *, n_points=200):
+    """``{kind: (time_s, diameter_m)}`` evaluated with :mod:`thinning.laws` from ``result``.
+
+    Uses ``result["fits"]`` when present, else the headline elasto-capillary
+    numbers (needs λ, G, D0, the fit window and ``options["surface_tension_N_m"]``).
+    A fit whose parameters are incomplete is skipped (logged), never guessed.
+    """
+    fits = result.get("fits")
+    if not fits:
+        fits = {}
+        window = result.get("fit_window_s")
+        if _number(result.get("relaxation_time_s")) is not None and window:
+            fits["headline"] = {"model": "elasto-capillary", "window_s": window,
+                                "values": {"relaxation_time": result.get("relaxation_time_s"),
+                                           "elastic_modulus": result.get("elastic_modulus_Pa")}}
+    curves = {}
+    for name, fit in fits.items():
+        kind = fit.get("model", name)
+        law = _LAWS.get(kind)
+        window = fit.get("window_s") or [None, None]
+        a, b = (_number(w) for w in window)
+        if law is None or a is None or b is None or b <= a:
+            logger.debug("fit %r not drawn: unknown model or no window", name)
+            continue
+        kwargs = _law_kwargs(law, fit.get("values"), result)
+        if kwargs is None:
+            logger.debug("fit %r not drawn: parameters incomplete", name)
+            continue
+        t = np.linspace(a, b, n_points)
+        with np.errstate(all="ignore"):
+            d = np.asarray(law(t, **kwargs), dtype=float)
+        curves[kind if kind not in curves else name] = (t, d)
+    return curves
+
+
+def plot_diameter(table, result, *, fit_curves=None, ax=None):
+    """Minimum neck diameter against time on a log axis.
+
+    Each located regime is shaded in its own colour, the fit curves drawn over
+    their windows (``fit_curves``, see the module notes; default
+    :func:`fit_curves_from_result`), breakup marked by a dashed line, and the
+    resolution floor (``result["resolution_floor_m"]``, else one pixel) drawn
+    as a dotted line. Returns the Axes.
+    """
+    with _style():
+        ax = _new_axes(ax)
+        t_factor, t_unit = _time_scale(table, result)
+        t = _column(table, "time_s")
+        d = _column(table, "diameter_m")
+        if fit_curves is None:
+            fit_curves = fit_curves_from_result(result)
+        d_factor, d_unit = _diameter_scale(d)
+        _shade_regimes(ax, result, t_factor)
+        ok = np.isfinite(t) & np.isfinite(d) & (d > 0)
+        if ok.any():
+            ax.plot(t[ok] * t_factor, d[ok] * d_factor, "o", ms=2.6, mfc=DATA_COLOUR, mec="none",
+                    alpha=0.85, label="measured", zorder=3)
+        else:
+            _no_data(ax, "no filament measured")
+        for kind, (ft, fd) in fit_curves.items():
+            ft, fd = np.asarray(ft, dtype=float), np.asarray(fd, dtype=float)
+            good = np.isfinite(ft) & np.isfinite(fd) & (fd > 0)
+            if good.any():
+                colour = REGIME_COLOURS.get(kind, REGIME_COLOURS["undetermined"])[1]
+                ax.plot(ft[good] * t_factor, fd[good] * d_factor, "-", color=colour, lw=1.8,
+                        label=f"{kind} fit", zorder=4)
+        floor = _number(result.get("resolution_floor_m"))
+        floor_label = "resolution floor"
+        if floor is None:
+            floor, floor_label = _number(result.get("pixel_size_m")), "one pixel"
+        if floor is not None and (ok.any() or fit_curves):
+            ax.axhline(floor * d_factor, color=FLOOR_COLOUR, ls=":", lw=1.1, label=floor_label)
+        _mark_breakup(ax, result, t_factor)
+        ax.set_yscale("log")
+        if not ok.any():
+            ax.set_ylim(1e-1, 1e4)
+        ax.set_xlabel(f"time t ({t_unit})")
+        ax.set_ylabel(f"minimum neck diameter D ({d_unit})")
+        ax.set_title("Neck diameter")
+        _legend(ax)
+    return ax
+
+
+def plot_extensional_viscosity(table, result, *, ax=None):
+    """Apparent extensional viscosity against Hencky strain (log y), with η_E max marked."""
+    with _style():
+        ax = _new_axes(ax)
+        eps = _column(table, "hencky_strain")
+        eta = _column(table, "apparent_extensional_viscosity_Pa_s")
+        ok = np.isfinite(eps) & np.isfinite(eta) & (eta > 0)
+        if ok.any():
+            ax.plot(eps[ok], eta[ok], "o", ms=2.6, mfc=REGIME_COLOURS["finite-extensibility"][1],
+                    mec="none", alpha=0.85, label="apparent η_E", zorder=3)
+        else:
+            _no_data(ax, "no apparent extensional viscosity")
+            ax.set_ylim(1e-3, 1e1)
+        eta_max = _number(result.get("extensional_viscosity_max_Pa_s"))
+        if eta_max is not None:
+            ax.axhline(eta_max, color=MARK_COLOUR, ls="--", lw=1.0, label="η_E max")
+        eta_inf = _number(result.get("extensional_viscosity_terminal_Pa_s"))
+        if eta_inf is not None:
+            ax.axhline(eta_inf, color=REGIME_COLOURS["finite-extensibility"][1], ls="-.", lw=1.0,
+                       label="terminal plateau")
+        ax.set_yscale("log")
+        ax.set_xlabel(r"Hencky strain $\varepsilon$")
+        ax.set_ylabel(r"apparent extensional viscosity $\eta_E$ (Pa·s)")
+        ax.set_title("Apparent extensional viscosity")
+        _legend(ax)
+    return ax
+
+
+def plot_strain_rate(table, result, *, ax=None):
+    """Strain rate against time (log y), with the elasto-capillary plateau 2/(3λ) marked."""
+    with _style():
+        ax = _new_axes(ax)
+        t_factor, t_unit = _time_scale(table, result)
+        t = _column(table, "time_s")
+        rate = _column(table, "strain_rate_1_s")
+        _shade_regimes(ax, result, t_factor)
+        ok = np.isfinite(t) & np.isfinite(rate) & (rate > 0)
+        if ok.any():
+            ax.plot(t[ok] * t_factor, rate[ok], "o", ms=2.6, mfc=DATA_COLOUR, mec="none", alpha=0.85,
+                    label="measured", zorder=3)
+        else:
+            _no_data(ax, "no strain rate measured")
+            ax.set_ylim(1e0, 1e4)
+        lam = _number(result.get("relaxation_time_s"))
+        if lam is not None and lam > 0:
+            plateau = laws.elasto_capillary_strain_rate(lam)
+            window = [_number(w) for w in (result.get("fit_window_s") or [])]
+            colour = REGIME_COLOURS["elasto-capillary"][1]
+            label = r"$2/(3\lambda)$"
+            if len(window) == 2 and None not in window:
+                ax.hlines(plateau, window[0] * t_factor, window[1] * t_factor, colors=colour,
+                          lw=2.0, label=label, zorder=4)
+                ax.axhline(plateau, color=colour, ls=":", lw=0.8)
+            else:
+                ax.axhline(plateau, color=colour, lw=1.4, label=label)
+        _mark_breakup(ax, result, t_factor)
+        ax.set_yscale("log")
+        ax.set_xlabel(f"time t ({t_unit})")
+        ax.set_ylabel(r"strain rate $\dot\varepsilon$ (1/s)")
+        ax.set_title("Strain rate")
+        _legend(ax)
+    return ax
+
+
+def _legend(ax):
+    handles, labels = ax.get_legend_handles_labels()
+    if handles:
+        ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+
+
+def plot_frame_strip(snapshots, *, orientation="vertical", fps_hz=None, fig=None):
+    """A row of frames with the detected edges drawn over them.
+
+    ``snapshots`` is a list of ``(frame_index, image, profile)``; ``image`` a
+    2-D array (any dtype), ``profile`` anything with ``axial_px``, ``left_px``
+    and ``right_px`` arrays (or None). ``orientation`` says how the filament
+    runs: ``"vertical"`` (axial = image row, edges = columns) or
+    ``"horizontal"`` (axial = column, edges = rows). With ``fps_hz`` each
+    panel gives its time. Returns the Figure.
+    """
+    if orientation not in ("vertical", "horizontal"):
+        raise ValueError(f"orientation must be 'vertical' or 'horizontal', not {orientation!r}")
+    with _style():
+        n = max(len(snapshots), 1)
+        if fig is None:
+            fig = Figure(figsize=_strip_size(snapshots), dpi=DPI, layout="constrained")
+        axes = fig.subplots(1, n, squeeze=False)[0]
+        if not snapshots:
+            axes[0].set_axis_off()
+            _no_data(axes[0], "no frames")
+        for ax, (index, image, profile) in zip(axes, snapshots):
+            img = np.asarray(image, dtype=float)
+            finite = img[np.isfinite(img)]
+            lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
+            ax.imshow(img, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1.0, aspect="equal")
+            if profile is not None:
+                axial = np.asarray(profile.axial_px, dtype=float)
+                for edge in (profile.left_px, profile.right_px):
+                    edge = np.asarray(edge, dtype=float)
+                    x, y = (edge, axial) if orientation == "vertical" else (axial, edge)
+                    ax.plot(x, y, "-", color="#ff8c1a", lw=0.9)
+            title = f"frame {index}"
+            if _number(fps_hz):
+                title += f"\n{_format_time(index / float(fps_hz))}"
+            ax.set_title(title, fontsize=8)
+            ax.set_xticks([])
+            ax.set_yticks([])
+            ax.grid(False)
+    return fig
+
+
+def _strip_size(snapshots, *, panel_width_in=1.6, max_height_in=4.5):
+    """Figure size (in) for a strip of ``len(snapshots)`` panels that keeps the images' aspect."""
+    n = max(len(snapshots), 1)
+    shapes = [np.shape(image) for _, image, _ in snapshots if np.ndim(image) == 2]
+    aspect = max((h / w for h, w in shapes if w), default=1.0)
+    height = min(panel_width_in * aspect + 0.6, max_height_in)
+    return (min(panel_width_in * n + 0.3, 11.0), max(height, 1.8))
+
+
+def _format_time(t_s):
+    return f"{t_s * 1e3:.3g} ms" if abs(t_s) < 1.0 else f"{t_s:.3g} s"
+
+
+def _save_png(fig, path):
+    """Write ``fig`` to ``path`` atomically (temporary file in the same folder, then replace)."""
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh, _style():
+            fig.savefig(fh, format="png", dpi=DPI, metadata=PNG_METADATA)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+    return path
+
+
+def write_figures(out_dir, table, result, snapshots, *, fit_curves=None, orientation="vertical"):
+    """Write ``diameter.png``, ``extensional_viscosity.png``, ``strain_rate.png`` and ``frames.png``.
+
+    Returns ``{"diameter": Path, "extensional_viscosity": Path, "strain_rate": Path,
+    "frames": Path}``. The same input gives byte-identical files.
+    """
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    figures = {
+        "diameter": plot_diameter(table, result, fit_curves=fit_curves).figure,
+        "extensional_viscosity": plot_extensional_viscosity(table, result).figure,
+        "strain_rate": plot_strain_rate(table, result).figure,
+        "frames": plot_frame_strip(snapshots, orientation=orientation, fps_hz=result.get("fps_hz")),
+    }
+    return {name: _save_png(fig, out_dir / f"{name}.png") for name, fig in figures.items()}

@@ -1,0 +1,307 @@
+"""The one-page HTML report of one analysed recording.
+
+:func:`write_recording_report` turns a ``result.json`` dict and the PNGs of
+:func:`thinning.plots.write_figures` into ``report.html``: self-contained (the
+figures are embedded as base64, no external file, font or script), printable,
+and escaped throughout (names and paths come from users). Numbers are shown
+with three or four significant digits in convenient units; a missing number
+is shown as "—" with the reason. The file is written atomically and is the
+same byte for byte for the same input.
+"""
+
+from __future__ import annotations
+
+import base64
+import contextlib
+import math
+import os
+import tempfile
+from pathlib import Path, PurePath
+
+import jinja2
+
+TEMPLATE_DIR = Path(__file__).parent / "templates"
+
+#: The order and captions of the figures written by :func:`thinning.plots.write_figures`.
+FIGURE_CAPTIONS = {
+    "diameter": "Minimum neck diameter against time; shaded: the located regimes; lines: the fits.",
+    "strain_rate": "Strain rate against time; the elasto-capillary plateau 2/(3λ) over the fit window.",
+    "extensional_viscosity": "Apparent extensional viscosity η_E = σ/(−dD/dt) against Hencky strain "
+                             "ε = 2 ln(D0/D).",
+    "frames": "Frames through the record with the detected filament edges.",
+}
+
+CAUTIONS = (
+    "Verify the calibration (pixel size and frame rate) with a reference fluid of known properties "
+    "before relying on these numbers.",
+    "Handle and dispose of the test liquids according to your laboratory's own procedures and the "
+    "local rules for hazardous liquids.",
+    "These results may feed quality decisions: read the quality flag and the warnings before acting "
+    "on them.",
+)
+
+#: Display units per SI unit: (scale, label), tried from the largest down.
+_UNITS = {
+    "s": ((1.0, "s"), (1e-3, "ms"), (1e-6, "µs")),
+    "m": ((1e-3, "mm"), (1e-6, "µm"), (1e-9, "nm")),
+    "Pa": ((1e6, "MPa"), (1e3, "kPa"), (1.0, "Pa"), (1e-3, "mPa")),
+    "Pa·s": ((1e3, "kPa·s"), (1.0, "Pa·s"), (1e-3, "mPa·s")),
+    "N/m": ((1e-3, "mN/m"),),
+    "kg/m³": ((1.0, "kg/m³"),),
+    "1/s": ((1.0, "1/s"),),
+    "Hz": ((1e3, "kHz"), (1.0, "Hz")),
+}
+
+#: Known ``options`` keys → (label, SI unit or None).
+_OPTION_LABELS = {
+    "fps_hz": ("frame rate (as given)", "Hz"),
+    "pixel_size_m": ("pixel size (as given)", "m"),
+    "reference_width_m": ("reference width", "m"),
+    "surface_tension_N_m": ("surface tension σ", "N/m"),
+    "density_kg_m3": ("density ρ", "kg/m³"),
+    "solvent_viscosity_Pa_s": ("solvent viscosity η_s", "Pa·s"),
+    "zero_shear_viscosity_Pa_s": ("zero-shear viscosity η_0", "Pa·s"),
+    "geometry": ("geometry", None),
+    "roi_px": ("region of interest x0, y0, x1, y1 (px)", None),
+}
+
+MISSING = "—"
+
+
+def _number(value):
+    """``value`` as a finite float, else None."""
+    if value is None or isinstance(value, bool):
+        return None
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        return None
+    return x if math.isfinite(x) else None
+
+
+def _digits(x):
+    """Four significant digits, with a ×10ⁿ exponent instead of e-notation."""
+    text = f"{x:.4g}"
+    if "e" not in text:
+        return text
+    mantissa, exponent = text.split("e")
+    return f"{mantissa} × 10^{int(exponent)}"
+
+
+def _scale_for(value, unit):
+    for scale, label in _UNITS.get(unit, ((1.0, unit),)):
+        if abs(value) >= scale:
+            return scale, label
+    return _UNITS.get(unit, ((1.0, unit),))[-1]
+
+
+def format_quantity(value, unit, *, missing=None):
+    """``value`` (SI, in ``unit``) for display, e.g. ``format_quantity(0.0052, "s")`` → ``"5.2 ms"``.
+
+    Returns ``"—"``, followed by `` (missing)`` when a reason is given, for a
+    missing or non-finite value.
+    """
+    x = _number(value)
+    if x is None:
+        return f"{MISSING} ({missing})" if missing else MISSING
+    if x == 0:
+        return f"0 {unit}"
+    scale, label = _scale_for(x, unit)
+    return f"{_digits(x / scale)} {label}"
+
+
+def format_interval(interval, unit, like=None):
+    """``[low, high]`` (SI) for display in the units of ``like`` (or of ``low``), else None."""
+    if not interval or len(interval) != 2:
+        return None
+    low, high = (_number(v) for v in interval)
+    if low is None or high is None:
+        return None
+    ref = _number(like) or low or high
+    scale, label = _scale_for(ref, unit) if ref else (1.0, unit)
+    return f"{_digits(low / scale)} – {_digits(high / scale)} {label}"
+
+
+def _interval_of(result, key):
+    """The 95 % interval stored beside ``key`` (``<base>_ci95_<unit>``), if any."""
+    for suffix in ("_s", "_Pa_s", "_Pa", "_m"):
+        if key.endswith(suffix):
+            return result.get(f"{key[: -len(suffix)]}_ci95{suffix}")
+    return None
+
+
+def _headline(result):
+    """Rows of the headline table: dicts with label, value, interval (strings)."""
+    broke = _number(result.get("breakup_time_s")) is not None
+    lam = _number(result.get("relaxation_time_s")) is not None
+    #: (label, key, SI unit, reason when missing); an interval is expected for the first five
+    rows = [
+        ("relaxation time λ", "relaxation_time_s", "s",
+         "no elasto-capillary fit in this record"),
+        ("apparent elastic modulus G", "elastic_modulus_Pa", "Pa",
+         "needs an elasto-capillary fit"),
+        ("largest apparent extensional viscosity η_E,max", "extensional_viscosity_max_Pa_s", "Pa·s",
+         "none resolved above the resolution floor"),
+        ("terminal extensional viscosity η_E,∞", "extensional_viscosity_terminal_Pa_s", "Pa·s",
+         "no finite-extensibility stretch located"),
+        ("shear viscosity from visco-capillary thinning", "shear_viscosity_Pa_s", "Pa·s",
+         "no visco-capillary fit"),
+        ("breakup time", "breakup_time_s", "s", "the filament did not break within the record"),
+        ("filament lifetime", "filament_lifetime_s", "s",
+         "no breakup within the record" if not broke else "start of free thinning unknown"),
+        ("initial diameter D0", "initial_diameter_m", "m", "not measured"),
+        ("start of free thinning", "free_thinning_start_s", "s", "not located"),
+    ]
+    out = []
+    for i, (label, key, unit, reason) in enumerate(rows):
+        value = result.get(key)
+        interval = format_interval(_interval_of(result, key), unit, like=value)
+        if interval is None and _number(value) is not None and i < 5:
+            interval = f"{MISSING} (not computed)"
+        out.append({"label": label, "value": format_quantity(value, unit, missing=reason),
+                    "interval": interval or "", "missing": _number(value) is None})
+    window = result.get("fit_window_s")
+    window_text = format_interval(window, "s", like=(window or [None, None])[1])
+    frames = result.get("fit_window_frames")
+    if window_text and frames is not None:
+        window_text += f" ({frames} frames)"
+    out.append({"label": "headline fit window", "value": window_text or
+                f"{MISSING} ({'no headline fit' if not lam else 'not recorded'})",
+                "interval": "", "missing": window_text is None})
+    return out
+
+
+def _regimes(result):
+    headline = result.get("regime")
+    window = [_number(w) for w in (result.get("fit_window_s") or [])]
+    rows = []
+    for regime in result.get("regimes") or []:
+        t0, t1 = _number(regime.get("t_start_s")), _number(regime.get("t_end_s"))
+        in_fit = (regime.get("kind") == headline and len(window) == 2 and None not in window
+                  and t0 is not None and t1 is not None and t0 < window[1] and window[0] < t1)
+        rows.append({
+            "kind": str(regime.get("kind", "")),
+            "start": format_quantity(t0, "s"),
+            "end": format_quantity(t1, "s"),
+            "duration": format_quantity(t1 - t0, "s") if t0 is not None and t1 is not None else MISSING,
+            "headline": in_fit,
+        })
+    return rows
+
+
+def _option_value(value, unit):
+    if value is None:
+        return f"{MISSING} (not given)"
+    if unit is not None:
+        return format_quantity(value, unit)
+    if isinstance(value, (list, tuple)):
+        return ", ".join(str(v) for v in value)
+    return str(value)
+
+
+def _calibration(result):
+    rows = [
+        {"label": "frame rate used", "value": format_quantity(result.get("fps_hz"), "Hz",
+                                                              missing="not recorded")},
+        {"label": "pixel size used", "value": format_quantity(result.get("pixel_size_m"), "m",
+                                                              missing="not recorded")},
+    ]
+    for key, value in (result.get("options") or {}).items():
+        label, unit = _OPTION_LABELS.get(key, (str(key), None))
+        rows.append({"label": label, "value": _option_value(value, unit)})
+    return rows
+
+
+def _provenance(result):
+    source = result.get("source") or {}
+    size = None
+    if source.get("width_px") is not None and source.get("height_px") is not None:
+        size = f"{source['width_px']} × {source['height_px']} px"
+    rows = [
+        ("source", source.get("path")),
+        ("source sha256", source.get("sha256")),
+        ("frames", source.get("n_frames")),
+        ("frame size", size),
+        ("bit depth", source.get("bit_depth")),
+        ("tool version", result.get("tool_version")),
+        ("result schema", result.get("schema")),
+    ]
+    return [{"label": k, "value": MISSING if v is None else str(v)} for k, v in rows]
+
+
+def _embed(figures):
+    items = []
+    order = list(FIGURE_CAPTIONS) + [k for k in figures if k not in FIGURE_CAPTIONS]
+    for name in order:
+        if name not in figures:
+            continue
+        path = Path(figures[name])
+        try:
+            data = base64.b64encode(path.read_bytes()).decode("ascii")
+        except OSError:
+            items.append({"name": name, "caption": FIGURE_CAPTIONS.get(name, name), "data": None})
+            continue
+        items.append({"name": name, "caption": FIGURE_CAPTIONS.get(name, name),
+                      "data": f"data:image/png;base64,{data}"})
+    return items
+
+
+def recording_name(result):
+    """A display name: ``result["sample"]`` if present, else the source's file name."""
+    if result.get("sample"):
+        return str(result["sample"])
+    path = (result.get("source") or {}).get("path")
+    return PurePath(str(path)).name if path else "recording"
+
+
+def _environment():
+    return jinja2.Environment(loader=jinja2.FileSystemLoader(TEMPLATE_DIR), autoescape=True,
+                              undefined=jinja2.StrictUndefined, trim_blocks=True,
+                              lstrip_blocks=True, keep_trailing_newline=True)
+
+
+def render_recording_report(result, figures, *, name=None, details=None):
+    """The report's HTML text (see :func:`write_recording_report`)."""
+    quality = result.get("quality") or "undetermined"
+    context = {
+        "name": name if name is not None else recording_name(result),
+        "details": [{"label": str(k), "value": MISSING if v is None else str(v)}
+                    for k, v in (details or {}).items()],
+        "regime": result.get("regime") or "undetermined",
+        "quality": quality,
+        "doubtful": quality != "good",
+        "quality_reasons": [str(r) for r in result.get("quality_reasons") or []],
+        "headline": _headline(result),
+        "regimes": _regimes(result),
+        "figures": _embed(figures or {}),
+        "warnings": [str(w) for w in result.get("warnings") or []],
+        "calibration": _calibration(result),
+        "provenance": _provenance(result),
+        "cautions": CAUTIONS,
+    }
+    return _environment().get_template("recording.html").render(context)
+
+
+def write_recording_report(out_dir, result, figures, *, name=None, details=None):
+    """Write ``out_dir/report.html`` for one recording and return its path.
+
+    ``result`` is the ``result.json`` dict, ``figures`` maps figure names
+    (``diameter``, ``strain_rate``, ``extensional_viscosity``, ``frames``) to
+    PNG paths, which are embedded. ``name`` is the heading (default
+    :func:`recording_name`); ``details`` an optional mapping shown under it
+    (sample, lot, product, replicate …).
+    """
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    html = render_recording_report(result, figures, name=name, details=details)
+    path = out_dir / "report.html"
+    fd, tmp = tempfile.mkstemp(prefix=".report.html.", suffix=".tmp", dir=out_dir)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
+            fh.write(html)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+    return path
