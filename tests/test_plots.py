@@ -246,3 +246,23 @@ def test_empty_frame_strip_says_so():
     fig = plots.plot_frame_strip([])
     texts = [t.get_text() for ax in fig.get_axes() for t in ax.texts]
     assert texts == ["no frames"]
+
+
+def test_fits_as_written_by_fit_to_dict_are_drawn_and_failures_skipped(elastic):
+    from thinning.fits import Fit
+
+    table, result = elastic
+    rho, x_ic, t_c = 1000.0, 0.7, 0.09
+    ic = Fit(model="inertio-capillary", values={"prefactor_X_IC": x_ic, "singular_time_s": t_c},
+             window_s=(0.0, 0.004), n_points=9, success=True).to_dict()
+    failed = Fit(model="visco-capillary", window_s=(0.0, 0.004), success=False,
+                 message="too few frames").to_dict()
+    result = dict(result, fits={"inertio-capillary": ic, "visco-capillary": failed},
+                  options={"surface_tension_N_m": SIGMA, "density_kg_m3": rho})
+    curves = plots.fit_curves_from_result(result)
+    assert set(curves) == {"inertio-capillary"}
+    t, d = curves["inertio-capillary"]
+    np.testing.assert_allclose(d, laws.inertio_capillary_diameter(
+        t, t_c=t_c, surface_tension=SIGMA, density=rho, prefactor=x_ic), rtol=1e-12)
+    no_density = dict(result, options={"surface_tension_N_m": SIGMA})
+    assert plots.fit_curves_from_result(no_density) == {}

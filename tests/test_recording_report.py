@@ -165,3 +165,21 @@ def test_format_quantity_reason_and_interval():
     assert format_interval([0.005, 0.0054], "s", like=0.0052) == "5 – 5.4 ms"
     assert format_interval([0.005, None], "s") is None
     assert format_interval(None, "s") is None
+
+
+def test_intervals_come_from_the_headline_fits(tmp_path, figures):
+    from thinning.fits import Fit
+
+    ec = Fit(model="elasto-capillary", values={"relaxation_time_s": 0.0052, "elastic_modulus_Pa": 12.5},
+             ci95={"relaxation_time_s": (0.005, 0.0054), "elastic_modulus_Pa": (11.0, 14.0)},
+             window_s=(0.004, 0.028), n_points=241, success=True).to_dict()
+    fe = Fit(model="finite-extensibility", values={"terminal_extensional_viscosity_Pa_s": 99.0},
+             ci95={"terminal_extensional_viscosity_Pa_s": (90.0, 110.0)}, window_s=(0.03, 0.08),
+             n_points=20, success=True).to_dict()
+    other = dict(ec, values={"elastic_modulus_Pa": 50.0}, ci95={"elastic_modulus_Pa": [1.0, 2.0]})
+    result = _result(fits={"other": other, "elasto-capillary": ec, "finite-extensibility": fe},
+                     extensional_viscosity_terminal_Pa_s=99.0)
+    html = write_recording_report(tmp_path, result, figures).read_text("utf-8")
+    assert "11 – 14 Pa" in html
+    assert "90 – 110 Pa·s" in html
+    assert "1 – 2 Pa" not in html  # an interval of another value is never borrowed

@@ -14,8 +14,10 @@ Fit curves
 arrays already evaluated by the caller. Without it, curves are evaluated with
 the closed-form laws of :mod:`thinning.laws` from ``result["fits"]`` when that
 key is present (``{name: {"model": kind, "values": {...}, "window_s": [a, b]}}``,
-the values named like the laws' keyword arguments, with or without a unit
-suffix), otherwise from the headline elasto-capillary numbers of ``result``
+as written by ``Fit.to_dict()`` of :mod:`thinning.fits`; values named like
+``relaxation_time_s`` or like the laws' keyword arguments; failed fits and
+fits whose law cannot be evaluated, e.g. an inertio-capillary fit without the
+density, are not drawn), otherwise from the headline elasto-capillary numbers of ``result``
 (λ, G, D0, t0 and the surface tension in ``options``).
 """
 
@@ -86,7 +88,8 @@ _ALIASES = {  # result-style names → keyword names of thinning.laws
     "shear_viscosity_Pa_s": "viscosity",
     "viscosity_Pa_s": "viscosity",
     "breakup_time_s": "t_b",
-    "pinch_off_time_s": "t_c",
+    "singular_time_s": "t_c",
+    "prefactor_X_IC": "prefactor",
     "t0_s": "t0",
     "t_b_s": "t_b",
     "t_c_s": "t_c",
@@ -219,6 +222,8 @@ def fit_curves_from_result(result, *, n_points=200):
     for name, fit in fits.items():
         kind = fit.get("model", name)
         law = _LAWS.get(kind)
+        if fit.get("success") is False:
+            continue
         window = fit.get("window_s") or [None, None]
         a, b = (_number(w) for w in window)
         if law is None or a is None or b is None or b <= a:

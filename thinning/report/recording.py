@@ -67,6 +67,9 @@ _OPTION_LABELS = {
 
 MISSING = "—"
 
+#: result.json key → name of the same value in a fit's ``values`` (where they differ)
+_FIT_VALUE_NAMES = {"extensional_viscosity_terminal_Pa_s": "terminal_extensional_viscosity_Pa_s"}
+
 
 def _number(value):
     """``value`` as a finite float, else None."""
@@ -123,10 +126,26 @@ def format_interval(interval, unit, like=None):
 
 
 def _interval_of(result, key):
-    """The 95 % interval stored beside ``key`` (``<base>_ci95_<unit>``), if any."""
-    for suffix in ("_s", "_Pa_s", "_Pa", "_m"):
+    """The 95 % interval of ``key``: stored beside it (``<base>_ci95_<unit>``), else in a fit.
+
+    A fit's interval (``result["fits"][name]["ci95"][key]``) is used only when
+    that fit's value is the headline value itself.
+    """
+    for suffix in ("_Pa_s", "_s", "_Pa", "_m"):
         if key.endswith(suffix):
-            return result.get(f"{key[: -len(suffix)]}_ci95{suffix}")
+            beside = result.get(f"{key[: -len(suffix)]}_ci95{suffix}")
+            if beside is not None:
+                return beside
+            break
+    value = _number(result.get(key))
+    fit_key = _FIT_VALUE_NAMES.get(key, key)
+    for fit in (result.get("fits") or {}).values():
+        if not isinstance(fit, dict) or fit.get("success") is False:
+            continue
+        interval = (fit.get("ci95") or {}).get(fit_key)
+        fitted = _number((fit.get("values") or {}).get(fit_key))
+        if interval is not None and value is not None and fitted == value:
+            return interval
     return None
 
 
