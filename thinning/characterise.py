@@ -1,0 +1,299 @@
+"""From a minimum-diameter series to regimes and rheology numbers: the one entry point.
+
+:func:`characterise` locates the regimes (:mod:`thinning.regimes`), fits the
+laws (:mod:`thinning.fits`), derives the per-frame curves and dimensionless
+groups (:mod:`thinning.rheology`) and says what may make the numbers
+untrustworthy (:class:`thinning.findings.Finding`). Pure: arrays in, a
+:class:`Characterisation` out.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from . import regimes as rg
+from .findings import Finding, Severity
+from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_extensibility,
+                   fit_inertiocapillary, fit_viscocapillary)
+from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
+
+logger = logging.getLogger(__name__)
+
+GEOMETRIES = ("plates", "dripping")
+UNDETERMINED = "undetermined"
+#: Resolution floor in pixels (physics.md §8: widths below ~3 blur sizes are biased).
+FLOOR_PIXELS = 3.0
+#: Fewer frames than this in the headline window make the number doubtful (interface.md).
+MIN_WINDOW_FRAMES = 10
+#: Bond number above which gravity may sag the bridge (Warwaruk et al. 2025: Bo > 0.5).
+SAGGING_BOND_NUMBER = 0.5
+#: An elastic window ended by the floor is doubtful when D falls by less than this inside it.
+MIN_FLOOR_CUT_DECREASE = 3.0
+
+
+@dataclass(frozen=True)
+class Characterisation:
+    """Regimes and rheology numbers of one record (SI units, None where not applicable)."""
+
+    regime: str
+    regimes: list
+    relaxation_time_s: float | None
+    relaxation_time_ci95_s: tuple | None
+    fit_window_s: tuple | None
+    fit_window_frames: int | None
+    free_thinning_start_s: float
+    initial_diameter_m: float | None
+    elastic_modulus_Pa: float | None
+    shear_viscosity_Pa_s: float | None
+    extensional_viscosity_max_Pa_s: float | None
+    extensional_viscosity_terminal_Pa_s: float | None
+    breakup_time_s: float | None
+    filament_lifetime_s: float | None
+    trouton_ratio_max: float | None
+    finite_extensibility_L2: float | None
+    groups: dict
+    resolution_floor_m: float
+    diameter_noise_m: float | None
+    fits: dict = field(default_factory=dict)
+    curves: pd.DataFrame = field(default_factory=pd.DataFrame)
+    findings: list = field(default_factory=list)
+
+    @property
+    def ohnesorge_number(self):
+        return self.groups.get("ohnesorge_number")
+
+    @property
+    def deborah_number(self):
+        return self.groups.get("deborah_number")
+
+    @property
+    def elasto_capillary_number(self):
+        return self.groups.get("elasto_capillary_number")
+
+    @property
+    def bond_number(self):
+        return self.groups.get("bond_number")
+
+    def result_fields(self) -> dict:
+        """The rheology keys of ``result.json`` (interface.md), plus extras; JSON-ready, no NaN."""
+        def num(v):
+            if v is None:
+                return None
+            v = float(v)
+            return v if np.isfinite(v) else None
+
+        def pair(p):
+            if p is None:
+                return None
+            a, b = num(p[0]), num(p[1])
+            return None if a is None or b is None else [a, b]
+
+        out = {
+            "regime": self.regime,
+            "regimes": [r.to_dict() for r in self.regimes],
+            "relaxation_time_s": num(self.relaxation_time_s),
+            "relaxation_time_ci95_s": pair(self.relaxation_time_ci95_s),
+            "fit_window_s": pair(self.fit_window_s),
+            "fit_window_frames": None if self.fit_window_frames is None else int(self.fit_window_frames),
+            "free_thinning_start_s": num(self.free_thinning_start_s),
+            "initial_diameter_m": num(self.initial_diameter_m),
+            "elastic_modulus_Pa": num(self.elastic_modulus_Pa),
+            "shear_viscosity_Pa_s": num(self.shear_viscosity_Pa_s),
+            "extensional_viscosity_max_Pa_s": num(self.extensional_viscosity_max_Pa_s),
+            "extensional_viscosity_terminal_Pa_s": num(self.extensional_viscosity_terminal_Pa_s),
+            "breakup_time_s": num(self.breakup_time_s),
+            "filament_lifetime_s": num(self.filament_lifetime_s),
+            "trouton_ratio_max": num(self.trouton_ratio_max),
+            "finite_extensibility_L2": num(self.finite_extensibility_L2),
+            "resolution_floor_m": num(self.resolution_floor_m),
+            "diameter_noise_m": num(self.diameter_noise_m),
+        }
+        for key in ("ohnesorge_number", "deborah_number", "elasto_capillary_number", "bond_number"):
+            out[key] = num(self.groups.get(key))
+        out["fit_details"] = {name: f.to_dict() for name, f in self.fits.items()}
+        return out
+
+
+def _check_inputs(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz, geometry):
+    t = np.asarray(time_s, dtype=float)
+    d = np.asarray(diameter_m, dtype=float)
+    if t.ndim != 1 or t.shape != d.shape:
+        raise ValueError("time_s and diameter_m must be 1-D arrays of the same length")
+    for name, v in (("surface_tension", surface_tension), ("pixel_size_m", pixel_size_m),
+                    ("fps_hz", fps_hz)):
+        if not (v is not None and np.isfinite(v) and v > 0):
+            raise ValueError(f"{name} must be a positive number, got {v!r}")
+    if geometry not in GEOMETRIES:
+        raise ValueError(f"geometry must be one of {GEOMETRIES}, got {geometry!r}")
+    return t, d
+
+
+def _initial_diameter(t, d, t0):
+    ok = np.flatnonzero(np.isfinite(d) & (d > 0) & (t >= t0 - 1e-12))
+    if ok.size == 0:
+        return None
+    return float(d[ok[np.argmin(t[ok])]])
+
+
+def _longest(regs, kind):
+    pick = [r for r in regs if r.kind == kind]
+    if not pick:
+        return None
+    return max(pick, key=lambda r: (np.log(r.diameter_start_m / r.diameter_end_m), r.n_frames))
+
+
+def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
+                 free_thinning_start_s, breakup_time_s=None, density=None, solvent_viscosity=None,
+                 zero_shear_viscosity=None, geometry="plates", seed: int, diameter_noise_m=None,
+                 resolution_floor_m=None) -> Characterisation:
+    """Regimes, relaxation time, viscosities and quality findings of one diameter series.
+
+    ``time_s`` (s, recording clock) and ``diameter_m`` (m, NaN where no thread)
+    are per frame; frames before ``free_thinning_start_s`` are ignored. σ in
+    N/m, ρ in kg/m³, viscosities in Pa·s (all optional but σ). The resolution
+    floor defaults to 3 pixel sizes; ``diameter_noise_m`` is estimated from the
+    data when None. ``breakup_time_s`` None: estimated from the record (None
+    when the filament never broke). ``seed`` seeds the bootstrap.
+    """
+    t, d = _check_inputs(time_s, diameter_m, surface_tension=surface_tension,
+                         pixel_size_m=pixel_size_m, fps_hz=fps_hz, geometry=geometry)
+    t0 = float(free_thinning_start_s)
+    floor = FLOOR_PIXELS * pixel_size_m if resolution_floor_m is None else float(resolution_floor_m)
+    findings: list[Finding] = []
+    d0 = _initial_diameter(t, d, t0)
+    t_b = breakup_time_s if breakup_time_s is not None else estimate_breakup_time(t, d, t_start_s=t0)
+    ra = rg.analyse_regimes(t, d, resolution_floor_m=floor, diameter_noise_m=diameter_noise_m,
+                            t_start_s=t0, breakup_time_s=t_b)
+    regs = ra.regimes
+    noise = ra.series.noise_m if ra.series.n else diameter_noise_m
+    common = dict(diameter_noise_m=noise, resolution_floor_m=floor)
+    polymer_viscosity = None
+    if zero_shear_viscosity is not None and solvent_viscosity is not None:
+        polymer_viscosity = zero_shear_viscosity - solvent_viscosity
+        if not polymer_viscosity > 0:
+            polymer_viscosity = None
+
+    fits: dict[str, Fit] = {}
+    ec, vc = _longest(regs, rg.ELASTO_CAPILLARY), _longest(regs, rg.VISCO_CAPILLARY)
+    ic, fe = _longest(regs, rg.INERTIO_CAPILLARY), _longest(regs, rg.FINITE_EXTENSIBILITY)
+    if ec is not None and d0 is not None:
+        fits["elasto-capillary"] = fit_elastocapillary(
+            t, d, window_s=(ec.t_start_s, ec.t_end_s), surface_tension=surface_tension,
+            initial_diameter=d0, t0=t0, seed=seed, **common)
+    if vc is not None:
+        fits["visco-capillary"] = fit_viscocapillary(
+            t, d, window_s=(vc.t_start_s, vc.t_end_s), surface_tension=surface_tension,
+            seed=seed + 1, **common)
+    if ic is not None:
+        fits["inertio-capillary"] = fit_inertiocapillary(
+            t, d, window_s=(ic.t_start_s, ic.t_end_s), surface_tension=surface_tension,
+            density=density, seed=seed + 2, **common)
+    if fe is not None:
+        fits["finite-extensibility"] = fit_finite_extensibility(
+            t, d, window_s=(fe.t_start_s, fe.t_end_s), surface_tension=surface_tension,
+            polymer_viscosity=polymer_viscosity, seed=seed + 3, **common)
+
+    headline, head_fit, head_regime = UNDETERMINED, None, None
+    for kind, reg in ((rg.ELASTO_CAPILLARY, ec), (rg.VISCO_CAPILLARY, vc), (rg.INERTIO_CAPILLARY, ic)):
+        f = fits.get(kind)
+        if f:
+            headline, head_fit, head_regime = kind, f, reg
+            break
+
+    lam = lam_ci = g = None
+    if headline == rg.ELASTO_CAPILLARY:
+        lam = head_fit.values["relaxation_time_s"]
+        lam_ci = head_fit.ci95["relaxation_time_s"]
+        if not all(np.isfinite(lam_ci)):
+            lam_ci = None
+        g = head_fit.values["elastic_modulus_Pa"]
+    eta_shear = fits["visco-capillary"].values["shear_viscosity_Pa_s"] if fits.get("visco-capillary") else None
+    fe_fit = fits.get("finite-extensibility")
+    eta_terminal = fe_fit.values["terminal_extensional_viscosity_Pa_s"] if fe_fit else None
+    l2 = fe_fit.values.get("finite_extensibility_L2") if fe_fit else None
+
+    curves = derived_curves(t, d, surface_tension=surface_tension,
+                            initial_diameter=d0 if d0 is not None else np.nan, t_start_s=t0,
+                            resolution_floor_m=floor, diameter_noise_m=noise)
+    eta_max = extensional_viscosity_max(curves)
+
+    eta0 = zero_shear_viscosity
+    if eta0 is None and solvent_viscosity is not None:
+        eta0 = solvent_viscosity
+        findings.append(Finding("viscosity-fallback", Severity.NOTE,
+                                "No zero-shear viscosity was given, so the solvent viscosity stands in "
+                                "for it in the Trouton ratio and the Ohnesorge number."))
+    elif eta0 is None and eta_shear is not None:
+        eta0 = eta_shear
+    trouton = eta_max / eta0 if (eta_max is not None and eta0) else None
+    groups = dimensionless_groups(initial_diameter=d0 if d0 is not None else np.nan,
+                                  surface_tension=surface_tension, density=density, viscosity=eta0,
+                                  relaxation_time=lam) if d0 is not None else \
+        dimensionless_groups(initial_diameter=np.nan, surface_tension=surface_tension)
+
+    lifetime = (t_b - t0) if t_b is not None else None
+    findings += _findings(ra, regs, headline, head_fit, head_regime, t_b=t_b, fps_hz=fps_hz,
+                          floor=floor, groups=groups, lam=lam)
+    return Characterisation(
+        regime=headline, regimes=regs, relaxation_time_s=lam,
+        relaxation_time_ci95_s=None if lam_ci is None else tuple(lam_ci),
+        fit_window_s=None if head_fit is None else head_fit.window_s,
+        fit_window_frames=None if head_fit is None else head_fit.n_points,
+        free_thinning_start_s=t0, initial_diameter_m=d0, elastic_modulus_Pa=g,
+        shear_viscosity_Pa_s=eta_shear, extensional_viscosity_max_Pa_s=eta_max,
+        extensional_viscosity_terminal_Pa_s=eta_terminal, breakup_time_s=t_b,
+        filament_lifetime_s=lifetime, trouton_ratio_max=trouton, finite_extensibility_L2=l2,
+        groups=groups, resolution_floor_m=floor, diameter_noise_m=noise, fits=fits, curves=curves,
+        findings=findings)
+
+
+def _findings(ra, regs, headline, head_fit, head_regime, *, t_b, fps_hz, floor, groups, lam):
+    out = []
+    series = ra.series
+    if headline == UNDETERMINED:
+        out.append(Finding("no-usable-regime", Severity.DOUBTFUL,
+                           "No thinning regime could be located in the record, so no rheology "
+                           "number from it can be trusted."))
+    elif headline != rg.ELASTO_CAPILLARY:
+        out.append(Finding("no-elastic-regime", Severity.NOTE,
+                           f"No elasto-capillary stretch was found: the liquid thinned like a "
+                           f"Newtonian one ({headline}), so there is no relaxation time."))
+    if head_fit is not None and head_fit.n_points < MIN_WINDOW_FRAMES:
+        what = ("the frame rate is too low for this relaxation time"
+                if headline == rg.ELASTO_CAPILLARY else "the frame rate is too low for this liquid")
+        out.append(Finding("few-frames-in-window", Severity.DOUBTFUL,
+                           f"Only {head_fit.n_points} frames lie in the {headline} fit window; {what}.",
+                           head_fit.window_s))
+    if head_regime is not None and head_regime.cut_by_floor:
+        fall = head_regime.diameter_start_m / head_regime.diameter_end_m
+        if headline == rg.ELASTO_CAPILLARY and fall < MIN_FLOOR_CUT_DECREASE:
+            out.append(Finding("window-cut-by-floor", Severity.DOUBTFUL,
+                               f"The resolution floor ({floor * 1e6:.3g} µm) cuts the elasto-capillary "
+                               f"window short: the diameter falls only {fall:.2g}-fold inside it.",
+                               head_fit.window_s))
+        else:
+            out.append(Finding("floor-ends-window", Severity.NOTE,
+                               f"The {headline} window ends at the resolution floor "
+                               f"({floor * 1e6:.3g} µm); thinner frames were left out of the fits.",
+                               head_fit.window_s))
+    if t_b is None and series.n:
+        out.append(Finding("no-breakup", Severity.NOTE,
+                           "The filament did not break within the record."))
+    if series.outlier_index.size:
+        out.append(Finding("outlier-frames", Severity.NOTE,
+                           f"{series.outlier_index.size} frames stood out from the thinning trend "
+                           f"(beads or mis-measured frames) and were left out of the fits."))
+    bo = groups.get("bond_number")
+    if bo is not None and bo > SAGGING_BOND_NUMBER:
+        out.append(Finding("gravity-sagging", Severity.NOTE,
+                           f"The Bond number is {bo:.2g}, so gravity may sag the filament "
+                           f"and move its neck."))
+    if lam is not None and lam * fps_hz < 10:
+        out.append(Finding("few-frames-per-relaxation-time", Severity.NOTE,
+                           f"The camera takes only {lam * fps_hz:.2g} frames per relaxation time; "
+                           f"at least 10 are advisable."))
+    return out

@@ -1,0 +1,642 @@
+"""Locating the thinning regimes in a minimum-diameter series D(t).
+
+Everything here works on plain arrays (time in s on the recording's clock,
+diameter in m, NaN where no thread was measured) and never touches files.
+
+The criteria (physics.md §3.5, §4, §5.1):
+
+1. Only frames after the start of free thinning, with a finite diameter above
+   the resolution floor (default 3 pixels) and not flagged as outliers, are
+   used. An outlier is a frame whose ln D departs from the running median of
+   its neighbours by more than 5 noise standard deviations (beads, dust,
+   mis-measured frames).
+2. A local Hencky strain rate ε̇(t) = −2 d ln D/dt comes from sliding weighted
+   least-squares lines through ln D (weights (D/σ_D)², σ_D the diameter noise),
+   each window spanning about 0.2 in ln D (at least 5, at most 201 frames), so
+   it adapts to fast and slow thinning. The local relaxation time is
+   λ(t) = 2/(3 ε̇) (Anna & McKinley 2001).
+3. Elasto-capillary: the stretch covering the largest fall of ln D in which the
+   local λ stays within ±5 % of one value (plus 2.5 standard errors of each
+   local estimate), with at least 6 frames and D falling by at least a factor
+   2. This is where ln D is a straight line in t.
+4. Finite extensibility: the stretch after the elasto-capillary one in which the
+   strain rate rises clearly above 2/(3λ) (ln D bends down). A linear stretch
+   after an elasto-capillary one is never called visco-capillary
+   (physics.md §3.4).
+5. Before an elasto-capillary stretch, or when there is none, a stretch is
+   visco-capillary when D follows a power law of (t_c − t) with exponent
+   1 ± 0.2, inertio-capillary with exponent 2/3 ± 0.1, tested on the local
+   exponent n(t) = ε̇ (t_c − t)/2 (t_c the breakup, or the fitted singular time).
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.ndimage import median_filter
+from scipy.optimize import least_squares
+from scipy.signal import savgol_filter
+
+logger = logging.getLogger(__name__)
+
+INERTIO_CAPILLARY = "inertio-capillary"
+VISCO_CAPILLARY = "visco-capillary"
+ELASTO_CAPILLARY = "elasto-capillary"
+FINITE_EXTENSIBILITY = "finite-extensibility"
+KINDS = (INERTIO_CAPILLARY, VISCO_CAPILLARY, ELASTO_CAPILLARY, FINITE_EXTENSIBILITY)
+
+#: Local exponent of D ∝ (t_c − t)^n for each power-law regime, and the accepted half-width.
+POWER_LAW_EXPONENTS = {VISCO_CAPILLARY: (1.0, 0.2), INERTIO_CAPILLARY: (2.0 / 3.0, 0.1)}
+
+
+@dataclass(frozen=True)
+class Regime:
+    """One located stretch of the record (times on the recording's clock, s).
+
+    ``n_frames`` counts the usable frames inside; ``value`` is the stretch's
+    characteristic number: the local relaxation time (s) for elasto-capillary,
+    the power-law exponent for the others; ``cut_by_floor`` says whether the
+    stretch ends because the diameter reached the resolution floor.
+    """
+
+    kind: str
+    t_start_s: float
+    t_end_s: float
+    n_frames: int
+    diameter_start_m: float
+    diameter_end_m: float
+    value: float
+    cut_by_floor: bool = False
+
+    def to_dict(self) -> dict:
+        """The ``result.json`` form ``{"kind", "t_start_s", "t_end_s"}``."""
+        return {"kind": self.kind, "t_start_s": float(self.t_start_s), "t_end_s": float(self.t_end_s)}
+
+
+@dataclass(frozen=True)
+class PreparedSeries:
+    """The usable part of a series.
+
+    ``index`` holds the positions (in the input arrays) of the usable frames,
+    in time order; ``time_s``/``diameter_m`` their values; ``noise_m`` the
+    diameter noise (given or estimated); ``outlier_index`` and
+    ``below_floor_index`` the positions left out for each reason.
+    """
+
+    index: np.ndarray
+    time_s: np.ndarray
+    diameter_m: np.ndarray
+    noise_m: float
+    resolution_floor_m: float
+    outlier_index: np.ndarray
+    below_floor_index: np.ndarray
+    last_thread_index: int | None
+
+    @property
+    def n(self) -> int:
+        return int(self.index.size)
+
+
+@dataclass(frozen=True)
+class LocalSlopes:
+    """Sliding weighted line fits of ln D: slope (1/s), its standard error, fitted ln D, window."""
+
+    slope_1_s: np.ndarray
+    slope_se_1_s: np.ndarray
+    log_diameter_fit: np.ndarray
+    left: np.ndarray
+    right: np.ndarray
+
+    @property
+    def strain_rate_1_s(self) -> np.ndarray:
+        return -2.0 * self.slope_1_s
+
+    @property
+    def relaxation_time_s(self) -> np.ndarray:
+        """Local λ = −1/(3 d ln D/dt), NaN where D is not falling."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(self.slope_1_s < 0, -1.0 / (3.0 * self.slope_1_s), np.nan)
+
+
+# --- preparing a series ----------------------------------------------------------------
+
+def estimate_diameter_noise(diameter_m, *, minimum_m=0.0) -> float:
+    """Noise standard deviation of D (m) from residuals about a local quadratic (7 frames).
+
+    Robust (median absolute deviation), so beads and the steep last frames do
+    not inflate it. ``diameter_m`` must be finite, in time order.
+    """
+    d = np.asarray(diameter_m, dtype=float)
+    if d.size < 9:
+        return float(minimum_m)
+    resid = d - savgol_filter(d, 7, 2)
+    # residual of a 7-point quadratic smoother has variance σ²·(1 − 1/3)
+    sigma = 1.4826 * np.median(np.abs(resid - np.median(resid))) / np.sqrt(2.0 / 3.0)
+    return float(max(sigma, minimum_m))
+
+
+def last_thread_position(time_s, diameter_m, *, t_start_s=None) -> int | None:
+    """Position of the last frame showing a thread, when every later frame shows none.
+
+    None when the last frame of the record still shows a thread (no breakup
+    within the record) or no frame shows one.
+    """
+    t = np.asarray(time_s, dtype=float)
+    d = np.asarray(diameter_m, dtype=float)
+    has = np.isfinite(d) & (d > 0)
+    if t_start_s is not None:
+        has &= t >= t_start_s - 1e-12
+    if not has.any():
+        return None
+    last = int(np.flatnonzero(has)[-1])
+    if last == d.size - 1:
+        return None
+    return last
+
+
+def prepare_series(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
+                   t_start_s=None, outlier_threshold=5.0) -> PreparedSeries:
+    """Select the usable frames: finite D, after ``t_start_s``, above the floor, not outliers."""
+    t = np.asarray(time_s, dtype=float)
+    d = np.asarray(diameter_m, dtype=float)
+    if t.shape != d.shape or t.ndim != 1:
+        raise ValueError("time_s and diameter_m must be 1-D arrays of the same length")
+    finite = np.isfinite(t) & np.isfinite(d) & (d > 0)
+    if t_start_s is not None:
+        finite &= t >= t_start_s - 1e-12
+    order = np.flatnonzero(finite)
+    order = order[np.argsort(t[order], kind="stable")]
+    above = d[order] >= resolution_floor_m
+    below_floor = order[~above]
+    cand = order[above]
+    floor_noise = 0.01 * resolution_floor_m / 3.0  # 0.01 px: keeps weights finite on clean data
+    if diameter_noise_m is not None:
+        noise = float(diameter_noise_m)
+    else:
+        noise = estimate_diameter_noise(d[cand], minimum_m=floor_noise)
+    noise = max(noise, floor_noise)
+    outliers = np.empty(0, dtype=int)
+    if cand.size >= 9:
+        lnd = np.log(d[cand])
+        med = median_filter(lnd, size=9, mode="nearest")
+        bad = np.abs(lnd - med) > outlier_threshold * noise / d[cand]
+        outliers = cand[bad]
+        cand = cand[~bad]
+    return PreparedSeries(
+        index=cand, time_s=t[cand], diameter_m=d[cand], noise_m=noise,
+        resolution_floor_m=float(resolution_floor_m), outlier_index=outliers,
+        below_floor_index=below_floor,
+        last_thread_index=last_thread_position(t, d, t_start_s=t_start_s),
+    )
+
+
+# --- local fits ------------------------------------------------------------------------
+
+def _window_bounds(log_d, *, log_span, min_half, max_half):
+    """Per point, the inclusive window [left, right] spanning about ``log_span`` in ln D."""
+    n = log_d.size
+    smooth = median_filter(log_d, size=min(5, n) | 1, mode="nearest")
+    mono = np.minimum.accumulate(smooth)  # D only falls during free thinning
+    key = -mono                           # increasing
+    half = log_span / 2.0
+    i = np.arange(n)
+    left = np.searchsorted(key, key - half, side="left")
+    right = np.searchsorted(key, key + half, side="right") - 1
+    left = np.clip(np.minimum(left, i - min_half), np.maximum(i - max_half, 0), None)
+    right = np.clip(np.maximum(right, i + min_half), None, np.minimum(i + max_half, n - 1))
+    left = np.clip(left, 0, n - 1)
+    right = np.clip(right, 0, n - 1)
+    return left, right
+
+
+def _line_fits(x, y, w, left, right):
+    """Weighted lines through (x, y) over inclusive windows [left, right], via prefix sums."""
+    def csum(v):
+        return np.concatenate([[0.0], np.cumsum(v)])
+
+    p_w, p_x, p_y, p_xx, p_xy = (csum(v) for v in (w, w * x, w * y, w * x * x, w * x * y))
+    r1 = right + 1
+    s_w = p_w[r1] - p_w[left]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        xm = (p_x[r1] - p_x[left]) / s_w
+        ym = (p_y[r1] - p_y[left]) / s_w
+        sxx = (p_xx[r1] - p_xx[left]) - s_w * xm * xm
+        sxy = (p_xy[r1] - p_xy[left]) - s_w * xm * ym
+        slope = np.where(sxx > 0, sxy / sxx, np.nan)
+        se = np.where(sxx > 0, 1.0 / np.sqrt(sxx), np.nan)
+    return slope, se, ym + slope * (x - xm)
+
+
+def local_log_slopes(time_s, diameter_m, *, noise_m, log_span=0.2, min_half_width=2,
+                     max_half_width=100, half_width=None, target_rel_se=None) -> LocalSlopes:
+    """Sliding weighted least-squares lines through ln D, one per point.
+
+    Weights are (D/σ_D)² (noise constant in D makes σ_lnD = σ_D/D). Each
+    window spans about ``log_span`` in ln D, clipped to [``min_half_width``,
+    ``max_half_width``] points either side (one-sided at the ends). With
+    ``target_rel_se``, a point whose slope is less precise than that is refitted
+    over 2, 4, 8 times the span (noisy thin frames get wider windows). A fixed
+    ``half_width`` (points) overrides the adaptive choice. Returns slopes
+    d ln D/dt (1/s) with standard errors from the weights.
+    """
+    t = np.asarray(time_s, dtype=float)
+    d = np.asarray(diameter_m, dtype=float)
+    y = np.log(d)
+    n = y.size
+    w = (d / noise_m) ** 2
+    scale = np.median(np.diff(t)) if n > 1 else 1.0
+    x = (t - t[0]) / scale
+    if half_width is not None:
+        i = np.arange(n)
+        left = np.clip(i - half_width, 0, n - 1)
+        right = np.clip(i + half_width, 0, n - 1)
+        slope, se, fit = _line_fits(x, y, w, left, right)
+    else:
+        left, right = _window_bounds(y, log_span=log_span, min_half=min_half_width,
+                                     max_half=max_half_width)
+        slope, se, fit = _line_fits(x, y, w, left, right)
+        if target_rel_se is not None:
+            for k in (2.0, 4.0, 8.0):
+                poor = ~(np.abs(se / slope) <= target_rel_se)
+                if not poor.any():
+                    break
+                l2, r2 = _window_bounds(y, log_span=k * log_span, min_half=min_half_width,
+                                        max_half=int(k * max_half_width))
+                s2, e2, f2 = _line_fits(x, y, w, l2, r2)
+                slope, se, fit = (np.where(poor, a, b) for a, b in ((s2, slope), (e2, se), (f2, fit)))
+                left, right = np.where(poor, l2, left), np.where(poor, r2, right)
+    return LocalSlopes(slope_1_s=slope / scale, slope_se_1_s=se / scale, log_diameter_fit=fit,
+                       left=left, right=right)
+
+
+# --- elasto-capillary run --------------------------------------------------------------
+
+def _close_gaps(mask, max_gap):
+    """Fill runs of at most ``max_gap`` False values that have True on both sides."""
+    m = mask.copy()
+    idx = np.flatnonzero(~m)
+    if idx.size == 0:
+        return m
+    starts = idx[np.r_[True, np.diff(idx) > 1]]
+    ends = idx[np.r_[np.diff(idx) > 1, True]]
+    for s, e in zip(starts, ends):
+        if e - s + 1 <= max_gap and s > 0 and e < m.size - 1:
+            m[s:e + 1] = True
+    return m
+
+
+def _runs(mask):
+    """(start, end) inclusive of every run of True."""
+    if not mask.any():
+        return []
+    idx = np.flatnonzero(mask)
+    brk = np.flatnonzero(np.diff(idx) > 1)
+    starts = np.r_[idx[0], idx[brk + 1]]
+    ends = np.r_[idx[brk], idx[-1]]
+    return list(zip(starts.tolist(), ends.tolist()))
+
+
+def _weighted_line(x, y, w):
+    """Weighted least-squares line: slope, intercept at x = 0, slope SE from weights."""
+    sw = w.sum()
+    xm = (w * x).sum() / sw
+    ym = (w * y).sum() / sw
+    sxx = (w * (x - xm) ** 2).sum()
+    slope = (w * (x - xm) * (y - ym)).sum() / sxx
+    return slope, ym - slope * xm, 1.0 / np.sqrt(sxx)
+
+
+def find_elastocapillary_run(series: PreparedSeries, slopes: LocalSlopes, *, tolerance=0.05,
+                             z=2.0, min_points=6, min_decrease=2.0, max_gap=2, max_drift=0.25):
+    """Positions (start, end) in ``series`` of the elasto-capillary run, or None.
+
+    See the module docstring (criterion 3). The run is grown around a
+    reference λ taken from a grid, then the reference is refined to the
+    weighted fit over the run until it settles.
+    """
+    lam = slopes.relaxation_time_s
+    rel_se = np.abs(slopes.slope_se_1_s / slopes.slope_1_s)
+    ok = np.isfinite(lam) & np.isfinite(rel_se)
+    if ok.sum() < min_points:
+        return None
+    log_d = np.log(series.diameter_m)
+    allowance = tolerance + z * np.where(ok, rel_se, np.inf)
+    allowance = np.minimum(allowance, 2.0 * tolerance)  # noise never makes a power law look constant
+
+    def best_run(ref):
+        consistent = ok & (np.abs(lam / ref - 1.0) <= allowance)
+        consistent = _close_gaps(consistent, max_gap)
+        best = None
+        for s, e in _runs(consistent):
+            if e - s + 1 < min_points:
+                continue
+            span = log_d[s] - log_d[e]
+            if span < np.log(min_decrease):
+                continue
+            if best is None or span > best[2]:
+                best = (s, e, span)
+        return best
+
+    lo, hi = np.nanpercentile(lam[ok], [1, 99])
+    if not (hi > 0 and lo > 0):
+        return None
+    grid = np.exp(np.arange(np.log(lo), np.log(hi) + tolerance, tolerance / 2.0))
+    candidates = [r for r in (best_run(ref) for ref in grid) if r is not None]
+    if not candidates:
+        return None
+    s, e, _ = max(candidates, key=lambda r: (r[2], r[1] - r[0]))
+    for _ in range(6):
+        x = series.time_s[s:e + 1]
+        w = (series.diameter_m[s:e + 1] / series.noise_m) ** 2
+        slope, _, _ = _weighted_line(x - x[0], log_d[s:e + 1], w)
+        if slope >= 0:
+            return None
+        ref = -1.0 / (3.0 * slope)
+        run = best_run(ref)
+        if run is None:
+            break
+        # keep the run that overlaps the previous one
+        if run[1] < s or run[0] > e:
+            break
+        if (run[0], run[1]) == (s, e):
+            break
+        s, e = run[0], run[1]
+    return _trim_to_constant_rate(series, s, e, max_drift=max_drift, min_points=min_points,
+                                  min_decrease=min_decrease)
+
+
+def relaxation_time_drift(time_s, diameter_m, *, noise_m):
+    """Relative change of the local λ across a stretch, and its standard error.
+
+    From a weighted quadratic fit of ln D in t: δ = (λ_end − λ_start)/λ_mid, 0
+    for an exponential; about −0.5 or more for any power law over a factor-2
+    fall of D.
+    """
+    t = np.asarray(time_s, dtype=float)
+    d = np.asarray(diameter_m, dtype=float)
+    x = (t - t.mean()) / max(np.ptp(t), np.finfo(float).tiny)
+    w = (d / noise_m) ** 2
+    a = np.vstack([np.ones_like(x), x, x * x]).T
+    aw = a * w[:, None]
+    cov = np.linalg.inv(a.T @ aw)
+    coef = cov @ (aw.T @ np.log(d))
+    b, c = coef[1], coef[2]
+    x0, x1 = x[0], x[-1]
+    s0, s1, sm = b + 2 * c * x0, b + 2 * c * x1, b + c * (x0 + x1)
+    # λ ∝ −1/s: δ = (1/s1 − 1/s0)·sm = sm (s0 − s1)/(s0 s1)
+    delta = sm * (s0 - s1) / (s0 * s1)
+    # gradient of δ with respect to (b, c), numerically
+    eps_b, eps_c = 1e-6 * max(abs(b), 1e-12), 1e-6 * max(abs(c), abs(b), 1e-12)
+
+    def dlt(bb, cc):
+        q0, q1, qm = bb + 2 * cc * x0, bb + 2 * cc * x1, bb + cc * (x0 + x1)
+        return qm * (q0 - q1) / (q0 * q1)
+
+    g = np.array([0.0, (dlt(b + eps_b, c) - dlt(b - eps_b, c)) / (2 * eps_b),
+                  (dlt(b, c + eps_c) - dlt(b, c - eps_c)) / (2 * eps_c)])
+    se = float(np.sqrt(max(g @ cov @ g, 0.0)))
+    return float(delta), se
+
+
+def _trim_to_constant_rate(series, s, e, *, max_drift, min_points, min_decrease):
+    """Shrink [s, e] until ln D is shown to be straight: |δ| + 2 SE(δ) ≤ ``max_drift``.
+
+    Trims the late (noisier) end first, then the early one, in steps of a
+    tenth of the run's fall in ln D. None when no sub-run passes.
+    """
+    log_d = np.log(series.diameter_m)
+    key = -np.minimum.accumulate(log_d)  # increasing, for searchsorted
+
+    def passes(a, b):
+        if b - a + 1 < min_points or log_d[a] - log_d[b] < np.log(min_decrease):
+            return False
+        delta, se = relaxation_time_drift(series.time_s[a:b + 1], series.diameter_m[a:b + 1],
+                                          noise_m=series.noise_m)
+        return abs(delta) + 2.0 * se <= max_drift
+
+    if passes(s, e):
+        return s, e
+    step = (key[e] - key[s]) / 10.0
+    for total in range(1, 10):
+        for k_start in range(0, total + 1):
+            k_end = total - k_start
+            a = int(np.searchsorted(key, key[s] + k_start * step))
+            b = int(np.searchsorted(key, key[e] - k_end * step, side="right")) - 1
+            a, b = max(a, s), min(b, e)
+            if passes(a, b):
+                return a, b
+    return None
+
+
+# --- power-law stretches ---------------------------------------------------------------
+
+def fit_power_law(time_s, diameter_m, *, t_c_min, exponent=None):
+    """Least-squares D = A (t_c − t)^n (uniform weights in D), t_c > ``t_c_min``.
+
+    ``exponent`` fixes n; otherwise n is free. Returns (A, t_c, n, rms residual)
+    or None when the fit fails.
+    """
+    t = np.asarray(time_s, dtype=float)
+    d = np.asarray(diameter_m, dtype=float)
+    if t.size < 4:
+        return None
+    span = max(t[-1] - t[0], np.finfo(float).tiny)
+    n0 = 1.0 if exponent is None else exponent
+    # start: for the trial exponent, D^(1/n) is linear in t
+    q = d ** (1.0 / n0)
+    slope, icpt = np.polyfit(t - t[0], q, 1)
+    if slope < 0:
+        tc0 = t[0] - icpt / slope
+    else:
+        tc0 = t[-1] + span
+    tc0 = max(tc0, t_c_min + 1e-6 * span)
+    # parametrise t_c = t_c_min + exp(u)·span so it stays above the bound
+    u0 = np.log((tc0 - t_c_min) / span)
+    scale = np.median(d)
+
+    def unpack(p):  # A in units of D per span^n
+        tc = t_c_min + np.exp(p[1]) * span
+        n = exponent if exponent is not None else p[2]
+        return p[0] * scale, tc, n
+
+    def resid_scaled(p):
+        a, tc, n = unpack(p)
+        return (a * ((tc - t) / span) ** n - d) / scale
+
+    p0 = [d[0] / ((tc0 - t[0]) / span) ** n0 / scale, u0] + ([] if exponent is not None else [n0])
+    try:
+        sol = least_squares(resid_scaled, p0, method="lm", max_nfev=2000)
+    except (ValueError, FloatingPointError):
+        return None
+    if not sol.success:
+        return None
+    a, tc, n = unpack(sol.x)
+    rms = float(np.sqrt(np.mean(sol.fun ** 2))) * scale
+    return a / span ** n, tc, float(n), rms
+
+
+def local_exponents(time_s, slopes: LocalSlopes, *, min_half_width=3, max_half_width=200,
+                    span_factor=2.0):
+    """Local power-law exponent n(t) and its standard error, free of the singular time.
+
+    For D ∝ (t_c − t)^n the inverse strain rate q = 1/ε̇ = (t_c − t)/(2n) is a
+    line in t (physics.md §3.5), so n = −1/(2 dq/dt). dq/dt comes from sliding
+    weighted line fits of q over windows ``span_factor`` times those of the ln D
+    fits. An elasto-capillary stretch has dq/dt = 0 (n infinite).
+    """
+    t = np.asarray(time_s, dtype=float)
+    s = slopes.slope_1_s
+    with np.errstate(divide="ignore", invalid="ignore"):
+        q = -1.0 / (2.0 * s)
+        q_se = slopes.slope_se_1_s / (2.0 * s * s)
+    ok = np.isfinite(q) & np.isfinite(q_se) & (q > 0) & (q_se > 0)
+    n = t.size
+    i = np.arange(n)
+    half = np.clip(np.ceil(span_factor * (slopes.right - slopes.left) / 2.0), min_half_width,
+                   max_half_width).astype(int)
+    left = np.clip(i - half, 0, n - 1)
+    right = np.clip(i + half, 0, n - 1)
+    w = np.where(ok, 1.0 / np.where(ok, q_se, 1.0) ** 2, 0.0)
+    y = np.where(ok, q, 0.0)
+    scale = np.median(np.diff(t)) if n > 1 else 1.0
+    x = (t - t[0]) / scale
+    dq, dq_se, _ = _line_fits(x, y, w, left, right)
+    dq, dq_se = dq / scale, dq_se / scale
+    with np.errstate(divide="ignore", invalid="ignore"):
+        expo = -1.0 / (2.0 * dq)
+        # the q values of neighbouring windows share frames: inflate for that
+        expo_se = 2.0 * expo * expo * dq_se * np.sqrt(slopes.right - slopes.left + 1.0)
+    expo = np.where(ok, expo, np.nan)
+    return expo, expo_se
+
+
+def _power_law_stretches(series, slopes, s, e, *, min_points, min_decrease, max_gap):
+    """Power-law regimes inside positions [s, e], by their local exponent."""
+    expo, expo_se = local_exponents(series.time_s, slopes)
+    expo, expo_se = expo[s:e + 1], expo_se[s:e + 1]
+    log_d = np.log(series.diameter_m[s:e + 1])
+    out = []
+    taken = np.zeros(expo.size, dtype=bool)
+    for kind, (n0, half) in sorted(POWER_LAW_EXPONENTS.items(), key=lambda kv: kv[1][1]):
+        allow = np.minimum(half + 2.0 * np.nan_to_num(expo_se, nan=np.inf), 1.5 * half)
+        mask = np.isfinite(expo) & (np.abs(expo - n0) <= allow) & ~taken
+        mask = _close_gaps(mask, max_gap)
+        for a, b in _runs(mask):
+            if b - a + 1 < min_points or log_d[a] - log_d[b] < np.log(min_decrease):
+                continue
+            taken[a:b + 1] = True
+            out.append((kind, s + a, s + b, float(np.nanmedian(expo[a:b + 1]))))
+    return out
+
+
+# --- the regimes of a record -----------------------------------------------------------
+
+@dataclass(frozen=True)
+class RegimeAnalysis:
+    """Everything :func:`locate_regimes` found, for the fits and the findings."""
+
+    series: PreparedSeries
+    slopes: LocalSlopes
+    regimes: list
+    elastic_run: tuple | None
+    breakup_time_s: float | None
+
+
+def _make_regime(kind, series, s, e, value):
+    # ended by the floor: no more than a few usable frames after it, then only thinner ones
+    slack = max(3, (e - s + 1) // 10)
+    floor_cut = bool(e >= series.n - 1 - slack and series.below_floor_index.size
+                     and series.below_floor_index.max() > series.index[e])
+    return Regime(kind=kind, t_start_s=float(series.time_s[s]), t_end_s=float(series.time_s[e]),
+                  n_frames=int(e - s + 1), diameter_start_m=float(series.diameter_m[s]),
+                  diameter_end_m=float(series.diameter_m[e]), value=float(value),
+                  cut_by_floor=floor_cut)
+
+
+def _merge_neighbours(regimes, series, *, max_gap):
+    """Join consecutive power-law stretches of one kind separated by at most ``max_gap`` frames."""
+    out = []
+    for r in regimes:
+        if out and out[-1].kind == r.kind and r.kind in POWER_LAW_EXPONENTS:
+            prev = out[-1]
+            a = int(np.searchsorted(series.time_s, prev.t_end_s))
+            b = int(np.searchsorted(series.time_s, r.t_start_s))
+            if b - a - 1 <= max_gap:
+                n = prev.n_frames + r.n_frames
+                value = (prev.value * prev.n_frames + r.value * r.n_frames) / n
+                out[-1] = Regime(r.kind, prev.t_start_s, r.t_end_s, b - a + prev.n_frames + r.n_frames - 1,
+                                 prev.diameter_start_m, r.diameter_end_m, value, r.cut_by_floor)
+                continue
+        out.append(r)
+    return out
+
+
+def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
+                    t_start_s=None, breakup_time_s=None, tolerance=0.05, min_points=6,
+                    min_decrease=2.0) -> RegimeAnalysis:
+    """:func:`locate_regimes` with its working: prepared series, local slopes, run positions."""
+    series = prepare_series(time_s, diameter_m, resolution_floor_m=resolution_floor_m,
+                            diameter_noise_m=diameter_noise_m, t_start_s=t_start_s)
+    if series.n < min_points:
+        empty = LocalSlopes(*(np.empty(0),) * 3, np.empty(0, int), np.empty(0, int))
+        return RegimeAnalysis(series, empty, [], None, breakup_time_s)
+    slopes = local_log_slopes(series.time_s, series.diameter_m, noise_m=series.noise_m,
+                              target_rel_se=tolerance / 2.0)
+    found = []
+    run = find_elastocapillary_run(series, slopes, tolerance=tolerance, min_points=min_points,
+                                   min_decrease=min_decrease)
+    gap = 2
+    if run is not None:
+        s, e = run
+        x = series.time_s[s:e + 1]
+        w = (series.diameter_m[s:e + 1] / series.noise_m) ** 2
+        slope, _, _ = _weighted_line(x - x[0], np.log(series.diameter_m[s:e + 1]), w)
+        lam_ec = -1.0 / (3.0 * slope)
+        found.append(_make_regime(ELASTO_CAPILLARY, series, s, e, lam_ec))
+        # after: finite extensibility where the strain rate rises clearly above 2/(3λ)
+        if e + 1 < series.n:
+            lam = slopes.relaxation_time_s[e + 1:]
+            rel_se = np.abs(slopes.slope_se_1_s / slopes.slope_1_s)[e + 1:]
+            faster = np.isfinite(lam) & (lam < lam_ec * (1.0 - tolerance - 2.0 * rel_se))
+            faster = _close_gaps(faster, gap)
+            runs = _runs(faster)
+            if runs:
+                a, b = runs[0]
+                a, b = a + e + 1, b + e + 1
+                if b - a + 1 >= min_points and a - e - 1 <= max(gap, min_points):
+                    # the terminal linear slope, D ≈ (σ/η_E,∞)(t_b − t), is fitted later
+                    found.append(_make_regime(FINITE_EXTENSIBILITY, series, a, b,
+                                              float(np.nanmedian(lam[a - e - 1:b - e]))))
+        pre_end = s - 1
+    else:
+        pre_end = series.n - 1
+    # power-law stretches before the elastic one (or everywhere when there is none)
+    if pre_end + 1 >= min_points:
+        for kind, a, b, n in _power_law_stretches(series, slopes, 0, pre_end,
+                                                  min_points=min_points,
+                                                  min_decrease=min(min_decrease, 1.5),
+                                                  max_gap=gap):
+            found.append(_make_regime(kind, series, a, b, n))
+    found = _merge_neighbours(sorted(found, key=lambda r: r.t_start_s), series, max_gap=3 * gap)
+    logger.debug("regimes: %s", found)
+    return RegimeAnalysis(series, slopes, found, run, breakup_time_s)
+
+
+def locate_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
+                   t_start_s=None, breakup_time_s=None, tolerance=0.05, min_points=6,
+                   min_decrease=2.0) -> list[Regime]:
+    """The thinning regimes of a minimum-diameter series, in time order.
+
+    ``time_s`` (s) and ``diameter_m`` (m, NaN where no thread) are the
+    recording's series; frames before ``t_start_s`` (free-thinning start) and
+    below ``resolution_floor_m`` are ignored. ``diameter_noise_m`` is the
+    noise standard deviation of D (estimated from the data when None);
+    ``breakup_time_s`` anchors power laws that run to breakup. Criteria: see
+    the module docstring. An empty list means no regime could be located.
+    """
+    return analyse_regimes(time_s, diameter_m, resolution_floor_m=resolution_floor_m,
+                           diameter_noise_m=diameter_noise_m, t_start_s=t_start_s,
+                           breakup_time_s=breakup_time_s, tolerance=tolerance,
+                           min_points=min_points, min_decrease=min_decrease).regimes
