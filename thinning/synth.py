@@ -1,0 +1,956 @@
+"""Synthetic backlit shadowgraph recordings of a thinning filament, with their truth.
+
+The neck history comes from :func:`thinning.laws.filament_model`; this module
+only draws it. Per frame it builds the liquid's radius profile R(a) along the
+filament axis (end plates or nozzle and substrate, a neck whose minimum is
+exactly the model's D(t)/2 at a known position, a uniform thread in
+elasto-capillary thinning, beads, the retracting halves after breakup), turns
+the silhouette into exact per-row pixel coverage (8 sub-rows per pixel row,
+exact 1-D coverage across), blurs it with the optics' PSF and paints a
+backlit image with uneven light, flicker, lens streak, dust, shot and read
+noise, quantised to the bit depth.
+
+Conventions: SI units in names; pixel coordinates have their origin at the
+centre of the top-left pixel (pixel ``i`` spans ``i - 0.5 .. i + 0.5``), x to
+the right, y down; the recording clock is ``frame / fps_hz``. The truth is in
+the filament's own frame: jitter moves the neck position, never the diameter.
+
+Public entry points: :class:`Optics`, :class:`Scene`, :class:`Truth`,
+:func:`render_recording`, :func:`write_recording`,
+:func:`write_benchmark_recording`, :func:`standard_scenes` and the presets.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import logging
+import math
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from thinning import laws
+
+log = logging.getLogger(__name__)
+
+#: Sub-rows per pixel row used to integrate coverage along the image rows' normal.
+SUB_ROWS = 8
+#: Frames kept after breakup when the record length is chosen automatically.
+FRAMES_AFTER_BREAKUP = 10
+#: Largest record generated automatically (frames).
+MAX_AUTO_FRAMES = 200_000
+#: Threads narrower than this (px, full width) show no lens streak.
+STREAK_MIN_WIDTH_PX = 15.0
+
+BLUR_KINDS = ("gaussian", "disk", "lorentzian")
+ORIENTATIONS = ("vertical", "horizontal")
+GEOMETRIES = ("plates", "dripping")
+FORMATS = ("avi-raw", "avi-mjpg", "mkv-ffv1", "mp4-ffv1", "tiff", "png-folder")
+
+
+# --- parameters ---------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Optics:
+    """Camera and illumination of the shadowgraph (pixels and fractions of full scale).
+
+    ``blur_kind``: ``"gaussian"`` (PSF of standard deviation ``blur_sigma_px``),
+    ``"disk"`` (defocus, uniform disk of radius 2σ) or ``"lorentzian"`` (a
+    Gaussian core with a broad halo: weights 0.7/0.2/0.1 at σ, 3σ, 9σ).
+    ``motion_blur_px`` is a box smear of that length along the thread axis
+    (``motion_blur_axis="axial"``) or across it (``"across"``). ``full_well``
+    is the electron count at full scale that sets the shot noise;
+    ``streak_strength`` the relative brightness of the lens streak (0..1).
+    """
+
+    blur_sigma_px: float = 1.0
+    blur_kind: str = "gaussian"
+    motion_blur_px: float = 0.0
+    background_level: float = 0.85
+    shadow_level: float = 0.08
+    uneven_light: float = 0.15
+    flicker: float = 0.02
+    shot_noise: bool = True
+    read_noise: float = 0.004
+    dust_specks: int = 3
+    jitter_px: float = 0.15
+    tilt_deg: float = 0.0
+    lens_streak: bool = True
+    orientation: str = "vertical"
+    bit_depth: int = 8
+    motion_blur_axis: str = "axial"
+    full_well: float = 20000.0
+    streak_strength: float = 0.45
+
+    def __post_init__(self):
+        if self.blur_kind not in BLUR_KINDS:
+            raise ValueError(f"blur_kind must be one of {BLUR_KINDS}, not {self.blur_kind!r}")
+        if self.orientation not in ORIENTATIONS:
+            raise ValueError(f"orientation must be one of {ORIENTATIONS}, not {self.orientation!r}")
+        if self.bit_depth not in (8, 12, 16):
+            raise ValueError(f"bit_depth must be 8, 12 or 16, not {self.bit_depth!r}")
+        if self.motion_blur_axis not in ("axial", "across"):
+            raise ValueError("motion_blur_axis must be 'axial' or 'across'")
+        if not 0.0 <= self.shadow_level < self.background_level <= 1.0:
+            raise ValueError("need 0 <= shadow_level < background_level <= 1")
+        if self.blur_sigma_px < 0 or self.motion_blur_px < 0 or self.jitter_px < 0:
+            raise ValueError("blur, motion blur and jitter must not be negative")
+        if abs(self.tilt_deg) > 20.0:
+            raise ValueError("tilt_deg beyond ±20° is not supported")
+        if self.full_well <= 0 or self.read_noise < 0 or self.flicker < 0 or self.uneven_light < 0:
+            raise ValueError("full_well must be positive; noise, flicker and uneven light non-negative")
+
+
+@dataclass(frozen=True)
+class Scene:
+    """The experiment being filmed (SI units).
+
+    ``geometry="plates"``: step stretch between two end plates of
+    ``plate_diameter_m``; ``"dripping"``: nozzle (outer diameter
+    ``plate_diameter_m``) above a substrate with a spreading sessile drop.
+    ``frame_size_px`` is (pixels along the axis, pixels across), i.e.
+    (height, width) of a vertical recording; a horizontal one is transposed.
+    ``gap_m``: distance plate to plate (nozzle to substrate) during free
+    thinning; None fills the frame, leaving about 8 % of it for each end.
+    Timeline of the record: ``pre_roll_s`` at rest (plates at the initial
+    gap; for dripping, a pendant drop growing towards the substrate), then
+    ``stretch_duration_s`` of plate motion (dripping: drainage after contact),
+    then free thinning from ``free_thinning_start_s = pre_roll_s +
+    stretch_duration_s``. ``sagging`` moves the neck towards the lower end by
+    that fraction of the gap. ``n_frames=None`` records until shortly after
+    breakup.
+    """
+
+    fluid: laws.Fluid
+    geometry: str = "plates"
+    plate_diameter_m: float = 3e-3
+    initial_diameter_m: float = 1e-3
+    pixel_size_m: float = 10e-6
+    fps_hz: float = 10000.0
+    n_frames: int | None = None
+    frame_size_px: tuple[int, int] = (256, 512)
+    stretch_duration_s: float = 0.0
+    pre_roll_s: float = 0.0
+    beads: bool = False
+    sagging: float = 0.0
+    initial_conformation: float = 1.0
+    gap_m: float | None = None
+
+    def __post_init__(self):
+        if self.geometry not in GEOMETRIES:
+            raise ValueError(f"geometry must be one of {GEOMETRIES}, not {self.geometry!r}")
+        if min(self.plate_diameter_m, self.initial_diameter_m, self.pixel_size_m, self.fps_hz) <= 0:
+            raise ValueError("plate and initial diameters, pixel size and frame rate must be positive")
+        if self.initial_diameter_m >= self.plate_diameter_m:
+            raise ValueError("initial_diameter_m must be smaller than plate_diameter_m")
+        if self.stretch_duration_s < 0 or self.pre_roll_s < 0:
+            raise ValueError("stretch_duration_s and pre_roll_s must not be negative")
+        if not -0.3 <= self.sagging <= 0.3:
+            raise ValueError("sagging must lie within ±0.3 of the gap")
+        if self.n_frames is not None and self.n_frames < 1:
+            raise ValueError("n_frames must be at least 1")
+        n_axis, n_across = self.frame_size_px
+        if n_axis < 32 or n_across < 16:
+            raise ValueError("frame_size_px is too small (at least 32 along the axis, 16 across)")
+        if self.plate_diameter_m / self.pixel_size_m > n_across - 4:
+            raise ValueError("the plate (nozzle) does not fit across the frame: "
+                             "use a larger pixel size or a wider frame")
+        if self.gap_m is not None and self.gap_m / self.pixel_size_m > n_axis - 8:
+            raise ValueError("gap_m does not fit along the frame")
+
+
+@dataclass(frozen=True)
+class Truth:
+    """What was drawn, per frame and for the whole record.
+
+    Per-frame arrays: ``frame``, ``time_s`` (frame / fps), ``diameter_m`` (true
+    minimum neck diameter perpendicular to the axis; NaN where there is no
+    thread: after breakup, or before a drop touched the substrate),
+    ``diameter_px``, ``neck_position_px`` (image coordinate of the neck along
+    the axis direction: y for vertical, x for horizontal recordings),
+    ``neck_cross_px`` (the other image coordinate), ``axis_angle_deg``
+    (cross-axis displacement per unit axial displacement, as an angle),
+    ``upper_end_px`` / ``lower_end_px`` (axial image coordinate of the upper
+    plate face or nozzle tip and of the lower plate face or substrate, on the
+    axis) and ``phase`` ("rest", "stretch", "free", "broken", "pendant").
+    """
+
+    frame: np.ndarray
+    time_s: np.ndarray
+    diameter_m: np.ndarray
+    diameter_px: np.ndarray
+    neck_position_px: np.ndarray
+    neck_cross_px: np.ndarray
+    axis_angle_deg: np.ndarray
+    upper_end_px: np.ndarray
+    lower_end_px: np.ndarray
+    phase: np.ndarray
+    fps_hz: float
+    pixel_size_m: float
+    plate_diameter_m: float
+    initial_diameter_m: float
+    free_thinning_start_s: float
+    breakup_time_s: float | None
+    relaxation_time_s: float | None
+    fluid: dict
+    geometry: str
+    orientation: str
+    frame_shape: tuple[int, int]
+    bit_depth: int
+    dtype: str
+    optics: dict
+    scene: dict
+    seed: int
+
+    @property
+    def n_frames(self) -> int:
+        """Number of frames in the record."""
+        return int(self.frame.size)
+
+    def to_dict(self) -> dict:
+        """Plain JSON-ready dict (NaN → None)."""
+        out = {"schema": "thinning.synth-truth/1"}
+        for f in dataclasses.fields(self):
+            out[f.name] = _plain(getattr(self, f.name))
+        out["n_frames"] = self.n_frames
+        return out
+
+
+def _plain(value):
+    if isinstance(value, np.ndarray):
+        return [_plain(v) for v in value.tolist()]
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (np.floating, float)):
+        v = float(value)
+        return v if math.isfinite(v) else None
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, np.bool_):
+        return bool(value)
+    return value
+
+
+def _scene_dict(scene: Scene) -> dict:
+    d = dataclasses.asdict(scene)
+    d["frame_size_px"] = list(scene.frame_size_px)
+    return d
+
+
+# --- the record's timeline: one state per frame --------------------------------------------
+
+@dataclass(frozen=True)
+class _Style:
+    """Shape parameters of the liquid profile (px, dimensionless)."""
+
+    cone_slope: tuple[float, float]     # far-field slope of the neck, upper / lower side
+    thread_fraction: float              # final half-thread length / shorter side length
+    thread_curvature: float             # relative thickening of the thread at its ends
+    foot_fraction: tuple[float, float]  # meniscus (foot) length / side length, upper / lower
+
+
+def _style(fluid: laws.Fluid, initial_diameter_m: float, geometry: str) -> _Style:
+    elastic = fluid.polymer_modulus > 0
+    if fluid.density > 0:
+        oh = laws.ohnesorge_number(initial_diameter_m / 2, surface_tension=fluid.surface_tension,
+                                   density=fluid.density, viscosity=fluid.zero_shear_viscosity)
+    else:
+        oh = math.inf
+    inertial = oh < 0.3
+    lower_foot = 0.35 if geometry == "dripping" else 0.15
+    if elastic:
+        return _Style((0.7, 0.7), 0.75, 0.03, (0.15, lower_foot))
+    if inertial:  # asymmetric cones of inertial pinch-off, steep on the lower side
+        return _Style((0.5, 1.0), 0.0, 0.1, (0.15, lower_foot))
+    return _Style((0.3, 0.3), 0.25, 0.1, (0.15, lower_foot))
+
+
+def _estimate_lifetime_s(fluid: laws.Fluid, d0: float) -> float:
+    """Rough time to breakup (s), to size the model integration."""
+    r0 = d0 / 2
+    t = d0 / (2 * laws.PAPAGEORGIOU_COEFFICIENT * fluid.surface_tension
+              / max(fluid.zero_shear_viscosity, 1e-6))
+    if fluid.density > 0:
+        t = min(t, (r0 / (laws.INERTIO_CAPILLARY_PREFACTOR
+                          * np.cbrt(fluid.surface_tension / fluid.density))) ** 1.5)
+    if fluid.polymer_modulus > 0:
+        t += 30.0 * fluid.relaxation_time
+    return float(t)
+
+
+def _model(scene: Scene):
+    """Run the 0-D model long enough; returns (history, number of frames)."""
+    fluid, d0 = scene.fluid, scene.initial_diameter_m
+    t_ft = scene.pre_roll_s + scene.stretch_duration_s
+    if scene.n_frames is not None:
+        duration = max(scene.n_frames / scene.fps_hz - t_ft, 2.0 / scene.fps_hz)
+        hist = laws.filament_model(fluid, d0, duration=duration,
+                                   initial_conformation=scene.initial_conformation)
+        return hist, scene.n_frames
+    duration = 3.0 * _estimate_lifetime_s(fluid, d0)
+    for _ in range(4):
+        hist = laws.filament_model(fluid, d0, duration=duration,
+                                   initial_conformation=scene.initial_conformation)
+        if hist.breakup_time_s is not None:
+            break
+        duration *= 5.0
+    t_end = hist.breakup_time_s if hist.breakup_time_s is not None else hist.time_s[-1]
+    n = int(math.floor((t_ft + t_end) * scene.fps_hz)) + 1 + FRAMES_AFTER_BREAKUP
+    if n > MAX_AUTO_FRAMES:
+        log.warning("record cut at %d frames (breakup would need %d)", MAX_AUTO_FRAMES, n)
+        n = MAX_AUTO_FRAMES
+    return hist, n
+
+
+@dataclass(frozen=True)
+class _Timeline:
+    """Per-frame geometry in the filament's own frame (px; a along the axis, from the gap centre)."""
+
+    time_s: np.ndarray
+    phase: np.ndarray
+    r_min: np.ndarray          # neck radius (px); 0 after breakup, NaN while pendant
+    a_upper: np.ndarray        # axial position of the upper plate face / nozzle tip
+    a_lower: np.ndarray        # axial position of the lower plate face / substrate
+    a_neck: np.ndarray
+    half_thread: np.ndarray    # half length of the uniform thread (px)
+    tip_retraction: np.ndarray # distance of each broken half's tip from the pinch point (px)
+    bead_radius: np.ndarray    # px, 0: no bead
+    lower_end_radius: np.ndarray  # radius where liquid meets the lower end (plate, or drop base)
+    pendant_length: np.ndarray # dripping pre-roll: drop length below the nozzle (px)
+    r_start: float             # largest neck radius of the record (px)
+    plate_radius: float
+    style: _Style
+    breakup_time_s: float | None
+    free_thinning_start_s: float
+
+
+def _timeline(scene: Scene, hist, n_frames: int) -> _Timeline:
+    px = scene.pixel_size_m
+    n_axis = scene.frame_size_px[0]
+    rp = scene.plate_diameter_m / 2 / px
+    r0 = scene.initial_diameter_m / 2 / px
+    gap = scene.gap_m / px if scene.gap_m is not None else n_axis - 2 * max(6.0, 0.08 * n_axis)
+    style = _style(scene.fluid, scene.initial_diameter_m, scene.geometry)
+    t = np.arange(n_frames) / scene.fps_hz
+    t_pre, t_ft = scene.pre_roll_s, scene.pre_roll_s + scene.stretch_duration_s
+    tau = t - t_ft
+
+    t_b_model = hist.breakup_time_s
+    t_b = t_ft + t_b_model if t_b_model is not None else None
+    if t_b is not None and t_b >= n_frames / scene.fps_hz:
+        t_b = None
+
+    # free thinning: the model, exactly
+    d_model = hist.diameter_at(np.clip(tau, 0.0, None))
+    r_min = d_model / 2 / px
+    phase = np.where(tau >= 0, "free", "rest").astype(object)
+
+    # before free thinning: a fatter bridge (plates) or the drop's approach (dripping)
+    r_fat = min(0.85 * rp, 2.0 * r0) if scene.stretch_duration_s > 0 else r0
+    gap0 = gap * (r0 / r_fat) ** 2 if scene.geometry == "plates" else gap
+    progress = np.clip((t - t_pre) / scene.stretch_duration_s, 0.0, 1.0) \
+        if scene.stretch_duration_s > 0 else np.ones_like(t)
+    h = gap0 + (gap - gap0) * progress
+    pre = tau < 0
+    r_min = np.where(pre, r0 * np.sqrt(gap / h), r_min) if scene.geometry == "plates" else \
+        np.where(pre, r_fat + (r0 - r_fat) * progress, r_min)
+    phase[pre & (t >= t_pre)] = "stretch"
+    a_lower = np.full(n_frames, gap / 2)
+    a_upper = a_lower - h
+
+    pendant_length = np.zeros(n_frames)
+    if scene.geometry == "dripping" and scene.pre_roll_s > 0:
+        pend = t < t_pre
+        pendant_length = np.where(pend, gap * (0.6 + 0.4 * t / t_pre), 0.0)
+        phase[pend] = "pendant"
+        r_min = np.where(pend, np.nan, r_min)
+
+    broken = np.zeros(n_frames, bool) if t_b is None else t >= t_b
+    phase[broken] = "broken"
+    r_min = np.where(broken, 0.0, r_min)
+
+    a_neck = a_upper + (0.5 + scene.sagging) * h
+    side = np.minimum(a_neck - a_upper, a_lower - a_neck)
+    ratio = np.clip(r_min / r0, 0.0, 1.0)
+    ratio = np.where(pre | np.isnan(ratio), 1.0, ratio)
+    half_thread = style.thread_fraction * side * (1.0 - ratio)
+
+    # retraction of the halves after breakup: capillary (Culick) or visco-capillary speed
+    fluid = scene.fluid
+    tip = np.zeros(n_frames)
+    if t_b is not None:
+        r_ref = max(float(hist.diameter_m[-1]) / 2, px)
+        speeds = [2.0 * fluid.surface_tension / max(fluid.zero_shear_viscosity, 1e-9)]
+        if fluid.density > 0:
+            speeds.append(math.sqrt(2.0 * fluid.surface_tension / (fluid.density * r_ref)))
+        speed_px = min(speeds) / px
+        tip = np.where(broken, np.minimum(speed_px * (t - t_b) + 1.0, 0.9 * side), 0.0)
+
+    bead = np.zeros(n_frames)
+    if scene.beads and fluid.polymer_modulus > 0:
+        onset = 0.25 * r0
+        with np.errstate(divide="ignore", invalid="ignore"):
+            strain = np.log(onset / np.maximum(r_min, 1e-12))
+        growth = np.where((tau > 0) & (strain > 0), -np.expm1(-strain), 0.0)
+        growth = np.where(broken, np.max(growth, initial=0.0), growth)
+        bead = np.minimum(2.5 * onset * growth, half_thread / 6.0)
+        bead = np.where(bead > np.maximum(r_min, 0) * 1.2, bead, 0.0)
+
+    lower_radius = np.full(n_frames, rp)
+    if scene.geometry == "dripping":
+        t_contact = t_pre
+        lifetime = (t_b if t_b is not None else t[-1]) - t_contact
+        tau_spread = max(lifetime, 1.0 / scene.fps_hz) * 0.5
+        grow = -np.expm1(-np.clip(t - t_contact, 0.0, None) / tau_spread)
+        lower_radius = rp * (1.0 + 1.2 * grow)
+        lower_radius = np.minimum(lower_radius, 0.47 * scene.frame_size_px[1])
+
+    return _Timeline(time_s=t, phase=phase.astype(str), r_min=r_min, a_upper=a_upper,
+                     a_lower=a_lower, a_neck=a_neck, half_thread=half_thread,
+                     tip_retraction=tip, bead_radius=bead, lower_end_radius=lower_radius,
+                     pendant_length=pendant_length, r_start=float(np.nanmax(r_min, initial=r0)),
+                     plate_radius=rp, style=style, breakup_time_s=t_b,
+                     free_thinning_start_s=t_ft)
+
+
+# --- the radius profile --------------------------------------------------------------------
+
+def _softplus(x):
+    return np.logaddexp(0.0, x)
+
+
+def _foot(x):
+    """e^x − 1 − x: zero with zero slope at 0, steep near the end (the meniscus)."""
+    return np.expm1(x) - x
+
+
+def _side_radius(d, *, r_min, half_thread, slope, transition, curvature):
+    """Radius (px) of the neck and thread at distance d ≥ 0 from the neck, without the foot."""
+    scale = max(half_thread, transition)
+    s2 = (d / scale) ** 2
+    thread = r_min * (1.0 + curvature * s2 / (1.0 + s2))
+    q = transition * (_softplus((d - half_thread) / transition) - _softplus(-half_thread / transition))
+    return np.sqrt(thread ** 2 + (slope * q) ** 2)
+
+
+def _profile(a, tl: _Timeline, i: int) -> np.ndarray:
+    """Liquid radius (px) at axial positions ``a`` (px from the gap centre) in frame ``i``."""
+    a = np.asarray(a, dtype=float)
+    r = np.zeros_like(a)
+    a_up, a_lo = tl.a_upper[i], tl.a_lower[i]
+    rp = tl.plate_radius
+    if tl.phase[i] == "pendant":
+        length = tl.pendant_length[i]
+        rs = (length ** 2 + rp ** 2) / (2.0 * length)
+        centre = a_up + length - rs
+        inside = (a >= a_up) & (a <= a_up + length)
+        r[inside] = np.sqrt(np.clip(rs ** 2 - (a[inside] - centre) ** 2, 0.0, None))
+        return r
+    a_n = tl.a_neck[i]
+    r_min = max(float(tl.r_min[i]), 0.0)
+    st = tl.style
+    tip = tl.tip_retraction[i]
+    for sign, end, r_end, slope_nom, foot_frac in (
+            (-1.0, a_up, rp, st.cone_slope[0], st.foot_fraction[0]),
+            (1.0, a_lo, tl.lower_end_radius[i], st.cone_slope[1], st.foot_fraction[1])):
+        d = sign * (a - a_n)
+        d_end = sign * (end - a_n)
+        mask = (d >= 0) & (d <= d_end)
+        if not mask.any():
+            continue
+        dd = d[mask]
+        transition = max(2.0, 0.05 * d_end + 2.0 * r_min)
+        geometry = dict(half_thread=tl.half_thread[i], transition=transition,
+                        curvature=st.thread_curvature)
+        # cone slope chosen so the neck never outgrows the end it meets
+        q_end = float(_side_radius(np.array([d_end]), r_min=0.0, slope=1.0, **geometry)[0])
+        room = min(rp, float(r_end)) - tl.r_start * (1.0 + st.thread_curvature)
+        slope = min(slope_nom, 0.75 * max(room, 0.0) / max(q_end, 1e-9))
+        core = _side_radius(dd, r_min=r_min, slope=slope, **geometry)
+        core_end = float(_side_radius(np.array([d_end]), r_min=r_min, slope=slope, **geometry)[0])
+        foot_len = max(foot_frac * d_end, 1.0)
+        alpha = max(float(r_end) - core_end, 0.0) / _foot(d_end / foot_len)
+        rr = core + alpha * _foot(dd / foot_len)
+        if tl.bead_radius[i] > 0:
+            rb = tl.bead_radius[i]
+            u = (dd - 0.5 * tl.half_thread[i]) / (1.3 * rb)
+            bead = rb * np.sqrt(np.clip(1.0 - u ** 2, 0.0, None))
+            rr = (rr ** 8 + bead ** 8) ** 0.125
+        if tip > 0:
+            rr = rr * np.sqrt(-np.expm1(-np.clip(dd - tip, 0.0, None) / 2.0))
+        r[mask] = np.maximum(r[mask], np.minimum(rr, float(r_end)))
+    return r
+
+
+# --- coverage: exact 1-D per sub-row ---------------------------------------------------------
+
+class _Coverage:
+    """Accumulates signed half-line coverages per sub-row, then integrates once."""
+
+    def __init__(self, height: int, width: int):
+        self.height, self.width = height, width
+        self.q: list[np.ndarray] = []
+        self.w: list[np.ndarray] = []
+        self.row: list[np.ndarray] = []
+
+    def add(self, lo, hi, rows, weight):
+        """Add weight × coverage of [lo, hi] (x, pixel-centre coordinates) on each sub-row."""
+        lo = np.asarray(lo, float)
+        hi = np.maximum(np.asarray(hi, float), lo)
+        weight = np.broadcast_to(np.asarray(weight, float), lo.shape)
+        keep = (hi > lo) & (weight != 0) & (hi > -0.5) & (lo < self.width - 0.5)
+        if not keep.any():
+            return
+        lo, hi, weight, rows = lo[keep], hi[keep], weight[keep], rows[keep]
+        self.q += [lo + 0.5, hi + 0.5]
+        self.w += [weight, -weight]
+        self.row += [rows, rows]
+
+    def image(self) -> np.ndarray:
+        """Coverage per pixel (float32, height × width)."""
+        stride = self.width + 2
+        if not self.q:
+            return np.zeros((self.height, self.width), np.float32)
+        q = np.clip(np.concatenate(self.q), 0.0, float(self.width))
+        w = np.concatenate(self.w)
+        row = np.concatenate(self.row)
+        base = np.floor(q)
+        frac = q - base
+        idx = row * stride + base.astype(np.int64)
+        flat = np.bincount(np.concatenate([idx, idx + 1]),
+                           weights=np.concatenate([w * (1.0 - frac), w * frac]),
+                           minlength=self.height * stride)
+        dense = flat[: self.height * stride].reshape(self.height, stride).astype(np.float32)
+        return np.cumsum(dense, axis=1, dtype=np.float32)[:, : self.width]
+
+
+def _strip_interval(y, ox, oy, sin_t, cos_t, half_width):
+    """x-interval of the strip |c| ≤ half_width on image rows y."""
+    centre = ox + (y - oy) * sin_t / cos_t
+    return centre - half_width / cos_t, centre + half_width / cos_t
+
+
+def _halfplane_interval(y, ox, oy, sin_t, cos_t, a_limit, below: bool):
+    """x-interval of {a ≥ a_limit} (below=True) or {a ≤ a_limit} on rows y."""
+    big = 1e7
+    lo = np.full_like(y, -big)
+    hi = np.full_like(y, big)
+    rest = a_limit - (y - oy) * cos_t       # (x − ox)·sinθ must be ≥ (below) or ≤ this
+    if sin_t == 0.0:
+        inside = rest <= 0 if below else rest >= 0
+        return np.where(inside, lo, big), np.where(inside, hi, big)
+    bound = ox + rest / sin_t
+    if (sin_t > 0) == below:
+        return bound, hi
+    return lo, bound
+
+
+def _intersect(a, b):
+    return np.maximum(a[0], b[0]), np.minimum(a[1], b[1])
+
+
+# --- PSF -----------------------------------------------------------------------------------
+
+def _disk_kernel(radius: float) -> np.ndarray:
+    n = int(math.ceil(radius)) + 1
+    sub = 8
+    g = (np.arange(-n * sub, (n + 1) * sub) + 0.5) / sub - 0.5
+    xx, yy = np.meshgrid(g, g)
+    inside = (xx ** 2 + yy ** 2 <= radius ** 2).astype(float)
+    k = inside.reshape(2 * n + 1, sub, 2 * n + 1, sub).mean(axis=(1, 3))
+    return (k / k.sum()).astype(np.float32)
+
+
+def _line_kernel(length: float, angle_rad: float) -> np.ndarray:
+    """Normalised box smear of ``length`` px along direction (sin a, cos a) in (x, y)."""
+    n = int(math.ceil(length / 2)) + 1
+    k = np.zeros((2 * n + 1, 2 * n + 1))
+    samples = np.linspace(-length / 2, length / 2, max(int(length * 16), 2))
+    xs = n + samples * math.sin(angle_rad)
+    ys = n + samples * math.cos(angle_rad)
+    x0, y0 = np.floor(xs).astype(int), np.floor(ys).astype(int)
+    fx, fy = xs - x0, ys - y0
+    for dx, dy, w in ((0, 0, (1 - fx) * (1 - fy)), (1, 0, fx * (1 - fy)),
+                      (0, 1, (1 - fx) * fy), (1, 1, fx * fy)):
+        np.add.at(k, (y0 + dy, x0 + dx), w)
+    return (k / k.sum()).astype(np.float32)
+
+
+def _blur(image: np.ndarray, optics: Optics, motion_kernel) -> np.ndarray:
+    import cv2
+
+    s = optics.blur_sigma_px
+    border = cv2.BORDER_REPLICATE
+    if s > 0:
+        if optics.blur_kind == "gaussian":
+            image = cv2.GaussianBlur(image, (0, 0), s, borderType=border)
+        elif optics.blur_kind == "disk":
+            image = cv2.filter2D(image, -1, _cached_disk(2.0 * s), borderType=border)
+        else:
+            image = (0.7 * cv2.GaussianBlur(image, (0, 0), s, borderType=border)
+                     + 0.2 * cv2.GaussianBlur(image, (0, 0), 3 * s, borderType=border)
+                     + 0.1 * cv2.GaussianBlur(image, (0, 0), 9 * s, borderType=border))
+    if motion_kernel is not None:
+        image = cv2.filter2D(image, -1, motion_kernel, borderType=border)
+    return image
+
+
+_DISKS: dict[float, np.ndarray] = {}
+
+
+def _cached_disk(radius: float) -> np.ndarray:
+    if radius not in _DISKS:
+        _DISKS[radius] = _disk_kernel(radius)
+    return _DISKS[radius]
+
+
+# --- the renderer --------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class _Camera:
+    """Fixed per-record image properties drawn from the seed."""
+
+    gain: np.ndarray        # illumination field × dust attenuation (float32, H × W)
+    jitter: np.ndarray      # per-frame (dx, dy) px
+    flicker: np.ndarray     # per-frame relative backlight factor
+    ox: float               # axis cross position (x, px) at the gap centre
+    oy: float               # gap centre (y, px)
+    noise_seed: np.random.SeedSequence
+
+
+def _camera(scene: Scene, optics: Optics, n_frames: int, seed: int) -> _Camera:
+    height, width = scene.frame_size_px
+    ss = np.random.SeedSequence(seed)
+    layout_ss, frame_ss, noise_ss = ss.spawn(3)
+    rng = np.random.default_rng(layout_ss)
+    yy, xx = np.mgrid[0:height, 0:width].astype(np.float64)
+    half = 0.5 * max(height, width)
+    phi = rng.uniform(0, 2 * np.pi)
+    ramp = ((xx - width / 2) * np.cos(phi) + (yy - height / 2) * np.sin(phi)) / half
+    cx, cy = width / 2 + rng.uniform(-0.2, 0.2) * width, height / 2 + rng.uniform(-0.2, 0.2) * height
+    vignette = 0.5 - ((xx - cx) ** 2 + (yy - cy) ** 2) / (2 * half ** 2)
+    gain = 1.0 + optics.uneven_light * (0.6 * ramp + 0.4 * vignette)
+    for _ in range(optics.dust_specks):
+        x0, y0 = rng.uniform(0, width), rng.uniform(0, height)
+        size, depth = rng.uniform(1.0, 3.0), rng.uniform(0.15, 0.45)
+        gain *= 1.0 - depth * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / (2 * size ** 2))
+    ox = (width - 1) / 2 + rng.uniform(-2.0, 2.0)
+    oy = (height - 1) / 2
+    frng = np.random.default_rng(frame_ss)
+    jitter = frng.normal(0.0, optics.jitter_px, (n_frames, 2)) if optics.jitter_px > 0 \
+        else np.zeros((n_frames, 2))
+    flicker = 1.0 + optics.flicker * frng.standard_normal(n_frames)
+    return _Camera(gain=gain.astype(np.float32), jitter=jitter, flicker=flicker, ox=ox, oy=oy,
+                   noise_seed=noise_ss)
+
+
+class _Renderer:
+    def __init__(self, scene: Scene, optics: Optics, tl: _Timeline, cam: _Camera):
+        self.scene, self.optics, self.tl, self.cam = scene, optics, tl, cam
+        self.height, self.width = scene.frame_size_px
+        theta = math.radians(optics.tilt_deg)
+        self.sin_t, self.cos_t = math.sin(theta), math.cos(theta)
+        rows = np.repeat(np.arange(self.height), SUB_ROWS)
+        offsets = (np.arange(SUB_ROWS) + 0.5) / SUB_ROWS - 0.5
+        self.rows = rows
+        self.y_sub = rows + np.tile(offsets, self.height)
+        self.motion_kernel = None
+        if optics.motion_blur_px > 0:
+            angle = theta if optics.motion_blur_axis == "axial" else theta + math.pi / 2
+            self.motion_kernel = _line_kernel(optics.motion_blur_px, angle)
+        from scipy.special import ndtri
+
+        self.normal_lut = ndtri((np.arange(65536) + 0.5) / 65536).astype(np.float32)
+        self.noise_rng = np.random.default_rng(cam.noise_seed)
+        self.max_value = float(2 ** optics.bit_depth - 1)
+        self.dtype = np.uint8 if optics.bit_depth == 8 else np.uint16
+
+    def _liquid_edges(self, i, ox, oy):
+        """x of the left and right silhouette edge on every sub-row."""
+        tl = self.tl
+        y = self.y_sub
+        if self.sin_t == 0.0:
+            r = _profile((y - oy) / self.cos_t, tl, i)
+            return ox - r, ox + r, r
+        a_lo = min(tl.a_upper[i], tl.a_lower[i]) - 1.0
+        a_hi = tl.a_lower[i] + 1.0
+        a = np.linspace(a_lo, a_hi, int((a_hi - a_lo) * SUB_ROWS) + 2)
+        r = _profile(a, tl, i)
+        s, c = self.sin_t, self.cos_t
+        xl, yl = ox + a * s - r * c, oy + a * c + r * s
+        xr, yr = ox + a * s + r * c, oy + a * c - r * s
+        # the edge curves as functions of y (first crossing where a steep edge folds over)
+        left = np.interp(y, np.maximum.accumulate(yl), xl, left=np.nan, right=np.nan)
+        right = np.interp(y, np.maximum.accumulate(yr), xr, left=np.nan, right=np.nan)
+        empty = np.isnan(left) | np.isnan(right)
+        left, right = np.where(empty, 0.0, left), np.where(empty, 0.0, right)
+        return left, right, 0.5 * (right - left) * c
+
+    def coverage(self, i: int) -> np.ndarray:
+        tl, cam = self.tl, self.cam
+        ox, oy = cam.ox + cam.jitter[i, 0], cam.oy + cam.jitter[i, 1]
+        y, s, c = self.y_sub, self.sin_t, self.cos_t
+        cov = _Coverage(self.height, self.width)
+        weight = 1.0 / SUB_ROWS
+        rows = self.rows
+        solids = []
+        strip = _strip_interval(y, ox, oy, s, c, tl.plate_radius)
+        solids.append(_intersect(strip, _halfplane_interval(y, ox, oy, s, c, tl.a_upper[i], False)))
+        if self.scene.geometry == "plates":
+            solids.append(_intersect(strip, _halfplane_interval(y, ox, oy, s, c, tl.a_lower[i], True)))
+        else:
+            solids.append(_halfplane_interval(y, ox, oy, s, c, tl.a_lower[i], True))
+        left, right, radius = self._liquid_edges(i, ox, oy)
+        liquid = (left, right)
+        cov.add(*liquid, rows, weight)
+        touching = np.zeros(y.shape, bool)
+        for solid in solids:
+            cov.add(*solid, rows, weight)
+            both = _intersect(liquid, solid)
+            cov.add(*both, rows, -weight)
+            touching |= both[1] > both[0]
+        if self.optics.lens_streak and self.optics.streak_strength > 0:
+            rmin = STREAK_MIN_WIDTH_PX / 2
+            x = np.clip((radius - rmin) / rmin, 0.0, 1.0)
+            amp = self.optics.streak_strength * x * x * (3 - 2 * x)
+            amp[touching] = 0.0
+            if amp.any():
+                mid = 0.5 * (left + right)
+                half = np.clip(0.04 * (right - left), 0.75, 3.0)
+                cov.add(mid - half, mid + half, rows, -weight * amp)
+        return cov.image()
+
+    def frame(self, i: int) -> np.ndarray:
+        o = self.optics
+        blurred = _blur(self.coverage(i), o, self.motion_kernel)
+        f = float(self.cam.flicker[i])
+        light = blurred * np.float32(-(o.background_level - o.shadow_level) * f)
+        light += np.float32(o.background_level * f)
+        light *= self.cam.gain
+        variance = np.float32(o.read_noise ** 2)
+        if o.shot_noise:
+            variance = np.clip(light, 0.0, None) * np.float32(1.0 / o.full_well) + variance
+        if o.shot_noise or o.read_noise > 0:
+            u = np.frombuffer(self.noise_rng.bytes(2 * light.size), np.uint16)
+            light += np.sqrt(variance) * self.normal_lut[u].reshape(light.shape)
+        out = np.clip(light * np.float32(self.max_value) + np.float32(0.5), 0.0, self.max_value)
+        out = out.astype(self.dtype)
+        if o.orientation == "horizontal":
+            out = np.ascontiguousarray(out.T)
+        return out
+
+
+def _truth(scene: Scene, optics: Optics, tl: _Timeline, cam: _Camera, seed: int) -> Truth:
+    n = tl.time_s.size
+    px = scene.pixel_size_m
+    s, c = math.sin(math.radians(optics.tilt_deg)), math.cos(math.radians(optics.tilt_deg))
+    diameter_px = np.where(np.isin(tl.phase, ("broken", "pendant")), np.nan, 2.0 * tl.r_min)
+    ox = cam.ox + cam.jitter[:, 0]
+    oy = cam.oy + cam.jitter[:, 1]
+    neck_axial = oy + tl.a_neck * c
+    neck_cross = ox + tl.a_neck * s
+    no_neck = np.isnan(diameter_px)
+    neck_axial = np.where(no_neck, np.nan, neck_axial)
+    neck_cross = np.where(no_neck, np.nan, neck_cross)
+    fluid = scene.fluid
+    height, width = scene.frame_size_px
+    shape = (height, width) if optics.orientation == "vertical" else (width, height)
+    return Truth(
+        frame=np.arange(n), time_s=tl.time_s, diameter_m=diameter_px * px, diameter_px=diameter_px,
+        neck_position_px=neck_axial, neck_cross_px=neck_cross,
+        axis_angle_deg=np.full(n, optics.tilt_deg),
+        upper_end_px=oy + tl.a_upper * c, lower_end_px=oy + tl.a_lower * c, phase=tl.phase,
+        fps_hz=float(scene.fps_hz), pixel_size_m=float(px),
+        plate_diameter_m=float(scene.plate_diameter_m),
+        initial_diameter_m=float(scene.initial_diameter_m),
+        free_thinning_start_s=float(tl.free_thinning_start_s),
+        breakup_time_s=tl.breakup_time_s,
+        relaxation_time_s=float(fluid.relaxation_time) if fluid.polymer_modulus > 0 else None,
+        fluid={**dataclasses.asdict(fluid),
+               "zero_shear_viscosity": fluid.zero_shear_viscosity,
+               "terminal_extensional_viscosity": fluid.terminal_extensional_viscosity},
+        geometry=scene.geometry, orientation=optics.orientation, frame_shape=shape,
+        bit_depth=optics.bit_depth, dtype="uint8" if optics.bit_depth == 8 else "uint16",
+        optics=dataclasses.asdict(optics), scene=_scene_dict(scene), seed=int(seed),
+    )
+
+
+def render_recording(scene: Scene, optics: Optics, *, seed: int) -> tuple[Iterator[np.ndarray], Truth]:
+    """Frames (a generator of 2-D uint8/uint16 arrays, streamed) and the truth of a recording.
+
+    Deterministic: the same arguments give identical frames.
+    """
+    hist, n = _model(scene)
+    tl = _timeline(scene, hist, n)
+    cam = _camera(scene, optics, n, seed)
+    truth = _truth(scene, optics, tl, cam, seed)
+
+    def frames():
+        renderer = _Renderer(scene, optics, tl, cam)
+        for i in range(n):
+            yield renderer.frame(i)
+
+    return frames(), truth
+
+
+# --- writers -------------------------------------------------------------------------------
+
+def truth_path(path) -> Path:
+    """Where :func:`write_recording` puts the truth of a recording written to ``path``."""
+    path = Path(path)
+    if path.is_dir() or path.suffix == "":
+        return path / "truth.json"
+    return path.with_name(path.name + ".truth.json")
+
+
+def write_truth(truth: Truth, path) -> None:
+    """Write ``truth.to_dict()`` as JSON (no NaN) to ``path``."""
+    text = json.dumps(truth.to_dict(), allow_nan=False, indent=1)
+    Path(path).write_text(text + "\n")
+
+
+def load_truth(path) -> dict:
+    """Read the truth JSON of a recording (for tests and notebooks; the analyser never does)."""
+    return json.loads(truth_path(path).read_text())
+
+
+def _video_writer(path: Path, fourcc: str, shape, bit_depth: int, playback_fps: float):
+    import cv2
+
+    height, width = shape
+    params = [cv2.VIDEOWRITER_PROP_IS_COLOR, 0]
+    if bit_depth > 8:
+        params += [cv2.VIDEOWRITER_PROP_DEPTH, cv2.CV_16U]
+    code = 0 if fourcc == "raw" else cv2.VideoWriter_fourcc(*fourcc)
+    writer = cv2.VideoWriter(str(path), cv2.CAP_FFMPEG, code, float(playback_fps), (width, height), params)
+    if not writer.isOpened():
+        raise RuntimeError(f"OpenCV could not open a {fourcc} writer for {path}")
+    return writer
+
+
+def write_recording(scene: Scene, optics: Optics, path, *, fmt: str, seed: int,
+                    quality: int = 90, playback_fps: float = 25.0) -> Truth:
+    """Render and write a recording in constant memory; the truth goes beside it.
+
+    ``fmt``: ``"avi-raw"`` (uncompressed 8-bit grey), ``"avi-mjpg"`` (lossy,
+    JPEG ``quality`` 0–100, 8-bit), ``"mkv-ffv1"`` / ``"mp4-ffv1"`` (lossless,
+    8 or 16-bit), ``"tiff"`` (one multi-page stack), ``"png-folder"``
+    (``frame_0001.png`` …, 1-based, in a folder created at ``path``). Video
+    containers carry ``playback_fps`` (≤ 60/s), never the true frame rate.
+    The truth is written to ``<file>.truth.json`` or ``<folder>/truth.json``.
+    """
+    if fmt not in FORMATS:
+        raise ValueError(f"fmt must be one of {FORMATS}, not {fmt!r}")
+    if fmt in ("avi-raw", "avi-mjpg") and optics.bit_depth != 8:
+        raise ValueError(f"{fmt} holds 8-bit frames only; use mkv-ffv1, tiff or png-folder")
+    if fmt.startswith("avi") and playback_fps > 60:
+        raise ValueError("AVI containers drop frames at high rates: keep playback_fps <= 60")
+    path = Path(path)
+    frames, truth = render_recording(scene, optics, seed=seed)
+    if fmt == "png-folder":
+        _write_png_folder(frames, path, truth.n_frames)
+        write_truth(truth, path / "truth.json")
+        return truth
+    path.parent.mkdir(parents=True, exist_ok=True)
+    if fmt == "tiff":
+        import tifffile
+
+        dtype = np.uint8 if optics.bit_depth == 8 else np.uint16
+        tifffile.imwrite(path, data=frames, shape=(truth.n_frames, *truth.frame_shape), dtype=dtype,
+                         photometric="minisblack")
+    else:
+        fourcc = {"avi-raw": "raw", "avi-mjpg": "MJPG", "mkv-ffv1": "FFV1", "mp4-ffv1": "FFV1"}[fmt]
+        writer = _video_writer(path, fourcc, truth.frame_shape, optics.bit_depth, playback_fps)
+        try:
+            for frame in frames:
+                writer.write(frame)
+        finally:
+            writer.release()
+    write_truth(truth, truth_path(path))
+    return truth
+
+
+def _write_png_folder(frames, folder: Path, n_frames: int) -> None:
+    import cv2
+
+    folder.mkdir(parents=True, exist_ok=True)
+    width = max(4, len(str(n_frames)))
+    for i, frame in enumerate(frames, start=1):
+        name = folder / f"frame_{i:0{width}d}.png"
+        if not cv2.imwrite(str(name), frame):
+            raise RuntimeError(f"could not write {name}")
+
+
+# --- presets -------------------------------------------------------------------------------
+
+def dilute_polymer_plates(**overrides) -> Scene:
+    """Dilute aqueous polymer (λ = 5 ms) between 3 mm plates, 10 kHz, 12 µm/px, with a step stretch."""
+    fluid = laws.Fluid(surface_tension=0.062, solvent_viscosity=1.0e-3, density=1000.0,
+                       polymer_modulus=2.0, relaxation_time=5e-3, extensibility=2.0e4)
+    base = dict(fluid=fluid, geometry="plates", plate_diameter_m=3e-3, initial_diameter_m=0.8e-3,
+                pixel_size_m=12e-6, fps_hz=10000.0, frame_size_px=(400, 320),
+                stretch_duration_s=5e-3, pre_roll_s=1e-3)
+    return Scene(**{**base, **overrides})
+
+
+def boger_fluid_plates(**overrides) -> Scene:
+    """Viscous Boger fluid (λ = 2 s, η_s = 10 Pa·s, σ = 36 mN/m) between 6 mm plates, 20 frames/s."""
+    fluid = laws.Fluid(surface_tension=0.036, solvent_viscosity=10.0, density=1030.0,
+                       polymer_modulus=5.0, relaxation_time=2.0)
+    base = dict(fluid=fluid, geometry="plates", plate_diameter_m=6e-3, initial_diameter_m=2.0e-3,
+                pixel_size_m=20e-6, fps_hz=20.0, frame_size_px=(400, 360))
+    return Scene(**{**base, **overrides})
+
+
+def newtonian_viscous_plates(**overrides) -> Scene:
+    """Glycerol (1 Pa·s, σ = 63 mN/m) between 4 mm plates: visco-capillary thinning, 2 kHz."""
+    fluid = laws.Fluid(surface_tension=0.063, solvent_viscosity=1.0, density=1260.0)
+    base = dict(fluid=fluid, geometry="plates", plate_diameter_m=4e-3, initial_diameter_m=1.2e-3,
+                pixel_size_m=15e-6, fps_hz=2000.0, frame_size_px=(400, 320))
+    return Scene(**{**base, **overrides})
+
+
+def water_like_dripping(**overrides) -> Scene:
+    """Water from a 1.2 mm nozzle onto a substrate: inertio-capillary pinch-off, 50 kHz, 5 µm/px."""
+    fluid = laws.Fluid(surface_tension=0.072, solvent_viscosity=1.0e-3, density=998.0)
+    base = dict(fluid=fluid, geometry="dripping", plate_diameter_m=1.2e-3, initial_diameter_m=0.6e-3,
+                pixel_size_m=5e-6, fps_hz=50000.0, frame_size_px=(512, 384))
+    return Scene(**{**base, **overrides})
+
+
+def polymer_dripping(**overrides) -> Scene:
+    """Dilute polymer (λ = 0.5 ms) dripping from a 1 mm nozzle onto a substrate, 25 kHz, 5 µm/px."""
+    fluid = laws.Fluid(surface_tension=0.060, solvent_viscosity=1.0e-3, density=1000.0,
+                       polymer_modulus=1.0, relaxation_time=0.5e-3, extensibility=1.0e4)
+    base = dict(fluid=fluid, geometry="dripping", plate_diameter_m=1.0e-3, initial_diameter_m=0.5e-3,
+                pixel_size_m=5e-6, fps_hz=25000.0, frame_size_px=(512, 320))
+    return Scene(**{**base, **overrides})
+
+
+def standard_scenes() -> dict[str, Scene]:
+    """The named presets, by name."""
+    return {f.__name__: f() for f in (dilute_polymer_plates, boger_fluid_plates,
+                                      newtonian_viscous_plates, water_like_dripping,
+                                      polymer_dripping)}
+
+
+def benchmark_scene(n_frames: int = 20000) -> Scene:
+    """A long, slowly thinning elastic filament in 256 × 512 frames, breaking near the end."""
+    fluid = laws.Fluid(surface_tension=0.036, solvent_viscosity=5.0, density=1030.0,
+                       polymer_modulus=3.0, relaxation_time=1.0)
+    scene = Scene(fluid=fluid, geometry="plates", plate_diameter_m=4e-3, initial_diameter_m=1.5e-3,
+                  pixel_size_m=20e-6, fps_hz=1000.0, n_frames=None, frame_size_px=(256, 512))
+    hist, _ = _model(scene)
+    lifetime = hist.breakup_time_s if hist.breakup_time_s is not None else hist.time_s[-1]
+    fps = 0.97 * n_frames / lifetime
+    return dataclasses.replace(scene, fps_hz=float(fps), n_frames=int(n_frames))
+
+
+def write_benchmark_recording(path, n_frames: int = 20000, seed: int = 0) -> Truth:
+    """The benchmark file: an 8-bit MJPG AVI of 512 × 256 frames (width × height)."""
+    return write_recording(benchmark_scene(n_frames), Optics(), path, fmt="avi-mjpg", seed=seed)
