@@ -1,0 +1,101 @@
+"""Neck diameter per frame, breakup and start of free thinning (thinning.neck)."""
+
+import importlib.util
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from thinning.edges import NoFilament
+from thinning.neck import (TABLE_COLUMNS, diameter_noise, free_thinning_start, measure_recording,
+                           to_physical)
+from thinning.units import Calibration
+
+_spec = importlib.util.spec_from_file_location("_edge_frames", Path(__file__).with_name("test_edges.py"))
+_module = importlib.util.module_from_spec(_spec)
+_spec.loader.exec_module(_module)
+render = _module.render
+
+
+def thinning_frames(diameters, *, plates=None, seed=0, noise=0.01, blur=1.0):
+    """Frames of a thinning bridge; a diameter below 1 px is a broken thread (gap at the neck)."""
+    rng = np.random.default_rng(seed)
+    for i, d in enumerate(diameters):
+        plate = 20 if plates is None else plates[i]
+        frame = render(neck=max(d, 2.0), plate=plate, blur=blur, noise=noise,
+                       seed=int(rng.integers(1 << 30)))
+        if d < 1.0:
+            frame[90:112] = np.clip(np.random.default_rng(i).normal(200, 2, (22, frame.shape[1])),
+                                    0, 255).astype(np.uint8)
+        yield frame
+
+
+def test_thinning_record_to_breakup():
+    diameters = 30.0 * np.exp(-np.arange(90) / 25.0)
+    diameters[diameters < 2.5] = 0.0
+    series = measure_recording(thinning_frames(diameters), n_frames=diameters.size)
+    table = series.table
+    assert list(table.columns) == TABLE_COLUMNS
+    assert len(table) == diameters.size
+    last = int(np.flatnonzero(diameters > 0)[-1])
+    assert series.breakup_frame == last + 0.5
+    assert table["diameter_px"].iloc[last + 1:].isna().all()
+    good = diameters >= 3.0
+    err = np.abs(table["diameter_px"].to_numpy()[good] - diameters[good])
+    assert np.median(err) < 0.1
+    assert np.percentile(err, 95) < 0.3
+    assert series.free_thinning_start_frame == 0.0
+    assert 1 <= len(series.snapshots) <= 6
+    assert abs(table["neck_position_px"].iloc[0] - 100.27) < 10
+    # the reported noise matches the scatter about the truth within a factor of two
+    scatter = np.std(table["diameter_px"].to_numpy()[good] - diameters[good])
+    assert 0.5 * scatter < series.diameter_noise_px < 2.0 * scatter
+
+
+def test_free_thinning_starts_when_the_plates_stop():
+    n = 60
+    plates = [max(20, 40 - 2 * i) for i in range(n)]  # plates move apart until frame 10
+    diameters = np.full(n, 12.0)
+    series = measure_recording(thinning_frames(diameters, plates=plates))
+    gap = series.table["plate_gap_px"].to_numpy()
+    assert gap[0] < gap[-1] - 30
+    assert 9 <= series.free_thinning_start_frame <= 12
+    assert series.breakup_frame is None
+
+
+def test_free_thinning_start_from_a_gap_series():
+    rng = np.random.default_rng(5)
+    gap = np.concatenate([np.linspace(50, 150, 21), np.full(80, 150.0)])
+    gap += rng.integers(-1, 2, gap.size) * (np.arange(gap.size) > 20)
+    assert free_thinning_start(gap) == pytest.approx(20, abs=2)
+    assert free_thinning_start(np.full(50, 150.0) + rng.integers(-1, 2, 50)) == 0.0
+
+
+def test_blank_frames_before_the_filament_are_empty_rows():
+    blank = np.full((200, 160), 200, np.uint8)
+    frames = [blank, blank] + list(thinning_frames(np.full(20, 10.0)))
+    series = measure_recording(iter(frames))
+    assert series.table["diameter_px"].iloc[:2].isna().all()
+    assert series.table["diameter_px"].iloc[2:].notna().all()
+    assert any(f.code == "no-filament-frames" for f in series.findings)
+
+
+def test_no_filament_anywhere_raises():
+    rng = np.random.default_rng(2)
+    frames = (np.clip(rng.normal(200, 2, (100, 80)), 0, 255).astype(np.uint8) for _ in range(5))
+    with pytest.raises(NoFilament):
+        measure_recording(frames)
+
+
+def test_diameter_noise_of_a_smooth_series():
+    rng = np.random.default_rng(7)
+    d = 20 * np.exp(-np.arange(400) / 200) + rng.normal(0, 0.05, 400)
+    assert diameter_noise(d) == pytest.approx(0.05, rel=0.15)
+
+
+def test_to_physical_uses_the_recording_clock():
+    series = measure_recording(thinning_frames(np.full(12, 10.0)))
+    table = to_physical(series, Calibration(fps_hz=1000.0, pixel_size_m=2e-6))
+    assert list(table.columns[:4]) == ["frame", "time_s", "diameter_m", "neck_position_m"]
+    assert table["time_s"].iloc[5] == pytest.approx(0.005)
+    assert table["diameter_m"].median() == pytest.approx(10.0 * 2e-6, rel=0.01)

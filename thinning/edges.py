@@ -1,0 +1,507 @@
+"""Where the filament is, and its two edges on every row, to a fraction of a pixel.
+
+:func:`find_layout` looks at the first frame once: which way the filament
+runs, where the end bodies are (plates, or nozzle and substrate: wide dark
+bodies at the ends of the axis), the lateral band worth analysing, the
+background and shadow levels, the blur and the noise. :func:`locate_edges`
+then measures one frame in that layout and returns a :class:`Profile`.
+
+Method, per frame (vectorised over rows, axis along the rows of the band):
+
+1. Illumination: the backlight B(x) of each row is interpolated linearly
+   between the bright margins beside the filament (so uneven and flickering
+   light are followed frame by frame); the shadow level is S = f·B, with f
+   measured on the dark rim of the thick parts of the same frame.
+2. Deficit d = (B − I)/(B − S): 0 in the background, 1 in the shadow.
+3. The outer crossings of d = ``detect_level`` locate the filament on each
+   row (outer edges only, so the bright lens streak of a transparent thread
+   does not split it); their midpoint is the centre line.
+4. The width of the row is the integrated deficit over a window reaching
+   a few blur widths beyond both edges, with the core of thick rows (well
+   inside both edges) counted as full shadow. Because a point-spread function
+   redistributes light without losing it, this partial-area width is
+   unbiased for any symmetric or asymmetric blur and for motion blur, even
+   when a thin thread is blurred into a shallow dip that a 50 % threshold
+   underestimates (``shared/reference/physics.md`` §8 table). The edges are
+   the centre ∓ half that width.
+5. The local axis angle comes from a sliding straight-line fit of the centre
+   line; widths are reported across the axis (row width × cos angle).
+
+Coordinates are pixels of the full frame: ``axial`` runs along the filament
+(y for a vertical filament, x for a horizontal one), ``lateral`` across it.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+log = logging.getLogger(__name__)
+
+ORIENTATIONS = ("vertical", "horizontal")
+#: Background columns used on each side of the band to estimate the backlight of a row.
+BACKGROUND_COLUMNS = 6
+#: Deficit level (fraction of the shadow depth) at which a row is taken to hold the filament.
+DETECT_LEVEL = 0.25
+#: Smallest peak deficit for a row to count as crossed by the thread (connectivity).
+PRESENCE_LEVEL = 0.12
+
+
+class NoFilament(ValueError):
+    """No filament in view (message: one sentence for the user)."""
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Where to measure, found once from the first frame (pixels, full-frame coordinates).
+
+    ``roi`` is ``x0, y0, x1, y1`` (numpy slicing) of the region analysed;
+    ``thread_span`` the axial range ``[start, stop)`` between the end bodies
+    in the first frame; ``band`` the lateral range ``[start, stop)`` analysed
+    (within the roi); ``end_widths_px`` the widths of the bodies at the start
+    and end of the axis (None where there is none, ``inf`` for a body that
+    fills the band, like a substrate); ``plate_width_px`` the plate width
+    (plates) or nozzle outer diameter (dripping), sub-pixel, or None.
+    ``background_level`` and ``shadow_level`` are grey levels of the first
+    frame; ``blur_sigma_px`` the estimated Gaussian-equivalent blur of an
+    edge; ``noise`` the per-pixel noise as a fraction of the shadow depth.
+    """
+
+    orientation: str
+    roi: tuple[int, int, int, int]
+    thread_span: tuple[int, int]
+    plate_width_px: float | None
+    band: tuple[int, int]
+    end_widths_px: tuple[float | None, float | None]
+    axis_px: float
+    background_level: float
+    shadow_level: float
+    blur_sigma_px: float
+    noise: float
+    geometry: str = "plates"
+
+    @property
+    def axial_range(self) -> tuple[int, int]:
+        """``[start, stop)`` of the roi along the filament axis."""
+        x0, y0, x1, y1 = self.roi
+        return (y0, y1) if self.orientation == "vertical" else (x0, x1)
+
+    @property
+    def shadow_fraction(self) -> float:
+        """Shadow level as a fraction of the backlight (first frame)."""
+        return self.shadow_level / self.background_level
+
+    @property
+    def margin_px(self) -> int:
+        """How far beyond an edge the deficit is integrated (about 3 blur widths)."""
+        return int(math.ceil(3.0 * self.blur_sigma_px)) + 2
+
+    @property
+    def core_px(self) -> int:
+        """How far inside the detection crossing a pixel is surely full shadow."""
+        return int(math.ceil(3.5 * self.blur_sigma_px)) + 1
+
+
+@dataclass(frozen=True)
+class Profile:
+    """The filament in one frame: one entry per row of the band (axis along rows).
+
+    ``axial_px`` row positions along the axis; ``left_px``/``right_px`` the
+    edges (lateral, full-frame); ``cut_width_px`` the width along the image
+    row; ``width_px`` the width across the local axis; ``centre_px`` the
+    centre line; ``angle_deg`` the local axis angle from the image axis;
+    ``contrast`` the peak deficit of the row (1 = full shadow); ``valid``
+    rows where the width was measured in the free part of the filament;
+    ``present`` rows crossed by a shadow; ``body`` rows belonging to the end
+    bodies. ``free_span`` is the axial ``[start, stop)`` between the bodies
+    of this frame, ``connected`` whether every row of it is crossed by the
+    thread, ``shadow_fraction`` the shadow level over backlight used and
+    ``rim_fraction`` the one measured on this frame (NaN without thick rows).
+    """
+
+    axial_px: np.ndarray
+    left_px: np.ndarray
+    right_px: np.ndarray
+    width_px: np.ndarray
+    cut_width_px: np.ndarray
+    centre_px: np.ndarray
+    angle_deg: np.ndarray
+    contrast: np.ndarray
+    valid: np.ndarray
+    present: np.ndarray
+    body: np.ndarray
+    free_span: tuple[int, int]
+    connected: bool
+    shadow_fraction: float
+    rim_fraction: float
+
+
+# ---------------------------------------------------------------------------------------------
+# layout
+
+
+def _oriented(frame, orientation, axial, lateral):
+    """The frame region as float32 with the filament axis along rows."""
+    if orientation == "vertical":
+        block = frame[axial[0]:axial[1], lateral[0]:lateral[1]]
+    else:
+        block = frame[lateral[0]:lateral[1], axial[0]:axial[1]].T
+    return np.asarray(block, dtype=np.float32)
+
+
+def _axis_score(mask):
+    """How well 'axis along rows' explains a dark mask: wide at the ends, narrow between."""
+    n = mask.shape[0]
+    counts = mask.sum(axis=1).astype(float)
+    rows_with = float(np.mean(counts > 0))
+    e = max(1, n // 30)
+    ends = 0.5 * (np.median(counts[:e]) + np.median(counts[-e:]))
+    middle = counts[n // 5: n - n // 5]
+    inner = float(middle.min()) if middle.size else 0.0
+    return rows_with * (ends + 1.0) / (inner + 1.0) + rows_with
+
+
+def _extent(mask):
+    """First and last dark column of every row (−1 where the row has none)."""
+    has = mask.any(axis=1)
+    first = np.where(has, np.argmax(mask, axis=1), -1)
+    last = np.where(has, mask.shape[1] - 1 - np.argmax(mask[:, ::-1], axis=1), -1)
+    return has, first, last
+
+
+def _end_body(has, first, last, n_lat, *, from_end, thread_width):
+    """Rows of a wide body at one end of the axis: (count, extent) or (0, None)."""
+    idx = np.arange(has.size)[::-1] if from_end else np.arange(has.size)
+    if not has[idx[0]]:
+        return 0, None
+    ext0 = last[idx[0]] - first[idx[0]] + 1
+    if ext0 < max(8.0, 2.5 * thread_width):
+        return 0, None
+    ext = np.where(has[idx], last[idx] - first[idx] + 1, 0)
+    inside = ext >= ext0 - 2
+    count = int(np.argmin(inside)) if not inside.all() else int(inside.size)
+    if count < 5:  # a body has straight sides over several rows; a widening foot does not
+        return 0, None
+    full = first[idx[0]] <= 0 and last[idx[0]] >= n_lat - 1
+    return count, (math.inf if full else float(ext0))
+
+
+def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
+    """Find orientation, end bodies, band and levels from one frame.
+
+    ``geometry`` is ``"plates"`` or ``"dripping"``; ``roi`` optional
+    ``(x0, y0, x1, y1)`` in full-frame pixels. Raises :class:`NoFilament`
+    when the frame shows no dark object on a bright background.
+    """
+    frame = np.asarray(frame)
+    if frame.ndim != 2:
+        raise ValueError("find_layout expects a 2-D grey frame")
+    h, w = frame.shape
+    if roi is None:
+        roi = (0, 0, w, h)
+    x0, y0, x1, y1 = (int(v) for v in roi)
+    x1, y1 = min(x1, w), min(y1, h)
+    if x1 - x0 < 8 or y1 - y0 < 8:
+        raise ValueError(f"the region of interest {roi} is too small (at least 8×8 pixels)")
+    region = np.asarray(frame[y0:y1, x0:x1], dtype=np.float32)
+    bright = float(np.percentile(region, 90))
+    dark = float(np.percentile(region, 0.5))
+    noise_abs = _noise_of(region)
+    if bright - dark < max(8.0 * noise_abs, 0.05 * max(bright, 1.0)):
+        raise NoFilament("No filament in view: the frame shows no dark shadow on a bright background.")
+    mask = region < 0.5 * (bright + dark)
+    if mask.mean() < 1e-3:
+        raise NoFilament("No filament in view: the frame shows no dark shadow on a bright background.")
+    orientation = "vertical" if _axis_score(mask) >= _axis_score(mask.T) else "horizontal"
+    if orientation == "vertical":
+        axial, lateral = (y0, y1), (x0, x1)
+    else:
+        axial, lateral, mask = (x0, x1), (y0, y1), mask.T
+    n_ax, n_lat = mask.shape
+    has, first, last = _extent(mask)
+    middle = slice(n_ax // 4, n_ax - n_ax // 4)
+    mid_ext = np.where(has[middle], last[middle] - first[middle] + 1, 0)
+    thread_width = float(np.median(mid_ext)) if mid_ext.size else 0.0
+    n0, ext_start = _end_body(has, first, last, n_lat, from_end=False, thread_width=thread_width)
+    n1, ext_end = _end_body(has, first, last, n_lat, from_end=True, thread_width=thread_width)
+    if n0 + n1 >= n_ax - 4:
+        raise NoFilament("No filament in view: the frame is dark from end to end.")
+    free = np.zeros(n_ax, bool)
+    free[n0:n_ax - n1] = True
+    free &= has
+    centre_rows = free if free.any() else has
+    axis = float(np.median(0.5 * (first[centre_rows] + last[centre_rows])))
+    # half-extent of everything that is not a band-filling body
+    body_rows = np.zeros(n_ax, bool)
+    body_rows[:n0] = ext_start is not None and math.isfinite(ext_start)
+    body_rows[n_ax - n1:] = ext_end is not None and math.isfinite(ext_end)
+    keep = has & (free | body_rows)
+    half = float(np.max(np.maximum(axis - first[keep], last[keep] - axis))) + 1.0 if keep.any() else 4.0
+    levels = _levels(region if orientation == "vertical" else region.T, mask, bright, dark)
+    blur = levels["blur"]
+    reach = half + (math.ceil(3.0 * blur) + 2) + BACKGROUND_COLUMNS + 2
+    b0 = max(0, int(math.floor(axis - reach)))
+    b1 = min(n_lat, int(math.ceil(axis + reach)) + 1)
+    band = (lateral[0] + b0, lateral[0] + b1)
+    span = (axial[0] + n0, axial[0] + n_ax - n1)
+    provisional = Layout(orientation=orientation, roi=(x0, y0, x1, y1), thread_span=span,
+                         plate_width_px=None, band=band, end_widths_px=(None, None),
+                         axis_px=lateral[0] + axis, background_level=levels["background"],
+                         shadow_level=levels["shadow"], blur_sigma_px=blur,
+                         noise=noise_abs / max(levels["background"] - levels["shadow"], 1e-6),
+                         geometry=geometry)
+    # sub-pixel widths of the end bodies, with the row machinery itself
+    rows = _measure_rows(_oriented(frame, orientation, axial, band), provisional,
+                         shadow_fraction=provisional.shadow_fraction)
+    widths = []
+    for count, ext, sl in ((n0, ext_start, slice(0, n0)), (n1, ext_end, slice(n_ax - n1, n_ax))):
+        if count == 0 or ext is None:
+            widths.append(None)
+        elif not math.isfinite(ext):
+            widths.append(math.inf)
+        else:
+            inner = rows["cut_width"][sl][2:-2] if count > 6 else rows["cut_width"][sl]
+            inner = inner[np.isfinite(inner)]
+            widths.append(float(np.median(inner)) if inner.size else float(ext))
+    plate = _reference_width(widths, geometry)
+    fraction = _rim_fraction(rows["rim_ratio"], free)
+    shadow = levels["shadow"] if fraction is None else fraction * levels["background"]
+    return Layout(orientation=orientation, roi=(x0, y0, x1, y1), thread_span=span,
+                  plate_width_px=plate, band=band, end_widths_px=(widths[0], widths[1]),
+                  axis_px=lateral[0] + axis, background_level=levels["background"],
+                  shadow_level=float(shadow), blur_sigma_px=blur,
+                  noise=noise_abs / max(levels["background"] - float(shadow), 1e-6), geometry=geometry)
+
+
+def _reference_width(widths, geometry):
+    """Plate width (mean of the plates) or nozzle diameter (the narrower finite body)."""
+    finite = [v for v in widths if v is not None and math.isfinite(v)]
+    if not finite:
+        return None
+    if geometry == "plates":
+        return float(np.mean(finite))
+    return float(min(finite))
+
+
+def _noise_of(region):
+    """Per-pixel noise (grey levels) from differences of neighbouring pixels, robustly."""
+    diff = np.diff(region, axis=1)
+    mad = np.median(np.abs(diff - np.median(diff)))
+    return float(mad / 0.6745 / math.sqrt(2.0))
+
+
+def _levels(block, mask, bright, dark):
+    """Background, shadow level and blur from one frame (axis along rows)."""
+    background = float(np.median(block[~mask])) if (~mask).any() else bright
+    depth = max(background - dark, 1e-6)
+    # blur: an erf edge rises from 10 % to 90 % over 2.563 σ (closed form); pixel
+    # integration adds 1/12 px² of variance, removed in quadrature
+    d = (background - block) / depth
+    has, first, last = _extent(mask)
+    sigmas = []
+    width = mask.shape[1]
+    # rows whose edges run along the axis (a slanted edge is cut wider than it is)
+    steady = np.zeros_like(has)
+    steady[2:-2] = (has[2:-2] & has[:-4] & has[4:] & (np.abs(first[4:] - first[:-4]) <= 1)
+                    & (np.abs(last[4:] - last[:-4]) <= 1) & (last[2:-2] - first[2:-2] >= 16))
+    candidates = np.flatnonzero(steady)
+    for row in candidates[:: max(1, candidates.size // 64)]:
+        for edge, sign in ((first[row], 1), (last[row], -1)):
+            lo, hi = edge - 10, edge + 11
+            if lo < 0 or hi > width:
+                continue
+            seg = d[row, lo:hi][::sign]
+            seg = np.maximum.accumulate(np.clip(seg, 0.0, 1.0))
+            if seg[0] > 0.1 or seg[-1] < 0.9:
+                continue
+            x10, x90 = np.interp([0.1, 0.9], seg + np.arange(seg.size) * 1e-9, np.arange(seg.size))
+            sigmas.append((x90 - x10) / 2.563)
+    blur = float(np.median(sigmas)) if sigmas else 1.0
+    blur = float(np.sqrt(max(blur * blur - 1.0 / 12.0, 0.09)))
+    blur = float(np.clip(blur, 0.3, 8.0))
+    core = block[mask]
+    shadow = float(np.percentile(core, 20)) if core.size else dark
+    return {"background": background, "shadow": shadow, "blur": blur}
+
+
+# ---------------------------------------------------------------------------------------------
+# per frame
+
+
+def _box(values, half):
+    """Running mean over ``2·half + 1`` entries along axis 0 (edges: shorter windows)."""
+    n = values.shape[0]
+    c = np.concatenate(([0.0], np.cumsum(values, dtype=np.float64)))
+    i = np.arange(n)
+    lo = np.clip(i - half, 0, n)
+    hi = np.clip(i + half + 1, 0, n)
+    return (c[hi] - c[lo]) / (hi - lo)
+
+
+def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
+    """Row-wise width, centre and levels of one band block (float32, axis along rows)."""
+    n, w = block.shape
+    k = min(BACKGROUND_COLUMNS, max(1, w // 6))
+    left_bg = _box(block[:, :k].mean(axis=1), 3)
+    right_bg = _box(block[:, w - k:].mean(axis=1), 3)
+    xl = 0.5 * (k - 1)
+    xr = w - 1 - 0.5 * (k - 1)
+    slope = (right_bg - left_bg) / (xr - xl)
+    cols = np.arange(w, dtype=np.float32) - np.float32(xl)
+    backlight = left_bg.astype(np.float32)[:, None] + slope.astype(np.float32)[:, None] * cols
+    scale = np.float32(1.0 / max(1.0 - shadow_fraction, 1e-3))
+    deficit = (1.0 - block / backlight) * scale
+    pair = deficit[:, :-1] + deficit[:, 1:]
+    peak = 0.5 * pair.max(axis=1)
+    mask = pair > 2.0 * detect_level
+    has = mask.any(axis=1)
+    rows = np.arange(n)
+    lj = np.argmax(mask, axis=1)
+    rj = (w - 2) - np.argmax(mask[:, ::-1], axis=1)
+    # sub-pixel detection crossings of the pair average (pair j is centred at j + 0.5)
+    lprev = np.maximum(lj - 1, 0)
+    p0, p1 = pair[rows, lprev], pair[rows, lj]
+    step = np.where(p1 - p0 > 1e-6, p1 - p0, 1.0)
+    xl_cross = np.where(lj > 0, lprev + 0.5 + (2.0 * detect_level - p0) / step, lj + 0.5)
+    rnext = np.minimum(rj + 1, w - 2)
+    q0, q1 = pair[rows, rj], pair[rows, rnext]
+    step = np.where(q0 - q1 > 1e-6, q0 - q1, 1.0)
+    xr_cross = np.where(rj < w - 2, rj + 0.5 + (q0 - 2.0 * detect_level) / step, rj + 0.5)
+    centre = 0.5 * (xl_cross + xr_cross)
+    # integrated deficit over [left − margin, right + margin], core counted as full shadow
+    m, a = layout.margin_px, layout.core_px
+    cum = np.empty((n, w + 1), dtype=np.float32)
+    cum[:, 0] = 0.0
+    np.cumsum(deficit, axis=1, out=cum[:, 1:])
+    s0 = np.clip(lj - m, 0, w)
+    e0 = np.clip(rj + 2 + m, 0, w)
+    total = cum[rows, e0] - cum[rows, s0]
+    fa = lj + a
+    fb = rj + 2 - a
+    filled = fb > fa
+    fa_c = np.clip(fa, 0, w)
+    fb_c = np.clip(fb, 0, w)
+    core_sum = cum[rows, fb_c] - cum[rows, fa_c]
+    edge_sum = np.where(filled, total - core_sum, total)
+    core_n = np.where(filled, fb - fa, 0).astype(np.float64)
+    # rim level of thick rows (over the backlight): full shadow there, whatever a lens streak
+    # does further in; NaN on rows too thin to have a rim
+    thick = filled & (fb - fa > 12) & has
+    rim_ratio = np.full(n, np.nan)
+    if thick.any():
+        tr, ta, tb = rows[thick], fa[thick], fb[thick]
+        samples = [(tr, ta), (tr, ta + 1), (tr, tb - 1), (tr, tb - 2)]
+        rim_ratio[thick] = np.mean([block[i, j] / backlight[i, j] for i, j in samples], axis=0)
+    truncated = (lj - m < 0) | (rj + 2 + m > w)
+    return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum.astype(np.float64),
+            "core_n": core_n, "cut_width": np.where(has, edge_sum + core_n, np.nan),
+            "truncated": truncated, "rim_ratio": rim_ratio,
+            "left_bg": left_bg, "right_bg": right_bg}
+
+
+def _local_slope(y, c, ok, half):
+    """Slope dc/dy of a sliding least-squares line over ``2·half + 1`` rows (NaN where too few)."""
+    wgt = ok.astype(np.float64)
+    cc = np.where(ok, c, 0.0)
+    yy = y - y.mean()
+    s0 = _box(wgt, half)
+    s1 = _box(wgt * yy, half)
+    s2 = _box(wgt * yy * yy, half)
+    t0 = _box(cc, half)
+    t1 = _box(cc * yy, half)
+    den = s0 * s2 - s1 * s1
+    with np.errstate(invalid="ignore", divide="ignore"):
+        slope = (s0 * t1 - s1 * t0) / den
+    slope[(s0 * (2 * half + 1) < 5) | ~np.isfinite(slope)] = np.nan
+    return slope
+
+
+def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DETECT_LEVEL,
+                 presence_level=PRESENCE_LEVEL, axis_window_px=10) -> Profile:
+    """Both edges of the filament on every row of the band, sub-pixel (see module docstring).
+
+    ``shadow_fraction``: shadow level over backlight to use (e.g. a running
+    estimate over earlier frames); None measures it on this frame's thick
+    rims, falling back to the layout's. ``detect_level``: deficit fraction
+    whose outer crossings locate the filament on a row; ``presence_level``:
+    smallest peak deficit of a row crossed by the thread;
+    ``axis_window_px``: half-length of the sliding centre-line fit giving
+    the local axis angle.
+    """
+    axial = layout.axial_range
+    block = _oriented(np.asarray(frame), layout.orientation, axial, layout.band)
+    rows = _measure_rows(block, layout, shadow_fraction=layout.shadow_fraction,
+                         detect_level=detect_level)
+    n = block.shape[0]
+    fraction = layout.shadow_fraction
+    cut = np.where(rows["has"], rows["edge_sum"] + rows["core_n"], np.nan)
+    body = _body_rows(rows, cut, layout, n)
+    start = int(np.argmin(body)) if not body.all() else n
+    stop = n - int(np.argmin(body[::-1])) if not body.all() else n
+    face = int(math.ceil(3.0 * layout.blur_sigma_px)) + 1 if body.any() else 0
+    free = np.zeros(n, bool)
+    lo = start + (face if start > 0 else 0)
+    hi = stop - (face if stop < n else 0)
+    if hi > lo:
+        free[lo:hi] = True
+    peak = rows["peak"]
+    own = _rim_fraction(rows["rim_ratio"], free)
+    new = own if shadow_fraction is None else float(shadow_fraction)
+    if new is not None and new != fraction:
+        # re-scale the partial sums to this frame's own shadow level (flicker, exposure)
+        gain = (1.0 - fraction) / (1.0 - new)
+        cut = np.where(rows["has"], rows["edge_sum"] * gain + rows["core_n"], np.nan)
+        peak = peak * gain
+        fraction = new
+    present = peak > max(presence_level, 5.0 * layout.noise)
+    valid = free & rows["has"] & ~rows["truncated"]
+    connected = bool(free.any() and present[free].all())
+    y = np.arange(n, dtype=np.float64) + axial[0]
+    centre = rows["centre"] + layout.band[0]
+    slope = _local_slope(y, centre, valid, axis_window_px)
+    if np.isnan(slope).any():
+        good = valid & np.isfinite(slope)
+        fill = float(np.median(slope[good])) if good.any() else 0.0
+        slope = np.where(np.isnan(slope), fill, slope)
+    cosine = 1.0 / np.sqrt(1.0 + slope * slope)
+    half = 0.5 * cut
+    return Profile(axial_px=y, left_px=centre - half, right_px=centre + half,
+                   width_px=cut * cosine, cut_width_px=cut, centre_px=centre,
+                   angle_deg=np.degrees(np.arctan(slope)), contrast=peak, valid=valid,
+                   present=present, body=body, free_span=(axial[0] + start, axial[0] + stop),
+                   connected=connected, shadow_fraction=fraction,
+                   rim_fraction=math.nan if own is None else own)
+
+
+def _rim_fraction(rim_ratio, rows_ok):
+    """Shadow level over backlight from the rims of thick free rows (None when too few)."""
+    values = rim_ratio[rows_ok]
+    values = values[np.isfinite(values)]
+    if values.size < 3:
+        return None
+    return float(np.clip(np.median(values), -0.5, 0.9))
+
+
+def _body_rows(rows, cut, layout, n):
+    """Rows of the end bodies: contiguous from each end, as wide as the body or without backlight."""
+    left_bg, right_bg = rows["left_bg"], rows["right_bg"]
+    top = max(float(np.median(left_bg)), float(np.median(right_bg)))
+    no_light = np.minimum(left_bg, right_bg) < 0.5 * (1.0 + layout.shadow_fraction) * top
+    body = np.zeros(n, bool)
+    for end, width in enumerate(layout.end_widths_px):
+        if width is None:
+            continue
+        if math.isfinite(width):
+            wide = no_light | (np.nan_to_num(cut, nan=0.0) >= width - max(1.0, 0.02 * width))
+        else:
+            wide = no_light
+        seq = wide if end == 0 else wide[::-1]
+        count = int(np.argmin(seq)) if not seq.all() else n
+        if end == 0:
+            body[:count] = True
+        else:
+            body[n - count:] = True
+    return body

@@ -1,0 +1,431 @@
+"""The minimum neck diameter of every frame, the start of free thinning and the breakup.
+
+:func:`measure_recording` makes one pass over a stream of frames (constant
+memory in the number of frames): it finds the layout on the first frame
+that shows a filament, measures every frame with
+:func:`thinning.edges.locate_edges`, and reduces each profile to one row:
+
+- the neck is the thinnest part of the free filament (between beads, if
+  any): around the thinnest rows a quadratic in the axial coordinate is
+  fitted to the widths and its minimum taken, which averages the row noise
+  instead of picking its most negative excursion (the raw minimum of noisy
+  rows is biased low);
+- a frame whose free span has a row without shadow has no connected thread:
+  its diameter is NaN, and the pinch-off instant lies between the last frame
+  with a thread and the first without;
+- free thinning starts when the gap between the end bodies (plate faces, or
+  nozzle and the foot of the drop on the substrate) stops changing.
+
+Everything is in pixels and frames; :func:`to_physical` applies the
+calibration once.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass, field
+from typing import Iterable
+
+import numpy as np
+import pandas as pd
+
+from .edges import Layout, NoFilament, Profile, find_layout, locate_edges
+from .findings import Finding, Severity
+
+log = logging.getLogger(__name__)
+
+#: Number of frames kept for the picture strip.
+SNAPSHOTS = 6
+#: Weight of a new frame in the running estimate of the shadow level.
+SHADOW_SMOOTHING = 0.1
+#: Tilt of the axis (degrees) above which a finding is raised.
+TILT_LIMIT_DEG = 2.0
+
+TABLE_COLUMNS = ["frame", "diameter_px", "neck_position_px", "axis_angle_deg", "axis_lateral_px",
+                 "min_contrast", "thread_connected", "filament_seen", "plate_gap_px", "beads",
+                 "fit_rows"]
+
+
+@dataclass
+class NeckSeries:
+    """The neck of every frame of one recording, in pixels and frames.
+
+    ``table`` has one row per frame with the columns of :data:`TABLE_COLUMNS`:
+    ``diameter_px`` (minimum neck diameter across the axis; NaN where there
+    is no connected thread and from the breakup on), ``neck_position_px``
+    (axial coordinate of the neck: from the top of the frame, or from its
+    left for a horizontal filament), ``axis_angle_deg`` (local axis angle at
+    the neck), ``axis_lateral_px`` (lateral position of the axis at the
+    neck), ``min_contrast`` (peak shadow depth at the neck, 1 = full shadow),
+    ``thread_connected``, ``filament_seen`` (any shadow in the band),
+    ``plate_gap_px`` (axial gap between the end bodies, the motion signal),
+    ``beads`` (beads on the thread in this frame), ``fit_rows`` (rows used by
+    the neck fit). ``free_thinning_start_frame`` and ``breakup_frame`` are in
+    frames (``breakup_frame`` None when the thread did not break);
+    ``diameter_noise_px`` is the per-frame noise of ``diameter_px``;
+    ``snapshots`` a few ``(frame index, frame, profile)`` spread over the record.
+    """
+
+    table: pd.DataFrame
+    layout: Layout
+    free_thinning_start_frame: float
+    breakup_frame: float | None
+    diameter_noise_px: float
+    findings: list[Finding] = field(default_factory=list)
+    snapshots: list[tuple[int, np.ndarray, Profile]] = field(default_factory=list)
+
+
+# ---------------------------------------------------------------------------------------------
+# one frame
+
+
+def _masked_box(values, ok, half):
+    """Running mean of ``values`` over valid entries only (NaN where a window has none)."""
+    v = np.where(ok, values, 0.0)
+    c = np.concatenate(([0.0], np.cumsum(v)))
+    k = np.concatenate(([0], np.cumsum(ok)))
+    n = values.size
+    i = np.arange(n)
+    lo = np.clip(i - half, 0, n)
+    hi = np.clip(i + half + 1, 0, n)
+    count = k[hi] - k[lo]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, (c[hi] - c[lo]) / np.maximum(count, 1), np.nan)
+
+
+def neck_of(profile: Profile, *, row_noise_px=0.1, max_half_window=40, min_half_window=2):
+    """Minimum diameter of one profile from a local quadratic fit along the axis.
+
+    ``row_noise_px``: expected noise of one row's width; the fit window
+    takes the contiguous rows around the thinnest one whose smoothed width
+    stays within ``max(3·row_noise_px, 1.5 %)`` of it, half-length between
+    ``min_half_window`` and ``max_half_window`` rows. Returns a dict with
+    ``diameter_px``, ``neck_position_px``, ``axis_angle_deg``,
+    ``axis_lateral_px``, ``min_contrast``, ``fit_rows``, ``beads``
+    (NaN / 0 / False when there is no connected thread).
+    """
+    out = {"diameter_px": math.nan, "neck_position_px": math.nan, "axis_angle_deg": math.nan,
+           "axis_lateral_px": math.nan, "min_contrast": math.nan, "fit_rows": 0, "beads": False}
+    width = profile.width_px
+    ok = profile.valid & np.isfinite(width)
+    if not profile.connected or ok.sum() < 3:
+        return out
+    smooth = _masked_box(width, ok, 1)
+    smooth = np.where(ok, smooth, np.inf)
+    i0 = int(np.argmin(smooth))
+    w0 = float(smooth[i0])
+    level = w0 + max(3.0 * row_noise_px, 0.015 * w0)
+    inside = smooth <= level
+    n = width.size
+    lo = i0
+    while lo > 0 and inside[lo - 1] and i0 - lo < max_half_window:
+        lo -= 1
+    hi = i0
+    while hi < n - 1 and inside[hi + 1] and hi - i0 < max_half_window:
+        hi += 1
+    mid = (lo + hi) // 2
+    half = max((hi - lo + 1) // 2, min_half_window)
+    sel = np.zeros(n, bool)
+    sel[max(0, mid - half): mid + half + 1] = True
+    sel &= ok
+    y = profile.axial_px[sel] - profile.axial_px[i0]
+    w = width[sel]
+    position = float(profile.axial_px[i0])
+    if sel.sum() >= 5:
+        coef = np.polyfit(y, w, 2)
+        a, b, c = coef
+        vertex = -b / (2.0 * a) if a > 0 else math.nan
+        if np.isfinite(vertex) and y.min() <= vertex <= y.max():
+            diameter = c - b * b / (4.0 * a)
+            position += vertex
+        else:
+            diameter = float(np.polyval(coef, 0.0)) if a > 0 else float(np.mean(w))
+            if a <= 0:
+                diameter = min(diameter, float(np.polyval(coef, 0.0)))
+    else:
+        diameter = float(np.mean(w))
+    out.update(diameter_px=float(diameter), neck_position_px=position,
+               axis_angle_deg=float(profile.angle_deg[i0]),
+               axis_lateral_px=float(profile.centre_px[i0]),
+               min_contrast=float(profile.contrast[i0]), fit_rows=int(sel.sum()),
+               beads=_has_beads(smooth, ok))
+    return out
+
+
+def _has_beads(smooth, ok):
+    """A bead: a swelling of the thread with clearly thinner thread on both sides."""
+    w = np.where(ok, smooth, np.inf)
+    if not np.isfinite(w).any():
+        return False
+    left = np.minimum.accumulate(w)
+    right = np.minimum.accumulate(w[::-1])[::-1]
+    thread = np.maximum(left, right)
+    bead = ok & np.isfinite(thread) & (w > 1.6 * thread) & (w > thread + 3.0)
+    return bool(bead.any())
+
+
+# ---------------------------------------------------------------------------------------------
+# the record
+
+
+def _gap(profile: Profile, layout: Layout):
+    """Axial gap between the end bodies of one frame (NaN unless both ends have a body)."""
+    if profile.body[0] and profile.body[-1]:
+        return float(profile.free_span[1] - profile.free_span[0])
+    if layout.end_widths_px[0] is not None and profile.body[0]:
+        return float(profile.free_span[0])
+    if layout.end_widths_px[1] is not None and profile.body[-1]:
+        return float(profile.free_span[1])
+    return math.nan
+
+
+class _Snapshots:
+    """A few frames spread over the record, in constant memory."""
+
+    def __init__(self, n_frames):
+        self.n_frames = n_frames
+        self.kept = []
+        self.step = 1
+        if n_frames:
+            self.targets = set(np.unique(np.round(np.linspace(0, n_frames - 1, SNAPSHOTS))).astype(int))
+
+    def offer(self, index, frame, profile):
+        if self.n_frames:
+            if index in self.targets:
+                self.kept.append((index, np.array(frame, copy=True), profile))
+            return
+        if index % self.step == 0:
+            self.kept.append((index, np.array(frame, copy=True), profile))
+            if len(self.kept) > 2 * SNAPSHOTS:
+                self.step *= 2
+                self.kept = [s for s in self.kept if s[0] % self.step == 0]
+
+    def result(self):
+        if self.n_frames or len(self.kept) <= SNAPSHOTS:
+            return self.kept
+        pick = np.unique(np.round(np.linspace(0, len(self.kept) - 1, SNAPSHOTS)).astype(int))
+        return [self.kept[i] for i in pick]
+
+
+def measure_recording(frames: Iterable[np.ndarray], *, geometry="plates", roi=None,
+                      n_frames=None) -> NeckSeries:
+    """Measure the neck in every frame of a stream (one pass, constant memory).
+
+    ``frames`` is iterated once; ``geometry`` ``"plates"`` or ``"dripping"``;
+    ``roi`` optional ``(x0, y0, x1, y1)``; ``n_frames`` the expected count
+    (for spreading the snapshots; taken from ``len(frames)`` when possible).
+    Raises :class:`thinning.edges.NoFilament` when no frame shows a filament.
+    """
+    if n_frames is None:
+        try:
+            n_frames = len(frames)  # type: ignore[arg-type]
+        except TypeError:
+            n_frames = None
+    layout = None
+    fraction = None
+    records = []
+    snaps = _Snapshots(n_frames)
+    for index, frame in enumerate(frames):
+        if layout is None:
+            try:
+                layout = find_layout(frame, geometry=geometry, roi=roi)
+            except NoFilament:
+                records.append(_empty(index))
+                continue
+            fraction = layout.shadow_fraction
+            row_noise = _row_noise(layout)
+        profile = locate_edges(frame, layout, shadow_fraction=fraction)
+        if np.isfinite(profile.rim_fraction):
+            fraction += SHADOW_SMOOTHING * (profile.rim_fraction - fraction)
+        neck = neck_of(profile, row_noise_px=row_noise)
+        records.append((index, neck["diameter_px"], neck["neck_position_px"],
+                        neck["axis_angle_deg"], neck["axis_lateral_px"], neck["min_contrast"],
+                        profile.connected, bool(profile.present.any()), _gap(profile, layout),
+                        neck["beads"], neck["fit_rows"]))
+        snaps.offer(index, frame, profile)
+    if layout is None:
+        raise NoFilament("No filament in view in any frame of the recording.")
+    table = pd.DataFrame.from_records(records, columns=TABLE_COLUMNS)
+    return summarise(table, layout, snapshots=snaps.result())
+
+
+def _empty(index):
+    return (index, math.nan, math.nan, math.nan, math.nan, math.nan, False, False, math.nan,
+            False, 0)
+
+
+def _row_noise(layout: Layout):
+    """Expected noise (px) of one row's width: per-pixel noise over a thin thread's window."""
+    window = 2 * layout.margin_px + 4
+    return float(layout.noise * math.sqrt(window))
+
+
+# ---------------------------------------------------------------------------------------------
+# whole-record quantities
+
+
+def summarise(table: pd.DataFrame, layout: Layout, *, snapshots=()) -> NeckSeries:
+    """Breakup, start of free thinning, noise and findings from the per-frame table."""
+    table = table.copy()
+    connected = table["thread_connected"].to_numpy(bool)
+    seen = table["filament_seen"].to_numpy(bool)
+    frames = table["frame"].to_numpy()
+    findings = []
+    breakup = None
+    if connected.any():
+        first = int(np.flatnonzero(connected)[0])
+        last = int(np.flatnonzero(connected)[-1])
+        if last < len(table) - 1:
+            if seen[last + 1]:
+                breakup = float(frames[last]) + 0.5
+            else:
+                findings.append(Finding(
+                    "filament-lost", Severity.DOUBTFUL,
+                    f"The filament disappeared from view after frame {int(frames[last])} "
+                    "without a visible breakup."))
+        gaps = ~connected[first:last + 1]
+        if gaps.any():
+            longest = _longest_run(gaps)
+            lost = ~seen[first:last + 1] & gaps
+            severity = Severity.DOUBTFUL if (longest >= 3 or lost.any()) else Severity.NOTE
+            findings.append(Finding(
+                "thread-gaps", severity,
+                f"No connected thread was found in {int(gaps.sum())} frame(s) before the final "
+                f"breakup (longest run {longest}); their diameters are left empty."))
+        if first > 0:
+            findings.append(Finding(
+                "no-filament-frames", Severity.NOTE,
+                f"The first {first} frame(s) show no connected filament; their diameters are empty."))
+        table.loc[table.index > last, "diameter_px"] = np.nan
+    else:
+        findings.append(Finding(
+            "no-connected-thread", Severity.DOUBTFUL,
+            "No frame shows a connected thread between the ends; nothing could be measured."))
+    table.loc[~table["thread_connected"], "diameter_px"] = np.nan
+    end = len(table) if breakup is None else int(breakup + 0.5)
+    start = free_thinning_start(table["plate_gap_px"].to_numpy(float)[:end])
+    noise = diameter_noise(table["diameter_px"].to_numpy(float)[int(start):end])
+    findings.extend(_quality_findings(table.iloc[:end], layout, start))
+    return NeckSeries(table=table, layout=layout, free_thinning_start_frame=float(start),
+                      breakup_frame=breakup, diameter_noise_px=noise, findings=findings,
+                      snapshots=list(snapshots))
+
+
+def _longest_run(mask):
+    best = run = 0
+    for value in mask:
+        run = run + 1 if value else 0
+        best = max(best, run)
+    return best
+
+
+def _running_median(values, half):
+    n = values.size
+    out = np.empty(n)
+    for i in range(n):
+        out[i] = np.median(values[max(0, i - half): i + half + 1])
+    return out
+
+
+def free_thinning_start(gap_px, *, span=4, min_change_px=2.0, settle_px=1.0):
+    """First frame after the end bodies stopped moving (0 when they never moved in the record).
+
+    ``gap_px``: the axial gap between the end bodies per frame (NaN where
+    unknown). A frame is within the motion when the median-filtered gap
+    changes by more than ``max(min_change_px, 10 % of the largest change)``
+    between ``span`` frames before and after it; the motion has ended at the
+    first frame after that whose gap is within ``settle_px`` of the gap held
+    afterwards.
+    """
+    idx = np.flatnonzero(np.isfinite(gap_px))
+    if idx.size < 2 * span + 2:
+        return 0.0
+    g = _running_median(gap_px[idx], 2)
+    change = np.abs(g[2 * span:] - g[:-2 * span])
+    limit = max(min_change_px, 0.1 * float(change.max()))
+    moving = np.flatnonzero(change > limit)
+    if moving.size == 0:
+        return 0.0
+    centre = int(moving[-1]) + span
+    after = g[min(centre + span, g.size - 1): centre + 3 * span + 1]
+    held = float(np.median(after)) if after.size else float(g[-1])
+    for j in range(max(0, centre - span), g.size):
+        if abs(g[j] - held) <= settle_px:
+            return float(idx[j])
+    return float(idx[-1])
+
+
+def diameter_noise(diameter_px):
+    """Per-frame noise of a diameter series from its second differences (robust; px)."""
+    d = diameter_px[np.isfinite(diameter_px)]
+    if d.size < 8:
+        return math.nan
+    second = np.diff(d, 2)
+    mad = np.median(np.abs(second - np.median(second)))
+    return float(1.4826 * mad / math.sqrt(6.0))
+
+
+def _frame_range(mask, frames):
+    hit = frames[mask]
+    return f"frames {int(hit.min())}–{int(hit.max())}"
+
+
+def _quality_findings(table, layout: Layout, start):
+    findings = []
+    frames = table["frame"].to_numpy()
+    measured = table["diameter_px"].notna().to_numpy()
+    if not measured.any():
+        return findings
+    angle = table["axis_angle_deg"].to_numpy(float)[measured]
+    tilt = float(np.median(angle))
+    if abs(tilt) > TILT_LIMIT_DEG:
+        findings.append(Finding(
+            "tilt", Severity.NOTE,
+            f"The filament axis is tilted by {abs(tilt):.1f}° from the image axis; diameters are "
+            "measured across the axis, but check the camera alignment."))
+    lateral = table["axis_lateral_px"].to_numpy(float)[measured]
+    diam = table["diameter_px"].to_numpy(float)[measured]
+    if lateral.size >= 10:
+        k = max(3, lateral.size // 10)
+        drift = abs(float(np.median(lateral[-k:]) - np.median(lateral[:k])))
+        if drift > max(3.0, 0.5 * float(np.nanmedian(diam[:k]))):
+            findings.append(Finding(
+                "axis-drift", Severity.NOTE,
+                f"The filament axis drifted sideways by {drift:.1f} px during the record."))
+    beads = table["beads"].to_numpy(bool) & measured
+    if beads.sum() >= max(3, 0.05 * measured.sum()):
+        findings.append(Finding(
+            "beads", Severity.NOTE,
+            f"Beads formed on the thread ({_frame_range(beads, frames)}); the diameter is the "
+            "thread's minimum between them."))
+    floor = 3.0 * layout.blur_sigma_px
+    contrast = table["min_contrast"].to_numpy(float)
+    low = measured & ((table["diameter_px"].to_numpy(float) < floor) | (contrast < 0.8))
+    if low.any():
+        findings.append(Finding(
+            "contrast-loss", Severity.NOTE,
+            f"The thread is narrower than about three blur widths ({floor:.1f} px) in "
+            f"{int(low.sum())} frame(s) ({_frame_range(low, frames)}): it is blurred into a "
+            "low-contrast dip and those diameters are less reliable."))
+    return findings
+
+
+def to_physical(series: NeckSeries, calibration) -> pd.DataFrame:
+    """The per-frame table in SI units on the recording's clock (t = frame / fps).
+
+    Columns: ``frame, time_s, diameter_m, neck_position_m, axis_angle_deg,
+    thread_connected, min_contrast, plate_gap_m``.
+    """
+    t = series.table
+    px = calibration.pixel_size_m
+    return pd.DataFrame({
+        "frame": t["frame"].to_numpy(int),
+        "time_s": t["frame"].to_numpy(float) / calibration.fps_hz,
+        "diameter_m": t["diameter_px"].to_numpy(float) * px,
+        "neck_position_m": t["neck_position_px"].to_numpy(float) * px,
+        "axis_angle_deg": t["axis_angle_deg"].to_numpy(float),
+        "thread_connected": t["thread_connected"].to_numpy(bool),
+        "min_contrast": t["min_contrast"].to_numpy(float),
+        "plate_gap_m": t["plate_gap_px"].to_numpy(float) * px,
+    })
