@@ -207,3 +207,38 @@ def test_sagging_and_tilt_move_the_neck():
     _, tilted = synth.render_recording(base, dataclasses.replace(CLEAN, tilt_deg=5.0), seed=0)
     assert np.all(tilted.axis_angle_deg == 5.0)
     np.testing.assert_array_equal(tilted.diameter_m, straight.diameter_m)
+
+
+@pytest.mark.parametrize("name", sorted(synth.standard_scenes()))
+def test_drawn_profile_has_its_minimum_at_the_true_neck(name):
+    scene = dataclasses.replace(synth.standard_scenes()[name], beads=True, sagging=0.05)
+    hist, n = synth._model(scene)
+    tl = synth._timeline(scene, hist, n)
+    rng = np.random.default_rng(5)
+    threads = np.flatnonzero(np.isfinite(tl.r_min) & (tl.r_min > 0))
+    for i in rng.choice(threads, size=12, replace=False):
+        a = np.linspace(tl.a_upper[i], tl.a_lower[i], 20001)
+        r = synth._profile(a, tl, i)
+        inner = r[1:-1]
+        assert inner.min() >= tl.r_min[i] * (1 - 1e-9)
+        at_neck = synth._profile(np.array([tl.a_neck[i]]), tl, i)[0]
+        assert at_neck == pytest.approx(tl.r_min[i], rel=1e-9)
+        assert r[0] == pytest.approx(tl.plate_radius) and r[-1] == pytest.approx(tl.lower_end_radius[i])
+
+
+def test_tilted_thread_row_width_is_unbiased():
+    tilt = 6.0
+    optics = dataclasses.replace(CLEAN, tilt_deg=tilt)
+    scene = synth.dilute_polymer_plates(n_frames=None)
+    frames, truth = synth.render_recording(scene, optics, seed=1)
+    target = np.flatnonzero((truth.diameter_px > 30) & (truth.phase == "free"))[-1]
+    for i, frame in enumerate(frames):
+        if i == target:
+            break
+    image = frame.astype(float)
+    row = image[int(round(truth.neck_position_px[i]))]
+    background = np.median(image[:, :5])
+    shadow = np.median(image[:5, image.shape[1] // 2 - 5:image.shape[1] // 2 + 5])
+    # a straight cylinder cut by an image row at angle θ to its normal is D / cos θ wide
+    expected = truth.diameter_px[i] / np.cos(np.radians(tilt))
+    assert half_intensity_width(row, background, shadow) == pytest.approx(expected, abs=0.15)

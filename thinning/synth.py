@@ -322,6 +322,7 @@ class _Timeline:
     bead_radius: np.ndarray    # px, 0: no bead
     lower_end_radius: np.ndarray  # radius where liquid meets the lower end (plate, or drop base)
     pendant_length: np.ndarray # dripping pre-roll: drop length below the nozzle (px)
+    pendant_radius: float      # widest radius of the pendant drop (px)
     r_start: float             # largest neck radius of the record (px)
     plate_radius: float
     style: _Style
@@ -408,12 +409,13 @@ def _timeline(scene: Scene, hist, n_frames: int) -> _Timeline:
         tau_spread = max(lifetime, 1.0 / scene.fps_hz) * 0.5
         grow = -np.expm1(-np.clip(t - t_contact, 0.0, None) / tau_spread)
         lower_radius = rp * (1.0 + 1.2 * grow)
-        lower_radius = np.minimum(lower_radius, 0.47 * scene.frame_size_px[1])
+        lower_radius = np.minimum(lower_radius, 0.4 * scene.frame_size_px[1])
 
     return _Timeline(time_s=t, phase=phase.astype(str), r_min=r_min, a_upper=a_upper,
                      a_lower=a_lower, a_neck=a_neck, half_thread=half_thread,
                      tip_retraction=tip, bead_radius=bead, lower_end_radius=lower_radius,
-                     pendant_length=pendant_length, r_start=float(np.nanmax(r_min, initial=r0)),
+                     pendant_length=pendant_length,
+                     pendant_radius=min(1.4 * rp, 0.42 * scene.frame_size_px[1]), r_start=float(np.nanmax(r_min, initial=r0)),
                      plate_radius=rp, style=style, breakup_time_s=t_b,
                      free_thinning_start_s=t_ft)
 
@@ -438,18 +440,29 @@ def _side_radius(d, *, r_min, half_thread, slope, transition, curvature):
     return np.sqrt(thread ** 2 + (slope * q) ** 2)
 
 
-def _profile(a, tl: _Timeline, i: int) -> np.ndarray:
-    """Liquid radius (px) at axial positions ``a`` (px from the gap centre) in frame ``i``."""
+def _profile(a, tl: _Timeline, i: int, *, overlap_px: float = 0.0) -> np.ndarray:
+    """Liquid radius (px) at axial positions ``a`` (px from the gap centre) in frame ``i``.
+
+    ``overlap_px``: the liquid continues that far into the plates (nozzle, substrate) at the
+    radius where it meets them, hidden behind them; a tilted silhouette then joins them
+    without a gap.
+    """
     a = np.asarray(a, dtype=float)
     r = np.zeros_like(a)
     a_up, a_lo = tl.a_upper[i], tl.a_lower[i]
     rp = tl.plate_radius
     if tl.phase[i] == "pendant":
+        # an elongated pendant drop: bulging from the nozzle's radius to its widest, rounded below
         length = tl.pendant_length[i]
-        rs = (length ** 2 + rp ** 2) / (2.0 * length)
-        centre = a_up + length - rs
-        inside = (a >= a_up) & (a <= a_up + length)
-        r[inside] = np.sqrt(np.clip(rs ** 2 - (a[inside] - centre) ** 2, 0.0, None))
+        widest = tl.pendant_radius
+        d = a - a_up
+        shoulder = 0.4 * length
+        upper = (d >= 0) & (d < shoulder)
+        lower = (d >= shoulder) & (d <= length)
+        r[upper] = rp + (widest - rp) * np.sin(0.5 * np.pi * d[upper] / shoulder)
+        r[lower] = widest * np.sqrt(np.clip(1.0 - ((d[lower] - shoulder) / (length - shoulder)) ** 2,
+                                            0.0, None))
+        r[(d < 0) & (d >= -overlap_px)] = rp
         return r
     a_n = tl.a_neck[i]
     r_min = max(float(tl.r_min[i]), 0.0)
@@ -461,6 +474,7 @@ def _profile(a, tl: _Timeline, i: int) -> np.ndarray:
         d = sign * (a - a_n)
         d_end = sign * (end - a_n)
         mask = (d >= 0) & (d <= d_end)
+        r[(d > d_end) & (d <= d_end + overlap_px)] = r_end
         if not mask.any():
             continue
         dd = d[mask]
@@ -677,10 +691,11 @@ class _Renderer:
         if self.sin_t == 0.0:
             r = _profile((y - oy) / self.cos_t, tl, i)
             return ox - r, ox + r, r
-        a_lo = min(tl.a_upper[i], tl.a_lower[i]) - 1.0
-        a_hi = tl.a_lower[i] + 1.0
+        overlap = max(tl.plate_radius, tl.lower_end_radius[i]) * abs(self.sin_t / self.cos_t) + 2.0
+        a_lo = tl.a_upper[i] - overlap - 1.0
+        a_hi = tl.a_lower[i] + overlap + 1.0
         a = np.linspace(a_lo, a_hi, int((a_hi - a_lo) * SUB_ROWS) + 2)
-        r = _profile(a, tl, i)
+        r = _profile(a, tl, i, overlap_px=overlap)
         s, c = self.sin_t, self.cos_t
         xl, yl = ox + a * s - r * c, oy + a * c + r * s
         xr, yr = ox + a * s + r * c, oy + a * c - r * s
@@ -833,6 +848,85 @@ def _video_writer(path: Path, fourcc: str, shape, bit_depth: int, playback_fps: 
     return writer
 
 
+class _MjpegAvi:
+    """Minimal streaming AVI 1.0 writer of grey JPEG frames (OpenCV's writer ignores quality).
+
+    Layout: RIFF 'AVI ' { LIST hdrl { avih, LIST strl { strh, strf } }, LIST movi { 00dc … },
+    idx1 }; sizes and counts are patched on close. The index (16 bytes a frame) is the only
+    thing that grows with the record.
+    """
+
+    LIMIT_BYTES = 1 << 30   # AVI 1.0 readers are safe below 1 GiB
+
+    def __init__(self, path: Path, shape, playback_fps: float, quality: int):
+        import struct
+
+        self.struct = struct
+        self.height, self.width = shape
+        self.fps = float(playback_fps)
+        self.quality = int(quality)
+        self.index = bytearray()
+        self.n = 0
+        self.largest = 0
+        self.fh = open(path, "wb")
+        self.fh.write(self._header())
+        self.movi_start = self.fh.tell() - 4          # offset of the 'movi' fourcc
+
+    def _header(self, n_frames=0, largest=0, riff_size=0, movi_size=0) -> bytes:
+        pack = self.struct.pack
+        w, h = self.width, self.height
+        rate_num, rate_den = _rational(self.fps)
+        avih = pack("<10I4I", int(round(1e6 / self.fps)), 0, 0, 0x10, n_frames, 0, 1, largest,
+                    w, h, 0, 0, 0, 0)
+        strh = pack("<4s4sIHHIIIIIIII4h", b"vids", b"MJPG", 0, 0, 0, 0, rate_den, rate_num, 0,
+                    n_frames, largest, 0xFFFFFFFF, 0, 0, 0, w, h)
+        strf = pack("<IiiHH4sIiiII", 40, w, h, 1, 24, b"MJPG", w * h * 3, 0, 0, 0, 0)
+        strl = b"strl" + _chunk(b"strh", strh) + _chunk(b"strf", strf)
+        hdrl = b"hdrl" + _chunk(b"avih", avih) + _chunk(b"LIST", strl)
+        return (b"RIFF" + pack("<I", riff_size) + b"AVI " + _chunk(b"LIST", hdrl)
+                + b"LIST" + pack("<I", movi_size) + b"movi")
+
+    def write(self, frame: np.ndarray) -> None:
+        import cv2
+
+        ok, jpeg = cv2.imencode(".jpg", frame, [cv2.IMWRITE_JPEG_QUALITY, self.quality])
+        if not ok:
+            raise RuntimeError("JPEG encoding failed")
+        data = jpeg.tobytes()
+        offset = self.fh.tell() - self.movi_start
+        self.fh.write(_chunk(b"00dc", data))
+        if self.fh.tell() > self.LIMIT_BYTES:
+            raise ValueError("MJPG AVI beyond 1 GiB: write fewer frames or lower the quality")
+        self.index += self.struct.pack("<4sIII", b"00dc", 0x10, offset, len(data))
+        self.n += 1
+        self.largest = max(self.largest, len(data))
+
+    def close(self) -> None:
+        if self.fh.closed:
+            return
+        movi_end = self.fh.tell()
+        self.fh.write(_chunk(b"idx1", bytes(self.index)))
+        riff_size = self.fh.tell() - 8
+        movi_size = movi_end - self.movi_start
+        self.fh.seek(0)
+        self.fh.write(self._header(self.n, self.largest, riff_size, movi_size))
+        self.fh.close()
+
+
+def _chunk(fourcc: bytes, data: bytes) -> bytes:
+    import struct
+
+    pad = b"\0" if len(data) % 2 else b""
+    return fourcc + struct.pack("<I", len(data)) + data + pad
+
+
+def _rational(rate: float) -> tuple[int, int]:
+    from fractions import Fraction
+
+    f = Fraction(rate).limit_denominator(1000)
+    return f.numerator, f.denominator
+
+
 def write_recording(scene: Scene, optics: Optics, path, *, fmt: str, seed: int,
                     quality: int = 90, playback_fps: float = 25.0) -> Truth:
     """Render and write a recording in constant memory; the truth goes beside it.
@@ -863,8 +957,15 @@ def write_recording(scene: Scene, optics: Optics, path, *, fmt: str, seed: int,
         dtype = np.uint8 if optics.bit_depth == 8 else np.uint16
         tifffile.imwrite(path, data=frames, shape=(truth.n_frames, *truth.frame_shape), dtype=dtype,
                          photometric="minisblack")
+    elif fmt == "avi-mjpg":
+        writer = _MjpegAvi(path, truth.frame_shape, playback_fps, quality)
+        try:
+            for frame in frames:
+                writer.write(frame)
+        finally:
+            writer.close()
     else:
-        fourcc = {"avi-raw": "raw", "avi-mjpg": "MJPG", "mkv-ffv1": "FFV1", "mp4-ffv1": "FFV1"}[fmt]
+        fourcc = {"avi-raw": "raw", "mkv-ffv1": "FFV1", "mp4-ffv1": "FFV1"}[fmt]
         writer = _video_writer(path, fourcc, truth.frame_shape, optics.bit_depth, playback_fps)
         try:
             for frame in frames:
@@ -942,9 +1043,9 @@ def standard_scenes() -> dict[str, Scene]:
 def benchmark_scene(n_frames: int = 20000) -> Scene:
     """A long, slowly thinning elastic filament in 256 × 512 frames, breaking near the end."""
     fluid = laws.Fluid(surface_tension=0.036, solvent_viscosity=5.0, density=1030.0,
-                       polymer_modulus=3.0, relaxation_time=1.0)
+                       polymer_modulus=3.0, relaxation_time=1.0, extensibility=300.0)
     scene = Scene(fluid=fluid, geometry="plates", plate_diameter_m=4e-3, initial_diameter_m=1.5e-3,
-                  pixel_size_m=20e-6, fps_hz=1000.0, n_frames=None, frame_size_px=(256, 512))
+                  pixel_size_m=15e-6, fps_hz=1000.0, n_frames=None, frame_size_px=(256, 512))
     hist, _ = _model(scene)
     lifetime = hist.breakup_time_s if hist.breakup_time_s is not None else hist.time_s[-1]
     fps = 0.97 * n_frames / lifetime
