@@ -195,7 +195,7 @@ def diameter_csv_text(table: pd.DataFrame) -> str:
     """The ``diameter.csv`` text: the contract's columns first, empty cells where undefined."""
     columns = [c for c in DIAMETER_COLUMNS if c in table.columns]
     frame = table[columns].copy()
-    return frame.to_csv(index=False, na_rep="", lineterminator="\n", float_format=repr)
+    return frame.to_csv(index=False, na_rep="", lineterminator="\n", float_format=lambda v: repr(float(v)))
 
 
 def write_outputs(out_dir, result, table, series, rheo):
@@ -206,7 +206,7 @@ def write_outputs(out_dir, result, table, series, rheo):
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     atomic_write_bytes(out / "diameter.csv", diameter_csv_text(table).encode())
-    figures = write_figures(out, table, result, series.snapshots, fit_curves=rheo.fit_curves(),
+    figures = write_figures(out, table, result, series.snapshots, fit_curves=None,
                             orientation=series.layout.orientation)
     write_recording_report(out, result, figures)
     atomic_write_bytes(out / "result.json", result_json_text(result).encode())
