@@ -1,0 +1,333 @@
+"""Batches: row folders, results.csv, failed rows, resume, dying workers, kill and rerun.
+
+Most tests run the batch machinery with :func:`fake_analyse` (imported by
+the spawned workers as ``test_batch:fake_analyse``), which reads the frames
+and writes a result.json quickly; the end-to-end tests use the real
+analysis on synthetic recordings from :mod:`thinning.synth`.
+"""
+
+import csv
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+from click.testing import CliRunner
+
+from thinning.batch import (RESULT_COLUMNS, TABLE_COLUMNS, TEMP_SUFFIX, row_folder_name, run_batch,
+                            safe_name)
+from thinning.cli import cli
+
+FAKE = "test_batch:fake_analyse"
+CALLS_ENV = "THINNING_TEST_CALLS"      # file the fake appends one line per analysis to
+MARKS_ENV = "THINNING_TEST_MARKS"      # folder for the fake's crash-once markers
+DELAY_ENV = "THINNING_TEST_DELAY_S"    # seconds the fake sleeps per row
+REPO = Path(__file__).resolve().parents[1]
+
+
+def fake_analyse(source, out_dir, options, *, progress=None):
+    """Stand-in for thinning.analysis.analyse: same errors, same files, numbers from the pixels.
+
+    A source whose stem contains ``crash-always`` kills its process; ``crash-once`` does so
+    on the first attempt only.
+    """
+    from thinning.analysis import UnusableInput, atomic_write_bytes
+    from thinning.frames import UnusableSource, open_source
+
+    stem = Path(source).stem
+    if "crash-always" in stem:
+        os._exit(7)
+    if "crash-once" in stem:
+        mark = Path(os.environ[MARKS_ENV]) / stem
+        if not mark.exists():
+            mark.write_text("crashed")
+            os._exit(7)
+    if os.environ.get(CALLS_ENV):
+        with open(os.environ[CALLS_ENV], "a") as fh:
+            fh.write(f"{Path(source).name}\n")
+    time.sleep(float(os.environ.get(DELAY_ENV, "0")))
+    if options.surface_tension_N_m is None:
+        raise UnusableInput("No surface tension given; pass --surface-tension, e.g. '35mN/m'.")
+    try:
+        recording = open_source(source)
+    except UnusableSource as exc:
+        raise UnusableInput(str(exc)) from None
+    with recording:
+        fps = options.fps_hz or recording.fps
+        if fps is None:
+            raise UnusableInput("The recording carries no frame rate; pass --fps, e.g. --fps 10kHz.")
+        means = [float(frame.mean()) for frame in recording]
+        sha256 = recording.sha256
+    lam = float(np.mean(means)) / 7e4 + options.surface_tension_N_m / 3.0
+    result = {
+        "schema": "thinning.result/1", "tool_version": "0.0-fake",
+        "source": {"path": str(source), "sha256": sha256, "n_frames": len(means)},
+        "fps_hz": fps, "pixel_size_m": options.pixel_size_m, "options": options.to_dict(),
+        "regime": "elasto-capillary", "relaxation_time_s": lam,
+        "relaxation_time_ci95_s": [lam * 0.9, lam * 1.1], "elastic_modulus_Pa": 1.0 / 3.0,
+        "shear_viscosity_Pa_s": None, "extensional_viscosity_max_Pa_s": 12.5,
+        "breakup_time_s": len(means) / fps, "filament_lifetime_s": len(means) / fps,
+        "initial_diameter_m": 1e-3, "quality": "good",
+        "warnings": ["First sentence.", "Second, with a comma."],
+    }
+    Path(out_dir).mkdir(parents=True, exist_ok=True)
+    atomic_write_bytes(Path(out_dir) / "diameter.csv", b"frame,time_s,diameter_m\n")
+    atomic_write_bytes(Path(out_dir) / "result.json", json.dumps(result).encode())
+    return result
+
+
+def write_stack(path, rng, n_frames=5, shape=(16, 24)):
+    """A tiny multi-page TIFF with random pixels."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tifffile.imwrite(path, rng.integers(0, 256, (n_frames, *shape), dtype=np.uint8),
+                     photometric="minisblack")
+    return path
+
+
+def read_table(path):
+    with open(path, newline="", encoding="utf-8") as fh:
+        reader = csv.DictReader(fh)
+        return reader.fieldnames, list(reader)
+
+
+def calls(path):
+    return path.read_text().split() if path.exists() else []
+
+
+@pytest.fixture
+def fake_env(tmp_path, monkeypatch):
+    """Environment the fake analyser reads in the workers; returns the calls file."""
+    marks = tmp_path / "marks"
+    marks.mkdir()
+    monkeypatch.setenv(CALLS_ENV, str(tmp_path / "calls.txt"))
+    monkeypatch.setenv(MARKS_ENV, str(marks))
+    monkeypatch.delenv(DELAY_ENV, raising=False)
+    return tmp_path / "calls.txt"
+
+
+DEFAULTS = {"surface_tension": "35mN/m", "pixel_size": "10um"}
+
+
+def test_names():
+    # interface.md: row zero-padded to the width of the largest row number; unsafe chars → "_"
+    assert safe_name("Lot 7/ä+b.c_d-e") == "Lot_7___b.c_d-e"
+    assert row_folder_name(3, "S 1", 3) == "003-S_1"
+    assert row_folder_name(12, "x", 2) == "12-x"
+
+
+def test_failed_rows_and_results_table(tmp_path, fake_env):
+    rng = np.random.default_rng(3)
+    data = tmp_path / "data"
+    for name in ("a", "b", "c"):
+        write_stack(data / f"{name}.tif", rng)
+    (data / "corrupt.tif").write_bytes(rng.integers(0, 256, 900, dtype=np.uint8).tobytes())
+    (data / "empty").mkdir()
+    manifest = tmp_path / "m.csv"
+    rows = [("data/a.tif", "Sample A", "L1", "10kHz", ""),
+            ("data/corrupt.tif", "", "L1", "10kHz", ""),
+            ("data/b.tif", "B", "L2", "", ""),           # no rate anywhere: a failed row
+            ("data/empty", "E", "L2", "10kHz", ""),
+            ("data/missing.tif", "M", "L2", "10kHz", ""),
+            ("data/c.tif", "C", "L3", "20000/s", "70"),
+            ("data/c.tif", "C2", "L3", "3 kg", ""),       # bad cell: a failed row
+            ("data/a.tif", "A2", "L1", "10kHz", ""),
+            ("data/b.tif", "B2", "L1", "8kHz", ""),
+            ("data/c.tif", "C3", "L1", "8kHz", "")]
+    with open(manifest, "w", newline="") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(["path", "sample", "lot", "fps", "surface_tension"])
+        writer.writerows(rows)
+    out = tmp_path / "out"
+    report = run_batch(manifest, out, defaults=DEFAULTS, workers=2, analyser=FAKE)
+    assert (report.n_rows, report.n_ok, report.n_failed) == (10, 5, 5)
+
+    columns, table = read_table(out / "results.csv")
+    assert tuple(columns[:len(RESULT_COLUMNS)]) == RESULT_COLUMNS
+    assert tuple(columns) == TABLE_COLUMNS
+    assert [r["row"] for r in table] == [str(i) for i in range(1, 11)]
+    assert [r["path"] for r in table] == [r[0] for r in rows]
+    status = {int(r["row"]): r["status"] for r in table}
+    assert [k for k, v in status.items() if v == "failed"] == [2, 3, 4, 5, 7]
+    reasons = {int(r["row"]): r["reason"] for r in table}
+    assert "frame rate" in reasons[3] and "no image files" in reasons[4]
+    assert "no such file" in reasons[5] and "column fps" in reasons[7]
+    assert all(r["reason"] == "" for r in table if r["status"] == "ok")
+
+    folders = sorted(p.name for p in out.iterdir() if p.is_dir())
+    assert folders == ["01-Sample_A", "02-corrupt", "03-B", "04-E", "05-M", "06-C", "07-C2",
+                       "08-A2", "09-B2", "10-C3"]
+    for r in table:
+        folder = out / r["folder"]
+        record = json.loads((folder / "row.json").read_text())
+        assert record["status"] == r["status"]
+        if r["status"] == "failed":
+            assert sorted(p.name for p in folder.iterdir()) == ["row.json"]
+            continue
+        result = json.loads((folder / "result.json").read_text())
+        # numbers at full precision: every value round-trips exactly
+        assert float(r["relaxation_time_s"]) == result["relaxation_time_s"]
+        assert float(r["relaxation_time_ci95_high_s"]) == result["relaxation_time_ci95_s"][1]
+        assert float(r["elastic_modulus_Pa"]) == 1.0 / 3.0
+        assert r["shear_viscosity_Pa_s"] == ""
+        assert r["warnings"] == "First sentence.; Second, with a comma."
+        assert r["sha256"] == result["source"]["sha256"]
+    assert float(table[5]["fps_hz"]) == 20000.0
+    assert table[0]["analysed_at"].endswith("Z")
+
+    parquet = pytest.importorskip("pyarrow.parquet")
+    frame = parquet.read_table(out / "results.parquet").to_pandas()
+    assert list(frame["status"]) == [r["status"] for r in table]
+    assert frame["relaxation_time_s"].iloc[0] == float(table[0]["relaxation_time_s"])
+    assert not any(p.name.endswith(TEMP_SUFFIX) for p in out.iterdir())
+
+
+def test_resume_skips_finished_rows_and_redoes_changed_ones(tmp_path, fake_env):
+    rng = np.random.default_rng(4)
+    for name in ("a", "b", "c"):
+        write_stack(tmp_path / f"{name}.tif", rng)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path,fps\na.tif,10kHz\nb.tif,10kHz\nc.tif,10kHz\nnone.tif,10kHz\n")
+    out = tmp_path / "out"
+    first = run_batch(manifest, out, defaults=DEFAULTS, workers=2, analyser=FAKE)
+    assert sorted(calls(fake_env)) == ["a.tif", "b.tif", "c.tif", "none.tif"]
+    _, before = read_table(out / "results.csv")
+
+    fake_env.unlink()
+    again = run_batch(manifest, out, defaults=DEFAULTS, workers=2, analyser=FAKE)
+    assert calls(fake_env) == ["none.tif"]            # failed rows are tried again
+    assert again.n_skipped == 3
+    _, after = read_table(out / "results.csv")
+    assert after[:3] == before[:3]                    # skipped rows keep their analysed_at too
+
+    fake_env.unlink()
+    manifest.write_text("path,fps\na.tif,10kHz\nb.tif,12kHz\nc.tif,10kHz\nnone.tif,10kHz\n")
+    write_stack(tmp_path / "c.tif", rng)               # new content, same name
+    run_batch(manifest, out, defaults=DEFAULTS, workers=2, analyser=FAKE)
+    assert sorted(calls(fake_env)) == ["b.tif", "c.tif", "none.tif"]
+
+    fake_env.unlink()
+    run_batch(manifest, out, defaults={**DEFAULTS, "density": "1000"}, workers=1, analyser=FAKE)
+    assert len(calls(fake_env)) == 4                   # a batch-wide option changed every row
+
+    fake_env.unlink()
+    run_batch(manifest, out, defaults={**DEFAULTS, "density": "1000"}, workers=1, analyser=FAKE,
+              redo=True)
+    assert len(calls(fake_env)) == 4
+    assert first.n_rows == 4
+
+
+def test_dying_worker_is_retried_once(tmp_path, fake_env):
+    rng = np.random.default_rng(5)
+    for name in ("a", "crash-once", "crash-always", "b"):
+        write_stack(tmp_path / f"{name}.tif", rng)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path\na.tif\ncrash-once.tif\ncrash-always.tif\nb.tif\n")
+    out = tmp_path / "out"
+    report = run_batch(manifest, out, defaults={**DEFAULTS, "fps": "1kHz"}, workers=2, analyser=FAKE)
+    _, table = read_table(out / "results.csv")
+    assert [r["status"] for r in table] == ["ok", "ok", "failed", "ok"]
+    assert "died 2 times" in table[2]["reason"]
+    assert report.outcomes[2].attempts == 2 and report.outcomes[3].attempts == 2
+    assert report.outcomes[1].attempts == 1 and report.outcomes[4].attempts == 1
+    assert not any(p.name.endswith(TEMP_SUFFIX) for p in out.iterdir())
+
+
+def test_nothing_written_outside_out(tmp_path, fake_env):
+    rng = np.random.default_rng(6)
+    data = tmp_path / "data"
+    write_stack(data / "a.tif", rng)
+    manifest = data / "m.csv"
+    manifest.write_text("path,fps\na.tif,5kHz\n")
+    before = {p: p.stat().st_mtime_ns for p in data.rglob("*")}
+    run_batch(manifest, tmp_path / "out", defaults=DEFAULTS, workers=1, analyser=FAKE)
+    assert {p: p.stat().st_mtime_ns for p in data.rglob("*")} == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["calls.txt", "data", "marks", "out"]
+
+
+def test_leftover_temporary_folders_are_removed(tmp_path, fake_env):
+    rng = np.random.default_rng(7)
+    write_stack(tmp_path / "a.tif", rng)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path,fps\na.tif,5kHz\n")
+    out = tmp_path / "out"
+    stale = out / f".1-a.new-123-abcd{TEMP_SUFFIX}"
+    stale.mkdir(parents=True)
+    (stale / "result.json").write_text("{half")
+    run_batch(manifest, out, defaults=DEFAULTS, workers=1, analyser=FAKE)
+    assert sorted(p.name for p in out.iterdir() if p.is_dir()) == ["1-a"]
+
+
+_KILL_SCRIPT = """
+import sys
+sys.path.insert(0, {tests!r})
+from thinning.batch import run_batch
+if __name__ == "__main__":
+    run_batch({manifest!r}, {out!r}, defaults={defaults!r}, workers=2, analyser={fake!r})
+"""
+
+
+def test_kill_and_rerun_analyses_every_recording_exactly_once(tmp_path, fake_env, monkeypatch):
+    rng = np.random.default_rng(8)
+    names = [f"r{i}" for i in range(8)]
+    for name in names:
+        write_stack(tmp_path / f"{name}.tif", rng)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path,fps\n" + "".join(f"{n}.tif,5kHz\n" for n in names))
+    out = tmp_path / "out"
+    script = tmp_path / "run.py"
+    script.write_text(_KILL_SCRIPT.format(tests=str(Path(__file__).parent), manifest=str(manifest),
+                                          out=str(out), defaults=DEFAULTS, fake=FAKE))
+    env = {**os.environ, DELAY_ENV: "0.4"}
+    proc = subprocess.Popen([sys.executable, str(script)], env=env, start_new_session=True)
+    try:
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline:
+            if (out / "results.csv").exists() and len(read_table(out / "results.csv")[1]) >= 2:
+                break
+            time.sleep(0.05)
+        else:
+            pytest.fail("the batch finished no row within 60 s")
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(timeout=10)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    _, partial = read_table(out / "results.csv")
+    finished_before = {r["path"] for r in partial}
+    assert 2 <= len(finished_before) < len(names)
+    time.sleep(0.5)   # the workers die with the coordinator (PR_SET_PDEATHSIG) and stop writing
+    first_calls = calls(fake_env)
+
+    run_batch(manifest, out, defaults=DEFAULTS, workers=2, analyser=FAKE)
+    _, table = read_table(out / "results.csv")
+    assert [r["path"] for r in table] == [f"{n}.tif" for n in names]
+    assert all(r["status"] == "ok" for r in table)
+    folders = sorted(p.name for p in out.iterdir() if not p.name.startswith("."))
+    assert folders == sorted([f"{i + 1}-{n}" for i, n in enumerate(names)]
+                             + ["results.csv", "results.parquet"])
+    assert not any(p.name.endswith(TEMP_SUFFIX) for p in out.iterdir())
+    rerun_calls = calls(fake_env)[len(first_calls):]
+    # rows finished before the kill are not analysed again; every other row once in the rerun
+    assert sorted(rerun_calls) == sorted(set(f"{n}.tif" for n in names) - finished_before)
+
+
+def test_batch_command_errors(tmp_path):
+    runner = CliRunner()
+    unknown = tmp_path / "m.csv"
+    unknown.write_text("path,surface_tensoin\na.tif,35\n")
+    result = runner.invoke(cli, ["batch", str(unknown), "--out", str(tmp_path / "out")])
+    assert result.exit_code == 2 and "'surface_tensoin'" in result.output
+    assert not (tmp_path / "out").exists()
+    good = tmp_path / "good.csv"
+    good.write_text("path\na.tif\n")
+    result = runner.invoke(cli, ["batch", str(good), "--out", str(tmp_path / "out"), "--fps", "3 kg"])
+    assert result.exit_code == 2
+    result = runner.invoke(cli, ["batch", str(good), "--out", str(tmp_path / "out"),
+                                 "--specs", str(tmp_path / "specs.toml")])
+    assert result.exit_code == 2 and "--db" in result.output
