@@ -223,7 +223,9 @@ def test_drawn_profile_has_its_minimum_at_the_true_neck(name):
         assert inner.min() >= tl.r_min[i] * (1 - 1e-9)
         at_neck = synth._profile(np.array([tl.a_neck[i]]), tl, i)[0]
         assert at_neck == pytest.approx(tl.r_min[i], rel=1e-9)
-        assert r[0] == pytest.approx(tl.plate_radius) and r[-1] == pytest.approx(tl.lower_end_radius[i])
+        # the liquid meets the upper plate at its edge and the lower end at its radius
+        ends = synth._profile(np.array([tl.a_upper[i] + 1e-9, tl.a_lower[i] - 1e-9]), tl, i)
+        np.testing.assert_allclose(ends, [tl.plate_radius, tl.lower_end_radius[i]], rtol=1e-6)
 
 
 def test_tilted_thread_row_width_is_unbiased():

@@ -473,8 +473,9 @@ def _profile(a, tl: _Timeline, i: int, *, overlap_px: float = 0.0) -> np.ndarray
             (1.0, a_lo, tl.lower_end_radius[i], st.cone_slope[1], st.foot_fraction[1])):
         d = sign * (a - a_n)
         d_end = sign * (end - a_n)
-        mask = (d >= 0) & (d <= d_end)
-        r[(d > d_end) & (d <= d_end + overlap_px)] = r_end
+        mask = (d >= 0) & (d < d_end)       # the face itself belongs to the solid
+        if overlap_px > 0:
+            r[(d >= d_end) & (d <= d_end + overlap_px)] = r_end
         if not mask.any():
             continue
         dd = d[mask]
@@ -515,13 +516,8 @@ class _Coverage:
     def add(self, lo, hi, rows, weight):
         """Add weight × coverage of [lo, hi] (x, pixel-centre coordinates) on each sub-row."""
         lo = np.asarray(lo, float)
-        hi = np.maximum(np.asarray(hi, float), lo)
+        self.q += [lo + 0.5, np.maximum(hi, lo) + 0.5]
         weight = np.broadcast_to(np.asarray(weight, float), lo.shape)
-        keep = (hi > lo) & (weight != 0) & (hi > -0.5) & (lo < self.width - 0.5)
-        if not keep.any():
-            return
-        lo, hi, weight, rows = lo[keep], hi[keep], weight[keep], rows[keep]
-        self.q += [lo + 0.5, hi + 0.5]
         self.w += [weight, -weight]
         self.row += [rows, rows]
 
@@ -530,17 +526,26 @@ class _Coverage:
         stride = self.width + 2
         if not self.q:
             return np.zeros((self.height, self.width), np.float32)
-        q = np.clip(np.concatenate(self.q), 0.0, float(self.width))
+        q = np.concatenate(self.q)
         w = np.concatenate(self.w)
         row = np.concatenate(self.row)
+        keep = (q < self.width) & (w != 0)
+        q, w, row = np.clip(q[keep], 0.0, None), w[keep], row[keep]
+        if q.size == 0:
+            return np.zeros((self.height, self.width), np.float32)
         base = np.floor(q)
         frac = q - base
         idx = row * stride + base.astype(np.int64)
         flat = np.bincount(np.concatenate([idx, idx + 1]),
                            weights=np.concatenate([w * (1.0 - frac), w * frac]),
                            minlength=self.height * stride)
-        dense = flat[: self.height * stride].reshape(self.height, stride).astype(np.float32)
-        return np.cumsum(dense, axis=1, dtype=np.float32)[:, : self.width]
+        dense = flat[: self.height * stride].reshape(self.height, stride)
+        # every row's weights sum to zero: nothing left of the first or right of the last entry
+        first, last = int(base.min()), min(int(base.max()) + 2, self.width)
+        out = np.zeros((self.height, self.width), np.float32)
+        if last > first:
+            out[:, first:last] = np.cumsum(dense[:, first:last], axis=1, dtype=np.float32)
+        return out
 
 
 def _strip_interval(y, ox, oy, sin_t, cos_t, half_width):
@@ -682,6 +687,8 @@ class _Renderer:
         self.normal_lut = ndtri((np.arange(65536) + 0.5) / 65536).astype(np.float32)
         self.noise_rng = np.random.default_rng(cam.noise_seed)
         self.max_value = float(2 ** optics.bit_depth - 1)
+        self.gain_background = cam.gain * np.float32(optics.background_level)
+        self.gain_contrast = cam.gain * np.float32(optics.background_level - optics.shadow_level)
         self.dtype = np.uint8 if optics.bit_depth == 8 else np.uint16
 
     def _liquid_edges(self, i, ox, oy):
@@ -726,9 +733,10 @@ class _Renderer:
         touching = np.zeros(y.shape, bool)
         for solid in solids:
             cov.add(*solid, rows, weight)
-            both = _intersect(liquid, solid)
-            cov.add(*both, rows, -weight)
-            touching |= both[1] > both[0]
+            if s != 0.0:    # untilted, the liquid ends where the solids begin: no overlap
+                both = _intersect(liquid, solid)
+                cov.add(*both, rows, -weight)
+                touching |= both[1] > both[0]
         if self.optics.lens_streak and self.optics.streak_strength > 0:
             rmin = STREAK_MIN_WIDTH_PX / 2
             x = np.clip((radius - rmin) / rmin, 0.0, 1.0)
@@ -743,18 +751,26 @@ class _Renderer:
     def frame(self, i: int) -> np.ndarray:
         o = self.optics
         blurred = _blur(self.coverage(i), o, self.motion_kernel)
-        f = float(self.cam.flicker[i])
-        light = blurred * np.float32(-(o.background_level - o.shadow_level) * f)
-        light += np.float32(o.background_level * f)
-        light *= self.cam.gain
-        variance = np.float32(o.read_noise ** 2)
-        if o.shot_noise:
-            variance = np.clip(light, 0.0, None) * np.float32(1.0 / o.full_well) + variance
+        # light = flicker × gain × (background − (background − shadow) × coverage), in place
+        light = np.multiply(blurred, self.gain_contrast, out=blurred)
+        np.subtract(self.gain_background, light, out=light)
+        light *= np.float32(self.cam.flicker[i])
         if o.shot_noise or o.read_noise > 0:
+            if o.shot_noise:
+                spread = light * np.float32(1.0 / o.full_well)
+                spread += np.float32(o.read_noise ** 2)
+                np.maximum(spread, 0.0, out=spread)
+                np.sqrt(spread, out=spread)
+            else:
+                spread = np.float32(o.read_noise)
             u = np.frombuffer(self.noise_rng.bytes(2 * light.size), np.uint16)
-            light += np.sqrt(variance) * self.normal_lut[u].reshape(light.shape)
-        out = np.clip(light * np.float32(self.max_value) + np.float32(0.5), 0.0, self.max_value)
-        out = out.astype(self.dtype)
+            noise = self.normal_lut[u].reshape(light.shape)
+            noise *= spread
+            light += noise
+        light *= np.float32(self.max_value)
+        light += np.float32(0.5)
+        np.clip(light, 0.0, self.max_value, out=light)
+        out = light.astype(self.dtype)
         if o.orientation == "horizontal":
             out = np.ascontiguousarray(out.T)
         return out
@@ -825,7 +841,7 @@ def truth_path(path) -> Path:
 
 def write_truth(truth: Truth, path) -> None:
     """Write ``truth.to_dict()`` as JSON (no NaN) to ``path``."""
-    text = json.dumps(truth.to_dict(), allow_nan=False, indent=1)
+    text = json.dumps(truth.to_dict(), allow_nan=False, separators=(",", ":"))
     Path(path).write_text(text + "\n")
 
 
