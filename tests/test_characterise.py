@@ -1,4 +1,14 @@
-"""characterise(): the diameter series → regimes and rheology numbers, end to end on series."""
+"""characterise(): a diameter series → regimes and rheology numbers, end to end (series only, no images).
+
+Truth: the series come from the 0-D filament model (``laws.filament_model``)
+sampled at the camera rate with pixel noise, or from the closed-form laws. The
+truth for λ is the model fluid's dumbbell relaxation time. For a finite
+extensibility (FENE-P) fluid the thinning rate in its elasto-capillary window is
+only approximately 2/(3λ) (the chains' finite length speeds it up as they
+stretch), so the apparent λ is a slightly different object; the matrix
+tolerance (every case within 5 %) covers it, and the coverage test uses
+fluids whose model λ is what the data show.
+"""
 
 import json
 
@@ -6,11 +16,25 @@ import numpy as np
 import pytest
 
 from thinning.characterise import characterise
+from thinning.findings import Severity
 from thinning.laws import Fluid, filament_model
+
+CONTRACT_KEYS = {
+    "regime", "regimes", "relaxation_time_s", "relaxation_time_ci95_s", "fit_window_s",
+    "fit_window_frames", "free_thinning_start_s", "initial_diameter_m", "elastic_modulus_Pa",
+    "shear_viscosity_Pa_s", "extensional_viscosity_max_Pa_s", "extensional_viscosity_terminal_Pa_s",
+    "breakup_time_s", "filament_lifetime_s",
+}
+
+
+def blurred(true_m, pixel):
+    """What an edge finder reports: thin threads (< 3 px) come out too thin (physics.md §8)."""
+    small = true_m < 3 * pixel
+    return np.where(small, true_m * (0.6 + 0.4 * true_m / (3 * pixel)), true_m)
 
 
 def camera_series(fluid, d0, *, fps, pixel, noise_px, rng, t0=0.002, tail_frames=20):
-    """The 0-D model sampled by a camera: pixel noise, NaN after the thread vanishes (< 0.5 px).
+    """The 0-D model seen by a camera: blur bias, pixel noise, NaN once the thread is < 0.5 px.
 
     Frames before ``t0`` show the plates still moving (a constant, larger diameter).
     """
@@ -20,22 +44,303 @@ def camera_series(fluid, d0, *, fps, pixel, noise_px, rng, t0=0.002, tail_frames
     t = np.arange(n_pre + int(end * fps) + tail_frames) / fps
     tm = t - n_pre / fps
     true = hist.diameter_at(np.clip(tm, 0.0, None))
-    d = true + rng.normal(0.0, noise_px * pixel, t.size)
+    d = blurred(true, pixel) + rng.normal(0.0, noise_px * pixel, t.size)
     d[tm < 0] = 1.3 * d0
     d[true < 0.5 * pixel] = np.nan
     return t, d, n_pre / fps
 
 
-def test_smoke_polymer_and_newtonian():
-    rng = np.random.default_rng(1)
-    fl = Fluid(0.06, 1e-3, 1000.0, 2.0, 1e-3)
-    t, d, t0 = camera_series(fl, 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, rng=rng)
-    c = characterise(t, d, surface_tension=0.06, pixel_size_m=5e-6, fps_hz=20000,
-                     free_thinning_start_s=t0, density=1000.0, seed=1)
-    assert c.regime == "elasto-capillary"
-    assert c.relaxation_time_s == pytest.approx(1e-3, rel=0.02)
-    lo, hi = c.relaxation_time_ci95_s
-    assert lo < c.relaxation_time_s < hi
+def closed_form_ec_series(rng, *, lam, fps, pixel, noise_px, d0=1e-3, t0=0.002, d_switch=0.3e-3,
+                          t_switch=1.5e-3):
+    """An inertio-capillary-like neck down to ``d_switch``, then exactly D ∝ exp(−t/3λ)."""
+    n = int((t0 + t_switch + 3 * lam * np.log(d_switch / (0.4 * pixel)) + 1e-3) * fps)
+    t = np.arange(n) / fps
+    tm = t - t0
+    neck = d0 * (1 - (1 - (d_switch / d0) ** 1.5) * np.clip(tm / t_switch, 0, 1)) ** (2 / 3)
+    ec = d_switch * np.exp(-(tm - t_switch) / (3 * lam))
+    true = np.where(tm < t_switch, neck, ec)
+    d = blurred(true, pixel) + rng.normal(0.0, noise_px * pixel, n)
+    d[tm < 0] = 1.3 * d0
+    d[true < 0.5 * pixel] = np.nan
+    return t, d, t0
+
+
+def run(fluid, d0, *, fps, pixel, noise_px, seed, geometry="plates", **kw):
+    rng = np.random.default_rng(seed)
+    t, d, t0 = camera_series(fluid, d0, fps=fps, pixel=pixel, noise_px=noise_px, rng=rng)
+    return characterise(t, d, surface_tension=fluid.surface_tension, pixel_size_m=pixel, fps_hz=fps,
+                        free_thinning_start_s=t0, density=fluid.density or None,
+                        solvent_viscosity=fluid.solvent_viscosity,
+                        zero_shear_viscosity=fluid.zero_shear_viscosity, geometry=geometry,
+                        seed=seed, **kw)
+
+
+# (λ s, G Pa, η_s Pa·s, ρ kg/m³, L², D0 m, fps, pixel m, noise px, geometry). Each is measurable:
+# elastic stress takes over while D is still ≥ 40 px, and ≥ 100 frames fall in the EC window.
+POLYMER_MATRIX = [
+    (0.5e-3, 5.0, 1e-3, 1000, None, 1e-3, 50000, 5e-6, 0.1, "dripping"),
+    (0.5e-3, 5.0, 1e-3, 1000, 1e4, 1e-3, 50000, 5e-6, 0.2, "plates"),
+    (2e-3, 2.0, 2e-3, 1000, None, 1e-3, 20000, 5e-6, 0.3, "plates"),
+    (2e-3, 5.0, 5e-3, 1000, 1e5, 1e-3, 20000, 10e-6, 0.2, "dripping"),
+    (10e-3, 1.0, 10e-3, 1000, None, 2e-3, 10000, 10e-6, 0.05, "plates"),
+    (10e-3, 10.0, 1e-3, 1000, 1e3, 1e-3, 10000, 5e-6, 0.2, "plates"),
+    (0.1, 1.0, 20e-3, 1000, 1e4, 2e-3, 5000, 10e-6, 0.3, "plates"),
+    (0.1, 0.5, 50e-3, 0, None, 3e-3, 2000, 20e-6, 0.1, "dripping"),
+    (0.5, 0.5, 100e-3, 1000, None, 3e-3, 2000, 20e-6, 0.2, "plates"),
+    (2.0, 0.2, 100e-3, 1000, 1e5, 3e-3, 2000, 20e-6, 0.1, "plates"),
+]
+
+# (η Pa·s, ρ kg/m³, D0 m, fps, pixel m, noise px, expected regime)
+NEWTONIAN_MATRIX = [
+    (1.0, 0.0, 1e-3, 5000, 5e-6, 0.2, "visco-capillary"),
+    (1.0, 1260.0, 2e-3, 2000, 10e-6, 0.1, "visco-capillary"),
+    (0.5, 0.0, 3e-3, 5000, 20e-6, 0.3, "visco-capillary"),
+    (0.5, 1200.0, 1e-3, 10000, 5e-6, 0.2, "visco-capillary"),
+    (1e-3, 1000.0, 1e-3, 50000, 5e-6, 0.1, "inertio-capillary"),
+    (1e-3, 1000.0, 2e-3, 20000, 10e-6, 0.2, "inertio-capillary"),
+]
+
+
+def test_relaxation_time_over_the_polymer_matrix():
+    errors = []
+    for k, (lam, g, eta_s, rho, l2, d0, fps, pixel, noise, geometry) in enumerate(POLYMER_MATRIX):
+        fluid = Fluid(0.06, eta_s, rho, g, lam, l2)
+        c = run(fluid, d0, fps=fps, pixel=pixel, noise_px=noise, seed=100 + k, geometry=geometry)
+        assert c.regime == "elasto-capillary", (k, c.regimes)
+        kinds = [r.kind for r in c.regimes]
+        assert "visco-capillary" not in kinds[kinds.index("elasto-capillary"):], (k, kinds)
+        errors.append(abs(c.relaxation_time_s / lam - 1.0))
+        assert c.fit_window_frames >= 100
+    errors = np.array(errors)
+    assert np.median(errors) <= 0.02, errors
+    assert errors.max() <= 0.05, errors
+
+
+def test_newtonian_matrix_gives_regime_and_viscosity_without_relaxation_time():
+    for k, (eta, rho, d0, fps, pixel, noise, expected) in enumerate(NEWTONIAN_MATRIX):
+        fluid = Fluid(0.063, eta, rho)
+        c = run(fluid, d0, fps=fps, pixel=pixel, noise_px=noise, seed=200 + k)
+        assert c.regime == expected, (k, c.regimes)
+        assert c.relaxation_time_s is None and c.relaxation_time_ci95_s is None
+        assert all(r.kind != "elasto-capillary" for r in c.regimes)
+        if expected == "visco-capillary":
+            # Papageorgiou (1995): D = 0.1418 σ/η (t_b − t) gives η back within 5 %
+            assert c.shear_viscosity_Pa_s == pytest.approx(eta, rel=0.05), k
+        else:
+            # Eggers & Villermaux (2008), from memory (physics.md §3.1): exponent 2/3
+            assert c.fits["inertio-capillary"].values["exponent"] == pytest.approx(2 / 3, abs=0.05)
+        assert any(f.code == "no-elastic-regime" for f in c.findings)
+
+
+def test_interval_covers_the_true_relaxation_time_about_95_percent():
+    # truth: the λ of the closed-form elasto-capillary law the series follows exactly
+    hits, n = 0, 0
+    for k in range(120):
+        rng = np.random.default_rng(1000 + k)
+        noise = (0.1, 0.2, 0.3)[k % 3]
+        lam, fps = ((2e-3, 20000), (5e-3, 10000))[k % 2]
+        t, d, t0 = closed_form_ec_series(rng, lam=lam, fps=fps, pixel=5e-6, noise_px=noise)
+        c = characterise(t, d, surface_tension=0.06, pixel_size_m=5e-6, fps_hz=fps,
+                         free_thinning_start_s=t0, seed=k)
+        lo, hi = c.relaxation_time_ci95_s
+        hits += lo <= lam <= hi
+        n += 1
+    assert 0.88 <= hits / n <= 0.99, hits / n
+
+
+def test_interval_on_the_filament_model_covers_its_window_value():
+    # Truth: the relaxation time the noise-free model shows in the window the analysis chose,
+    # λ_w = −1/(3 s) from its ln D slope there. The Oldroyd-B model's own local value sits
+    # 0.1–0.4 % above its λ (the solvent's share of the stress), a physics offset that the
+    # matrix test bounds; this test checks that the interval honestly carries noise and window.
+    fluid = Fluid(0.06, 1e-3, 1000.0, 2.0, 2e-3)
+    hist = filament_model(fluid, 1e-3, duration=1.0)
+    hits, n = 0, 100
+    for k in range(n):
+        rng = np.random.default_rng(2000 + k)
+        t, d, t0 = camera_series(fluid, 1e-3, fps=10000, pixel=5e-6, noise_px=0.2, rng=rng)
+        c = characterise(t, d, surface_tension=0.06, pixel_size_m=5e-6, fps_hz=10000,
+                         free_thinning_start_s=t0, density=1000.0, seed=k)
+        a, b = np.array(c.fit_window_s) - t0
+        tt = np.linspace(a, b, 200)
+        slope = np.polyfit(tt, np.log(hist.diameter_at(tt)), 1)[0]
+        lam_w = -1.0 / (3.0 * slope)
+        lo, hi = c.relaxation_time_ci95_s
+        hits += lo <= lam_w <= hi
+        assert lam_w == pytest.approx(fluid.relaxation_time, rel=0.005)
+    assert 0.88 <= hits / n <= 0.99, hits / n
+
+
+def test_water_bridge_breaks_within_a_few_milliseconds():
+    # common practice: a millimetre water bridge pinches off within a few milliseconds
+    # (physics.md §7: 2.2–3.7 ms from the inertio-capillary time)
+    c = run(Fluid(0.072, 1e-3, 1000.0), 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, seed=5)
+    assert 1e-3 < c.filament_lifetime_s < 6e-3
+    assert c.regime == "inertio-capillary"
+
+
+def test_dilute_polymer_bridge_lasts_a_second_or_more():
+    # common practice: a dilute polymer solution with λ near 0.1 s keeps its bridge for
+    # a second or more
+    fluid = Fluid(0.06, 20e-3, 1000.0, 1.0, 0.1)
+    c = run(fluid, 2e-3, fps=2000, pixel=10e-6, noise_px=0.1, seed=6)
+    assert c.filament_lifetime_s >= 1.0
+    assert c.relaxation_time_s == pytest.approx(0.1, rel=0.02)
+
+
+def test_result_fields_hold_the_contract_keys_and_no_nan():
+    c = run(Fluid(0.06, 1e-3, 1000.0, 2.0, 1e-3), 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, seed=1)
     fields = c.result_fields()
-    json.dumps(fields, allow_nan=False)
+    assert CONTRACT_KEYS <= set(fields)
+    text = json.dumps(fields, allow_nan=False)
+    assert "NaN" not in text
+    assert fields["regime"] == "elasto-capillary"
+    assert [set(r) for r in fields["regimes"]] == [{"kind", "t_start_s", "t_end_s"}] * len(fields["regimes"])
+    starts = [r["t_start_s"] for r in fields["regimes"]]
+    assert starts == sorted(starts)
+    lo, hi = fields["relaxation_time_ci95_s"]
+    assert lo < fields["relaxation_time_s"] < hi
+    assert fields["fit_window_frames"] >= 10
+    assert fields["filament_lifetime_s"] == pytest.approx(fields["breakup_time_s"]
+                                                         - fields["free_thinning_start_s"])
+    # elastic modulus follows the contract's intercept relation from the headline fit
+    fit = c.fits["elasto-capillary"]
+    d_t0, d0, sigma = fit.values["diameter_at_t0_m"], fields["initial_diameter_m"], 0.06
+    assert fields["elastic_modulus_Pa"] == pytest.approx(4 * sigma * (d_t0 / d0) ** 3 / d0)
+    assert set(fields["fits"]) == set(c.fits)
+
+
+def test_curves_match_the_input_frame_for_frame():
+    rng = np.random.default_rng(3)
+    t, d, t0 = camera_series(Fluid(0.06, 1e-3, 1000.0, 2.0, 1e-3), 1e-3, fps=20000, pixel=5e-6,
+                             noise_px=0.1, rng=rng)
+    c = characterise(t, d, surface_tension=0.06, pixel_size_m=5e-6, fps_hz=20000,
+                     free_thinning_start_s=t0, seed=1)
     assert len(c.curves) == t.size
+    np.testing.assert_array_equal(c.curves["time_s"].to_numpy(), t)
+    before = t < t0
+    assert c.curves.loc[before, "strain_rate_1_s"].isna().all()
+    assert c.curves.loc[np.isnan(d), "hencky_strain"].isna().all()
+
+
+def test_frames_before_free_thinning_are_ignored():
+    rng = np.random.default_rng(4)
+    fluid = Fluid(0.06, 1e-3, 1000.0, 2.0, 1e-3)
+    t, d, t0 = camera_series(fluid, 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, rng=rng)
+    kw = dict(surface_tension=0.06, pixel_size_m=5e-6, fps_hz=20000, free_thinning_start_s=t0, seed=2)
+    a = characterise(t, d, **kw)
+    d2 = d.copy()
+    d2[t < t0] = rng.uniform(0.2e-3, 3e-3, (t < t0).sum())  # plates moving: anything at all
+    b = characterise(t, d2, **kw)
+    assert a.relaxation_time_s == b.relaxation_time_s
+    assert a.initial_diameter_m == pytest.approx(d[np.searchsorted(t, t0)])
+
+
+def test_beads_and_spikes_do_not_move_the_relaxation_time():
+    rng = np.random.default_rng(7)
+    fluid = Fluid(0.06, 1e-3, 1000.0, 2.0, 2e-3)
+    t, d, t0 = camera_series(fluid, 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, rng=rng)
+    kw = dict(surface_tension=0.06, pixel_size_m=5e-6, fps_hz=20000, free_thinning_start_s=t0, seed=3)
+    clean = characterise(t, d, **kw)
+    spoiled = d.copy()
+    ok = np.flatnonzero(np.isfinite(d) & (t > t0 + 0.004))
+    hit = rng.choice(ok[: ok.size * 3 // 4], size=12, replace=False)
+    spoiled[hit] *= rng.uniform(1.5, 3.0, hit.size)          # the neck measured on a bead
+    spoiled[hit[:3] + 1] = np.nan                              # and a few lost frames
+    c = characterise(t, spoiled, **kw)
+    assert c.regime == "elasto-capillary"
+    assert c.relaxation_time_s == pytest.approx(clean.relaxation_time_s, rel=0.01)
+    assert any(f.code == "outlier-frames" for f in c.findings)
+
+
+def test_too_few_frames_in_the_elastic_window_is_doubtful():
+    # λ = 0.5 ms filmed at 2 kHz: the elastic stretch spans only a handful of frames
+    rng = np.random.default_rng(8)
+    t, d, t0 = closed_form_ec_series(rng, lam=0.5e-3, fps=2000, pixel=5e-6, noise_px=0.05,
+                                     d_switch=0.15e-3)
+    c = characterise(t, d, surface_tension=0.06, pixel_size_m=5e-6, fps_hz=2000,
+                     free_thinning_start_s=t0, seed=1)
+    assert c.regime == "elasto-capillary"
+    assert c.fit_window_frames < 10
+    codes = {f.code: f for f in c.findings}
+    assert codes["few-frames-in-window"].severity is Severity.DOUBTFUL
+    assert "frame rate is too low" in codes["few-frames-in-window"].message
+    assert c.relaxation_time_s == pytest.approx(0.5e-3, rel=0.05)
+
+
+def test_window_cut_short_by_the_floor_is_doubtful():
+    # a coarse pixel: the elastic stretch starts at 30 µm and the floor sits at 3 × 6 µm
+    rng = np.random.default_rng(9)
+    t, d, t0 = closed_form_ec_series(rng, lam=5e-3, fps=20000, pixel=6e-6, noise_px=0.1,
+                                     d_switch=45e-6)
+    c = characterise(t, d, surface_tension=0.06, pixel_size_m=6e-6, fps_hz=20000,
+                     free_thinning_start_s=t0, seed=1)
+    assert c.regime == "elasto-capillary"
+    codes = {f.code: f for f in c.findings}
+    assert codes["window-cut-by-floor"].severity is Severity.DOUBTFUL
+    assert c.relaxation_time_s == pytest.approx(5e-3, rel=0.05)
+
+
+def test_nothing_usable_is_undetermined_and_doubtful():
+    rng = np.random.default_rng(10)
+    t = np.arange(400) / 10000
+    d = 0.5e-3 + rng.normal(0, 1e-6, t.size)   # a thread that never thins
+    c = characterise(t, d, surface_tension=0.06, pixel_size_m=5e-6, fps_hz=10000,
+                     free_thinning_start_s=0.0, seed=1)
+    assert c.regime == "undetermined"
+    assert c.relaxation_time_s is None and c.fit_window_s is None
+    codes = {f.code: f for f in c.findings}
+    assert codes["no-usable-regime"].severity is Severity.DOUBTFUL
+    assert codes["no-breakup"].severity is Severity.NOTE
+    assert c.breakup_time_s is None and c.filament_lifetime_s is None
+    json.dumps(c.result_fields(), allow_nan=False)
+
+
+def test_empty_series_is_undetermined():
+    t = np.arange(50) / 1000
+    c = characterise(t, np.full(50, np.nan), surface_tension=0.06, pixel_size_m=5e-6, fps_hz=1000,
+                     free_thinning_start_s=0.0, seed=1)
+    assert c.regime == "undetermined" and c.initial_diameter_m is None
+    json.dumps(c.result_fields(), allow_nan=False)
+
+
+def test_large_bond_number_warns_of_sagging():
+    # Warwaruk et al. (2025): Bo > 0.5 gives sagging/oscillation; D0 = 4 mm water-like: Bo ≈ 0.54
+    c = run(Fluid(0.072, 50e-3, 1000.0, 1.0, 0.05), 4e-3, fps=2000, pixel=20e-6, noise_px=0.1, seed=2)
+    assert c.bond_number == pytest.approx(1000 * 9.80665 * 2e-3 ** 2 / 0.072, rel=0.02)
+    assert any(f.code == "gravity-sagging" and f.severity is Severity.NOTE for f in c.findings)
+
+
+def test_dimensionless_groups_reported():
+    fluid = Fluid(0.06, 1e-3, 1000.0, 2.0, 1e-3)
+    c = run(fluid, 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, seed=1)
+    fields = c.result_fields()
+    r0 = c.initial_diameter_m / 2
+    t_r = np.sqrt(1000 * r0 ** 3 / 0.06)
+    assert fields["deborah_number"] == pytest.approx(c.relaxation_time_s / t_r)
+    assert fields["ohnesorge_number"] == pytest.approx(fluid.zero_shear_viscosity / np.sqrt(1000 * 0.06 * r0))
+    assert fields["elasto_capillary_number"] == pytest.approx(
+        c.relaxation_time_s * 0.06 / (fluid.zero_shear_viscosity * r0))
+    assert fields["trouton_ratio_max"] == pytest.approx(
+        fields["extensional_viscosity_max_Pa_s"] / fluid.zero_shear_viscosity)
+
+
+def test_finite_extensibility_follows_the_elastic_stretch():
+    # L² = 10³ with a strong modulus: the terminal stretch shows above the floor
+    fluid = Fluid(0.06, 1e-3, 1000.0, 10.0, 10e-3, 1e3)
+    c = run(fluid, 1e-3, fps=10000, pixel=2e-6, noise_px=0.1, seed=11)
+    kinds = [r.kind for r in c.regimes]
+    assert kinds[-2:] == ["elasto-capillary", "finite-extensibility"]
+    eta_inf = c.extensional_viscosity_terminal_Pa_s
+    # Anna & McKinley (2001): the terminal viscosity is bounded by 2 η_p L² (FENE-P plateau)
+    assert 0.05 * fluid.terminal_extensional_viscosity < eta_inf <= 1.2 * fluid.terminal_extensional_viscosity
+    assert c.finite_extensibility_L2 == pytest.approx(eta_inf / (2 * fluid.polymer_viscosity))
+
+
+@pytest.mark.parametrize("bad", [dict(surface_tension=0.0), dict(pixel_size_m=-1.0),
+                                 dict(fps_hz=float("nan")), dict(geometry="jet")])
+def test_bad_arguments_raise(bad):
+    kw = dict(surface_tension=0.06, pixel_size_m=5e-6, fps_hz=1000.0, free_thinning_start_s=0.0, seed=1)
+    kw.update(bad)
+    with pytest.raises(ValueError):
+        characterise(np.arange(10.0), np.ones(10), **kw)

@@ -114,7 +114,7 @@ class Characterisation:
         }
         for key in ("ohnesorge_number", "deborah_number", "elasto_capillary_number", "bond_number"):
             out[key] = num(self.groups.get(key))
-        out["fit_details"] = {name: f.to_dict() for name, f in self.fits.items()}
+        out["fits"] = {name: f.to_dict() for name, f in self.fits.items()}
         return out
 
 
@@ -170,6 +170,8 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
                             t_start_s=t0, breakup_time_s=t_b)
     regs = ra.regimes
     noise = ra.series.noise_m if ra.series.n else diameter_noise_m
+    d_fit = d.copy()
+    d_fit[ra.series.outlier_index] = np.nan  # the fits never see beads or spikes
     common = dict(diameter_noise_m=noise, resolution_floor_m=floor)
     polymer_viscosity = None
     if zero_shear_viscosity is not None and solvent_viscosity is not None:
@@ -182,19 +184,19 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     ic, fe = _longest(regs, rg.INERTIO_CAPILLARY), _longest(regs, rg.FINITE_EXTENSIBILITY)
     if ec is not None and d0 is not None:
         fits["elasto-capillary"] = fit_elastocapillary(
-            t, d, window_s=(ec.t_start_s, ec.t_end_s), surface_tension=surface_tension,
+            t, d_fit, window_s=(ec.t_start_s, ec.t_end_s), surface_tension=surface_tension,
             initial_diameter=d0, t0=t0, seed=seed, **common)
     if vc is not None:
         fits["visco-capillary"] = fit_viscocapillary(
-            t, d, window_s=(vc.t_start_s, vc.t_end_s), surface_tension=surface_tension,
+            t, d_fit, window_s=(vc.t_start_s, vc.t_end_s), surface_tension=surface_tension,
             seed=seed + 1, **common)
     if ic is not None:
         fits["inertio-capillary"] = fit_inertiocapillary(
-            t, d, window_s=(ic.t_start_s, ic.t_end_s), surface_tension=surface_tension,
+            t, d_fit, window_s=(ic.t_start_s, ic.t_end_s), surface_tension=surface_tension,
             density=density, seed=seed + 2, **common)
     if fe is not None:
         fits["finite-extensibility"] = fit_finite_extensibility(
-            t, d, window_s=(fe.t_start_s, fe.t_end_s), surface_tension=surface_tension,
+            t, d_fit, window_s=(fe.t_start_s, fe.t_end_s), surface_tension=surface_tension,
             polymer_viscosity=polymer_viscosity, seed=seed + 3, **common)
 
     headline, head_fit, head_regime = UNDETERMINED, None, None

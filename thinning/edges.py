@@ -35,7 +35,7 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -82,6 +82,34 @@ class Layout:
     blur_sigma_px: float
     noise: float
     geometry: str = "plates"
+    backlight: np.ndarray | None = field(default=None, compare=False, repr=False)
+
+    @property
+    def inverse_backlight(self) -> np.ndarray:
+        """1 / backlight map (float32, band block shape, axis along rows)."""
+        return self._derived()[0]
+
+    @property
+    def margin_light(self) -> np.ndarray:
+        """Sum of the backlight map over the margin columns of each row."""
+        return self._derived()[1]
+
+    @property
+    def lit_rows(self) -> np.ndarray:
+        """Rows whose margins are lit in the backlight map."""
+        return self._derived()[2]
+
+    def _derived(self):
+        cache = self.__dict__.get("_cache")
+        if cache is None:
+            p = self.backlight
+            k = min(BACKGROUND_COLUMNS, max(1, p.shape[1] // 6))
+            margins = p[:, :k].sum(axis=1) + p[:, -k:].sum(axis=1)
+            top = float(np.median(margins))
+            cache = ((1.0 / p).astype(np.float32), margins.astype(np.float64),
+                     margins > 0.5 * top)
+            object.__setattr__(self, "_cache", cache)
+        return cache
 
     @property
     def axial_range(self) -> tuple[int, int]:
@@ -172,21 +200,26 @@ def _extent(mask):
     return has, first, last
 
 
-def _end_body(has, first, last, n_lat, *, from_end, thread_width):
-    """Rows of a wide body at one end of the axis: (count, extent) or (0, None)."""
+def _end_body(has, first, last, n_lat, *, from_end):
+    """Rows of a body at one end of the axis: (count, extent) or (0, None).
+
+    A body (plate, nozzle, substrate) is dark at the very end and has straight
+    sides over at least 5 rows, up to a face where the silhouette changes
+    width; a liquid foot widening towards the end of the region is no body.
+    """
     idx = np.arange(has.size)[::-1] if from_end else np.arange(has.size)
     if not has[idx[0]]:
         return 0, None
-    ext0 = last[idx[0]] - first[idx[0]] + 1
-    if ext0 < max(8.0, 2.5 * thread_width):
+    f0, l0 = first[idx[0]], last[idx[0]]
+    if l0 - f0 + 1 < 8:
         return 0, None
-    ext = np.where(has[idx], last[idx] - first[idx] + 1, 0)
-    inside = ext >= ext0 - 2
+    slack = 2.0 + 0.08 * np.arange(idx.size)  # a tilted body's sides drift slowly
+    inside = has[idx] & (np.abs(first[idx] - f0) <= slack) & (np.abs(last[idx] - l0) <= slack)
     count = int(np.argmin(inside)) if not inside.all() else int(inside.size)
-    if count < 5:  # a body has straight sides over several rows; a widening foot does not
+    if count < 5 or count > has.size - 5:
         return 0, None
-    full = first[idx[0]] <= 0 and last[idx[0]] >= n_lat - 1
-    return count, (math.inf if full else float(ext0))
+    full = f0 <= 0 and l0 >= n_lat - 1
+    return count, (math.inf if full else float(l0 - f0 + 1))
 
 
 def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
@@ -207,7 +240,7 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
     if x1 - x0 < 8 or y1 - y0 < 8:
         raise ValueError(f"the region of interest {roi} is too small (at least 8×8 pixels)")
     region = np.asarray(frame[y0:y1, x0:x1], dtype=np.float32)
-    bright = float(np.percentile(region, 90))
+    bright = float(np.percentile(region, 98))
     dark = float(np.percentile(region, 0.5))
     noise_abs = _noise_of(region)
     if bright - dark < max(8.0 * noise_abs, 0.05 * max(bright, 1.0)):
@@ -222,11 +255,8 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
         axial, lateral, mask = (x0, x1), (y0, y1), mask.T
     n_ax, n_lat = mask.shape
     has, first, last = _extent(mask)
-    middle = slice(n_ax // 4, n_ax - n_ax // 4)
-    mid_ext = np.where(has[middle], last[middle] - first[middle] + 1, 0)
-    thread_width = float(np.median(mid_ext)) if mid_ext.size else 0.0
-    n0, ext_start = _end_body(has, first, last, n_lat, from_end=False, thread_width=thread_width)
-    n1, ext_end = _end_body(has, first, last, n_lat, from_end=True, thread_width=thread_width)
+    n0, ext_start = _end_body(has, first, last, n_lat, from_end=False)
+    n1, ext_end = _end_body(has, first, last, n_lat, from_end=True)
     if n0 + n1 >= n_ax - 4:
         raise NoFilament("No filament in view: the frame is dark from end to end.")
     free = np.zeros(n_ax, bool)
@@ -253,9 +283,16 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
                          shadow_level=levels["shadow"], blur_sigma_px=blur,
                          noise=noise_abs / max(levels["background"] - levels["shadow"], 1e-6),
                          geometry=geometry)
+    block = _oriented(frame, orientation, axial, band)
+    rows = _measure_rows(block, provisional, shadow_fraction=provisional.shadow_fraction)
+    provisional = replace(provisional, backlight=_fit_backlight(block, rows, noise_abs))
+    fraction = _rim_fraction(_measure_rows(block, provisional,
+                                           shadow_fraction=provisional.shadow_fraction)["rim_ratio"],
+                             free)
+    if fraction is not None:
+        provisional = replace(provisional, shadow_level=fraction * levels["background"])
     # sub-pixel widths of the end bodies, with the row machinery itself
-    rows = _measure_rows(_oriented(frame, orientation, axial, band), provisional,
-                         shadow_fraction=provisional.shadow_fraction)
+    rows = _measure_rows(block, provisional, shadow_fraction=provisional.shadow_fraction)
     widths = []
     for count, ext, sl in ((n0, ext_start, slice(0, n0)), (n1, ext_end, slice(n_ax - n1, n_ax))):
         if count == 0 or ext is None:
@@ -266,14 +303,58 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
             inner = rows["cut_width"][sl][2:-2] if count > 6 else rows["cut_width"][sl]
             inner = inner[np.isfinite(inner)]
             widths.append(float(np.median(inner)) if inner.size else float(ext))
-    plate = _reference_width(widths, geometry)
-    fraction = _rim_fraction(rows["rim_ratio"], free)
-    shadow = levels["shadow"] if fraction is None else fraction * levels["background"]
-    return Layout(orientation=orientation, roi=(x0, y0, x1, y1), thread_span=span,
-                  plate_width_px=plate, band=band, end_widths_px=(widths[0], widths[1]),
-                  axis_px=lateral[0] + axis, background_level=levels["background"],
-                  shadow_level=float(shadow), blur_sigma_px=blur,
-                  noise=noise_abs / max(levels["background"] - float(shadow), 1e-6), geometry=geometry)
+    shadow = provisional.shadow_level
+    return replace(provisional, plate_width_px=_reference_width(widths, geometry),
+                   end_widths_px=(widths[0], widths[1]),
+                   noise=noise_abs / max(levels["background"] - float(shadow), 1e-6))
+
+
+def _fit_backlight(block, rows, noise_abs, *, degree=2):
+    """Static light field of the band: a 2-D polynomial through the background, plus dust.
+
+    Background pixels are those outside every row's integration window. The
+    polynomial (``degree`` in the axial and lateral coordinate) carries the
+    ramp and vignetting of the light; small dark specks of dust on the
+    background are kept as they are (smoothed over 3×3 pixels), so that they
+    do not count as shadow when the thread later passes over them.
+    """
+    n, w = block.shape
+    bg = np.ones((n, w), bool)
+    s0, e0 = rows["window"]
+    cols = np.arange(w)
+    inside = (cols[None, :] >= (s0 - 2)[:, None]) & (cols[None, :] < (e0 + 2)[:, None])
+    bg &= ~(inside & rows["has"][:, None])
+    v = np.linspace(-1.0, 1.0, n)[:, None] * np.ones((1, w))
+    u = np.ones((n, 1)) * np.linspace(-1.0, 1.0, w)[None, :]
+    terms = [u ** i * v ** j for i in range(degree + 1) for j in range(degree + 1 - i)]
+    sub = np.zeros((n, w), bool)
+    sub[::2, ::2] = True
+    use = bg & sub
+    if use.sum() < 4 * len(terms):
+        use = bg
+    if use.sum() < len(terms):
+        return np.full((n, w), float(np.median(block)), np.float32)
+    design = np.stack([t[use] for t in terms], axis=1)
+    target = block[use].astype(np.float64)
+    keep = np.ones(target.size, bool)
+    for _ in range(3):  # drop dust and stray shadow from the fit
+        coef, *_ = np.linalg.lstsq(design[keep], target[keep], rcond=None)
+        resid = target - design @ coef
+        spread = 1.4826 * np.median(np.abs(resid[keep])) + 1e-6
+        keep = np.abs(resid) < 4.0 * spread
+    field_ = sum(c * t for c, t in zip(coef, terms))
+    field_ = np.maximum(field_, 1e-3 * max(float(np.max(field_)), 1.0))
+    # dust: background clearly darker than the field; replaced by the smoothed frame
+    ratio = block / field_
+    dark = bg & (ratio < 1.0 - max(6.0 * noise_abs / float(np.median(field_)), 0.02))
+    if dark.any():
+        import cv2
+
+        spot = cv2.dilate(dark.astype(np.uint8), np.ones((5, 5), np.uint8)).astype(bool) & bg
+        weight = cv2.blur(bg.astype(np.float32), (3, 3))
+        smooth = cv2.blur(np.where(bg, block, 0.0).astype(np.float32), (3, 3))
+        field_ = np.where(spot, smooth / np.maximum(weight, 1e-6), field_)
+    return field_.astype(np.float32)
 
 
 def _reference_width(widths, geometry):
@@ -345,15 +426,32 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
     """Row-wise width, centre and levels of one band block (float32, axis along rows)."""
     n, w = block.shape
     k = min(BACKGROUND_COLUMNS, max(1, w // 6))
-    left_bg = _box(block[:, :k].mean(axis=1), 3)
-    right_bg = _box(block[:, w - k:].mean(axis=1), 3)
-    xl = 0.5 * (k - 1)
-    xr = w - 1 - 0.5 * (k - 1)
-    slope = (right_bg - left_bg) / (xr - xl)
-    cols = np.arange(w, dtype=np.float32) - np.float32(xl)
-    backlight = left_bg.astype(np.float32)[:, None] + slope.astype(np.float32)[:, None] * cols
     scale = np.float32(1.0 / max(1.0 - shadow_fraction, 1e-3))
-    deficit = (1.0 - block / backlight) * scale
+    margins = block[:, :k].sum(axis=1) + block[:, w - k:].sum(axis=1)
+    if layout.backlight is not None:
+        # backlight = flicker gain × the static light field of the layout
+        ratio = margins / layout.margin_light
+        lit = layout.lit_rows & np.isfinite(ratio)
+        gain = float(np.median(ratio[lit])) if lit.any() else 1.0
+        light = ratio / gain
+        inv_light = layout.inverse_backlight
+        deficit = block * inv_light
+        deficit *= np.float32(-scale / gain)
+        deficit += scale
+    else:
+        # backlight interpolated linearly between the margins of each row
+        gain = 1.0
+        left_bg = _box(block[:, :k].mean(axis=1), 3)
+        right_bg = _box(block[:, w - k:].mean(axis=1), 3)
+        xl = 0.5 * (k - 1)
+        xr = w - 1 - 0.5 * (k - 1)
+        slope = (right_bg - left_bg) / (xr - xl)
+        cols = np.arange(w, dtype=np.float32) - np.float32(xl)
+        backlight = left_bg.astype(np.float32)[:, None] + slope.astype(np.float32)[:, None] * cols
+        inv_light = 1.0 / backlight
+        deficit = (1.0 - block * inv_light) * scale
+        top = max(float(np.median(left_bg)), float(np.median(right_bg)))
+        light = np.minimum(left_bg, right_bg) / max(top, 1e-6)
     pair = deficit[:, :-1] + deficit[:, 1:]
     peak = 0.5 * pair.max(axis=1)
     mask = pair > 2.0 * detect_level
@@ -361,6 +459,12 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
     rows = np.arange(n)
     lj = np.argmax(mask, axis=1)
     rj = (w - 2) - np.argmax(mask[:, ::-1], axis=1)
+    # rows whose dark pixels do not form one run (a dust speck or a stray shadow beside the
+    # filament): keep the run holding the darkest pixel, with runs closer than a few pixels
+    gappy = has & (mask.sum(axis=1) < rj - lj + 1)
+    if gappy.any():
+        for r in np.flatnonzero(gappy):
+            lj[r], rj[r] = _main_run(mask[r], pair[r], lj[r], rj[r])
     # sub-pixel detection crossings of the pair average (pair j is centred at j + 0.5)
     lprev = np.maximum(lj - 1, 0)
     p0, p1 = pair[rows, lprev], pair[rows, lj]
@@ -394,12 +498,34 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
     if thick.any():
         tr, ta, tb = rows[thick], fa[thick], fb[thick]
         samples = [(tr, ta), (tr, ta + 1), (tr, tb - 1), (tr, tb - 2)]
-        rim_ratio[thick] = np.mean([block[i, j] / backlight[i, j] for i, j in samples], axis=0)
+        rim_ratio[thick] = np.mean([block[i, j] * inv_light[i, j] for i, j in samples], axis=0) / gain
     truncated = (lj - m < 0) | (rj + 2 + m > w)
     return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum.astype(np.float64),
             "core_n": core_n, "cut_width": np.where(has, edge_sum + core_n, np.nan),
             "truncated": truncated, "rim_ratio": rim_ratio,
-            "left_bg": left_bg, "right_bg": right_bg}
+            "light": light, "window": (s0, e0)}
+
+
+def _main_run(mask_row, pair_row, lo, hi, *, bridge_px=3):
+    """First and last index of the dark run holding the row's darkest pair (gaps ≤ bridge_px joined)."""
+    on = mask_row[lo:hi + 1]
+    edges = np.flatnonzero(np.diff(np.concatenate(([0], on.astype(np.int8), [0]))))
+    starts, stops = edges[::2], edges[1::2] - 1
+    # join runs separated by a gap that is short, or narrow beside both runs (the bright
+    # lens streak between the two dark rims of a transparent thread)
+    keep_s, keep_e = [starts[0]], [stops[0]]
+    for a, b in zip(starts[1:], stops[1:]):
+        gap = a - keep_e[-1] - 1
+        if gap <= bridge_px or gap <= 0.25 * min(keep_e[-1] - keep_s[-1] + 1, b - a + 1):
+            keep_e[-1] = b
+        else:
+            keep_s.append(a)
+            keep_e.append(b)
+    darkest = int(np.argmax(pair_row[lo:hi + 1]))
+    for a, b in zip(keep_s, keep_e):
+        if a <= darkest <= b:
+            return lo + a, lo + b
+    return lo + keep_s[0], lo + keep_e[-1]
 
 
 def _local_slope(y, c, ok, half):
@@ -420,7 +546,7 @@ def _local_slope(y, c, ok, half):
 
 
 def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DETECT_LEVEL,
-                 presence_level=PRESENCE_LEVEL, axis_window_px=10) -> Profile:
+                 presence_level=PRESENCE_LEVEL, axis_window_px=10, max_bend_deg=2.0) -> Profile:
     """Both edges of the filament on every row of the band, sub-pixel (see module docstring).
 
     ``shadow_fraction``: shadow level over backlight to use (e.g. a running
@@ -429,7 +555,8 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     whose outer crossings locate the filament on a row; ``presence_level``:
     smallest peak deficit of a row crossed by the thread;
     ``axis_window_px``: half-length of the sliding centre-line fit giving
-    the local axis angle.
+    the local axis angle; ``max_bend_deg``: largest departure of the local
+    axis from the filament's median direction.
     """
     axial = layout.axial_range
     block = _oriented(np.asarray(frame), layout.orientation, axial, layout.band)
@@ -462,10 +589,12 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     y = np.arange(n, dtype=np.float64) + axial[0]
     centre = rows["centre"] + layout.band[0]
     slope = _local_slope(y, centre, valid, axis_window_px)
-    if np.isnan(slope).any():
-        good = valid & np.isfinite(slope)
-        fill = float(np.median(slope[good])) if good.any() else 0.0
-        slope = np.where(np.isnan(slope), fill, slope)
+    good = valid & np.isfinite(slope)
+    axis = float(np.median(slope[good])) if good.any() else 0.0
+    # the axis bends slowly; rows where the sliding fit swings further (plate corners,
+    # beads, the retracting tips) take the filament's overall direction
+    bend = math.tan(math.radians(max_bend_deg))
+    slope = np.where(np.isfinite(slope), np.clip(slope, axis - bend, axis + bend), axis)
     cosine = 1.0 / np.sqrt(1.0 + slope * slope)
     half = 0.5 * cut
     return Profile(axial_px=y, left_px=centre - half, right_px=centre + half,
@@ -487,9 +616,7 @@ def _rim_fraction(rim_ratio, rows_ok):
 
 def _body_rows(rows, cut, layout, n):
     """Rows of the end bodies: contiguous from each end, as wide as the body or without backlight."""
-    left_bg, right_bg = rows["left_bg"], rows["right_bg"]
-    top = max(float(np.median(left_bg)), float(np.median(right_bg)))
-    no_light = np.minimum(left_bg, right_bg) < 0.5 * (1.0 + layout.shadow_fraction) * top
+    no_light = rows["light"] < 0.5 * (1.0 + layout.shadow_fraction)
     body = np.zeros(n, bool)
     for end, width in enumerate(layout.end_widths_px):
         if width is None:

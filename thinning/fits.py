@@ -192,9 +192,14 @@ def fit_elastocapillary(time_s, diameter_m, *, window_s, surface_tension, initia
     if isinstance(sel, str):
         return _failed(model, sel, window_s)
     x = sel.t - t0
-    y = np.log(sel.d)
-    w = (sel.d / sel.noise_m) ** 2
     sl = slice(sel.s, sel.e + 1)
+    # weights (D/σ_D)² from the fitted diameter, not the noisy one (which would favour
+    # frames with positive noise), and ln D corrected for E[ln(D + e)] ≈ ln D − σ²/2D²
+    w = (sel.d / sel.noise_m) ** 2
+    slope, icpt, _ = _wline(x[sl], np.log(sel.d[sl]), w[sl])
+    d_fit = np.exp(icpt + slope * x)
+    w = (d_fit / sel.noise_m) ** 2
+    y = np.log(sel.d) + 0.5 * (sel.noise_m / d_fit) ** 2
     slope, icpt, cov = _wline(x[sl], y[sl], w[sl])
     n = sel.e - sel.s + 1
     if not slope < 0:

@@ -304,7 +304,12 @@ def summarise(table: pd.DataFrame, layout: Layout, *, snapshots=()) -> NeckSerie
             "No frame shows a connected thread between the ends; nothing could be measured."))
     table.loc[~table["thread_connected"], "diameter_px"] = np.nan
     end = len(table) if breakup is None else int(breakup + 0.5)
-    start = free_thinning_start(table["plate_gap_px"].to_numpy(float)[:end])
+    if layout.geometry == "dripping":
+        # the bridge forms when the drop touches the substrate; the sessile drop then keeps
+        # spreading, so the gap between the end bodies is no motion signal here
+        start = float(np.flatnonzero(connected)[0]) if connected.any() else 0.0
+    else:
+        start = free_thinning_start(table["plate_gap_px"].to_numpy(float)[:end])
     noise = diameter_noise(table["diameter_px"].to_numpy(float)[int(start):end])
     findings.extend(_quality_findings(table.iloc[:end], layout, start))
     return NeckSeries(table=table, layout=layout, free_thinning_start_frame=float(start),

@@ -20,7 +20,8 @@ The criteria (physics.md §3.5, §4, §5.1):
    local estimate), with at least 6 frames and D falling by at least a factor
    2. This is where ln D is a straight line in t.
 4. Finite extensibility: the stretch after the elasto-capillary one in which the
-   strain rate rises clearly above 2/(3λ) (ln D bends down). A linear stretch
+   strain rate rises clearly (by more than 5 % plus 2 standard errors) above
+   2/(3λ), i.e. ln D bends down, from the first to the last such frame. A linear stretch
    after an elasto-capillary one is never called visco-capillary
    (physics.md §3.4).
 5. Before an elasto-capillary stretch, or when there is none, a stretch is
@@ -32,7 +33,7 @@ The criteria (physics.md §3.5, §4, §5.1):
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.ndimage import median_filter
@@ -125,16 +126,24 @@ class LocalSlopes:
 def estimate_diameter_noise(diameter_m, *, minimum_m=0.0) -> float:
     """Noise standard deviation of D (m) from residuals about a local quadratic (7 frames).
 
-    Robust (median absolute deviation), so beads and the steep last frames do
-    not inflate it. ``diameter_m`` must be finite, in time order.
+    The quadratic is fitted both to D and to ln D (whose residuals, times D,
+    are diameter noise too) and the smaller estimate is kept: real curvature
+    only ever inflates an estimate, and an exponential stretch is straight in
+    ln D. Robust (median absolute deviation), so beads and the steep last
+    frames do not inflate it. ``diameter_m`` must be finite, in time order.
     """
     d = np.asarray(diameter_m, dtype=float)
     if d.size < 9:
         return float(minimum_m)
-    resid = d - savgol_filter(d, 7, 2)
-    # residual of a 7-point quadratic smoother has variance σ²·(1 − 1/3)
-    sigma = 1.4826 * np.median(np.abs(resid - np.median(resid))) / np.sqrt(2.0 / 3.0)
-    return float(max(sigma, minimum_m))
+
+    def mad_sigma(resid):
+        # residual of a 7-point quadratic smoother has variance σ²·(1 − 1/3)
+        return 1.4826 * np.median(np.abs(resid - np.median(resid))) / np.sqrt(2.0 / 3.0)
+
+    in_d = mad_sigma(d - savgol_filter(d, 7, 2))
+    lnd = np.log(d)
+    in_log = mad_sigma((lnd - savgol_filter(lnd, 7, 2)) * d)
+    return float(max(min(in_d, in_log), minimum_m))
 
 
 def last_thread_position(time_s, diameter_m, *, t_start_s=None) -> int | None:
@@ -156,6 +165,27 @@ def last_thread_position(time_s, diameter_m, *, t_start_s=None) -> int | None:
     return last
 
 
+def flag_outliers(time_s, diameter_m, *, noise_m, threshold=5.0, size=9):
+    """Frames whose ln D departs from the running median of its neighbours by > ``threshold`` σ.
+
+    σ = σ_D/D. Two passes: the second median leaves out what the first
+    flagged, so a bead does not drag its neighbours out with it. Frames below
+    the resolution floor take part as neighbours (a bead lifts a thin frame
+    above the floor).
+    """
+    t = np.asarray(time_s, dtype=float)
+    lnd = np.log(np.asarray(diameter_m, dtype=float))
+    bad = np.zeros(lnd.size, dtype=bool)
+    if lnd.size < size:
+        return bad
+    for _ in range(2):
+        keep = ~bad
+        med = median_filter(lnd[keep], size=size, mode="nearest")
+        ref = np.interp(t, t[keep], med)
+        bad = np.abs(lnd - ref) > threshold * noise_m / np.exp(ref)
+    return bad
+
+
 def prepare_series(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
                    t_start_s=None, outlier_threshold=5.0) -> PreparedSeries:
     """Select the usable frames: finite D, after ``t_start_s``, above the floor, not outliers."""
@@ -169,21 +199,16 @@ def prepare_series(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=N
     order = np.flatnonzero(finite)
     order = order[np.argsort(t[order], kind="stable")]
     above = d[order] >= resolution_floor_m
-    below_floor = order[~above]
-    cand = order[above]
     floor_noise = 0.01 * resolution_floor_m / 3.0  # 0.01 px: keeps weights finite on clean data
     if diameter_noise_m is not None:
         noise = float(diameter_noise_m)
     else:
-        noise = estimate_diameter_noise(d[cand], minimum_m=floor_noise)
+        noise = estimate_diameter_noise(d[order[above]], minimum_m=floor_noise)
     noise = max(noise, floor_noise)
-    outliers = np.empty(0, dtype=int)
-    if cand.size >= 9:
-        lnd = np.log(d[cand])
-        med = median_filter(lnd, size=9, mode="nearest")
-        bad = np.abs(lnd - med) > outlier_threshold * noise / d[cand]
-        outliers = cand[bad]
-        cand = cand[~bad]
+    bad = flag_outliers(t[order], d[order], noise_m=noise, threshold=outlier_threshold)
+    outliers = order[bad & above]
+    below_floor = order[~above & ~bad]
+    cand = order[above & ~bad]
     return PreparedSeries(
         index=cand, time_s=t[cand], diameter_m=d[cand], noise_m=noise,
         resolution_floor_m=float(resolution_floor_m), outlier_index=outliers,
@@ -229,7 +254,7 @@ def _line_fits(x, y, w, left, right):
     return slope, se, ym + slope * (x - xm)
 
 
-def local_log_slopes(time_s, diameter_m, *, noise_m, log_span=0.2, min_half_width=2,
+def local_log_slopes(time_s, diameter_m, *, noise_m, log_span=0.2, min_half_width=1,
                      max_half_width=100, half_width=None, target_rel_se=None) -> LocalSlopes:
     """Sliding weighted least-squares lines through ln D, one per point.
 
@@ -245,7 +270,8 @@ def local_log_slopes(time_s, diameter_m, *, noise_m, log_span=0.2, min_half_widt
     d = np.asarray(diameter_m, dtype=float)
     y = np.log(d)
     n = y.size
-    w = (d / noise_m) ** 2
+    # weights from a running median, not the noisy D (which would favour positive noise)
+    w = (median_filter(d, size=min(5, n) | 1, mode="nearest") / noise_m) ** 2
     scale = np.median(np.diff(t)) if n > 1 else 1.0
     x = (t - t[0]) / scale
     if half_width is not None:
@@ -363,8 +389,67 @@ def find_elastocapillary_run(series: PreparedSeries, slopes: LocalSlopes, *, tol
         if (run[0], run[1]) == (s, e):
             break
         s, e = run[0], run[1]
-    return _trim_to_constant_rate(series, s, e, max_drift=max_drift, min_points=min_points,
-                                  min_decrease=min_decrease)
+    run = _trim_to_constant_rate(series, s, e, max_drift=max_drift, min_points=min_points,
+                                 min_decrease=min_decrease)
+    if run is None:
+        return None
+    return _trim_curved_edges(series, *run, min_points=min_points, min_decrease=min_decrease)
+
+
+def _trim_curved_edges(series, s, e, *, min_points, min_decrease, z=2.5, edge_fraction=0.2,
+                       step_fraction=0.05, max_trim_fraction=0.5):
+    """Drop the ends of [s, e] whose slope differs significantly from the rest of the run.
+
+    The first (last) ``edge_fraction`` of the run's fall in ln D is fitted
+    apart from the rest; while the two slopes differ by more than ``z``
+    combined standard errors, ``step_fraction`` of the fall is cut from that
+    end (from the end that differs more, relatively, when both do), up to
+    ``max_trim_fraction`` in all. On precise data this removes the
+    bend into and out of the elasto-capillary stretch that a ±5 % band lets in.
+    """
+    log_d = np.log(series.diameter_m)
+    key = -np.minimum.accumulate(log_d)
+    t = series.time_s
+    w = (series.diameter_m / series.noise_m) ** 2
+    span0 = key[e] - key[s]
+    budget = key[s] + max_trim_fraction * span0, key[e] - max_trim_fraction * span0
+
+    def slope(a, b):
+        sl, _, se = _weighted_line(t[a:b + 1] - t[a], log_d[a:b + 1], w[a:b + 1])
+        return sl, se
+
+    def long_enough(a, b):
+        return b - a + 1 >= min_points and log_d[a] - log_d[b] >= np.log(min_decrease)
+
+    def edge_test(a, b, head):
+        """(z-score of the edge against the rest, trimmed run) for one end."""
+        span = key[b] - key[a]
+        if head:
+            cut = int(np.searchsorted(key, key[a] + edge_fraction * span, side="right")) - 1
+            (a1, b1), (a2, b2) = (a, cut), (cut + 1, b)
+            nxt = int(np.searchsorted(key, key[a] + step_fraction * span0, side="right"))
+            new = (max(nxt, a + 1), b)
+            allowed = key[new[0]] <= budget[0]
+        else:
+            cut = int(np.searchsorted(key, key[b] - edge_fraction * span, side="left"))
+            (a1, b1), (a2, b2) = (cut, b), (a, cut - 1)
+            nxt = int(np.searchsorted(key, key[b] - step_fraction * span0, side="left")) - 1
+            new = (a, min(nxt, b - 1))
+            allowed = key[new[1]] >= budget[1]
+        if b1 - a1 < 2 or b2 - a2 < 2 or not allowed or not long_enough(*new):
+            return 0.0, None
+        (s1, e1), (s2, e2) = slope(a1, b1), slope(a2, b2)
+        if abs(s1 - s2) <= z * np.hypot(e1, e2):
+            return 0.0, None
+        return abs(s1 - s2) / abs(s2), new
+
+    while True:
+        # of the ends that differ significantly, trim the one that differs more
+        (r_head, new_head), (r_tail, new_tail) = edge_test(s, e, True), edge_test(s, e, False)
+        if new_head is None and new_tail is None:
+            break
+        s, e = new_head if (new_tail is None or (new_head is not None and r_head >= r_tail)) else new_tail
+    return s, e
 
 
 def relaxation_time_drift(time_s, diameter_m, *, noise_m):
@@ -372,7 +457,7 @@ def relaxation_time_drift(time_s, diameter_m, *, noise_m):
 
     From a weighted quadratic fit of ln D in t: δ = (λ_end − λ_start)/λ_mid, 0
     for an exponential; about −0.5 or more for any power law over a factor-2
-    fall of D.
+    fall of D. The standard error comes from the scatter about the quadratic.
     """
     t = np.asarray(time_s, dtype=float)
     d = np.asarray(diameter_m, dtype=float)
@@ -382,6 +467,10 @@ def relaxation_time_drift(time_s, diameter_m, *, noise_m):
     aw = a * w[:, None]
     cov = np.linalg.inv(a.T @ aw)
     coef = cov @ (aw.T @ np.log(d))
+    if d.size > 4:
+        # errors from the scatter about the quadratic, whatever the noise estimate said
+        chi2 = float(np.sum(w * (np.log(d) - a @ coef) ** 2) / (d.size - 3))
+        cov = cov * chi2
     b, c = coef[1], coef[2]
     x0, x1 = x[0], x[-1]
     s0, s1, sm = b + 2 * c * x0, b + 2 * c * x1, b + c * (x0 + x1)
@@ -555,6 +644,15 @@ def _make_regime(kind, series, s, e, value):
                   cut_by_floor=floor_cut)
 
 
+def _reduced_chi2_log_line(series, s, e):
+    """Reduced χ² of the weighted line through ln D over positions [s, e]."""
+    x = series.time_s[s:e + 1] - series.time_s[s]
+    y = np.log(series.diameter_m[s:e + 1])
+    w = (series.diameter_m[s:e + 1] / series.noise_m) ** 2
+    slope, icpt, _ = _weighted_line(x, y, w)
+    return float(np.sum(w * (y - icpt - slope * x) ** 2) / max(e - s - 1, 1))
+
+
 def _merge_neighbours(regimes, series, *, max_gap):
     """Join consecutive power-law stretches of one kind separated by at most ``max_gap`` frames."""
     out = []
@@ -587,6 +685,16 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
     found = []
     run = find_elastocapillary_run(series, slopes, tolerance=tolerance, min_points=min_points,
                                    min_decrease=min_decrease)
+    if run is not None:
+        # scatter about the elastic line larger than the noise says (correlated noise, an
+        # underestimated σ_D): widen the noise to match and locate again
+        chi2 = _reduced_chi2_log_line(series, *run)
+        if chi2 > 1.5:
+            series = replace(series, noise_m=series.noise_m * float(np.sqrt(chi2)))
+            slopes = local_log_slopes(series.time_s, series.diameter_m, noise_m=series.noise_m,
+                                      target_rel_se=tolerance / 2.0)
+            run = find_elastocapillary_run(series, slopes, tolerance=tolerance,
+                                           min_points=min_points, min_decrease=min_decrease)
     gap = 2
     if run is not None:
         s, e = run
@@ -595,17 +703,16 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
         slope, _, _ = _weighted_line(x - x[0], np.log(series.diameter_m[s:e + 1]), w)
         lam_ec = -1.0 / (3.0 * slope)
         found.append(_make_regime(ELASTO_CAPILLARY, series, s, e, lam_ec))
-        # after: finite extensibility where the strain rate rises clearly above 2/(3λ)
+        # after: finite extensibility from where the strain rate first rises clearly above
+        # 2/(3λ) to the last such frame (a gradual bend between the two stays unlabelled)
         if e + 1 < series.n:
             lam = slopes.relaxation_time_s[e + 1:]
             rel_se = np.abs(slopes.slope_se_1_s / slopes.slope_1_s)[e + 1:]
             faster = np.isfinite(lam) & (lam < lam_ec * (1.0 - tolerance - 2.0 * rel_se))
-            faster = _close_gaps(faster, gap)
-            runs = _runs(faster)
+            runs = [r for r in _runs(_close_gaps(faster, gap)) if r[1] - r[0] + 1 >= min_points]
             if runs:
-                a, b = runs[0]
-                a, b = a + e + 1, b + e + 1
-                if b - a + 1 >= min_points and a - e - 1 <= max(gap, min_points):
+                a, b = runs[0][0] + e + 1, runs[-1][1] + e + 1
+                if np.mean(faster[a - e - 1:b - e]) >= 0.5:
                     # the terminal linear slope, D ≈ (σ/η_E,∞)(t_b − t), is fitted later
                     found.append(_make_regime(FINITE_EXTENSIBILITY, series, a, b,
                                               float(np.nanmedian(lam[a - e - 1:b - e]))))

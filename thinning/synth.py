@@ -741,10 +741,11 @@ class _Renderer:
             rmin = STREAK_MIN_WIDTH_PX / 2
             x = np.clip((radius - rmin) / rmin, 0.0, 1.0)
             amp = self.optics.streak_strength * x * x * (3 - 2 * x)
-            amp[touching] = 0.0
+            # on the axis, narrow, and clear of both edges by at least 3 px
+            mid = ox + (y - oy) * s / c
+            half = np.clip(0.04 * (right - left), 0.75, 3.0)
+            amp[touching | (mid - half < left + 3.0) | (mid + half > right - 3.0)] = 0.0
             if amp.any():
-                mid = 0.5 * (left + right)
-                half = np.clip(0.04 * (right - left), 0.75, 3.0)
                 cov.add(mid - half, mid + half, rows, -weight * amp)
         return cov.image()
 
