@@ -1,0 +1,138 @@
+"""The lot report (thinning.report.lot): content, escaping, self-containment, and how Chromium shows it."""
+
+import base64
+import re
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from services import fake_result, run_chromium, source_hash, write_batch
+from thinning import records as rec
+from thinning.cli_records import report as report_cli
+from thinning.report.lot import lot_report_html, report_filename, write_lot_report
+
+SPECS = '[[product]]\nname = "ink-A"\nrelaxation_time_s = [0.008, 0.012]\nreplicates = 3\nmax_cv = 0.10\n'
+HOSTILE_SAMPLE = '<script>alert("x")</script>'
+HOSTILE_NOTE = '<img src=x onerror="alert(1)"> & more'
+
+#: background of the verdict banner per verdict (the template's --pass/--review/--fail colours)
+BANNER_RGB = {"pass": (0x1E, 0x7B, 0x34), "review": (0xA1, 0x5C, 0x00), "fail": (0xB4, 0x23, 0x18)}
+
+
+def _lot(lot, lams, made_on, *, sample="S", notes=""):
+    return [dict(sample=sample, lot=lot, product="ink-A", replicate=str(i), made_on=made_on, notes=notes,
+                 analysed_at="2026-02-01T10:00:00Z",
+                 result=fake_result(relaxation_time_s=lam, sha256=source_hash(lot, i),
+                                    warnings=["few frames in the fit window"] if i == 2 else []))
+            for i, lam in enumerate(lams, start=1)]
+
+
+@pytest.fixture
+def store(db_url, tmp_path):
+    rng = np.random.default_rng(5)
+    rows = []
+    for k in range(6):
+        rows += _lot(f"L{k}", list(rng.normal(0.010, 0.0002, size=3)), f"2026-01-{k + 1:02d}")
+    rows += _lot("A/B 7", [0.0131, 0.0129, 0.0127], "2026-01-20", sample=HOSTILE_SAMPLE, notes=HOSTILE_NOTE)
+    rows += _lot("NEW", [0.0100, 0.0101], "2026-01-21")
+    write_batch(tmp_path / "batch", rows)
+    (tmp_path / "specs.toml").write_text(SPECS)
+    with rec.open_records(db_url) as records:
+        records.load_specs(tmp_path / "specs.toml")
+        records.load_batch(tmp_path / "batch")
+        yield records
+
+
+def _external_references(html):
+    """Anything the page would fetch or run: scripts, links, non-data sources, CSS urls."""
+    found = re.findall(r"<script|<link|<iframe|<object|@import", html, flags=re.I)
+    found += [s for s in re.findall(r'(?:src|href)\s*=\s*"([^"]*)"', html) if not s.startswith("data:image/png;base64,")]
+    found += [u for u in re.findall(r"url\(([^)]*)\)", html)]
+    return found
+
+
+def test_the_report_states_the_verdict_first_and_escapes_user_text(store, tmp_path):
+    path = write_lot_report(store, "A/B 7", out_dir=tmp_path / "out", generated_at="2026-02-02T00:00:00+00:00")
+    assert path == tmp_path / "out" / "A_B_7.html"
+    html = path.read_text(encoding="utf-8")
+    verdict_at = html.index('id="verdict"')
+    assert verdict_at < html.index("<h2>")
+    assert 'class="verdict verdict-fail"' in html
+    assert "lot mean relaxation time 0.0129 s is above the maximum 0.012 s" in html[verdict_at:html.index("<h2>")]
+    assert HOSTILE_SAMPLE not in html and "<img src=x" not in html
+    assert "&lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt;" in html
+    assert "&lt;img src=x onerror=&#34;alert(1)&#34;&gt; &amp; more" in html
+    assert _external_references(html) == []
+    images = re.findall(r'src="data:image/png;base64,([^"]+)"', html)
+    assert len(images) == 2  # diameter curves and control chart
+    assert all(base64.b64decode(image)[:8] == b"\x89PNG\r\n\x1a\n" for image in images)
+    for words in ("few frames in the fit window", "reference fluid", "hazardous", "thinning 0.1.0",
+                  "Western Electric", "Nelson", "Montgomery", "@media print"):
+        assert words in html, words
+    # limits for this lot come from its 6 earlier lots
+    assert "Limits for this lot from 6 earlier lots" in html
+
+
+def test_the_report_is_the_same_for_the_same_records(store, tmp_path):
+    one = lot_report_html(store.lot_detail("L5"), generated_at="t")
+    two = lot_report_html(store.lot_detail("L5"), generated_at="t")
+    assert one == two
+
+
+def test_a_lot_without_enough_history_says_so(store):
+    html = lot_report_html(store.lot_detail("L2"), generated_at="t")
+    assert "No control limits yet: this lot has 2 earlier lots with a mean, and 5 are needed." in html
+    assert 'class="verdict verdict-pass"' in html
+
+
+def test_report_filename_rule():
+    assert report_filename("lot 7/ä:b") == "lot_7___b.html"
+    assert report_filename("L-1.2_x") == "L-1.2_x.html"
+
+
+def test_report_command(store, db_url, tmp_path):
+    result = CliRunner().invoke(report_cli, ["NEW", "--db", db_url, "--out", str(tmp_path / "r")])
+    assert result.exit_code == 0, result.output
+    html = (tmp_path / "r" / "NEW.html").read_text()
+    assert "2 valid replicates of 3 required" in html and "verdict-review" in html
+    missing = CliRunner().invoke(report_cli, ["NOPE", "--db", db_url, "--out", str(tmp_path / "r")])
+    assert missing.exit_code == 2 and missing.output.strip() == "thinning: no lot 'NOPE' in the records."
+
+
+def _console_messages(stderr: str) -> list[str]:
+    return [line for line in stderr.splitlines() if ":CONSOLE" in line or "Uncaught" in line]
+
+
+@pytest.mark.chromium
+def test_chromium_shows_the_verdict_on_the_first_screen(store, tmp_path, chromium_path):
+    from matplotlib.image import imread
+
+    page = write_lot_report(store, "A/B 7", out_dir=tmp_path / "out")
+    shot = tmp_path / "first-screen.png"
+    process = run_chromium(chromium_path, page, tmp_path / "profile", f"--screenshot={shot}")
+    assert process.returncode == 0, process.stderr[-2000:]
+    pixels = imread(shot)[..., :3]
+    assert pixels.shape[:2] == (768, 1024)
+    assert pixels.std() > 0.05  # not a blank page
+    # the verdict banner (its background colour) is on the 1024×768 first screen, near the top
+    banner = np.all(np.abs(pixels * 255 - np.array(BANNER_RGB["fail"])) < 6, axis=-1)
+    rows = np.nonzero(banner.sum(axis=1) > 500)[0]
+    assert rows.size > 30 and rows.min() < 400
+    assert _console_messages(process.stderr) == []
+    dom = run_chromium(chromium_path, page, tmp_path / "profile", "--dump-dom")
+    assert dom.returncode == 0 and 'id="verdict"' in dom.stdout and ">fail<" in dom.stdout
+    assert _console_messages(dom.stderr) == []
+    pdf = tmp_path / "printed.pdf"
+    printed = run_chromium(chromium_path, page, tmp_path / "profile", f"--print-to-pdf={pdf}",
+                           "--no-pdf-header-footer")
+    assert printed.returncode == 0 and pdf.read_bytes()[:5] == b"%PDF-"
+
+
+@pytest.mark.chromium
+def test_the_console_check_sees_errors(tmp_path, chromium_path):
+    # control for the check above: a page with a script error must be caught
+    page = tmp_path / "broken.html"
+    page.write_text("<html><body><script>undefinedFunction();</script></body></html>")
+    process = run_chromium(chromium_path, page, tmp_path / "profile", "--dump-dom")
+    assert any("Uncaught" in line for line in _console_messages(process.stderr))

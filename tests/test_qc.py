@@ -1,0 +1,201 @@
+"""Specifications, lot verdicts and control charts (thinning.qc): pure functions, hand-checked cases."""
+
+import math
+import statistics
+
+import numpy as np
+import pytest
+from scipy import stats as scipy_stats
+
+from thinning import qc
+
+SPEC_TOML = """
+[[product]]
+name = "ink-base-A"
+relaxation_time_s = [0.008, 0.012]
+filament_lifetime_s = [0.05, 0.20]
+extensional_viscosity_max_Pa_s = [10.0, 1000.0]
+replicates = 3
+max_cv = 0.10
+
+[[product]]
+name = "open-ended"
+relaxation_time_s = [nan, 0.012]
+"""
+
+SPEC = qc.Spec(name="ink", relaxation_time_s=(0.008, 0.012), replicates=3, max_cv=0.10)
+
+
+def rep(label, lam, *, status="ok", quality="good", reason=None, **values):
+    return qc.Replicate(label=label, status=status, quality=quality, reason=reason,
+                        values={"relaxation_time_s": lam, **values})
+
+
+# ---------------------------------------------------------------------------------------------- specs
+def test_parse_specs_reads_the_contract_example():
+    ink, open_ended = qc.parse_specs(SPEC_TOML)
+    assert ink == qc.Spec(name="ink-base-A", relaxation_time_s=(0.008, 0.012), filament_lifetime_s=(0.05, 0.20),
+                          extensional_viscosity_max_Pa_s=(10.0, 1000.0), replicates=3, max_cv=0.10)
+    assert set(ink.limits) == {"relaxation_time_s", "filament_lifetime_s", "extensional_viscosity_max_Pa_s"}
+    assert math.isnan(open_ended.relaxation_time_s[0]) and open_ended.relaxation_time_s[1] == 0.012
+    assert set(open_ended.limits) == {"relaxation_time_s"}
+
+
+@pytest.mark.parametrize("text, words", [
+    ("[[product]]\nrelaxation_time_s = [1.0, 2.0]\n", "needs a name"),
+    ('[[product]]\nname = "a"\n', "needs relaxation_time_s"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [2.0, 1.0]\n', "above its maximum"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0]\n', "two numbers"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nreplicate = 3\n', "unknown key 'replicate'"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nreplicates = 0\n', "at least 1"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nmax_cv = -1\n', "positive"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\n[[product]]\nname = "a"\n'
+     'relaxation_time_s = [1.0, 2.0]\n', "specified twice"),
+    ("name = 'a'\n", "no [[product]]"),
+    ("[[product]\n", "not valid TOML"),
+])
+def test_bad_specs_are_one_sentence_errors(text, words):
+    with pytest.raises(qc.SpecError, match=None) as info:
+        qc.parse_specs(text)
+    assert words in str(info.value)
+    assert "\n" not in str(info.value)
+
+
+# ---------------------------------------------------------------------------------------------- verdicts
+def test_three_good_replicates_inside_the_limits_pass():
+    verdict = qc.lot_verdict(SPEC, [rep("a", 0.0100), rep("b", 0.0102), rep("c", 0.0098)])
+    assert verdict.verdict == "pass" and verdict.reasons == ()
+    assert verdict.n_valid == 3 and verdict.valid == (True, True, True)
+
+
+def test_lot_statistics_match_independent_formulas():
+    rng = np.random.default_rng(11)
+    values = list(rng.normal(0.010, 0.0004, size=4))
+    lam = qc.lot_verdict(SPEC, [rep(str(i), v) for i, v in enumerate(values)]).stats["relaxation_time_s"]
+    # sample statistics from the standard library; interval from scipy's t distribution (library values)
+    assert lam.mean == pytest.approx(statistics.fmean(values), rel=1e-12)
+    assert lam.sd == pytest.approx(statistics.stdev(values), rel=1e-12)
+    assert lam.cv == pytest.approx(statistics.stdev(values) / statistics.fmean(values), rel=1e-12)
+    low, high = scipy_stats.t.interval(0.95, len(values) - 1, loc=statistics.fmean(values),
+                                       scale=statistics.stdev(values) / math.sqrt(len(values)))
+    assert lam.ci95 == pytest.approx((low, high), rel=1e-12)
+
+
+def test_limits_are_inclusive_and_nan_is_an_open_end():
+    at_edges = qc.lot_verdict(SPEC, [rep("a", 0.008), rep("b", 0.008), rep("c", 0.008)])
+    assert at_edges.verdict == "pass"
+    open_low = qc.Spec(name="o", relaxation_time_s=(math.nan, 0.012), replicates=1)
+    assert qc.lot_verdict(open_low, [rep("a", 1e-6)]).verdict == "pass"
+    assert qc.lot_verdict(open_low, [rep("a", 0.0121)]).verdict == "fail"
+
+
+def test_a_lot_mean_outside_a_limit_fails_and_lists_every_other_reason_too():
+    reps = [rep("a", 0.0130), rep("b", 0.0135), rep("c", 0.0100, quality="doubtful")]
+    verdict = qc.lot_verdict(SPEC, reps)
+    assert verdict.verdict == "fail"
+    text = " | ".join(verdict.reasons)
+    assert "lot mean relaxation time 0.01325 s is above the maximum 0.012 s" in text
+    assert "2 valid replicates of 3 required" in text
+    assert "replicate a: relaxation time 0.013 s is above the maximum 0.012 s" in text
+    assert "replicate b" in text
+    assert "replicate c is not valid: quality doubtful" in text
+    assert all("; " not in reason for reason in verdict.reasons)
+
+
+@pytest.mark.parametrize("reps, expected", [
+    ([rep("a", 0.010), rep("b", 0.010)], "2 valid replicates of 3 required"),
+    ([rep("a", 0.0085), rep("b", 0.0100), rep("c", 0.0118)], "coefficient of variation of the relaxation time"),
+    ([rep("a", 0.0079), rep("b", 0.0100), rep("c", 0.0100)], "replicate a: relaxation time 0.0079 s is below"),
+    ([rep("a", 0.010), rep("b", 0.010), rep("c", 0.010), rep("d", None, status="failed", reason="no frame rate")],
+     "replicate d is not valid: failed (no frame rate)"),
+    ([rep("a", 0.010), rep("b", 0.010), rep("c", 0.010), rep("d", None)],
+     "replicate d is not valid: no relaxation time"),
+])
+def test_review_reasons(reps, expected):
+    verdict = qc.lot_verdict(SPEC, reps)
+    assert verdict.verdict == "review"
+    assert any(expected in reason for reason in verdict.reasons), verdict.reasons
+
+
+def test_every_limited_quantity_counts():
+    spec = qc.Spec(name="x", relaxation_time_s=(0.008, 0.012), filament_lifetime_s=(0.05, 0.20), replicates=2)
+    missing = qc.lot_verdict(spec, [rep("a", 0.01, filament_lifetime_s=0.1), rep("b", 0.01)])
+    assert missing.verdict == "review" and missing.n_valid == 1
+    assert any("replicate b is not valid: no filament lifetime" in r for r in missing.reasons)
+    long = qc.lot_verdict(spec, [rep("a", 0.01, filament_lifetime_s=0.3), rep("b", 0.01, filament_lifetime_s=0.25)])
+    assert long.verdict == "fail"
+    assert long.stats["filament_lifetime_s"].mean == pytest.approx(0.275)
+
+
+def test_no_specification_means_review():
+    verdict = qc.lot_verdict(None, [rep("a", 0.01)], product="mystery")
+    assert verdict.verdict == "review"
+    assert verdict.reasons == ("no specification loaded for product 'mystery'",)
+
+
+def test_no_valid_replicate_gives_no_mean_and_review():
+    verdict = qc.lot_verdict(SPEC, [rep("a", None, status="failed", reason="unreadable")])
+    assert verdict.verdict == "review" and verdict.stats["relaxation_time_s"].mean is None
+    assert verdict.reasons[0] == "0 valid replicates of 3 required"
+
+
+# ---------------------------------------------------------------------------------------------- run rules
+@pytest.mark.parametrize("values, expected", [
+    ([0, 0, 3.5], {"beyond-3-sigma"}),
+    ([0, 0, -3.5], {"beyond-3-sigma"}),
+    ([0, 0, 3.0], set()),                      # on the limit is not beyond it
+    ([0, 2.5, 2.5], {"2-of-3-beyond-2-sigma"}),
+    ([2.5, 0, 2.5], {"2-of-3-beyond-2-sigma"}),
+    ([-2.5, 0, 2.5], set()),                   # opposite sides
+    ([2.5, 2.5, 0], set()),                    # the lot itself is not part of the pattern
+    ([1.5, 1.5, 0, 1.5, 1.5], {"4-of-5-beyond-1-sigma"}),
+    ([1.5, 0, 0, 1.5, 1.5], set()),
+    ([0.5] * 8, {"8-on-one-side"}),
+    ([-0.5] + [0.5] * 7, set()),
+    ([-0.1, -0.2, -0.3, -0.4, -0.5, -0.6], {"6-trending"}),
+    ([0.1, 0.2, 0.3, 0.4, 0.5, 0.5], set()),   # a tie breaks the trend
+    ([0.2, 0.3, 0.4, 0.5, 0.6], set()),        # five are not six
+])
+def test_run_rules_by_hand(values, expected):
+    # Western Electric (1956) zone rules and Nelson (1984) test 3, with centre 0 and sigma 1
+    assert set(qc.run_rule_flags(values, 0.0, 1.0)) == expected
+
+
+def test_rule_names_are_documented():
+    assert set(qc.CHART_RULES) == {"beyond-3-sigma", "2-of-3-beyond-2-sigma", "4-of-5-beyond-1-sigma",
+                                   "8-on-one-side", "6-trending", "moving-range-above-limit"}
+
+
+# ---------------------------------------------------------------------------------------------- charts
+def test_control_limits_come_from_at_least_five_earlier_lots_only():
+    values = [10.0, 11.0, 10.0, 11.0, 10.0, 100.0]
+    points = qc.control_chart([(f"L{i}", v) for i, v in enumerate(values)])
+    assert all(p.centre is None and p.flags == () for p in points[:5])
+    last = points[5]
+    # hand-computed: centre = 52/5, mean moving range = 1, sigma = 1/d2 with d2 = 1.128 (Montgomery, n = 2)
+    assert last.centre == pytest.approx(10.4)
+    assert last.sigma == pytest.approx(1 / 1.128)
+    assert last.ucl == pytest.approx(10.4 + 3 / 1.128)
+    assert last.mr_ucl == pytest.approx(3.267)  # D4 = 3.267 for n = 2 (Montgomery)
+    assert last.n_baseline == 5
+    assert {"beyond-3-sigma", "moving-range-above-limit"} <= set(last.flags)
+
+
+def test_each_lot_is_judged_against_the_lots_before_it():
+    rng = np.random.default_rng(3)
+    values = list(rng.normal(0.010, 0.0003, size=15))
+    points = qc.control_chart([(i, v) for i, v in enumerate(values)])
+    for i, point in enumerate(points[5:], start=5):
+        earlier = values[:i]
+        assert point.centre == pytest.approx(statistics.fmean(earlier), rel=1e-12)
+        mr = statistics.fmean(abs(b - a) for a, b in zip(earlier, earlier[1:]))
+        assert point.sigma == pytest.approx(mr / 1.128, rel=1e-12)
+        assert point.moving_range == pytest.approx(abs(values[i] - values[i - 1]))
+
+
+def test_a_drifting_product_gets_trend_and_shift_flags_while_a_steady_one_does_not():
+    steady = [0.010, 0.0102, 0.0099, 0.0101, 0.0100, 0.0098, 0.0101, 0.0100]
+    assert all(p.flags == () for p in qc.control_chart(list(enumerate(steady))))
+    drifting = steady[:5] + [0.0103, 0.0106, 0.0109, 0.0112, 0.0115, 0.0118]
+    flags = qc.control_chart(list(enumerate(drifting)))[-1].flags
+    assert "6-trending" in flags and "beyond-3-sigma" in flags

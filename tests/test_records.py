@@ -1,0 +1,351 @@
+"""The records database and the `records` commands, on SQLite and PostgreSQL (db_url fixture)."""
+
+import csv
+import io
+import json
+import os
+import subprocess
+import sys
+import textwrap
+import threading
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from sqlalchemy import create_engine, func, select, update
+
+from services import fake_curve, fake_result, source_hash, write_batch
+from thinning import records as rec
+from thinning.cli_records import records as records_cli
+
+# columns exactly as written in interface.md ("thinning records …")
+CONTRACT_EXPORT = ["product", "lot", "sample", "replicate", "status", "quality", "regime", "relaxation_time_s",
+                   "relaxation_time_ci95_low_s", "relaxation_time_ci95_high_s", "shear_viscosity_Pa_s",
+                   "extensional_viscosity_max_Pa_s", "breakup_time_s", "filament_lifetime_s", "sha256",
+                   "analysed_at", "tool_version"]
+CONTRACT_LOTS = ["product", "lot", "made_on", "n_valid", "relaxation_time_mean_s", "relaxation_time_sd_s",
+                 "relaxation_time_cv", "verdict", "reasons", "chart_flags"]
+
+SPECS = """
+[[product]]
+name = "ink-A"
+relaxation_time_s = [0.008, 0.012]
+replicates = 3
+max_cv = 0.10
+
+[[product]]
+name = "ink-B"
+relaxation_time_s = [0.002, nan]
+replicates = 2
+max_cv = 0.2
+"""
+
+
+def lot_rows(product, lot, lams, *, made_on="2026-01-05", analysed_at="2026-02-01T10:00:00Z", tool="0.1.0",
+             options=None):
+    return [dict(sample=f"{lot}-s", lot=lot, product=product, replicate=str(i), made_on=made_on,
+                 analysed_at=analysed_at, notes="",
+                 result=fake_result(relaxation_time_s=lam, sha256=source_hash(product, lot, i), tool_version=tool,
+                                    options=options))
+            for i, lam in enumerate(lams, start=1)]
+
+
+def run(args, db_url, **kwargs):
+    result = CliRunner().invoke(records_cli, [*args, "--db", db_url], **kwargs)
+    return result
+
+
+def count(db_url, table, *where):
+    engine = create_engine(db_url)
+    try:
+        with engine.connect() as conn:
+            return conn.execute(select(func.count()).select_from(table).where(*where)).scalar()
+    finally:
+        engine.dispose()
+
+
+def test_load_batch_is_idempotent_and_keeps_full_precision(db_url, tmp_path):
+    lam = 0.010000000000000002  # needs all 17 digits to round-trip
+    rows = lot_rows("ink-A", "L1", [lam, 0.0101, 0.0099])
+    write_batch(tmp_path / "b", rows)
+    with rec.open_records(db_url) as store:
+        assert store.load_batch(tmp_path / "b") == {"inserted": 3, "unchanged": 0, "superseded": 0, "failure": 0}
+        assert store.load_batch(tmp_path / "b") == {"inserted": 0, "unchanged": 3, "superseded": 0, "failure": 0}
+        exported = store.export_rows()
+    assert count(db_url, rec.measurements) == 3
+    assert [r["relaxation_time_s"] for r in exported] == [lam, 0.0101, 0.0099]
+    out = tmp_path / "export.csv"
+    result = run(["export", "--out", str(out)], db_url)
+    assert result.exit_code == 0, result.output
+    with out.open() as handle:
+        reader = csv.DictReader(handle)
+        table = list(reader)
+    assert reader.fieldnames == CONTRACT_EXPORT
+    assert float(table[0]["relaxation_time_s"]) == lam
+    assert table[0]["analysed_at"] == "2026-02-01T10:00:00+00:00" and table[0]["status"] == "ok"
+    assert table[0]["shear_viscosity_Pa_s"] == ""
+
+
+def test_store_result_copies_the_diameter_curve(db_url, tmp_path):
+    write_batch(tmp_path / "b", lot_rows("ink-A", "L1", [0.01]))
+    row_dir = tmp_path / "b" / "1-L1-s"
+    result = json.loads((row_dir / "result.json").read_text())
+    manifest_row = {"sample": "L1-s", "lot": "L1", "product": "ink-A", "replicate": "1", "path": "x.avi",
+                    "status": "ok", "sha256": result["source"]["sha256"], "made_on": "2026-01-05"}
+    with rec.open_records(db_url) as store:
+        assert store.store_result(manifest_row, result, analysed_at="2026-02-01T10:00:00Z",
+                                  row_dir=row_dir) == "inserted"
+        assert store.store_result(manifest_row, result, analysed_at="2026-02-02T10:00:00Z",
+                                  row_dir=row_dir) == "unchanged"
+        detail = store.lot_detail("L1")
+    (t, d), = detail.curves.values()
+    t_true, d_true = fake_curve(0.01)
+    np.testing.assert_array_equal(t, t_true)
+    np.testing.assert_array_equal(np.isnan(d), np.isnan(d_true))
+    np.testing.assert_array_equal(d[~np.isnan(d)], d_true[~np.isnan(d_true)])
+
+
+def test_a_changed_result_supersedes_and_keeps_history(db_url, tmp_path):
+    write_batch(tmp_path / "old", lot_rows("ink-A", "L1", [0.010, 0.010, 0.010], tool="0.1.0",
+                                           options={"surface_tension_N_m": 0.05}))
+    write_batch(tmp_path / "new", lot_rows("ink-A", "L1", [0.011, 0.010, 0.010], tool="0.2.0",
+                                           analysed_at="2026-03-01T09:00:00Z", options={"surface_tension_N_m": 0.06}))
+    with rec.open_records(db_url) as store:
+        store.load_batch(tmp_path / "old")
+        assert store.load_batch(tmp_path / "new") == {"inserted": 0, "unchanged": 0, "superseded": 3, "failure": 0}
+        assert store.load_batch(tmp_path / "new")["unchanged"] == 3
+        exported = store.export_rows()
+        detail = store.lot_detail("L1")
+    assert len(exported) == 3 and {r["tool_version"] for r in exported} == {"0.2.0"}
+    assert exported[0]["relaxation_time_s"] == 0.011
+    assert count(db_url, rec.measurements) == 6
+    assert len(detail.history) == 3
+    old = detail.history[0]
+    assert old["tool_version"] == "0.1.0" and json.loads(old["options"]) == {"surface_tension_N_m": 0.05}
+    assert old["superseded_at"] and old["superseded_by"] is not None and old["analysed_at"].startswith("2026-02-01")
+    # the verdict only sees the current measurements
+    assert detail.summary.verdict.stats["relaxation_time_s"].mean == pytest.approx((0.011 + 0.020) / 3)
+    result = run(["show", "L1", "--history"], db_url)
+    assert result.exit_code == 0 and "superseded" in result.output and "0.1.0" in result.output
+
+
+def test_failed_rows_are_no_measurements_but_make_the_lot_review(db_url, tmp_path):
+    rows = lot_rows("ink-A", "L1", [0.010, 0.010, 0.010])
+    rows.append(dict(sample="L1-s", lot="L1", product="ink-A", replicate="4", status="failed",
+                     reason="no frame rate anywhere", sha256="ab" * 32, analysed_at="2026-02-01T10:00:00Z"))
+    write_batch(tmp_path / "b", rows)
+    with rec.open_records(db_url) as store:
+        store.load_specs(_specs(tmp_path))
+        assert store.load_batch(tmp_path / "b")["failure"] == 1
+        (lot,) = store.lots()
+        assert len(store.export_rows()) == 3
+        assert lot.verdict.verdict == "review" and lot.verdict.n_valid == 3 and lot.verdict.n_replicates == 4
+        assert lot.verdict.reasons == ("replicate L1-s #4 is not valid: failed (no frame rate anywhere)",)
+        # the same row analysed successfully later: the failure no longer counts
+        fixed = fake_result(relaxation_time_s=0.0101, sha256="ab" * 32)
+        store.store_result({"sample": "L1-s", "lot": "L1", "product": "ink-A", "replicate": "4", "status": "ok"},
+                           fixed, analysed_at="2026-02-02T10:00:00Z")
+        (lot,) = store.lots()
+    assert lot.verdict.verdict == "pass" and lot.verdict.n_valid == 4
+    assert count(db_url, rec.failures) == 1  # kept, no longer counted
+
+
+def _specs(tmp_path):
+    path = tmp_path / "specs.toml"
+    path.write_text(SPECS)
+    return path
+
+
+def test_lots_csv_has_the_contract_columns_and_verdicts(db_url, tmp_path):
+    rows = (lot_rows("ink-A", "A1", [0.010, 0.0102, 0.0098], made_on="2026-01-02")
+            + lot_rows("ink-A", "A2", [0.013, 0.0135, 0.0128], made_on="2026-01-01")
+            + lot_rows("ink-B", "B1", [0.005], made_on="2026-01-03"))
+    write_batch(tmp_path / "b", rows)
+    assert run(["load-specs", str(_specs(tmp_path))], db_url).exit_code == 0
+    loaded = run(["load", str(tmp_path / "b")], db_url)
+    assert loaded.exit_code == 0 and "7 new" in loaded.output
+    result = run(["lots", "--csv"], db_url)
+    assert result.exit_code == 0, result.output
+    reader = csv.DictReader(io.StringIO(result.output))
+    table = list(reader)
+    assert reader.fieldnames == CONTRACT_LOTS
+    assert [(r["product"], r["lot"]) for r in table] == [("ink-A", "A2"), ("ink-A", "A1"), ("ink-B", "B1")]
+    by_lot = {r["lot"]: r for r in table}
+    assert by_lot["A1"]["verdict"] == "pass" and by_lot["A1"]["reasons"] == ""
+    assert float(by_lot["A1"]["relaxation_time_mean_s"]) == pytest.approx(0.010)
+    assert by_lot["A2"]["verdict"] == "fail" and "above the maximum" in by_lot["A2"]["reasons"]
+    assert by_lot["B1"]["verdict"] == "review" and by_lot["B1"]["reasons"] == "1 valid replicate of 2 required"
+    assert by_lot["B1"]["relaxation_time_sd_s"] == "" and by_lot["B1"]["n_valid"] == "1"
+    only_b = run(["lots", "--csv", "--product", "ink-B"], db_url)
+    assert len(only_b.output.strip().splitlines()) == 2
+    human = run(["lots"], db_url)
+    assert human.exit_code == 0 and "A2" in human.output and "fail" in human.output
+
+
+def test_chart_flags_follow_production_order(db_url, tmp_path):
+    # six steady lots made in January, then a lot far above them: stored in scrambled order
+    lams = [0.0100, 0.0102, 0.0099, 0.0101, 0.0100, 0.0098, 0.0118]
+    rows = []
+    for i in (6, 2, 0, 5, 1, 4, 3):
+        rows += lot_rows("ink-A", f"L{i}", [lams[i]] * 3, made_on=f"2026-01-{i + 10:02d}")
+    write_batch(tmp_path / "b", rows)
+    with rec.open_records(db_url) as store:
+        store.load_batch(tmp_path / "b")
+        summaries = store.lots()
+    assert [s.lot for s in summaries] == [f"L{i}" for i in range(7)]
+    assert all(s.chart_flags == () for s in summaries[:6])
+    assert "beyond-3-sigma" in summaries[6].chart_flags
+    assert summaries[6].chart.n_baseline == 6
+    assert summaries[6].chart.centre == pytest.approx(np.mean(lams[:6]))
+
+
+def test_shared_lot_ids_need_a_product_and_unknown_lots_are_reported(db_url, tmp_path):
+    write_batch(tmp_path / "b", lot_rows("ink-A", "X1", [0.01]) + lot_rows("ink-B", "X1", [0.005]))
+    assert run(["load", str(tmp_path / "b")], db_url).exit_code == 0
+    ambiguous = run(["show", "X1"], db_url)
+    assert ambiguous.exit_code == 2
+    assert ambiguous.output.strip() == ("thinning: lot 'X1' exists for products 'ink-A', 'ink-B': "
+                                        "name one with --product.")
+    shown = run(["show", "X1", "--product", "ink-B"], db_url)
+    assert shown.exit_code == 0 and "ink-B" in shown.output and "review" in shown.output
+    unknown = run(["show", "nope"], db_url)
+    assert unknown.exit_code == 2 and unknown.output.strip() == "thinning: no lot 'nope' in the records."
+    csv_out = run(["show", "X1", "--product", "ink-A", "--csv"], db_url)
+    assert csv_out.output.splitlines()[0] == ",".join(CONTRACT_EXPORT)
+
+
+def test_results_csv_alone_is_enough(db_url, tmp_path):
+    write_batch(tmp_path / "b", lot_rows("ink-A", "L1", [0.0105]))
+    (tmp_path / "b" / "1-L1-s" / "result.json").unlink()
+    with rec.open_records(db_url) as store:
+        store.load_batch(tmp_path / "b")
+        (row,) = store.export_rows()
+    assert row["relaxation_time_s"] == 0.0105 and row["relaxation_time_ci95_low_s"] == 0.0105 * 0.97
+
+
+def _store_many(url, worker, n, barrier=None):
+    with rec.open_records(url) as store:
+        if barrier is not None:
+            barrier.wait()
+        for i in range(n):
+            sha = source_hash("race", worker, i)
+            store.store_result({"sample": f"w{worker}-{i}", "lot": "RACE", "product": "ink-A", "replicate": "1",
+                                "status": "ok", "made_on": "2026-01-01"},
+                               fake_result(relaxation_time_s=0.01, sha256=sha),
+                               analysed_at=f"2026-02-01T10:00:{i:02d}Z")
+            # every worker also rewrites one shared identity with its own result
+            store.store_result({"sample": "shared", "lot": "RACE", "product": "ink-A", "replicate": "1",
+                                "status": "ok"},
+                               fake_result(relaxation_time_s=0.01 + 1e-5 * (worker * n + i), sha256="cd" * 32),
+                               analysed_at="2026-02-01T11:00:00Z")
+
+
+def _check_race(url, n_workers, n):
+    with rec.open_records(url) as store:
+        rows = store.export_rows()
+    assert len(rows) == n_workers * n + 1
+    assert count(url, rec.measurements, rec.measurements.c.is_current.is_(True)) == n_workers * n + 1
+    # the shared identity: one current, every other write kept as history
+    assert count(url, rec.measurements, rec.measurements.c.sha256 == "cd" * 32) == n_workers * n
+    assert count(url, rec.lots) == 1
+
+
+def test_two_threads_storing_at_once_lose_nothing(db_url):
+    barrier = threading.Barrier(3)
+    errors = []
+
+    def work(worker):
+        try:
+            _store_many(db_url, worker, 12, barrier)
+        except Exception as exc:  # reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work, args=(w,)) for w in range(3)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert errors == []
+    _check_race(db_url, 3, 12)
+
+
+def test_two_processes_storing_at_once_lose_nothing(db_url, tmp_path):
+    with rec.open_records(db_url):
+        pass  # schema in place; the processes race on rows, not on tables
+    # each process announces it is ready, then both start storing when both are (a file barrier)
+    script = textwrap.dedent(f"""
+        import sys, time
+        from pathlib import Path
+        sys.path.insert(0, {str(Path(__file__).parent)!r})
+        from test_records import _store_many
+        gate = Path({str(tmp_path)!r})
+        (gate / f"ready-{{sys.argv[1]}}").touch()
+        deadline = time.time() + 60
+        while len(list(gate.glob("ready-*"))) < 2 and time.time() < deadline:
+            time.sleep(0.005)
+        _store_many({db_url!r}, int(sys.argv[1]), 15)
+    """)
+    env = {**os.environ,
+           "PYTHONPATH": os.pathsep.join([str(Path(__file__).parents[1]), os.environ.get("PYTHONPATH", "")])}
+    procs = [subprocess.Popen([sys.executable, "-c", script, str(w)], env=env, stderr=subprocess.PIPE,
+                              text=True) for w in range(2)]
+    outcomes = [(p.wait(timeout=120), p.stderr.read()) for p in procs]
+    for p in procs:
+        p.stderr.close()
+    assert [code for code, _ in outcomes] == [0, 0], outcomes
+    _check_race(db_url, 2, 15)
+
+
+def test_the_default_database_comes_from_the_environment(tmp_path, monkeypatch):
+    monkeypatch.setenv("THINNING_DB", f"sqlite:///{tmp_path / 'env.db'}")
+    write_batch(tmp_path / "b", lot_rows("ink-A", "L1", [0.01]))
+    result = CliRunner().invoke(records_cli, ["load", str(tmp_path / "b")])
+    assert result.exit_code == 0, result.output
+    assert (tmp_path / "env.db").is_file()
+    help_text = CliRunner().invoke(records_cli, ["lots", "--help"]).output
+    assert "THINNING_DB" in help_text and "env.db" in help_text and "records.db" in help_text
+    monkeypatch.delenv("THINNING_DB")
+    assert rec.default_db_url() == f"sqlite:///{rec.default_db_path()}"
+    assert rec.default_db_path().name == "records.db"
+
+
+def test_user_errors_are_one_sentence(tmp_path):
+    url = f"sqlite:///{tmp_path / 'r.db'}"
+    cases = [
+        ["load", str(tmp_path / "missing")],
+        ["load-specs", str(tmp_path / "missing.toml")],
+        ["lots", "--product", "nothing"],
+    ]
+    bad_specs = tmp_path / "bad.toml"
+    bad_specs.write_text('[[product]]\nname = "a"\nrelaxation_time_s = [2.0, 1.0]\n')
+    cases.append(["load-specs", str(bad_specs)])
+    for args in cases:
+        result = run(args, url)
+        assert result.exit_code == 2, (args, result.output)
+        assert len(result.output.strip().splitlines()) == 1 and "Traceback" not in result.output
+    bad_url = CliRunner().invoke(records_cli, ["lots", "--db", "nonsense://"])
+    assert bad_url.exit_code == 2 and len(bad_url.output.strip().splitlines()) == 1
+
+
+def test_a_newer_schema_is_refused(tmp_path):
+    url = f"sqlite:///{tmp_path / 'r.db'}"
+    rec.open_records(url).close()
+    engine = create_engine(url)
+    with engine.begin() as conn:
+        conn.execute(update(rec.schema_version).values(version=rec.SCHEMA_VERSION + 1))
+    engine.dispose()
+    with pytest.raises(rec.RecordsError, match="newer"):
+        rec.open_records(url)
+
+
+def test_specs_update_in_place(db_url, tmp_path):
+    with rec.open_records(db_url) as store:
+        store.load_specs(_specs(tmp_path))
+        (tmp_path / "v2.toml").write_text('[[product]]\nname = "ink-A"\nrelaxation_time_s = [0.009, 0.011]\n'
+                                          'filament_lifetime_s = [nan, 0.3]\nreplicates = 2\nmax_cv = 0.05\n')
+        store.load_specs(tmp_path / "v2.toml")
+        specs = store.specs()
+    assert specs["ink-A"].relaxation_time_s == (0.009, 0.011) and specs["ink-A"].replicates == 2
+    assert np.isnan(specs["ink-A"].filament_lifetime_s[0]) and specs["ink-A"].filament_lifetime_s[1] == 0.3
+    assert np.isnan(specs["ink-B"].relaxation_time_s[1]) and specs["ink-B"].extensional_viscosity_max_Pa_s is None

@@ -1,0 +1,270 @@
+"""``thinning records …`` and ``thinning report``: the per-lot records from the command line.
+
+Thin: parse, call :mod:`thinning.records` / :mod:`thinning.report.lot`, print.
+Heavy modules are imported inside the commands so that ``thinning --help``
+stays fast. Errors the user can fix exit 2 with one sentence.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+import os
+import re
+import sys
+
+import click
+from platformdirs import user_data_dir
+
+from .cli import FriendlyError
+
+ENV_DB = "THINNING_DB"  # same name as thinning.records.ENV_DB
+
+
+def _hide_password(url: str) -> str:
+    return re.sub(r"://([^:/@]+):[^@]*@", r"://\1:***@", url)
+
+
+def _db_help() -> str:
+    fallback = f"sqlite:///{os.path.join(user_data_dir('thinning'), 'records.db')}"
+    now = os.environ.get(ENV_DB)
+    shown = f" (set now: {_hide_password(now)})" if now else ""
+    return ("Records database, any SQLAlchemy URL: sqlite:///file.db or "
+            "postgresql+psycopg://user:pw@host:port/db. Default: the environment variable "
+            f"{ENV_DB}{shown}, else {fallback}.")
+
+
+class _DbOption(click.Option):
+    """--db, whose help shows the default database as it is when --help runs."""
+
+    def get_help_record(self, ctx):
+        self.help = _db_help()
+        return super().get_help_record(ctx)
+
+
+def db_option(func):
+    return click.option("--db", "db_url", cls=_DbOption, metavar="URL", default=None)(func)
+
+
+def product_option(func):
+    return click.option("--product", default=None, metavar="NAME",
+                        help="Product name; required where two products share the lot id.")(func)
+
+
+def csv_option(func):
+    return click.option("--csv", "as_csv", is_flag=True, help="Write CSV to standard output.")(func)
+
+
+def _open(db_url):
+    from .records import RecordsError, open_records
+
+    try:
+        return open_records(db_url)
+    except RecordsError as exc:
+        raise FriendlyError(str(exc)) from None
+
+
+def _friendly(call, *args, **kwargs):
+    """Run ``call``; a user-fixable error becomes a one-sentence exit 2."""
+    from .qc import SpecError
+    from .records import RecordsError
+
+    try:
+        return call(*args, **kwargs)
+    except (RecordsError, SpecError) as exc:
+        raise FriendlyError(str(exc)) from None
+
+
+def csv_cell(value) -> str:
+    """CSV text: full-precision numbers (shortest round trip), empty for None/NaN."""
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return ""
+    if isinstance(value, bool):
+        return str(value).lower()
+    if isinstance(value, float):
+        return repr(value)
+    return str(value)
+
+
+def _write_csv(handle, columns, rows) -> None:
+    writer = csv.writer(handle, lineterminator="\n")
+    writer.writerow(columns)
+    for row in rows:
+        writer.writerow([csv_cell(row[col]) for col in columns])
+
+
+def _ms(value, digits=4) -> str:
+    return "—" if value is None else f"{value * 1e3:.{digits}g}"
+
+
+def _console():
+    from rich.console import Console
+
+    return Console(file=sys.stdout, width=max(120, Console().width), highlight=False)
+
+
+_VERDICT_STYLE = {"pass": "bold green", "review": "bold yellow", "fail": "bold red"}
+
+
+@click.group()
+def records():
+    """Per-lot records: lots with verdicts, measurements, export, specifications.
+
+    Every command takes --db URL (see each command's --help for the default).
+    """
+
+
+@records.command("lots")
+@db_option
+@product_option
+@csv_option
+def lots_command(db_url, product, as_csv):
+    """One line per lot: mean relaxation time, verdict, reasons and control-chart flags."""
+    from .records import LOT_COLUMNS
+
+    with _open(db_url) as store:
+        summaries = _friendly(store.lots, product=product)
+    rows = [s.as_row() for s in summaries]
+    if as_csv:
+        _write_csv(sys.stdout, LOT_COLUMNS, rows)
+        return
+    if not rows:
+        click.echo("No lots in the records yet.")
+        return
+    from rich.table import Table
+
+    table = Table(show_lines=False)
+    for header in ("product", "lot", "made on", "valid", "λ mean (ms)", "λ sd (ms)", "CV", "verdict",
+                   "reasons", "chart flags"):
+        table.add_column(header, overflow="fold")
+    for row in rows:
+        cv = "—" if row["relaxation_time_cv"] is None else f"{row['relaxation_time_cv']:.3f}"
+        table.add_row(row["product"], row["lot"], row["made_on"] or "—", str(row["n_valid"]),
+                      _ms(row["relaxation_time_mean_s"]), _ms(row["relaxation_time_sd_s"], 3), cv,
+                      f"[{_VERDICT_STYLE[row['verdict']]}]{row['verdict']}[/]",
+                      row["reasons"].replace("; ", "\n") or "—", row["chart_flags"] or "—")
+    _console().print(table)
+
+
+@records.command("show")
+@click.argument("lot")
+@db_option
+@product_option
+@csv_option
+@click.option("--history", is_flag=True, help="Also list superseded measurements (kept as history).")
+def show_command(lot, db_url, product, as_csv, history):
+    """One lot's measurements, verdict and reasons."""
+    import json
+
+    from rich.markup import escape
+    from rich.table import Table
+
+    from .records import EXPORT_COLUMNS, replicate_label
+
+    with _open(db_url) as store:
+        detail = _friendly(store.lot_detail, lot, product=product)
+    if as_csv:
+        _write_csv(sys.stdout, EXPORT_COLUMNS, detail.measurements)
+        return
+    summary = detail.summary
+    verdict = summary.verdict
+    lam = summary.relaxation_time
+    console = _console()
+    console.print(f"[bold]{escape(summary.product)}[/] lot [bold]{escape(summary.lot)}[/]  made on "
+                  f"{summary.made_on or '—'}  first analysed {summary.first_analysed_at}")
+    console.print(f"verdict: [{_VERDICT_STYLE[verdict.verdict]}]{verdict.verdict}[/]  "
+                  f"({verdict.n_valid} valid of {verdict.n_replicates} replicates)")
+    for reason in verdict.reasons:
+        console.print(f"  - {escape(reason)}")
+    if summary.chart_flags:
+        console.print("chart flags: " + ", ".join(summary.chart_flags))
+    if lam.mean is not None:
+        extra = f", sd {_ms(lam.sd, 3)} ms, CV {lam.cv:.3f}" if lam.sd is not None and lam.cv is not None else ""
+        interval = f", 95 % interval {_ms(lam.ci95[0])}–{_ms(lam.ci95[1])} ms" if lam.ci95 else ""
+        console.print(f"relaxation time: mean {_ms(lam.mean)} ms{extra}{interval}")
+    table = Table(title="measurements")
+    for header in ("sample", "rep.", "λ (ms)", "95 % interval (ms)", "quality", "regime", "valid",
+                   "warnings", "analysed at", "tool", "sha256"):
+        table.add_column(header, overflow="fold")
+    valid = dict(zip((m["id"] for m in detail.measurements), verdict.valid))
+    for m in detail.measurements:
+        interval = ("—" if m["relaxation_time_ci95_low_s"] is None else
+                    f"{_ms(m['relaxation_time_ci95_low_s'])}–{_ms(m['relaxation_time_ci95_high_s'])}")
+        table.add_row(escape(m["sample"]), escape(m["replicate"]), _ms(m["relaxation_time_s"]), interval,
+                      m["quality"] or "—", m["regime"] or "—", "yes" if valid[m["id"]] else "no",
+                      str(len(json.loads(m["warnings"]))), m["analysed_at"], m["tool_version"] or "—",
+                      m["sha256"][:12])
+    for f in detail.failures:
+        table.add_row(escape(f["sample"]), escape(f["replicate"]), "—", "—", "failed", "—", "no", "—",
+                      f["analysed_at"], f["tool_version"] or "—", (f["sha256"] or "—")[:12])
+    console.print(table)
+    for f in detail.failures:
+        console.print(f"failed: {escape(replicate_label(f))}: {escape(f['reason'])}")
+    if history:
+        if not detail.history:
+            console.print("no superseded measurements.")
+        for h in detail.history:
+            console.print(f"superseded {h['superseded_at']}: {escape(replicate_label(h))} λ "
+                          f"{_ms(h['relaxation_time_s'])} ms, tool {h['tool_version'] or '—'}, "
+                          f"analysed {h['analysed_at']}, options {escape(h['options'])}")
+
+
+@records.command("export")
+@db_option
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False),
+              help="CSV file to write: one row per current measurement.")
+@click.option("--product", default=None, metavar="NAME", help="Only this product's measurements.")
+def export_command(db_url, out_path, product):
+    """Every current measurement to a CSV file (superseded ones are left out)."""
+    from .records import EXPORT_COLUMNS
+
+    with _open(db_url) as store:
+        rows = _friendly(store.export_rows, product=product)
+    tmp = f"{out_path}.tmp-{os.getpid()}"
+    try:
+        with open(tmp, "w", newline="", encoding="utf-8") as handle:
+            _write_csv(handle, EXPORT_COLUMNS, rows)
+        os.replace(tmp, out_path)
+    except OSError as exc:
+        raise FriendlyError(f"cannot write {out_path} ({exc.strerror}).") from None
+    click.echo(f"wrote {len(rows)} measurements to {out_path}")
+
+
+@records.command("load-specs")
+@click.argument("specs_file", type=click.Path())
+@db_option
+def load_specs_command(specs_file, db_url):
+    """Load or update product specifications from a TOML file."""
+    with _open(db_url) as store:
+        specs = _friendly(store.load_specs, specs_file)
+    click.echo(f"loaded the specifications of {len(specs)} product{'s' if len(specs) != 1 else ''}: "
+               + ", ".join(s.name for s in specs))
+
+
+@records.command("load")
+@click.argument("batch_dir", type=click.Path())
+@db_option
+def load_command(batch_dir, db_url):
+    """Store a finished batch folder (its results.csv and row folders) in one transaction."""
+    with _open(db_url) as store:
+        counts = _friendly(store.load_batch, batch_dir)
+    click.echo(f"{batch_dir}: {counts['inserted']} new, {counts['superseded']} replaced (earlier kept as "
+               f"history), {counts['unchanged']} unchanged, {counts['failure']} failed rows noted")
+
+
+@click.command("report")
+@click.argument("lot")
+@db_option
+@product_option
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
+              help="Folder for LOT.html (created if needed).")
+def report(lot, db_url, product, out_dir):
+    """Write the self-contained HTML report of one lot: verdict, curves, numbers, control chart."""
+    from .report.lot import write_lot_report
+
+    with _open(db_url) as store:
+        try:
+            path = _friendly(write_lot_report, store, lot, product=product, out_dir=out_dir)
+        except OSError as exc:
+            raise FriendlyError(f"cannot write the report into {out_dir} ({exc.strerror}).") from None
+    click.echo(f"wrote {path}")

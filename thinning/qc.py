@@ -1,0 +1,385 @@
+"""Product specifications, lot verdicts and control charts (pure: no files, no database).
+
+The rules are those of the contract (``interface.md``, "Verdicts"):
+
+* A replicate is one manifest row. It is **valid** when its status is ``ok``,
+  its quality ``good`` and every quantity the product's specification limits
+  is present.
+* A lot's value for each limited quantity is the mean of its valid
+  replicates, with the sample standard deviation (n − 1).
+* ``fail`` when a lot mean lies outside a limit (limits are inclusive; a NaN
+  end is open). Otherwise ``review`` when there are fewer valid replicates
+  than required, the coefficient of variation of λ exceeds ``max_cv``, any
+  single valid replicate lies outside a limit, or any replicate is invalid.
+  Otherwise ``pass``. Every ``fail`` and ``review`` lists all its reasons.
+* A lot of a product without a specification is ``review`` ("no
+  specification").
+
+Control charts (:func:`control_chart`) are individuals (X) and moving-range
+(MR) charts of the lot means of λ, one product at a time, in production order.
+The limits for a lot come from the product's earlier lots only (at least
+:data:`MIN_BASELINE_LOTS` of them) and never include the lot itself. A lot
+that breaks a run rule keeps its verdict and gets ``chart_flags``; the rule
+names are :data:`CHART_RULES`.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass, field
+from typing import Iterable, Mapping, Sequence
+
+import numpy as np
+from scipy import stats
+
+#: quantities a specification may limit: key → (plain name for sentences, SI unit)
+LIMITED_QUANTITIES = {
+    "relaxation_time_s": ("relaxation time", "s"),
+    "filament_lifetime_s": ("filament lifetime", "s"),
+    "extensional_viscosity_max_Pa_s": ("maximum apparent extensional viscosity", "Pa·s"),
+}
+
+VERDICTS = ("pass", "review", "fail")
+
+#: lots before this one needed for control limits (contract: at least 5)
+MIN_BASELINE_LOTS = 5
+
+# Control-chart constants for moving ranges of two consecutive points (n = 2):
+# d2 = 1.128 (mean of the range of two standard normal values, 2/sqrt(pi)) and
+# D4 = 3.267 (upper limit factor for the range chart). Source: Montgomery D.C.,
+# Introduction to Statistical Quality Control, Appendix table "Factors for
+# constructing variables control charts" (also ASTM Manual on Presentation of
+# Data and Control Chart Analysis).
+D2 = 1.128
+D4 = 3.267
+
+#: run rules, our names → one plain sentence each (documented in the README).
+CHART_RULES = {
+    "beyond-3-sigma": "the lot mean lies more than 3 sigma from the centre line",
+    "2-of-3-beyond-2-sigma": "2 of the last 3 lot means lie more than 2 sigma from the centre, on the "
+                             "same side as this lot",
+    "4-of-5-beyond-1-sigma": "4 of the last 5 lot means lie more than 1 sigma from the centre, on the "
+                             "same side as this lot",
+    "8-on-one-side": "the last 8 lot means all lie on the same side of the centre line",
+    "6-trending": "the last 6 lot means rise steadily or fall steadily",
+    "moving-range-above-limit": "the change from the previous lot exceeds the moving-range limit "
+                                "D4 × mean moving range",
+}
+
+
+class SpecError(ValueError):
+    """A specifications file that cannot be used; the message is one sentence."""
+
+
+@dataclass(frozen=True)
+class Spec:
+    """The specification of one product.
+
+    Limits are ``(min, max)`` inclusive in SI units; ``nan`` marks an open end.
+    ``None`` means the quantity is not limited.
+    """
+
+    name: str
+    relaxation_time_s: tuple[float, float]
+    filament_lifetime_s: tuple[float, float] | None = None
+    extensional_viscosity_max_Pa_s: tuple[float, float] | None = None
+    replicates: int = 3
+    max_cv: float = 0.10
+
+    @property
+    def limits(self) -> dict[str, tuple[float, float]]:
+        """The limited quantities: key → (min, max)."""
+        return {key: getattr(self, key) for key in LIMITED_QUANTITIES if getattr(self, key) is not None}
+
+
+def _limit(name: str, key: str, value) -> tuple[float, float]:
+    if (not isinstance(value, (list, tuple)) or len(value) != 2
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)):
+        raise SpecError(f"product {name!r}: {key} must be a list of two numbers [min, max] "
+                        "(use nan for an open end).")
+    low, high = float(value[0]), float(value[1])
+    if math.isinf(low) or math.isinf(high):
+        raise SpecError(f"product {name!r}: {key} uses an infinite limit; use nan for an open end.")
+    if not math.isnan(low) and not math.isnan(high) and low > high:
+        raise SpecError(f"product {name!r}: {key} has its minimum {low:g} above its maximum {high:g}.")
+    return low, high
+
+
+def spec_from_mapping(entry: Mapping) -> Spec:
+    """One ``[[product]]`` table → :class:`Spec`, checking every field."""
+    name = entry.get("name")
+    if not isinstance(name, str) or not name.strip():
+        raise SpecError("every [[product]] needs a name (text).")
+    known = {"name", "replicates", "max_cv", *LIMITED_QUANTITIES}
+    unknown = sorted(set(entry) - known)
+    if unknown:
+        raise SpecError(f"product {name!r}: unknown key {unknown[0]!r} (known: {', '.join(sorted(known))}).")
+    if "relaxation_time_s" not in entry:
+        raise SpecError(f"product {name!r} needs relaxation_time_s = [min, max].")
+    replicates = entry.get("replicates", 3)
+    if not isinstance(replicates, int) or isinstance(replicates, bool) or replicates < 1:
+        raise SpecError(f"product {name!r}: replicates must be a whole number of at least 1.")
+    max_cv = entry.get("max_cv", 0.10)
+    if not isinstance(max_cv, (int, float)) or isinstance(max_cv, bool) or not max_cv > 0 \
+            or math.isinf(max_cv):
+        raise SpecError(f"product {name!r}: max_cv must be a positive number such as 0.10.")
+    limits = {key: _limit(name, key, entry[key]) for key in LIMITED_QUANTITIES if key in entry}
+    return Spec(name=name, replicates=replicates, max_cv=float(max_cv), **limits)
+
+
+def parse_specs(text: str) -> list[Spec]:
+    """The text of a specifications TOML file → one :class:`Spec` per ``[[product]]``."""
+    try:
+        document = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise SpecError(f"the specifications file is not valid TOML ({exc}).") from None
+    products = document.get("product")
+    if not isinstance(products, list) or not products:
+        raise SpecError("the specifications file has no [[product]] table.")
+    specs = [spec_from_mapping(entry) for entry in products]
+    names = [spec.name for spec in specs]
+    duplicated = sorted({n for n in names if names.count(n) > 1})
+    if duplicated:
+        raise SpecError(f"product {duplicated[0]!r} is specified twice.")
+    return specs
+
+
+@dataclass(frozen=True)
+class Replicate:
+    """One replicate (manifest row) of a lot, as the verdict sees it.
+
+    ``label`` names it in sentences (e.g. ``"S1 #2"``); ``reason`` is the
+    failure sentence of a failed row; ``values`` holds the quantities in SI
+    (None where the analysis gave none).
+    """
+
+    label: str
+    status: str
+    quality: str | None
+    values: Mapping[str, float | None]
+    reason: str | None = None
+
+
+@dataclass(frozen=True)
+class QuantityStats:
+    """Statistics of one quantity over a lot's valid replicates (SI units).
+
+    ``sd`` uses n − 1 (None for n < 2); ``cv`` = sd / mean; ``ci95`` is the
+    Student-t 95 % interval of the mean (None for n < 2).
+    """
+
+    n: int
+    mean: float | None
+    sd: float | None
+    cv: float | None
+    ci95: tuple[float, float] | None
+
+
+@dataclass(frozen=True)
+class LotVerdict:
+    """A lot's verdict (``pass`` / ``review`` / ``fail``) with all its reasons."""
+
+    verdict: str
+    reasons: tuple[str, ...]
+    n_replicates: int
+    n_valid: int
+    valid: tuple[bool, ...]
+    stats: Mapping[str, QuantityStats] = field(default_factory=dict)
+
+
+def quantity_stats(values: Sequence[float]) -> QuantityStats:
+    """Mean, sd (n − 1), CV and Student-t 95 % interval of the mean of ``values``."""
+    x = np.asarray(values, dtype=float)
+    n = int(x.size)
+    if n == 0:
+        return QuantityStats(0, None, None, None, None)
+    mean = float(np.mean(x))
+    if n < 2:
+        return QuantityStats(n, mean, None, None, None)
+    sd = float(np.std(x, ddof=1))
+    cv = sd / abs(mean) if mean != 0 else None
+    half = float(stats.t.ppf(0.975, n - 1)) * sd / math.sqrt(n)
+    return QuantityStats(n, mean, sd, cv, (mean - half, mean + half))
+
+
+def _outside(value: float, limits: tuple[float, float]) -> str | None:
+    """'below the minimum …' / 'above the maximum …' or None when inside (inclusive)."""
+    low, high = limits
+    if not math.isnan(low) and value < low:
+        return f"below the minimum {low:.4g}"
+    if not math.isnan(high) and value > high:
+        return f"above the maximum {high:.4g}"
+    return None
+
+
+def _invalid_because(rep: Replicate, limited: Iterable[str]) -> str | None:
+    if rep.status != "ok":
+        return f"failed ({rep.reason})" if rep.reason else "failed"
+    if rep.quality != "good":
+        return f"quality {rep.quality or 'unknown'}"
+    missing = [LIMITED_QUANTITIES[k][0] for k in limited if rep.values.get(k) is None]
+    if missing:
+        return "no " + " and no ".join(missing)
+    return None
+
+
+def _clean(text: str) -> str:
+    """Reasons are joined by '; ', so a reason must not contain that separator."""
+    return " ".join(str(text).replace(";", ",").split())
+
+
+def lot_verdict(spec: Spec | None, replicates: Sequence[Replicate], *, product: str = "") -> LotVerdict:
+    """The verdict of one lot from its replicates (contract "Verdicts").
+
+    Without a specification the lot is ``review`` and its statistics are those
+    of λ over the replicates that are ``ok`` and ``good``.
+    """
+    limited = tuple(spec.limits) if spec is not None else ("relaxation_time_s",)
+    invalid = [_invalid_because(rep, limited) for rep in replicates]
+    valid = tuple(reason is None for reason in invalid)
+    good = [rep for rep, ok in zip(replicates, valid) if ok]
+    quantities = tuple(dict.fromkeys(("relaxation_time_s", *limited)))
+    lot_stats = {key: quantity_stats([rep.values[key] for rep in good if rep.values.get(key) is not None])
+                 for key in quantities}
+    fails: list[str] = []
+    reviews: list[str] = []
+    if spec is None:
+        reviews.append(f"no specification loaded for product {product!r}")
+    else:
+        for key, limits in spec.limits.items():
+            name, unit = LIMITED_QUANTITIES[key]
+            mean = lot_stats[key].mean
+            where = _outside(mean, limits) if mean is not None else None
+            if where:
+                fails.append(f"lot mean {name} {mean:.4g} {unit} is {where} {unit}")
+        if len(good) < spec.replicates:
+            reviews.append(f"{len(good)} valid replicate{'s' if len(good) != 1 else ''} "
+                           f"of {spec.replicates} required")
+        cv = lot_stats["relaxation_time_s"].cv
+        if cv is not None and cv > spec.max_cv:
+            reviews.append(f"coefficient of variation of the relaxation time {cv:.3g} "
+                           f"exceeds {spec.max_cv:.3g}")
+        for rep in good:
+            for key, limits in spec.limits.items():
+                where = _outside(rep.values[key], limits)
+                if where:
+                    name, unit = LIMITED_QUANTITIES[key]
+                    reviews.append(f"replicate {rep.label}: {name} {rep.values[key]:.4g} {unit} "
+                                   f"is {where} {unit}")
+    for rep, why in zip(replicates, invalid):
+        if why is not None:
+            reviews.append(f"replicate {rep.label} is not valid: {why}")
+    verdict = "fail" if fails else ("review" if reviews else "pass")
+    return LotVerdict(verdict=verdict, reasons=tuple(_clean(r) for r in fails + reviews),
+                      n_replicates=len(replicates), n_valid=len(good), valid=valid, stats=lot_stats)
+
+
+@dataclass(frozen=True)
+class ChartPoint:
+    """One lot on the X / MR charts of its product.
+
+    ``value`` is the lot mean of λ (s); ``moving_range`` its absolute change from
+    the previous charted lot. The limits (None until enough earlier lots exist)
+    come from the earlier lots only: ``centre`` ± 3 ``sigma`` for X, ``mr_ucl``
+    for MR. ``flags`` are the names of :data:`CHART_RULES` the lot breaks.
+    """
+
+    key: object
+    value: float
+    moving_range: float | None
+    n_baseline: int
+    centre: float | None
+    sigma: float | None
+    mr_mean: float | None
+    mr_ucl: float | None
+    flags: tuple[str, ...]
+
+    @property
+    def ucl(self) -> float | None:
+        return None if self.centre is None else self.centre + 3 * self.sigma
+
+    @property
+    def lcl(self) -> float | None:
+        return None if self.centre is None else self.centre - 3 * self.sigma
+
+
+def _zone_side(value: float, centre: float, sigma: float, k: float) -> int:
+    """+1 / −1 when ``value`` lies more than k sigma above / below ``centre``, else 0."""
+    if value > centre + k * sigma:
+        return 1
+    if value < centre - k * sigma:
+        return -1
+    return 0
+
+
+def run_rule_flags(values: Sequence[float], centre: float, sigma: float) -> tuple[str, ...]:
+    """The run rules broken at the LAST of ``values`` (the lot being judged).
+
+    ``values`` are the lot means in production order ending with this lot;
+    ``centre`` and ``sigma`` come from the lots before it. A rule is reported
+    only when this lot is part of the pattern (the signal falls on the point
+    that completes it, as the rules are applied point by point).
+
+    Rules 1–4 are the Western Electric zone rules (Western Electric Co., 1956,
+    Statistical Quality Control Handbook; as given in Montgomery,
+    Introduction to Statistical Quality Control, section on sensitizing rules
+    for Shewhart charts); "6-trending" is the trend rule of Nelson L.S. (1984),
+    The Shewhart control chart: tests for special causes, J. Qual. Technol.
+    16(4):237–239 (test 3).
+    """
+    x = [float(v) for v in values]
+    last = x[-1]
+    flags = []
+    # Western Electric rule 1: one point beyond the 3-sigma limits.
+    if _zone_side(last, centre, sigma, 3.0) != 0:
+        flags.append("beyond-3-sigma")
+    # Western Electric rule 2: 2 of 3 consecutive points beyond 2 sigma, same side.
+    side = _zone_side(last, centre, sigma, 2.0)
+    if side and len(x) >= 3 and sum(_zone_side(v, centre, sigma, 2.0) == side for v in x[-3:]) >= 2:
+        flags.append("2-of-3-beyond-2-sigma")
+    # Western Electric rule 3: 4 of 5 consecutive points beyond 1 sigma, same side.
+    side = _zone_side(last, centre, sigma, 1.0)
+    if side and len(x) >= 5 and sum(_zone_side(v, centre, sigma, 1.0) == side for v in x[-5:]) >= 4:
+        flags.append("4-of-5-beyond-1-sigma")
+    # Western Electric rule 4: 8 consecutive points on one side of the centre line.
+    side = _zone_side(last, centre, sigma, 0.0)
+    if side and len(x) >= 8 and all(_zone_side(v, centre, sigma, 0.0) == side for v in x[-8:]):
+        flags.append("8-on-one-side")
+    # Nelson (1984) test 3: 6 points in a row steadily increasing or decreasing.
+    if len(x) >= 6:
+        steps = np.diff(x[-6:])
+        if np.all(steps > 0) or np.all(steps < 0):
+            flags.append("6-trending")
+    return tuple(flags)
+
+
+def control_chart(lots: Sequence[tuple[object, float]], *,
+                  min_baseline: int = MIN_BASELINE_LOTS) -> list[ChartPoint]:
+    """X and MR chart points for one product's lots, given in production order.
+
+    ``lots`` holds ``(key, lot mean of λ in s)`` ordered by made_on, then by
+    first analysis time; lots without a mean are left out by the caller. For
+    lot i the limits use lots 0 … i−1 only: centre = their mean, sigma =
+    MR̄ / d2 with MR̄ the mean of their moving ranges of two, X limits centre ±
+    3 sigma, MR upper limit D4 · MR̄ (no MR lower limit for n = 2). A lot with
+    fewer than ``min_baseline`` earlier lots gets no limits and no flags.
+    """
+    values = [float(v) for _, v in lots]
+    points = []
+    for i, (key, value) in enumerate(lots):
+        moving_range = abs(values[i] - values[i - 1]) if i > 0 else None
+        if i < min_baseline:
+            points.append(ChartPoint(key, float(value), moving_range, i, None, None, None, None, ()))
+            continue
+        baseline = np.asarray(values[:i])
+        mr_mean = float(np.mean(np.abs(np.diff(baseline))))
+        centre = float(np.mean(baseline))
+        sigma = mr_mean / D2  # sigma estimated from the mean moving range (d2 for n = 2)
+        mr_ucl = D4 * mr_mean  # upper limit of the moving-range chart (D4 for n = 2)
+        flags = list(run_rule_flags(values[: i + 1], centre, sigma))
+        if moving_range > mr_ucl:
+            flags.append("moving-range-above-limit")
+        points.append(ChartPoint(key, float(value), moving_range, i, centre, sigma, mr_mean, mr_ucl,
+                                 tuple(flags)))
+    return points

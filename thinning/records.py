@@ -1,0 +1,836 @@
+"""The per-lot records database (SQLAlchemy 2 Core; SQLite file by default, PostgreSQL by URL).
+
+Tables (schema version :data:`SCHEMA_VERSION`, kept in ``schema_version``):
+
+``products``
+    one row per product name; its specification (``<quantity>_min`` /
+    ``_max`` in SI, NULL for an open end, ``<quantity>_limited``,
+    ``replicates``, ``max_cv``) once a specifications file was loaded.
+``lots``
+    (product, lot id) with ``made_on`` (ISO date) and ``first_analysed_at``.
+``samples``
+    (lot, sample, replicate) with the manifest's ``notes``.
+``measurements``
+    one analysed recording: every headline number, the 95 % interval of λ,
+    regime, quality, warnings, the options and the whole ``result.json`` as
+    JSON, the source sha256, tool version, ``analysed_at`` and
+    ``is_current``. A measurement is identified by (product, lot, sample,
+    replicate, source sha256); a partial unique index keeps one current row
+    per identity. Superseded rows keep ``superseded_at`` and
+    ``superseded_by`` and are never deleted.
+``curves``
+    a copy of each measurement's diameter curve (``time_s``,
+    ``diameter_m`` as little-endian float64 bytes, NaN where no filament).
+``failures``
+    rows of a batch that failed (not measurements): the reason, so that the
+    verdict can count the replicate as invalid. A failure counts only while
+    its sample has no current measurement.
+
+Every store runs in one transaction and is retried on a lock, a
+serialization failure or a lost insert race, so concurrent batches lose
+nothing. On SQLite each transaction starts with ``BEGIN IMMEDIATE`` (one
+writer at a time, waiting up to a minute) in WAL mode.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import json
+import logging
+import math
+import os
+import random
+import re
+import time
+from dataclasses import dataclass, field
+from datetime import date, datetime, timezone
+from pathlib import Path
+from typing import Callable, Iterable, Mapping, Sequence, TypeVar
+
+import numpy as np
+from sqlalchemy import (Boolean, Column, Double, ForeignKey, Index, Integer, LargeBinary, MetaData,
+                        String, Table, Text, UniqueConstraint, create_engine, event, func, select,
+                        text, update)
+from sqlalchemy.engine import Connection, Engine, make_url
+from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, OperationalError
+
+from . import qc
+
+logger = logging.getLogger(__name__)
+
+SCHEMA_VERSION = 1
+
+#: environment variable naming the default records database URL
+ENV_DB = "THINNING_DB"
+
+#: columns of ``thinning records export`` (contract), in order
+EXPORT_COLUMNS = (
+    "product", "lot", "sample", "replicate", "status", "quality", "regime", "relaxation_time_s",
+    "relaxation_time_ci95_low_s", "relaxation_time_ci95_high_s", "shear_viscosity_Pa_s",
+    "extensional_viscosity_max_Pa_s", "breakup_time_s", "filament_lifetime_s", "sha256",
+    "analysed_at", "tool_version",
+)
+
+#: columns of ``thinning records lots`` (contract), in order
+LOT_COLUMNS = (
+    "product", "lot", "made_on", "n_valid", "relaxation_time_mean_s", "relaxation_time_sd_s",
+    "relaxation_time_cv", "verdict", "reasons", "chart_flags",
+)
+
+#: headline numbers copied from result.json into columns of the same name
+NUMBER_KEYS = (
+    "relaxation_time_s", "elastic_modulus_Pa", "shear_viscosity_Pa_s",
+    "extensional_viscosity_max_Pa_s", "extensional_viscosity_terminal_Pa_s", "breakup_time_s",
+    "filament_lifetime_s", "initial_diameter_m", "free_thinning_start_s", "fps_hz", "pixel_size_m",
+)
+
+metadata = MetaData()
+
+schema_version = Table(
+    "schema_version", metadata,
+    Column("version", Integer, primary_key=True, autoincrement=False),
+    Column("applied_at", String(40), nullable=False),
+)
+
+_limit_columns = [col for key in qc.LIMITED_QUANTITIES
+                  for col in (Column(f"{key}_min", Double), Column(f"{key}_max", Double),
+                              Column(f"{key}_limited", Boolean, nullable=False, default=False))]
+
+products = Table(
+    "products", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("name", String(200), nullable=False, unique=True),
+    Column("has_spec", Boolean, nullable=False, default=False),
+    *_limit_columns,
+    Column("replicates", Integer),
+    Column("max_cv", Double),
+    Column("spec_loaded_at", String(40)),
+)
+
+lots = Table(
+    "lots", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("product_id", Integer, ForeignKey("products.id"), nullable=False),
+    Column("lot", String(200), nullable=False),
+    Column("made_on", String(10)),
+    Column("first_analysed_at", String(40), nullable=False),
+    UniqueConstraint("product_id", "lot", name="uq_lots_product_lot"),
+)
+
+samples = Table(
+    "samples", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("lot_id", Integer, ForeignKey("lots.id"), nullable=False),
+    Column("sample", String(200), nullable=False),
+    Column("replicate", String(50), nullable=False),
+    Column("notes", Text),
+    UniqueConstraint("lot_id", "sample", "replicate", name="uq_samples_lot_sample_replicate"),
+)
+
+measurements = Table(
+    "measurements", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("sample_id", Integer, ForeignKey("samples.id"), nullable=False),
+    Column("sha256", String(64), nullable=False),
+    Column("source_path", Text),
+    Column("status", String(20), nullable=False),
+    Column("quality", String(20)),
+    Column("quality_reasons", Text, nullable=False),
+    Column("regime", String(40)),
+    Column("regimes", Text, nullable=False),
+    Column("relaxation_time_s", Double),
+    Column("relaxation_time_ci95_low_s", Double),
+    Column("relaxation_time_ci95_high_s", Double),
+    Column("elastic_modulus_Pa", Double),
+    Column("shear_viscosity_Pa_s", Double),
+    Column("extensional_viscosity_max_Pa_s", Double),
+    Column("extensional_viscosity_terminal_Pa_s", Double),
+    Column("breakup_time_s", Double),
+    Column("filament_lifetime_s", Double),
+    Column("initial_diameter_m", Double),
+    Column("free_thinning_start_s", Double),
+    Column("fit_window_start_s", Double),
+    Column("fit_window_end_s", Double),
+    Column("fps_hz", Double),
+    Column("pixel_size_m", Double),
+    Column("warnings", Text, nullable=False),
+    Column("options", Text, nullable=False),
+    Column("result_json", Text, nullable=False),
+    Column("result_fingerprint", String(64), nullable=False),
+    Column("tool_version", String(60)),
+    Column("analysed_at", String(40), nullable=False),
+    Column("stored_at", String(40), nullable=False),
+    Column("is_current", Boolean, nullable=False),
+    Column("superseded_at", String(40)),
+    Column("superseded_by", Integer, ForeignKey("measurements.id")),
+)
+Index("uq_measurements_current_identity", measurements.c.sample_id, measurements.c.sha256,
+      unique=True, sqlite_where=measurements.c.is_current.is_(True),
+      postgresql_where=measurements.c.is_current.is_(True))
+Index("ix_measurements_sample", measurements.c.sample_id)
+
+curves = Table(
+    "curves", metadata,
+    Column("measurement_id", Integer, ForeignKey("measurements.id"), primary_key=True,
+           autoincrement=False),
+    Column("n_points", Integer, nullable=False),
+    Column("time_s", LargeBinary, nullable=False),
+    Column("diameter_m", LargeBinary, nullable=False),
+)
+
+failures = Table(
+    "failures", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("sample_id", Integer, ForeignKey("samples.id"), nullable=False),
+    Column("sha256", String(64), nullable=False),
+    Column("source_path", Text),
+    Column("reason", Text, nullable=False),
+    Column("tool_version", String(60)),
+    Column("analysed_at", String(40), nullable=False),
+    Column("stored_at", String(40), nullable=False),
+    UniqueConstraint("sample_id", "sha256", name="uq_failures_sample_sha256"),
+)
+
+
+class RecordsError(ValueError):
+    """A problem the user can fix (bad URL, unknown lot, unusable batch folder); one sentence."""
+
+
+class LotNotFound(RecordsError):
+    """No lot of that id (and product) in the records."""
+
+
+class AmbiguousLot(RecordsError):
+    """Two or more products share the lot id and no product was named."""
+
+
+class _LostRace(Exception):
+    """Another writer changed the row we were about to supersede; retry the transaction."""
+
+
+def default_db_path() -> Path:
+    """The default SQLite file: ``records.db`` in the user's data folder (platformdirs)."""
+    import platformdirs
+
+    return Path(platformdirs.user_data_dir("thinning")) / "records.db"
+
+
+def default_db_url() -> str:
+    """``$THINNING_DB`` if set, else ``sqlite:///`` + :func:`default_db_path`."""
+    return os.environ.get(ENV_DB) or f"sqlite:///{default_db_path()}"
+
+
+def _utc_now() -> str:
+    return datetime.now(timezone.utc).isoformat()
+
+
+def normalise_timestamp(value: str) -> str:
+    """An ISO 8601 time → UTC ISO text (a time without zone is taken as UTC)."""
+    try:
+        moment = datetime.fromisoformat(str(value).strip().replace("Z", "+00:00"))
+    except ValueError:
+        raise RecordsError(f"{value!r} is not an ISO 8601 time such as 2026-03-01T12:00:00+00:00.") from None
+    if moment.tzinfo is None:
+        moment = moment.replace(tzinfo=timezone.utc)
+    return moment.astimezone(timezone.utc).isoformat()
+
+
+def _made_on(value) -> str | None:
+    text_value = _text(value)
+    if not text_value:
+        return None
+    try:
+        return date.fromisoformat(text_value).isoformat()
+    except ValueError:
+        raise RecordsError(f"made_on {text_value!r} is not an ISO date such as 2026-03-01.") from None
+
+
+def _text(value) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return ""
+    return str(value).strip()
+
+
+def _number(value) -> float | None:
+    """A finite float, or None for missing / empty / NaN."""
+    if value is None or isinstance(value, bool) or value == "":
+        return None
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        return None
+    return x if math.isfinite(x) else None
+
+
+def safe_name(name: str) -> str:
+    """Every character outside ASCII letters, digits, '.', '_', '-' → '_' (batch folder rule)."""
+    return re.sub(r"[^A-Za-z0-9._-]", "_", name)
+
+
+def _natural_key(value: str):
+    return [int(part) if part.isdigit() else part.lower() for part in re.split(r"(\d+)", value or "")]
+
+
+def _json(value) -> str:
+    return json.dumps(value, sort_keys=True, allow_nan=False, separators=(",", ":"))
+
+
+def result_fingerprint(result: Mapping) -> str:
+    """sha256 of the result without its timestamps: equal fingerprints mean an identical result."""
+    kept = {k: v for k, v in result.items() if not k.endswith("_at") and k not in ("elapsed_s",)}
+    return hashlib.sha256(_json(kept).encode()).hexdigest()
+
+
+def read_curve(row_dir: Path) -> tuple[np.ndarray, np.ndarray] | None:
+    """(time_s, diameter_m) from ``row_dir/diameter.csv`` (NaN where empty), or None if absent."""
+    path = Path(row_dir) / "diameter.csv"
+    if not path.is_file():
+        return None
+    time_s, diameter_m = [], []
+    with path.open(newline="") as handle:
+        reader = csv.DictReader(handle)
+        if not reader.fieldnames or not {"time_s", "diameter_m"} <= set(reader.fieldnames):
+            raise RecordsError(f"{path} has no time_s and diameter_m columns.")
+        for row in reader:
+            time_s.append(_number(row["time_s"]))
+            diameter_m.append(_number(row["diameter_m"]))
+    to_array = lambda xs: np.array([np.nan if x is None else x for x in xs], dtype="<f8")  # noqa: E731
+    return to_array(time_s), to_array(diameter_m)
+
+
+def result_from_results_row(row: Mapping) -> dict:
+    """A result dict rebuilt from one ``results.csv`` row (when ``result.json`` is missing)."""
+    low, high = _number(row.get("relaxation_time_ci95_low_s")), _number(row.get("relaxation_time_ci95_high_s"))
+    warnings = [w for w in _text(row.get("warnings")).split("; ") if w]
+    result = {key: _number(row.get(key)) for key in NUMBER_KEYS}
+    result.update(
+        schema="thinning.result/1", tool_version=_text(row.get("tool_version")) or None,
+        source={"path": _text(row.get("path")), "sha256": _text(row.get("sha256"))},
+        regime=_text(row.get("regime")) or None, quality=_text(row.get("quality")) or None,
+        relaxation_time_ci95_s=[low, high] if low is not None and high is not None else None,
+        warnings=warnings, options={}, regimes=[], quality_reasons=[],
+    )
+    return result
+
+
+@dataclass(frozen=True)
+class LotSummary:
+    """One lot: identity, verdict (with statistics) and its control-chart point (or None)."""
+
+    product: str
+    lot: str
+    made_on: str | None
+    first_analysed_at: str
+    verdict: qc.LotVerdict
+    chart: qc.ChartPoint | None
+
+    @property
+    def chart_flags(self) -> tuple[str, ...]:
+        return self.chart.flags if self.chart is not None else ()
+
+    @property
+    def relaxation_time(self) -> qc.QuantityStats:
+        return self.verdict.stats["relaxation_time_s"]
+
+    def as_row(self) -> dict:
+        """The ``records lots`` row (contract columns)."""
+        lam = self.relaxation_time
+        return {"product": self.product, "lot": self.lot, "made_on": self.made_on,
+                "n_valid": self.verdict.n_valid, "relaxation_time_mean_s": lam.mean,
+                "relaxation_time_sd_s": lam.sd, "relaxation_time_cv": lam.cv,
+                "verdict": self.verdict.verdict, "reasons": "; ".join(self.verdict.reasons),
+                "chart_flags": "; ".join(self.chart_flags)}
+
+
+@dataclass(frozen=True)
+class LotDetail:
+    """Everything the lot report and ``records show`` need about one lot."""
+
+    summary: LotSummary
+    spec: qc.Spec | None
+    measurements: list[dict]
+    failures: list[dict]
+    curves: dict[int, tuple[np.ndarray, np.ndarray]]
+    chart: list[tuple[LotSummary, qc.ChartPoint]]
+    history: list[dict] = field(default_factory=list)
+
+
+T = TypeVar("T")
+
+
+def _retryable(exc: Exception) -> bool:
+    if isinstance(exc, (IntegrityError, _LostRace)):
+        return True
+    if isinstance(exc, OperationalError):
+        message = str(exc.orig).lower() if exc.orig is not None else str(exc).lower()
+        sqlstate = getattr(exc.orig, "sqlstate", None)
+        return "locked" in message or "busy" in message or sqlstate in ("40001", "40P01")
+    return False
+
+
+class Records:
+    """A records database. Open with :func:`open_records`; close with :meth:`close` (or ``with``)."""
+
+    def __init__(self, engine: Engine, *, retries: int = 12):
+        self.engine = engine
+        self._retries = retries
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    def close(self) -> None:
+        self.engine.dispose()
+
+    # ------------------------------------------------------------------ transactions
+    def _transaction(self, work: Callable[[Connection], T]) -> T:
+        """Run ``work(conn)`` in one transaction, retrying lock waits and lost races."""
+        for attempt in range(self._retries):
+            try:
+                with self.engine.begin() as conn:
+                    if conn.dialect.name == "postgresql":
+                        conn.execute(text("SET LOCAL lock_timeout = '60s'"))
+                    return work(conn)
+            except (DBAPIError, _LostRace) as exc:
+                if attempt == self._retries - 1 or not _retryable(exc):
+                    raise
+                delay = min(1.0, 0.02 * 2 ** attempt) * (0.5 + random.random())
+                logger.debug("retrying a records transaction after %s (%.2f s)", type(exc).__name__, delay)
+                time.sleep(delay)
+        raise AssertionError("unreachable")
+
+    def _ensure_schema(self) -> None:
+        def work(conn: Connection) -> None:
+            if conn.dialect.name == "postgresql":  # serialise concurrent first opens
+                conn.execute(text("SELECT pg_advisory_xact_lock(7163512)"))
+            metadata.create_all(conn)
+            found = conn.execute(select(func.max(schema_version.c.version))).scalar()
+            if found is None:
+                conn.execute(schema_version.insert().values(version=SCHEMA_VERSION, applied_at=_utc_now()))
+            elif found > SCHEMA_VERSION:
+                raise RecordsError(f"the records database has schema version {found}, newer than this "
+                                   f"thinning understands ({SCHEMA_VERSION}); upgrade thinning.")
+        self._transaction(work)
+
+    # ------------------------------------------------------------------ specifications
+    def load_specs(self, path: str | Path) -> list[qc.Spec]:
+        """Load or update the product specifications of a TOML file; returns them."""
+        try:
+            content = Path(path).read_text(encoding="utf-8")
+        except OSError as exc:
+            raise RecordsError(f"cannot read the specifications file {path} ({exc.strerror}).") from None
+        specs = qc.parse_specs(content)
+        self.store_specs(specs)
+        return specs
+
+    def store_specs(self, specs: Iterable[qc.Spec]) -> None:
+        """Store (insert or replace) specifications in one transaction."""
+        specs = list(specs)
+
+        def work(conn: Connection) -> None:
+            now = _utc_now()
+            for spec in specs:
+                values = {"has_spec": True, "replicates": spec.replicates, "max_cv": spec.max_cv,
+                          "spec_loaded_at": now}
+                for key in qc.LIMITED_QUANTITIES:
+                    limits = getattr(spec, key)
+                    values[f"{key}_limited"] = limits is not None
+                    low, high = limits if limits is not None else (math.nan, math.nan)
+                    values[f"{key}_min"] = _number(low)
+                    values[f"{key}_max"] = _number(high)
+                product_id = self._get_or_create(conn, products, {"name": spec.name})
+                conn.execute(update(products).where(products.c.id == product_id).values(**values))
+        self._transaction(work)
+
+    def specs(self) -> dict[str, qc.Spec]:
+        """Every stored specification by product name."""
+        with self.engine.connect() as conn:
+            return self._specs(conn)
+
+    @staticmethod
+    def _specs(conn: Connection) -> dict[str, qc.Spec]:
+        found = {}
+        for row in conn.execute(select(products).where(products.c.has_spec.is_(True))).mappings():
+            limits = {}
+            for key in qc.LIMITED_QUANTITIES:
+                if row[f"{key}_limited"]:
+                    low, high = row[f"{key}_min"], row[f"{key}_max"]
+                    limits[key] = (math.nan if low is None else low, math.nan if high is None else high)
+            found[row["name"]] = qc.Spec(name=row["name"], replicates=row["replicates"],
+                                         max_cv=row["max_cv"], **limits)
+        return found
+
+    # ------------------------------------------------------------------ storing
+    @staticmethod
+    def _get_or_create(conn: Connection, table: Table, key: Mapping, extra: Mapping | None = None) -> int:
+        """The id of the row of ``table`` matching ``key``, inserting it if missing (race-safe)."""
+        where = [table.c[name] == value for name, value in key.items()]
+        found = conn.execute(select(table.c.id).where(*where)).scalar()
+        if found is not None:
+            return found
+        try:
+            with conn.begin_nested():
+                return conn.execute(table.insert().values(**key, **(extra or {}))).inserted_primary_key[0]
+        except IntegrityError:  # another writer inserted it first; theirs is committed by now
+            found = conn.execute(select(table.c.id).where(*where)).scalar()
+            if found is None:
+                raise
+            return found
+
+    def _sample_id(self, conn: Connection, meta: Mapping, analysed_at: str) -> int:
+        product_id = self._get_or_create(conn, products, {"name": meta["product"]})
+        lot_id = self._get_or_create(conn, lots, {"product_id": product_id, "lot": meta["lot"]},
+                                     {"made_on": meta["made_on"], "first_analysed_at": analysed_at})
+        lot_row = conn.execute(select(lots.c.made_on, lots.c.first_analysed_at)
+                               .where(lots.c.id == lot_id)).one()
+        changes = {}
+        if meta["made_on"] and lot_row.made_on != meta["made_on"]:
+            changes["made_on"] = meta["made_on"]
+        if analysed_at < lot_row.first_analysed_at:
+            changes["first_analysed_at"] = analysed_at
+        if changes:
+            conn.execute(update(lots).where(lots.c.id == lot_id).values(**changes))
+        sample_id = self._get_or_create(
+            conn, samples, {"lot_id": lot_id, "sample": meta["sample"], "replicate": meta["replicate"]},
+            {"notes": meta["notes"] or None})
+        if meta["notes"]:
+            conn.execute(update(samples).where(samples.c.id == sample_id, samples.c.notes.is_distinct_from(
+                meta["notes"])).values(notes=meta["notes"]))
+        return sample_id
+
+    @staticmethod
+    def _meta(manifest_row: Mapping) -> dict:
+        sample = _text(manifest_row.get("sample")) or Path(_text(manifest_row.get("path"))).stem
+        return {"product": _text(manifest_row.get("product")), "lot": _text(manifest_row.get("lot")),
+                "sample": sample, "replicate": _text(manifest_row.get("replicate")),
+                "made_on": _made_on(manifest_row.get("made_on")), "notes": _text(manifest_row.get("notes")),
+                "path": _text(manifest_row.get("path")), "status": _text(manifest_row.get("status")) or "ok",
+                "reason": _text(manifest_row.get("reason")), "sha256": _text(manifest_row.get("sha256")),
+                "tool_version": _text(manifest_row.get("tool_version"))}
+
+    def _store(self, conn: Connection, meta: Mapping, result: Mapping | None, analysed_at: str,
+               curve: tuple[np.ndarray, np.ndarray] | None) -> str:
+        """Store one row inside ``conn``'s transaction; returns what happened."""
+        sample_id = self._sample_id(conn, meta, analysed_at)
+        now = _utc_now()
+        if meta["status"] != "ok":
+            sha = meta["sha256"] or _text(((result or {}).get("source") or {}).get("sha256"))
+            values = {"reason": meta["reason"] or "failed without a reason", "analysed_at": analysed_at,
+                      "stored_at": now, "source_path": meta["path"],
+                      "tool_version": meta["tool_version"] or None}
+            existing = conn.execute(select(failures.c.id).where(failures.c.sample_id == sample_id,
+                                                                failures.c.sha256 == sha)).scalar()
+            if existing is None:
+                self._get_or_create(conn, failures, {"sample_id": sample_id, "sha256": sha}, values)
+            else:
+                conn.execute(update(failures).where(failures.c.id == existing).values(**values))
+            return "failure"
+        if result is None:
+            raise RecordsError(f"sample {meta['sample']!r} of lot {meta['lot']!r} has status ok but no result.")
+        sha = meta["sha256"] or _text((result.get("source") or {}).get("sha256"))
+        if not sha:
+            raise RecordsError(f"sample {meta['sample']!r} of lot {meta['lot']!r} has no source sha256.")
+        fingerprint = result_fingerprint(result)
+        current = conn.execute(
+            select(measurements.c.id, measurements.c.result_fingerprint).where(
+                measurements.c.sample_id == sample_id, measurements.c.sha256 == sha,
+                measurements.c.is_current.is_(True))).first()
+        if current is not None and current.result_fingerprint == fingerprint:
+            if curve is not None and conn.execute(select(curves.c.measurement_id).where(
+                    curves.c.measurement_id == current.id)).first() is None:
+                self._insert_curve(conn, current.id, curve)
+            return "unchanged"
+        if current is not None:
+            retired = conn.execute(update(measurements).where(
+                measurements.c.id == current.id, measurements.c.is_current.is_(True)).values(
+                is_current=False, superseded_at=now))
+            if retired.rowcount != 1:
+                raise _LostRace()
+        new_id = conn.execute(measurements.insert().values(
+            sample_id=sample_id, sha256=sha, stored_at=now, analysed_at=analysed_at, is_current=True,
+            result_fingerprint=fingerprint, **self._measurement_values(meta, result))).inserted_primary_key[0]
+        if current is not None:
+            conn.execute(update(measurements).where(measurements.c.id == current.id).values(superseded_by=new_id))
+        if curve is not None:
+            self._insert_curve(conn, new_id, curve)
+        return "superseded" if current is not None else "inserted"
+
+    @staticmethod
+    def _measurement_values(meta: Mapping, result: Mapping) -> dict:
+        ci = result.get("relaxation_time_ci95_s") or (None, None)
+        window = result.get("fit_window_s") or (None, None)
+        values = {key: _number(result.get(key)) for key in NUMBER_KEYS}
+        values.update(
+            source_path=meta["path"] or _text((result.get("source") or {}).get("path")),
+            status="ok", quality=result.get("quality"), regime=result.get("regime"),
+            quality_reasons=_json(list(result.get("quality_reasons") or [])),
+            regimes=_json(list(result.get("regimes") or [])),
+            relaxation_time_ci95_low_s=_number(ci[0]), relaxation_time_ci95_high_s=_number(ci[1]),
+            fit_window_start_s=_number(window[0]), fit_window_end_s=_number(window[1]),
+            warnings=_json(list(result.get("warnings") or [])), options=_json(result.get("options") or {}),
+            result_json=_json(dict(result)),
+            tool_version=_text(result.get("tool_version")) or meta["tool_version"] or None)
+        return values
+
+    @staticmethod
+    def _insert_curve(conn: Connection, measurement_id: int, curve) -> None:
+        time_s, diameter_m = (np.asarray(a, dtype="<f8") for a in curve)
+        conn.execute(curves.insert().values(measurement_id=measurement_id, n_points=int(time_s.size),
+                                            time_s=time_s.tobytes(), diameter_m=diameter_m.tobytes()))
+
+    def store_result(self, manifest_row: Mapping, result: Mapping | None, *, analysed_at: str,
+                     row_dir: str | Path | None = None) -> str:
+        """Store one finished batch row in its own transaction.
+
+        ``manifest_row`` carries ``product, lot, sample, replicate, made_on,
+        notes, path, status, reason, sha256`` (missing keys are empty);
+        ``result`` is the ``result.json`` dict (may be None for a failed row);
+        ``row_dir`` the row's folder, whose ``diameter.csv`` is copied.
+        Returns ``"inserted"``, ``"unchanged"``, ``"superseded"`` (a changed
+        result replaced the current one) or ``"failure"`` (a failed row noted).
+        """
+        meta = self._meta(manifest_row)
+        curve = read_curve(Path(row_dir)) if row_dir is not None and meta["status"] == "ok" else None
+        stamp = normalise_timestamp(analysed_at)
+        return self._transaction(lambda conn: self._store(conn, meta, result, stamp, curve))
+
+    def load_batch(self, batch_dir: str | Path) -> dict[str, int]:
+        """Store a finished batch folder (``results.csv`` + row folders) in one transaction.
+
+        Idempotent: loading the same folder again changes nothing. Returns
+        counts by outcome (see :meth:`store_result`).
+        """
+        rows = read_batch(Path(batch_dir))
+
+        def work(conn: Connection) -> dict[str, int]:
+            counts = {"inserted": 0, "unchanged": 0, "superseded": 0, "failure": 0}
+            for meta, result, stamp, curve in rows:
+                counts[self._store(conn, meta, result, stamp, curve)] += 1
+            return counts
+        return self._transaction(work)
+
+    # ------------------------------------------------------------------ reading
+    @staticmethod
+    def _joined(current: bool = True):
+        columns = [products.c.name.label("product"), lots.c.lot, lots.c.made_on, lots.c.first_analysed_at,
+                   samples.c.sample, samples.c.replicate, samples.c.notes, *measurements.c]
+        query = (select(*columns).select_from(measurements.join(samples).join(lots).join(products))
+                 .where(measurements.c.is_current.is_(current)))
+        return query
+
+    def _summaries(self, conn: Connection) -> tuple[list[LotSummary], dict, dict]:
+        """Every lot's summary (verdict + chart point), its current measurements and open failures."""
+        specs = self._specs(conn)
+        lot_rows = conn.execute(select(lots.c.id, products.c.name.label("product"), lots.c.lot, lots.c.made_on,
+                                       lots.c.first_analysed_at).select_from(lots.join(products))).mappings().all()
+        by_lot: dict[tuple, list[dict]] = {(r["product"], r["lot"]): [] for r in lot_rows}
+        for row in conn.execute(self._joined()).mappings():
+            by_lot[(row["product"], row["lot"])].append(dict(row))
+        has_current = select(measurements.c.id).where(measurements.c.sample_id == samples.c.id,
+                                                      measurements.c.is_current.is_(True)).exists()
+        open_failures: dict[tuple, dict[int, dict]] = {key: {} for key in by_lot}
+        failure_rows = conn.execute(
+            select(products.c.name.label("product"), lots.c.lot, samples.c.sample, samples.c.replicate,
+                   samples.c.notes, *failures.c).select_from(failures.join(samples).join(lots).join(products))
+            .where(~has_current).order_by(failures.c.analysed_at)).mappings()
+        for row in failure_rows:  # the latest failure of each sample counts
+            open_failures[(row["product"], row["lot"])][row["sample_id"]] = dict(row)
+        failures_by_lot = {key: sorted(v.values(), key=_row_order) for key, v in open_failures.items()}
+        for rows in by_lot.values():
+            rows.sort(key=_row_order)
+        verdicts = {key: qc.lot_verdict(specs.get(key[0]), _replicates(by_lot[key], failures_by_lot[key]),
+                                        product=key[0]) for key in by_lot}
+        summaries = []
+        for product in sorted({r["product"] for r in lot_rows}):
+            ordered = sorted((r for r in lot_rows if r["product"] == product), key=_production_order)
+            charted = [(r["lot"], verdicts[(product, r["lot"])].stats["relaxation_time_s"].mean) for r in ordered]
+            points = {p.key: p for p in qc.control_chart([(k, v) for k, v in charted if v is not None])}
+            summaries += [LotSummary(product, r["lot"], r["made_on"], r["first_analysed_at"],
+                                     verdicts[(product, r["lot"])], points.get(r["lot"])) for r in ordered]
+        return summaries, by_lot, failures_by_lot
+
+    def lots(self, *, product: str | None = None) -> list[LotSummary]:
+        """Every lot (of ``product``), by product then production order, with verdicts."""
+        with self.engine.connect() as conn:
+            summaries, _, _ = self._summaries(conn)
+        if product is not None and not any(s.product == product for s in summaries):
+            raise RecordsError(f"no lot of product {product!r} in the records.")
+        return [s for s in summaries if product is None or s.product == product]
+
+    def resolve_lot(self, lot: str, *, product: str | None = None) -> tuple[str, str]:
+        """(product, lot) for a lot id; raises :class:`LotNotFound` or :class:`AmbiguousLot`."""
+        with self.engine.connect() as conn:
+            query = select(products.c.name).select_from(lots.join(products)).where(lots.c.lot == lot)
+            if product is not None:
+                query = query.where(products.c.name == product)
+            names = sorted(conn.execute(query).scalars())
+        if not names:
+            where = f" of product {product!r}" if product is not None else ""
+            raise LotNotFound(f"no lot {lot!r}{where} in the records.")
+        if len(names) > 1:
+            raise AmbiguousLot(f"lot {lot!r} exists for products {', '.join(map(repr, names))}: "
+                               "name one with --product.")
+        return names[0], lot
+
+    def lot_detail(self, lot: str, *, product: str | None = None) -> LotDetail:
+        """Measurements, failures, curves, verdict, chart and history of one lot."""
+        product, lot = self.resolve_lot(lot, product=product)
+        with self.engine.connect() as conn:
+            summaries, by_lot, failures_by_lot = self._summaries(conn)
+            rows = by_lot[(product, lot)]
+            ids = [row["id"] for row in rows]
+            found = conn.execute(select(curves).where(curves.c.measurement_id.in_(ids))).mappings() if ids else []
+            curve_map = {row["measurement_id"]: (np.frombuffer(row["time_s"], dtype="<f8"),
+                                                 np.frombuffer(row["diameter_m"], dtype="<f8"))
+                         for row in found}
+            history = [dict(r) for r in conn.execute(
+                self._joined(current=False).where(products.c.name == product, lots.c.lot == lot)
+                .order_by(measurements.c.superseded_at)).mappings()]
+            spec = self._specs(conn).get(product)
+        summary = next(s for s in summaries if (s.product, s.lot) == (product, lot))
+        chart = [(s, s.chart) for s in summaries if s.product == product and s.chart is not None]
+        return LotDetail(summary=summary, spec=spec, measurements=rows, failures=failures_by_lot[(product, lot)],
+                         curves=curve_map, chart=chart, history=history)
+
+    def export_rows(self, *, product: str | None = None) -> list[dict]:
+        """Every current measurement as a dict of :data:`EXPORT_COLUMNS`."""
+        with self.engine.connect() as conn:
+            query = self._joined()
+            if product is not None:
+                query = query.where(products.c.name == product)
+            rows = [dict(r) for r in conn.execute(query).mappings()]
+        rows.sort(key=lambda r: (r["product"], r["lot"], *_row_order(r)))
+        return [{col: row[col] for col in EXPORT_COLUMNS} for row in rows]
+
+
+def _row_order(row: Mapping):
+    return (_natural_key(row["sample"]), _natural_key(row["replicate"]), row["sha256"])
+
+
+def _production_order(row: Mapping):
+    """made_on first (lots without one last), then first analysis time, then lot id."""
+    return (row["made_on"] is None, row["made_on"] or "", row["first_analysed_at"], _natural_key(row["lot"]))
+
+
+def replicate_label(row: Mapping) -> str:
+    """How a replicate is named in sentences: ``sample #replicate``."""
+    return f"{row['sample']} #{row['replicate']}" if row["replicate"] else row["sample"]
+
+
+def _replicates(rows: Sequence[Mapping], failed: Sequence[Mapping]) -> list[qc.Replicate]:
+    labels = [replicate_label(r) for r in list(rows) + list(failed)]
+    reps = []
+    for row, label in zip(list(rows) + list(failed), labels):
+        if labels.count(label) > 1:
+            label = f"{label} (source {row['sha256'][:8] or 'unknown'})"
+        if "reason" in row:
+            reps.append(qc.Replicate(label=label, status="failed", quality=None, values={},
+                                     reason=row["reason"]))
+        else:
+            reps.append(qc.Replicate(label=label, status=row["status"], quality=row["quality"],
+                                     values={key: row[key] for key in qc.LIMITED_QUANTITIES}))
+    return reps
+
+
+def _row_folder(batch_dir: Path, row: Mapping, width: int) -> Path:
+    number = int(_text(row.get("row")))
+    name = _text(row.get("sample")) or Path(_text(row.get("path"))).stem
+    folder = batch_dir / f"{number:0{width}d}-{safe_name(name)}"
+    if folder.is_dir():
+        return folder
+    matches = sorted(batch_dir.glob(f"{number:0{width}d}-*"))
+    return matches[0] if len(matches) == 1 else folder
+
+
+def read_batch(batch_dir: Path) -> list[tuple[dict, dict | None, str, tuple | None]]:
+    """Read a finished batch folder: per row (meta, result, analysed_at, curve)."""
+    table = batch_dir / "results.csv"
+    if not table.is_file():
+        raise RecordsError(f"{batch_dir} has no results.csv; give the folder of a finished batch.")
+    with table.open(newline="", encoding="utf-8") as handle:
+        reader = csv.DictReader(handle)
+        missing = [c for c in ("row", "path", "status", "sha256") if c not in (reader.fieldnames or [])]
+        if missing:
+            raise RecordsError(f"{table} lacks the column {missing[0]!r}; is it a thinning results.csv?")
+        rows = list(reader)
+    try:
+        width = len(str(max((int(_text(r["row"])) for r in rows), default=1)))
+    except ValueError:
+        raise RecordsError(f"{table} has a row number that is not a whole number.") from None
+    loaded = []
+    for row in rows:
+        meta = Records._meta(row)
+        folder = _row_folder(batch_dir, row, width)
+        result, curve = None, None
+        result_path = folder / "result.json"
+        if meta["status"] == "ok":
+            if result_path.is_file():
+                try:
+                    result = json.loads(result_path.read_text(encoding="utf-8"))
+                except ValueError:
+                    raise RecordsError(f"{result_path} is not valid JSON.") from None
+            else:
+                result = result_from_results_row(row)
+            curve = read_curve(folder)
+        stamp = _text(row.get("analysed_at")) or _text((result or {}).get("analysed_at"))
+        if not stamp:
+            source = result_path if result_path.is_file() else table
+            stamp = datetime.fromtimestamp(source.stat().st_mtime, timezone.utc).isoformat()
+        loaded.append((meta, result, normalise_timestamp(stamp), curve))
+    return loaded
+
+
+def _prepare_sqlite(engine: Engine) -> None:
+    """One writer at a time (BEGIN IMMEDIATE), waiting on locks, WAL for concurrent readers."""
+
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_connection, _record):
+        dbapi_connection.isolation_level = None  # let SQLAlchemy's 'begin' event issue BEGIN
+        cursor = dbapi_connection.cursor()
+        cursor.execute("PRAGMA busy_timeout = 60000")
+        cursor.execute("PRAGMA foreign_keys = ON")
+        cursor.execute("PRAGMA journal_mode = WAL")
+        cursor.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn):
+        conn.exec_driver_sql("BEGIN IMMEDIATE")
+
+
+def open_records(url: str | None = None) -> Records:
+    """Open (creating if needed) the records database at a SQLAlchemy URL.
+
+    ``None`` means :func:`default_db_url`. The folder of an SQLite file is
+    created. Raises :class:`RecordsError` for an unusable URL or database.
+    """
+    url = url or default_db_url()
+    try:
+        parsed = make_url(url)
+    except ArgumentError:
+        raise RecordsError(f"{url!r} is not a database URL such as sqlite:///records.db.") from None
+    try:
+        if parsed.get_backend_name() == "sqlite":
+            if parsed.database and parsed.database != ":memory:":
+                Path(parsed.database).expanduser().parent.mkdir(parents=True, exist_ok=True)
+            engine = create_engine(parsed, connect_args={"timeout": 60})
+            _prepare_sqlite(engine)
+        else:
+            engine = create_engine(parsed, pool_pre_ping=True)
+    except (ArgumentError, ImportError) as exc:
+        raise RecordsError(f"cannot use the database URL {parsed.render_as_string(hide_password=True)} "
+                           f"({exc}).") from None
+    records = Records(engine)
+    try:
+        records._ensure_schema()
+    except OperationalError as exc:
+        engine.dispose()
+        reason = str(exc.orig).strip().splitlines()[0] if exc.orig is not None else str(exc)
+        raise RecordsError(f"cannot open the records database "
+                           f"{parsed.render_as_string(hide_password=True)} ({reason}).") from None
+    except RecordsError:
+        engine.dispose()
+        raise
+    return records

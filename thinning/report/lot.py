@@ -1,0 +1,277 @@
+"""The self-contained HTML report of one lot.
+
+:func:`write_lot_report` reads a lot from the records (:class:`thinning.records.Records`)
+and writes ``<LOT>.html``: the verdict and its reasons first, the replicates'
+diameter curves overlaid, the numbers of every replicate and of the lot, the
+product's control chart with this lot marked, warnings, cautions, tool
+version and sources. Figures are PNGs from matplotlib's Agg canvas embedded
+as base64; the page loads nothing else and needs no script. Everything that
+comes from users (names, notes, warnings) is HTML-escaped by the template.
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+import json
+import math
+import os
+import tempfile
+from datetime import datetime, timezone
+from pathlib import Path
+
+import jinja2
+import numpy as np
+
+from .. import __version__, qc
+
+TEMPLATE_DIR = Path(__file__).parent / "templates"
+
+MISSING = "—"
+
+CAUTIONS = (
+    "Check the calibration of the set-up (pixel size, frame rate) regularly with a reference fluid of "
+    "known relaxation time or viscosity; a wrong scale shifts every lot alike and no control chart "
+    "will show it.",
+    "Prepare, test and dispose of the liquids following your laboratory's own procedures and the local "
+    "rules for hazardous substances.",
+    "These numbers feed release decisions: a 'review' verdict asks a person to look at the replicates, "
+    "and a chart flag asks whether the process has moved, even when the lot is within its limits.",
+)
+
+SOURCES = (
+    ("Elasto-capillary thinning, D(t)/D0 = (G D0/(4σ))^(1/3) exp(−t/(3λ)), and the relaxation time "
+     "from it", "Anna S.L., McKinley G.H. (2001), J. Rheol. 45:115–138; McKinley G.H. (2005), "
+     "Rheology Reviews 2005"),
+    ("Visco-capillary thinning, D(t) = 0.1418 (σ/η)(t_b − t)",
+     "Papageorgiou D.T. (1995), Phys. Fluids 7; McKinley G.H., Tripathi A. (2000), J. Rheol. 44"),
+    ("Inertio-capillary thinning, D ∝ (σ/ρ)^(1/3) (t_b − t)^(2/3)",
+     "Eggers J., Villermaux E. (2008), Rep. Prog. Phys. 71:036601"),
+    ("Apparent extensional viscosity η_E = σ/(−dD/dt) (force ratio X = 1)",
+     "McKinley G.H., Tripathi A. (2000), J. Rheol. 44; McKinley G.H. (2005)"),
+    ("Individuals and moving-range charts; constants d2 = 1.128 and D4 = 3.267 for ranges of two",
+     "Montgomery D.C., Introduction to Statistical Quality Control (Wiley), tables of control-chart "
+     "factors"),
+    ("Run rules beyond-3-sigma, 2-of-3-beyond-2-sigma, 4-of-5-beyond-1-sigma, 8-on-one-side",
+     "Western Electric Co. (1956), Statistical Quality Control Handbook; as given by Montgomery"),
+    ("Run rule 6-trending (six lots in a row rising or falling)",
+     "Nelson L.S. (1984), The Shewhart control chart — tests for special causes, J. Qual. Technol. "
+     "16(4):237–239"),
+    ("95 % interval of a lot mean: mean ± t(0.975, n − 1) · sd/√n", "Student's t distribution"),
+)
+
+#: display scales per SI unit, tried from the largest down
+_SCALES = {
+    "s": ((1.0, "s"), (1e-3, "ms"), (1e-6, "µs")),
+    "Pa·s": ((1e3, "kPa·s"), (1.0, "Pa·s"), (1e-3, "mPa·s")),
+    "Pa": ((1e3, "kPa"), (1.0, "Pa")),
+}
+
+
+def fmt(value, unit: str | None = None, digits: int = 4) -> str:
+    """A number for people: ``digits`` significant digits in a convenient unit, "—" if missing."""
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return MISSING
+    if unit is None:
+        return f"{value:.{digits}g}"
+    for scale, label in _SCALES.get(unit, ((1.0, unit),)):
+        if abs(value) >= scale:
+            break  # otherwise the smallest scale is used
+    return f"{value / scale:.{digits}g} {label}"
+
+
+def fmt_limits(limits) -> str:
+    if limits is None:
+        return "not limited"
+    low, high = limits
+    if math.isnan(low) and math.isnan(high):
+        return "no limit (must be measured)"
+    if math.isnan(low):
+        return f"at most {high:.4g}"
+    if math.isnan(high):
+        return f"at least {low:.4g}"
+    return f"{low:.4g} to {high:.4g}"
+
+
+def _png(figure) -> str:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    FigureCanvasAgg(figure)
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format="png", dpi=110, metadata={"Software": None})
+    return base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def curves_figure(detail) -> str | None:
+    """Overlay of the replicates' diameter curves, log D against t; base64 PNG or None."""
+    from matplotlib.figure import Figure
+
+    from ..records import replicate_label
+
+    drawn = [(m, detail.curves[m["id"]]) for m in detail.measurements if m["id"] in detail.curves]
+    drawn = [(m, (t, d)) for m, (t, d) in drawn if np.any(np.isfinite(d) & (d > 0))]
+    if not drawn:
+        return None
+    figure = Figure(figsize=(7.0, 3.6), layout="constrained")
+    ax = figure.add_subplot()
+    for m, (t, d) in drawn:
+        keep = np.isfinite(t) & np.isfinite(d) & (d > 0)
+        ax.semilogy(t[keep] * 1e3, d[keep] * 1e6, lw=1.4, label=replicate_label(m))
+    ax.set_xlabel("time on the recording's clock t (ms)")
+    ax.set_ylabel("minimum neck diameter D (µm)")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=8, frameon=False)
+    return _png(figure)
+
+
+def chart_figure(detail) -> str | None:
+    """The product's X and MR charts of lot mean λ with this lot marked; base64 PNG or None."""
+    from matplotlib.figure import Figure
+
+    points = [point for _, point in detail.chart]
+    if not points:
+        return None
+    lots = [summary.lot for summary, _ in detail.chart]
+    x = np.arange(len(points))
+    value = np.array([p.value for p in points]) * 1e3
+    nan = float("nan")
+    centre = np.array([nan if p.centre is None else p.centre for p in points]) * 1e3
+    ucl = np.array([nan if p.ucl is None else p.ucl for p in points]) * 1e3
+    lcl = np.array([nan if p.lcl is None else p.lcl for p in points]) * 1e3
+    mr = np.array([nan if p.moving_range is None else p.moving_range for p in points]) * 1e3
+    mr_ucl = np.array([nan if p.mr_ucl is None else p.mr_ucl for p in points]) * 1e3
+    flagged = np.array([bool(p.flags) for p in points])
+    this = np.array([lot == detail.summary.lot for lot in lots])
+    figure = Figure(figsize=(7.0, 4.6), layout="constrained")
+    ax_x, ax_mr = figure.subplots(2, 1, sharex=True, height_ratios=(3, 2))
+    ax_x.plot(x, value, "-o", color="#3d5a80", ms=4, lw=1, label="lot mean λ")
+    ax_x.step(x, centre, where="mid", color="#555555", lw=1, label="centre (earlier lots)")
+    ax_x.step(x, ucl, where="mid", color="#b42318", lw=1, ls="--", label="±3 sigma")
+    ax_x.step(x, lcl, where="mid", color="#b42318", lw=1, ls="--")
+    ax_x.plot(x[flagged], value[flagged], "s", color="#b42318", ms=6, label="chart flag")
+    ax_mr.plot(x[1:], mr[1:], "-o", color="#3d5a80", ms=4, lw=1, label="moving range")
+    ax_mr.step(x, mr_ucl, where="mid", color="#b42318", lw=1, ls="--", label="D4 × mean MR")
+    for ax, y in ((ax_x, value), (ax_mr, mr)):
+        ax.plot(x[this], y[this], "o", ms=13, mfc="none", mec="#e07a1f", mew=2.2, label="this lot")
+        ax.grid(True, alpha=0.3)
+        ax.legend(fontsize=7, frameon=False, loc="best", ncol=3)
+    ax_x.set_ylabel("lot mean λ (ms)")
+    ax_mr.set_ylabel("moving range (ms)")
+    ax_mr.set_xticks(x, lots, rotation=45 if len(lots) > 6 else 0, ha="right" if len(lots) > 6 else "center",
+                     fontsize=7)
+    ax_mr.set_xlabel("lot, in production order")
+    return _png(figure)
+
+
+def _replicate_rows(detail) -> list[dict]:
+    from ..records import replicate_label
+
+    valid = detail.summary.verdict.valid
+    rows = []
+    for m, is_valid in zip(detail.measurements, valid):
+        low, high = m["relaxation_time_ci95_low_s"], m["relaxation_time_ci95_high_s"]
+        rows.append({
+            "label": replicate_label(m), "sample": m["sample"], "replicate": m["replicate"] or MISSING,
+            "lam": fmt(m["relaxation_time_s"], "s"),
+            "ci": MISSING if low is None or high is None else f"{fmt(low, 's')} – {fmt(high, 's')}",
+            "quality": m["quality"] or MISSING, "regime": m["regime"] or MISSING,
+            "lifetime": fmt(m["filament_lifetime_s"], "s"),
+            "eta_e": fmt(m["extensional_viscosity_max_Pa_s"], "Pa·s"),
+            "valid": "yes" if is_valid else "no", "is_valid": is_valid,
+            "warnings": json.loads(m["warnings"]), "sha256": m["sha256"], "analysed_at": m["analysed_at"],
+            "tool_version": m["tool_version"] or MISSING, "notes": m["notes"] or "",
+            "source_path": m["source_path"] or MISSING,
+        })
+    for f in detail.failures:
+        rows.append({"label": replicate_label(f), "sample": f["sample"], "replicate": f["replicate"] or MISSING,
+                     "lam": MISSING, "ci": MISSING, "quality": "failed", "regime": MISSING,
+                     "lifetime": MISSING, "eta_e": MISSING, "valid": "no", "is_valid": False,
+                     "warnings": [f["reason"]], "sha256": f["sha256"] or MISSING,
+                     "analysed_at": f["analysed_at"], "tool_version": f["tool_version"] or MISSING,
+                     "notes": f["notes"] or "", "source_path": f["source_path"] or MISSING})
+    return rows
+
+
+def _lot_rows(detail) -> list[dict]:
+    units = {"relaxation_time_s": "s", "filament_lifetime_s": "s", "extensional_viscosity_max_Pa_s": "Pa·s"}
+    limits = detail.spec.limits if detail.spec is not None else {}
+    rows = []
+    for key, stats in detail.summary.verdict.stats.items():
+        unit = units[key]
+        rows.append({"name": qc.LIMITED_QUANTITIES[key][0], "n": stats.n, "mean": fmt(stats.mean, unit),
+                     "sd": fmt(stats.sd, unit, 3), "cv": fmt(stats.cv, None, 3),
+                     "ci": MISSING if stats.ci95 is None else
+                     f"{fmt(stats.ci95[0], unit)} – {fmt(stats.ci95[1], unit)}",
+                     "limits": fmt_limits(limits.get(key)) + (f" ({unit})" if key in limits else "")})
+    return rows
+
+
+def _chart_context(detail) -> dict:
+    point = detail.summary.chart
+    if point is None:
+        return {"state": "no-mean"}
+    if point.centre is None:
+        return {"state": "too-few", "n_baseline": point.n_baseline, "needed": qc.MIN_BASELINE_LOTS}
+    return {"state": "limits", "n_baseline": point.n_baseline, "centre": fmt(point.centre, "s"),
+            "ucl": fmt(point.ucl, "s"), "lcl": fmt(point.lcl, "s"), "mr_ucl": fmt(point.mr_ucl, "s"),
+            "moving_range": fmt(point.moving_range, "s")}
+
+
+def lot_report_html(detail, *, generated_at: str | None = None) -> str:
+    """The report page for a :class:`thinning.records.LotDetail`, as HTML text."""
+    environment = jinja2.Environment(loader=jinja2.FileSystemLoader(TEMPLATE_DIR), autoescape=True,
+                                     undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
+    summary = detail.summary
+    replicates = _replicate_rows(detail)
+    warnings = [(row["label"], w) for row in replicates for w in row["warnings"]]
+    tool_versions = sorted({row["tool_version"] for row in replicates if row["tool_version"] != MISSING})
+    context = {
+        "product": summary.product, "lot": summary.lot, "made_on": summary.made_on or MISSING,
+        "first_analysed_at": summary.first_analysed_at,
+        "verdict": summary.verdict.verdict, "reasons": summary.verdict.reasons,
+        "n_valid": summary.verdict.n_valid, "n_replicates": summary.verdict.n_replicates,
+        "required": detail.spec.replicates if detail.spec is not None else None,
+        "max_cv": fmt(detail.spec.max_cv, None, 3) if detail.spec is not None else None,
+        "has_spec": detail.spec is not None,
+        "chart_flags": [(name, qc.CHART_RULES[name]) for name in summary.chart_flags],
+        "lam_mean": fmt(summary.relaxation_time.mean, "s"),
+        "lam_cv": fmt(summary.relaxation_time.cv, None, 3),
+        "replicates": replicates, "lot_rows": _lot_rows(detail), "warnings": warnings,
+        "notes": [(row["label"], row["notes"]) for row in replicates if row["notes"]],
+        "curves_png": curves_figure(detail), "chart_png": chart_figure(detail),
+        "chart": _chart_context(detail), "rules": qc.CHART_RULES,
+        "history": [{"label": f"{h['sample']} #{h['replicate']}" if h["replicate"] else h["sample"],
+                     "lam": fmt(h["relaxation_time_s"], "s"), "tool_version": h["tool_version"] or MISSING,
+                     "analysed_at": h["analysed_at"], "superseded_at": h["superseded_at"],
+                     "options": h["options"]} for h in detail.history],
+        "cautions": CAUTIONS, "sources": SOURCES, "version": __version__,
+        "measurement_versions": ", ".join(tool_versions) or MISSING,
+        "generated_at": generated_at or datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    }
+    return environment.get_template("lot.html").render(**context)
+
+
+def report_filename(lot: str) -> str:
+    """``<LOT>.html`` with the batch folders' character rule applied to the lot id."""
+    from ..records import safe_name
+
+    return f"{safe_name(lot)}.html"
+
+
+def write_lot_report(records, lot: str, *, product: str | None = None, out_dir: str | Path,
+                     generated_at: str | None = None) -> Path:
+    """Write ``out_dir/<LOT>.html`` for one lot of ``records``; returns its path (written atomically)."""
+    detail = records.lot_detail(lot, product=product)
+    html = lot_report_html(detail, generated_at=generated_at)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    path = out / report_filename(detail.summary.lot)
+    handle, tmp = tempfile.mkstemp(dir=out, prefix=".lot-", suffix=".html.tmp")
+    try:
+        with os.fdopen(handle, "w", encoding="utf-8") as stream:
+            stream.write(html)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
