@@ -244,3 +244,18 @@ def test_tilted_thread_row_width_is_unbiased():
     # a straight cylinder cut by an image row at angle θ to its normal is D / cos θ wide
     expected = truth.diameter_px[i] / np.cos(np.radians(tilt))
     assert half_intensity_width(row, background, shadow) == pytest.approx(expected, abs=0.15)
+
+
+def test_exposure_smears_only_what_moves():
+    scene = small_scene(pre_roll_s=0.5e-3, stretch_duration_s=0.5e-3, n_frames=30)
+    instant_frames, instant = synth.render_recording(scene, synth.Optics(), seed=9)
+    smeared_frames, smeared = synth.render_recording(
+        scene, synth.Optics(exposure_fraction=1.0), seed=9)
+    np.testing.assert_array_equal(instant.diameter_m, smeared.diameter_m)
+    at_rest = int(np.sum(instant.phase == "rest")) - 1    # exposure still inside the rest phase
+    assert at_rest >= 5
+    for i, (a, b) in enumerate(zip(instant_frames, smeared_frames)):
+        if i < at_rest:
+            np.testing.assert_array_equal(a, b)
+        elif instant.phase[i] == "stretch":
+            assert np.abs(a.astype(int) - b.astype(int)).max() > 20

@@ -42,6 +42,8 @@ SUB_ROWS = 8
 FRAMES_AFTER_BREAKUP = 10
 #: Largest record generated automatically (frames).
 MAX_AUTO_FRAMES = 200_000
+#: Scene states averaged over the exposure when ``Optics.exposure_fraction`` > 0.
+SUB_EXPOSURES = 5
 #: Threads narrower than this (px, full width) show no lens streak.
 STREAK_MIN_WIDTH_PX = 15.0
 
@@ -63,7 +65,10 @@ class Optics:
     ``motion_blur_px`` is a box smear of that length along the thread axis
     (``motion_blur_axis="axial"``) or across it (``"across"``). ``full_well``
     is the electron count at full scale that sets the shot noise;
-    ``streak_strength`` the relative brightness of the lens streak (0..1).
+    ``streak_strength`` the relative brightness of the lens streak (0..1);
+    ``exposure_fraction`` the exposure as a fraction of the frame interval:
+    above 0 each frame averages the scene over the exposure (moving edges
+    smear, the last frames before breakup fade), truth at the frame's time.
     """
 
     blur_sigma_px: float = 1.0
@@ -84,6 +89,7 @@ class Optics:
     motion_blur_axis: str = "axial"
     full_well: float = 20000.0
     streak_strength: float = 0.45
+    exposure_fraction: float = 0.0
 
     def __post_init__(self):
         if self.blur_kind not in BLUR_KINDS:
@@ -98,6 +104,8 @@ class Optics:
             raise ValueError("need 0 <= shadow_level < background_level <= 1")
         if self.blur_sigma_px < 0 or self.motion_blur_px < 0 or self.jitter_px < 0:
             raise ValueError("blur, motion blur and jitter must not be negative")
+        if not 0.0 <= self.exposure_fraction <= 1.0:
+            raise ValueError("exposure_fraction must lie in [0, 1]")
         if abs(self.tilt_deg) > 20.0:
             raise ValueError("tilt_deg beyond ±20° is not supported")
         if self.full_well <= 0 or self.read_noise < 0 or self.flicker < 0 or self.uneven_light < 0:
@@ -330,14 +338,16 @@ class _Timeline:
     free_thinning_start_s: float
 
 
-def _timeline(scene: Scene, hist, n_frames: int) -> _Timeline:
+def _timeline(scene: Scene, hist, n_frames: int, *, times=None) -> _Timeline:
+    """State of the scene at each frame time (or at ``times``, s) of an ``n_frames`` record."""
     px = scene.pixel_size_m
     n_axis = scene.frame_size_px[0]
     rp = scene.plate_diameter_m / 2 / px
     r0 = scene.initial_diameter_m / 2 / px
     gap = scene.gap_m / px if scene.gap_m is not None else n_axis - 2 * max(6.0, 0.08 * n_axis)
     style = _style(scene.fluid, scene.initial_diameter_m, scene.geometry)
-    t = np.arange(n_frames) / scene.fps_hz
+    t = np.arange(n_frames) / scene.fps_hz if times is None else np.asarray(times, float)
+    n = t.size
     t_pre, t_ft = scene.pre_roll_s, scene.pre_roll_s + scene.stretch_duration_s
     tau = t - t_ft
 
@@ -361,17 +371,17 @@ def _timeline(scene: Scene, hist, n_frames: int) -> _Timeline:
     r_min = np.where(pre, r0 * np.sqrt(gap / h), r_min) if scene.geometry == "plates" else \
         np.where(pre, r_fat + (r0 - r_fat) * progress, r_min)
     phase[pre & (t >= t_pre)] = "stretch"
-    a_lower = np.full(n_frames, gap / 2)
+    a_lower = np.full(n, gap / 2)
     a_upper = a_lower - h
 
-    pendant_length = np.zeros(n_frames)
+    pendant_length = np.zeros(n)
     if scene.geometry == "dripping" and scene.pre_roll_s > 0:
         pend = t < t_pre
         pendant_length = np.where(pend, gap * (0.6 + 0.4 * t / t_pre), 0.0)
         phase[pend] = "pendant"
         r_min = np.where(pend, np.nan, r_min)
 
-    broken = np.zeros(n_frames, bool) if t_b is None else t >= t_b
+    broken = np.zeros(n, bool) if t_b is None else t >= t_b
     phase[broken] = "broken"
     r_min = np.where(broken, 0.0, r_min)
 
@@ -383,7 +393,7 @@ def _timeline(scene: Scene, hist, n_frames: int) -> _Timeline:
 
     # retraction of the halves after breakup: capillary (Culick) or visco-capillary speed
     fluid = scene.fluid
-    tip = np.zeros(n_frames)
+    tip = np.zeros(n)
     if t_b is not None:
         r_ref = max(float(hist.diameter_m[-1]) / 2, px)
         speeds = [2.0 * fluid.surface_tension / max(fluid.zero_shear_viscosity, 1e-9)]
@@ -392,20 +402,22 @@ def _timeline(scene: Scene, hist, n_frames: int) -> _Timeline:
         speed_px = min(speeds) / px
         tip = np.where(broken, np.minimum(speed_px * (t - t_b) + 1.0, 0.9 * side), 0.0)
 
-    bead = np.zeros(n_frames)
+    bead = np.zeros(n)
     if scene.beads and fluid.polymer_modulus > 0:
         onset = 0.25 * r0
         with np.errstate(divide="ignore", invalid="ignore"):
             strain = np.log(onset / np.maximum(r_min, 1e-12))
         growth = np.where((tau > 0) & (strain > 0), -np.expm1(-strain), 0.0)
-        growth = np.where(broken, np.max(growth, initial=0.0), growth)
+        # the beads stay as they were at breakup
+        at_breakup = np.log(onset / max(float(hist.diameter_m[-1]) / 2 / px, 1e-12))
+        growth = np.where(broken, -np.expm1(-max(at_breakup, 0.0)), growth)
         bead = np.minimum(2.5 * onset * growth, half_thread / 6.0)
         bead = np.where(bead > np.maximum(r_min, 0) * 1.2, bead, 0.0)
 
-    lower_radius = np.full(n_frames, rp)
+    lower_radius = np.full(n, rp)
     if scene.geometry == "dripping":
         t_contact = t_pre
-        lifetime = (t_b if t_b is not None else t[-1]) - t_contact
+        lifetime = (t_b if t_b is not None else n_frames / scene.fps_hz) - t_contact
         tau_spread = max(lifetime, 1.0 / scene.fps_hz) * 0.5
         grow = -np.expm1(-np.clip(t - t_contact, 0.0, None) / tau_spread)
         lower_radius = rp * (1.0 + 1.2 * grow)
@@ -415,7 +427,8 @@ def _timeline(scene: Scene, hist, n_frames: int) -> _Timeline:
                      a_lower=a_lower, a_neck=a_neck, half_thread=half_thread,
                      tip_retraction=tip, bead_radius=bead, lower_end_radius=lower_radius,
                      pendant_length=pendant_length,
-                     pendant_radius=min(1.4 * rp, 0.42 * scene.frame_size_px[1]), r_start=float(np.nanmax(r_min, initial=r0)),
+                     pendant_radius=min(1.4 * rp, 0.42 * scene.frame_size_px[1]), 
+                     r_start=max(r_fat, r0),
                      plate_radius=rp, style=style, breakup_time_s=t_b,
                      free_thinning_start_s=t_ft)
 
@@ -669,8 +682,16 @@ def _camera(scene: Scene, optics: Optics, n_frames: int, seed: int) -> _Camera:
 
 
 class _Renderer:
-    def __init__(self, scene: Scene, optics: Optics, tl: _Timeline, cam: _Camera):
-        self.scene, self.optics, self.tl, self.cam = scene, optics, tl, cam
+    def __init__(self, scene: Scene, optics: Optics, tl: _Timeline, cam: _Camera, hist):
+        self.scene, self.optics, self.cam = scene, optics, cam
+        # the scene's states drawn into each frame: one, or several spread over the exposure
+        self.n_states = SUB_EXPOSURES if optics.exposure_fraction > 0 else 1
+        if self.n_states > 1:
+            n = tl.time_s.size
+            spread = ((np.arange(self.n_states) + 0.5) / self.n_states - 0.5) * optics.exposure_fraction
+            times = (np.arange(n)[:, None] + spread[None, :]).ravel() / scene.fps_hz
+            tl = _timeline(scene, hist, n, times=times)
+        self.tl = tl
         self.height, self.width = scene.frame_size_px
         theta = math.radians(optics.tilt_deg)
         self.sin_t, self.cos_t = math.sin(theta), math.cos(theta)
@@ -691,9 +712,8 @@ class _Renderer:
         self.gain_contrast = cam.gain * np.float32(optics.background_level - optics.shadow_level)
         self.dtype = np.uint8 if optics.bit_depth == 8 else np.uint16
 
-    def _liquid_edges(self, i, ox, oy):
-        """x of the left and right silhouette edge on every sub-row."""
-        tl = self.tl
+    def _liquid_edges(self, tl, i, ox, oy):
+        """x of the left and right silhouette edge on every sub-row, for state ``i``."""
         y = self.y_sub
         if self.sin_t == 0.0:
             r = _profile((y - oy) / self.cos_t, tl, i)
@@ -714,11 +734,18 @@ class _Renderer:
         return left, right, 0.5 * (right - left) * c
 
     def coverage(self, i: int) -> np.ndarray:
-        tl, cam = self.tl, self.cam
+        """Opaque fraction of every pixel in frame ``i`` (lens streak counted negative)."""
+        cam = self.cam
         ox, oy = cam.ox + cam.jitter[i, 0], cam.oy + cam.jitter[i, 1]
-        y, s, c = self.y_sub, self.sin_t, self.cos_t
         cov = _Coverage(self.height, self.width)
-        weight = 1.0 / SUB_ROWS
+        k = self.n_states
+        for j in range(i * k, (i + 1) * k):
+            self._draw(cov, j, ox, oy, 1.0 / (SUB_ROWS * k))
+        return cov.image()
+
+    def _draw(self, cov: _Coverage, i: int, ox: float, oy: float, weight: float) -> None:
+        tl = self.tl
+        y, s, c = self.y_sub, self.sin_t, self.cos_t
         rows = self.rows
         solids = []
         strip = _strip_interval(y, ox, oy, s, c, tl.plate_radius)
@@ -727,7 +754,7 @@ class _Renderer:
             solids.append(_intersect(strip, _halfplane_interval(y, ox, oy, s, c, tl.a_lower[i], True)))
         else:
             solids.append(_halfplane_interval(y, ox, oy, s, c, tl.a_lower[i], True))
-        left, right, radius = self._liquid_edges(i, ox, oy)
+        left, right, radius = self._liquid_edges(tl, i, ox, oy)
         liquid = (left, right)
         cov.add(*liquid, rows, weight)
         touching = np.zeros(y.shape, bool)
@@ -747,7 +774,6 @@ class _Renderer:
             amp[touching | (mid - half < left + 3.0) | (mid + half > right - 3.0)] = 0.0
             if amp.any():
                 cov.add(mid - half, mid + half, rows, -weight * amp)
-        return cov.image()
 
     def frame(self, i: int) -> np.ndarray:
         o = self.optics
@@ -823,7 +849,7 @@ def render_recording(scene: Scene, optics: Optics, *, seed: int) -> tuple[Iterat
     truth = _truth(scene, optics, tl, cam, seed)
 
     def frames():
-        renderer = _Renderer(scene, optics, tl, cam)
+        renderer = _Renderer(scene, optics, tl, cam, hist)
         for i in range(n):
             yield renderer.frame(i)
 
