@@ -67,7 +67,11 @@ class Layout:
     (plates) or nozzle outer diameter (dripping), sub-pixel, or None.
     ``background_level`` and ``shadow_level`` are grey levels of the first
     frame; ``blur_sigma_px`` the estimated Gaussian-equivalent blur of an
-    edge; ``noise`` the per-pixel noise as a fraction of the shadow depth.
+    edge; ``noise`` the per-pixel noise as a fraction of the shadow depth;
+    ``saturation`` the grey level at which the sensor clips; ``axis_slope``
+    the filament direction (lateral shift per axial pixel) from the straight
+    sides of the end bodies (or the centre line); ``backlight`` the static
+    light field of the band (grey levels of the first frame, axis along rows).
     """
 
     orientation: str
@@ -82,6 +86,8 @@ class Layout:
     blur_sigma_px: float
     noise: float
     geometry: str = "plates"
+    saturation: float = math.inf
+    axis_slope: float = 0.0
     backlight: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     @property
@@ -218,7 +224,7 @@ def _end_body(has, first, last, n_lat, *, from_end):
     count = int(np.argmin(inside)) if not inside.all() else int(inside.size)
     if count < 5 or count > has.size - 5:
         return 0, None
-    full = f0 <= 0 and l0 >= n_lat - 1
+    full = f0 <= 1 and l0 >= n_lat - 2
     return count, (math.inf if full else float(l0 - f0 + 1))
 
 
@@ -282,10 +288,11 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
                          axis_px=lateral[0] + axis, background_level=levels["background"],
                          shadow_level=levels["shadow"], blur_sigma_px=blur,
                          noise=noise_abs / max(levels["background"] - levels["shadow"], 1e-6),
-                         geometry=geometry)
+                         geometry=geometry, saturation=_saturation(frame))
     block = _oriented(frame, orientation, axial, band)
     rows = _measure_rows(block, provisional, shadow_fraction=provisional.shadow_fraction)
-    provisional = replace(provisional, backlight=_fit_backlight(block, rows, noise_abs))
+    provisional = replace(provisional, backlight=_fit_backlight(block, rows, noise_abs,
+                                                                saturation=provisional.saturation))
     fraction = _rim_fraction(_measure_rows(block, provisional,
                                            shadow_fraction=provisional.shadow_fraction)["rim_ratio"],
                              free)
@@ -304,12 +311,37 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
             inner = inner[np.isfinite(inner)]
             widths.append(float(np.median(inner)) if inner.size else float(ext))
     shadow = provisional.shadow_level
-    return replace(provisional, plate_width_px=_reference_width(widths, geometry),
+    # the filament's direction: the straight sides of the end bodies, else the centre line
+    index = np.arange(n_ax, dtype=float)
+    slopes, weights = [], []
+    for count, ext, sl in ((n0, ext_start, slice(1, max(1, n0 - 2))),
+                           (n1, ext_end, slice(n_ax - n1 + 2, n_ax - 1))):
+        sides = np.zeros(n_ax, bool)
+        sides[sl] = True
+        sides &= rows["has"] & ~rows["truncated"]
+        if ext is not None and math.isfinite(ext) and sides.sum() >= 6:
+            slopes.append(float(np.polyfit(index[sides], rows["centre"][sides], 1)[0]))
+            weights.append(float(sides.sum()) ** 3)
+    if slopes:
+        axis_slope = float(np.average(slopes, weights=weights))
+    else:
+        line = free & rows["has"] & ~rows["truncated"]
+        axis_slope = float(np.polyfit(index[line], rows["centre"][line], 1)[0]) if line.sum() >= 6 else 0.0
+    return replace(provisional, plate_width_px=_reference_width(widths, geometry), axis_slope=axis_slope,
                    end_widths_px=(widths[0], widths[1]),
                    noise=noise_abs / max(levels["background"] - float(shadow), 1e-6))
 
 
-def _fit_backlight(block, rows, noise_abs, *, degree=2):
+def _saturation(frame):
+    """Grey level at which the sensor clips: 255, 4095 (12 bits in 16) or 65535."""
+    if frame.dtype == np.uint8:
+        return 255.0
+    if np.issubdtype(frame.dtype, np.integer):
+        return 4095.0 if int(frame.max()) <= 4095 else float(np.iinfo(frame.dtype).max)
+    return math.inf
+
+
+def _fit_backlight(block, rows, noise_abs, *, degree=2, saturation=math.inf):
     """Static light field of the band: a 2-D polynomial through the background, plus dust.
 
     Background pixels are those outside every row's integration window. The
@@ -324,6 +356,7 @@ def _fit_backlight(block, rows, noise_abs, *, degree=2):
     cols = np.arange(w)
     inside = (cols[None, :] >= (s0 - 2)[:, None]) & (cols[None, :] < (e0 + 2)[:, None])
     bg &= ~(inside & rows["has"][:, None])
+    bg &= block < saturation
     v = np.linspace(-1.0, 1.0, n)[:, None] * np.ones((1, w))
     u = np.ones((n, 1)) * np.linspace(-1.0, 1.0, w)[None, :]
     terms = [u ** i * v ** j for i in range(degree + 1) for j in range(degree + 1 - i)]
@@ -432,12 +465,17 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
         # backlight = flicker gain × the static light field of the layout
         ratio = margins / layout.margin_light
         lit = layout.lit_rows & np.isfinite(ratio)
+        clipped = bool(block.max() >= layout.saturation)
+        if clipped:  # a brighter frame clips part of the background: judge by the rest
+            lit &= np.maximum(block[:, :k].max(axis=1), block[:, w - k:].max(axis=1)) < layout.saturation
         gain = float(np.median(ratio[lit])) if lit.any() else 1.0
         light = ratio / gain
         inv_light = layout.inverse_backlight
         deficit = block * inv_light
         deficit *= np.float32(-scale / gain)
         deficit += scale
+        if clipped:
+            deficit[block >= layout.saturation] = 0.0
     else:
         # backlight interpolated linearly between the margins of each row
         gain = 1.0
@@ -546,7 +584,7 @@ def _local_slope(y, c, ok, half):
 
 
 def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DETECT_LEVEL,
-                 presence_level=PRESENCE_LEVEL, axis_window_px=10, max_bend_deg=2.0) -> Profile:
+                 presence_level=PRESENCE_LEVEL, axis_window_px=10, max_bend_deg=1.5) -> Profile:
     """Both edges of the filament on every row of the band, sub-pixel (see module docstring).
 
     ``shadow_fraction``: shadow level over backlight to use (e.g. a running
@@ -556,7 +594,7 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     smallest peak deficit of a row crossed by the thread;
     ``axis_window_px``: half-length of the sliding centre-line fit giving
     the local axis angle; ``max_bend_deg``: largest departure of the local
-    axis from the filament's median direction.
+    axis from the filament's direction in the layout.
     """
     axial = layout.axial_range
     block = _oriented(np.asarray(frame), layout.orientation, axial, layout.band)
@@ -589,8 +627,7 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     y = np.arange(n, dtype=np.float64) + axial[0]
     centre = rows["centre"] + layout.band[0]
     slope = _local_slope(y, centre, valid, axis_window_px)
-    good = valid & np.isfinite(slope)
-    axis = float(np.median(slope[good])) if good.any() else 0.0
+    axis = layout.axis_slope
     # the axis bends slowly; rows where the sliding fit swings further (plate corners,
     # beads, the retracting tips) take the filament's overall direction
     bend = math.tan(math.radians(max_bend_deg))
