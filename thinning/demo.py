@@ -10,7 +10,9 @@ from :mod:`thinning.synth`; ``scripts/make_sample_videos.py`` regenerates them.
 
 from __future__ import annotations
 
+import contextlib
 import csv
+import io
 import shutil
 from pathlib import Path
 
@@ -148,11 +150,20 @@ def demo(out_dir, samples, workers):
     if workers:
         batch_args += ["--workers", workers]
     run(*batch_args)
-    click.echo("")
-    run("records", "lots", "--db", db_url)
-    lots = sorted({row["lot"] for row in csv.DictReader(open(sample_dir / "manifest.csv", encoding="utf-8"))})
+    lots_csv = io.StringIO()
+    with contextlib.redirect_stdout(lots_csv):
+        run("records", "lots", "--db", db_url, "--csv")
+    click.echo("\nLot verdicts:")
+    lots = list(csv.DictReader(io.StringIO(lots_csv.getvalue())))
     for lot in lots:
-        run("report", lot, "--db", db_url, "--out", out / "reports")
+        line = f"  {lot['lot']:<10} {lot['verdict']:<7}"
+        if lot["reasons"]:
+            line += f" {lot['reasons'].split('; ')[0]}"
+        if lot["chart_flags"]:
+            line += f" [control chart: {lot['chart_flags']}]"
+        click.echo(line)
+    for lot in lots:
+        run("report", lot["lot"], "--product", lot["product"], "--db", db_url, "--out", out / "reports")
     click.echo("")
     click.echo(f"Lot reports: {(out / 'reports').resolve()}/<lot>.html")
     click.echo(f"Per-recording results: {(out / 'batch').resolve()}")
