@@ -254,13 +254,39 @@ def _line_fits(x, y, w, left, right):
     return slope, se, ym + slope * (x - xm)
 
 
+def _lopsided_quadratic(x, y, w, left, right, slope, se, fit, *, max_offset=0.1):
+    """Slope at the point itself from a weighted quadratic where its window is lopsided.
+
+    A line through a one-sided window (ends of the data) gives the slope at
+    the window's middle, not at the point; a quadratic evaluated at the point
+    removes that first-order bias. Windows with ≤ 3 points keep the line.
+    """
+    i = np.arange(x.size)
+    lopsided = np.flatnonzero((np.abs(0.5 * (left + right) - i) > max_offset * (right - left))
+                              & (right - left >= 3))
+    slope, se, fit = slope.copy(), se.copy(), fit.copy()
+    for k in lopsided:
+        sl = slice(left[k], right[k] + 1)
+        u = x[sl] - x[k]
+        a = np.vstack([np.ones_like(u), u, u * u]).T
+        aw = a * w[sl, None]
+        try:
+            cov = np.linalg.inv(a.T @ aw)
+        except np.linalg.LinAlgError:
+            continue
+        coef = cov @ (aw.T @ y[sl])
+        slope[k], se[k], fit[k] = coef[1], np.sqrt(cov[1, 1]), coef[0]
+    return slope, se, fit
+
+
 def local_log_slopes(time_s, diameter_m, *, noise_m, log_span=0.2, min_half_width=1,
                      max_half_width=100, half_width=None, target_rel_se=None) -> LocalSlopes:
     """Sliding weighted least-squares lines through ln D, one per point.
 
     Weights are (D/σ_D)² (noise constant in D makes σ_lnD = σ_D/D). Each
     window spans about ``log_span`` in ln D, clipped to [``min_half_width``,
-    ``max_half_width``] points either side (one-sided at the ends). With
+    ``max_half_width``] points either side (one-sided at the ends, where a
+    quadratic gives the slope at the point itself). With
     ``target_rel_se``, a point whose slope is less precise than that is refitted
     over 2, 4, 8 times the span (noisy thin frames get wider windows). A fixed
     ``half_width`` (points) overrides the adaptive choice. Returns slopes
@@ -293,6 +319,7 @@ def local_log_slopes(time_s, diameter_m, *, noise_m, log_span=0.2, min_half_widt
                 s2, e2, f2 = _line_fits(x, y, w, l2, r2)
                 slope, se, fit = (np.where(poor, a, b) for a, b in ((s2, slope), (e2, se), (f2, fit)))
                 left, right = np.where(poor, l2, left), np.where(poor, r2, right)
+        slope, se, fit = _lopsided_quadratic(x, y, w, left, right, slope, se, fit)
     return LocalSlopes(slope_1_s=slope / scale, slope_se_1_s=se / scale, log_diameter_fit=fit,
                        left=left, right=right)
 

@@ -29,8 +29,8 @@ def derived_curves(time_s, diameter_m, *, surface_tension, initial_diameter, t_s
     ``hencky_strain`` 2 ln(D0/D) with D0 = ``initial_diameter`` (m);
     ``apparent_extensional_viscosity_Pa_s`` σ/(−dD/dt) (X = 1, σ in N/m);
     ``above_resolution_floor`` and ``outlier`` flags; ``resolved`` marks frames
-    whose rate is known to 10 % from a window centred on them (not one-sided at
-    the ends of the usable data). Rates and viscosity are
+    whose rate is known to 10 % from a window centred on them (within a tenth of
+    its width; not one-sided at the ends of the usable data). Rates and viscosity are
     NaN before ``t_start_s``, where there is no thread, below the floor and at
     outlier frames; the strain is NaN where there is no thread or before
     ``t_start_s``.
@@ -54,7 +54,7 @@ def derived_curves(time_s, diameter_m, *, surface_tension, initial_diameter, t_s
         speed = -sl.slope_1_s * np.exp(sl.log_diameter_fit)   # −dD/dt, m/s
         with np.errstate(divide="ignore", invalid="ignore"):
             visc[series.index] = np.where(speed > 0, surface_tension / speed, np.nan)
-            centred = np.abs(0.5 * (sl.left + sl.right) - np.arange(series.n)) <= 0.25 * (sl.right - sl.left)
+            centred = np.abs(0.5 * (sl.left + sl.right) - np.arange(series.n)) <= 0.1 * (sl.right - sl.left)
             resolved[series.index] = centred & (np.abs(sl.slope_se_1_s / sl.slope_1_s) <= 0.1)
     thread = np.isfinite(d) & (d > 0)
     if t_start_s is not None:
