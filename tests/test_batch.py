@@ -90,6 +90,44 @@ def write_stack(path, rng, n_frames=5, shape=(16, 24)):
     return path
 
 
+def small_scene():
+    """A dilute polymer solution (λ = 5 ms) in 128 × 64 px frames at 2000/s: ~170 frames to breakup."""
+    from thinning import synth
+
+    return synth.dilute_polymer_plates(frame_size_px=(128, 64), pixel_size_m=25e-6, fps_hz=2000.0,
+                                       plate_diameter_m=1.4e-3, initial_diameter_m=0.7e-3,
+                                       stretch_duration_s=0.0, pre_roll_s=0.0)
+
+
+#: Real-analysis rows: (file, writer format, seed); the batch gives the calibration.
+SYNTHETIC = (("raw.avi", "avi-raw", 11), ("stack.tif", "tiff", 12), ("frames", "png-folder", 13))
+SYNTHETIC_DEFAULTS = {"fps": "2000/s", "pixel_size": "25um", "surface_tension": "62mN/m"}
+
+
+def write_synthetic_set(folder):
+    """Three tiny synthetic recordings plus a corrupt file, an empty folder and a missing file.
+
+    Returns the manifest path; rows 2, 4 and 6 are the bad ones.
+    """
+    from thinning import synth
+
+    folder.mkdir(parents=True, exist_ok=True)
+    for name, fmt, seed in SYNTHETIC:
+        synth.write_recording(small_scene(), synth.Optics(), folder / name, fmt=fmt, seed=seed)
+    rng = np.random.default_rng(14)
+    (folder / "corrupt.avi").write_bytes(b"RIFF" + rng.integers(0, 256, 4000, dtype=np.uint8).tobytes())
+    (folder / "empty").mkdir()
+    manifest = folder / "manifest.csv"
+    manifest.write_text("path,sample,lot,product,replicate\n"
+                        "raw.avi,S1,L1,ink,1\n"
+                        "corrupt.avi,S2,L1,ink,2\n"
+                        "stack.tif,S3,L1,ink,3\n"
+                        "empty,S4,L2,ink,1\n"
+                        "frames,S5,L2,ink,2\n"
+                        "gone.avi,S6,L2,ink,3\n")
+    return manifest
+
+
 def read_table(path):
     with open(path, newline="", encoding="utf-8") as fh:
         reader = csv.DictReader(fh)
@@ -261,6 +299,86 @@ def test_leftover_temporary_folders_are_removed(tmp_path, fake_env):
     (stale / "result.json").write_text("{half")
     run_batch(manifest, out, defaults=DEFAULTS, workers=1, analyser=FAKE)
     assert sorted(p.name for p in out.iterdir() if p.is_dir()) == ["1-a"]
+
+
+def test_real_batch_matches_single_analyses(tmp_path):
+    from thinning.analysis import analyse
+    from thinning.units import options_from_text
+
+    manifest = write_synthetic_set(tmp_path / "data")
+    out = tmp_path / "out"
+    runner = CliRunner()
+    args = ["batch", str(manifest), "--out", str(out), "--workers", "2"]
+    for name, value in SYNTHETIC_DEFAULTS.items():
+        args += [f"--{name.replace('_', '-')}", value]
+    done = runner.invoke(cli, args)
+    assert done.exit_code == 0, done.output     # failed rows do not fail the batch
+    assert "6 rows: 3 ok, 3 failed" in done.output
+    _, table = read_table(out / "results.csv")
+    assert [r["status"] for r in table] == ["ok", "failed", "ok", "failed", "ok", "failed"]
+    assert "corrupt.avi" in table[1]["reason"] and "no image files" in table[3]["reason"]
+    assert "no such file" in table[5]["reason"]
+    options = options_from_text(SYNTHETIC_DEFAULTS)
+    for r, (name, _, _) in zip([table[0], table[2], table[4]], SYNTHETIC):
+        single = analyse(tmp_path / "data" / name, tmp_path / "single" / name, options)
+        batched = json.loads((out / r["folder"] / "result.json").read_text())
+        single["source"].pop("path"), batched["source"].pop("path")
+        assert batched == single
+        assert r["sha256"] == single["source"]["sha256"]
+        lam = single["relaxation_time_s"]
+        assert (r["relaxation_time_s"] == "") if lam is None else (float(r["relaxation_time_s"]) == lam)
+        assert float(r["fps_hz"]) == 2000.0 and float(r["pixel_size_m"]) == single["pixel_size_m"]
+        assert r["quality"] == single["quality"] and r["regime"] == single["regime"]
+        assert r["warnings"] == "; ".join(single["warnings"])
+
+
+def test_killed_command_then_rerun_keeps_each_recording_once(tmp_path):
+    data = tmp_path / "data"
+    write_synthetic_set(data)
+    manifest = data / "manifest.csv"
+    lines = ["path,sample"] + [f"{name},K{i}" for i in range(2) for name, _, _ in SYNTHETIC]
+    manifest.write_text("\n".join(lines) + "\n")
+    out = tmp_path / "out"
+    args = [sys.executable, "-m", "thinning.cli", "batch", str(manifest), "--out", str(out),
+            "--workers", "2"]
+    for name, value in SYNTHETIC_DEFAULTS.items():
+        args += [f"--{name.replace('_', '-')}", value]
+    proc = subprocess.Popen(args, cwd=tmp_path, start_new_session=True, stdout=subprocess.PIPE,
+                            stderr=subprocess.STDOUT)
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline:
+            if (out / "results.csv").exists() and len(read_table(out / "results.csv")[1]) >= 2:
+                break
+            time.sleep(0.05)
+        else:
+            pytest.fail("the batch finished no row within 120 s")
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(timeout=10)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+        proc.stdout.close()
+    _, partial = read_table(out / "results.csv")
+    assert 2 <= len(partial) < 6
+    stamps = {r["row"]: json.loads((out / r["folder"] / "row.json").read_text())["analysed_at"]
+              for r in partial}
+    time.sleep(0.5)
+    rerun = subprocess.run(args, cwd=tmp_path, capture_output=True, text=True, timeout=300)
+    assert rerun.returncode == 0, rerun.stderr
+    assert rerun.stdout.count("(up to date)") >= len(partial)
+    _, table = read_table(out / "results.csv")
+    assert [r["row"] for r in table] == [str(i) for i in range(1, 7)]
+    assert all(r["status"] == "ok" for r in table)
+    entries = sorted(p.name for p in out.iterdir() if not p.name.startswith("."))
+    assert entries == sorted([r["folder"] for r in table] + ["results.csv", "results.parquet"])
+    assert not any(p.name.endswith(TEMP_SUFFIX) for p in out.iterdir())
+    for r in table:
+        folder = out / r["folder"]
+        assert (folder / "result.json").is_file() and (folder / "report.html").is_file()
+        if r["row"] in stamps:   # finished before the kill: kept, not analysed again
+            assert json.loads((folder / "row.json").read_text())["analysed_at"] == stamps[r["row"]]
+    assert not list(tmp_path.glob("*.db")) and sorted(p.name for p in tmp_path.iterdir()) == ["data", "out"]
 
 
 _KILL_SCRIPT = """

@@ -378,7 +378,7 @@ def run_dask(tasks, on_outcome, *, scheduler: str, connect_timeout_s: float = 20
     from distributed import Client, as_completed
 
     try:
-        client = Client(scheduler, timeout=f"{connect_timeout_s}s", set_as_default=False)
+        client = Client(scheduler, timeout=f"{connect_timeout_s}s")
     except (OSError, TimeoutError, ValueError) as exc:
         raise SchedulerUnreachable(f"No Dask scheduler answered at {scheduler} ({type(exc).__name__}); "
                                    "start one or check the address.") from None
@@ -513,7 +513,7 @@ def _clean_leftovers(out: Path):
 
 def run_batch(manifest, out_dir, *, defaults: dict | None = None, workers: int | None = None,
               scheduler: str | None = None, redo: bool = False, on_row=None,
-              analyser: str = DEFAULT_ANALYSER) -> BatchReport:
+              analyser: str = DEFAULT_ANALYSER, connect_timeout_s: float = 20.0) -> BatchReport:
     """Analyse every row of ``manifest`` into ``out_dir``; write ``results.csv`` as rows finish.
 
     ``defaults``: option texts from the command line (``{"fps": "10kHz", …}``)
@@ -522,6 +522,7 @@ def run_batch(manifest, out_dir, *, defaults: dict | None = None, workers: int |
     outcome, folder)`` is called in this process as each row finishes, in finishing
     order. ``analyser``: ``"module:function"`` with the signature of
     :func:`thinning.analysis.analyse` (the default), imported in the workers.
+    ``connect_timeout_s``: how long to wait for the Dask scheduler.
     Raises :class:`~thinning.manifest.UnusableManifest`, :class:`BatchBusy`,
     :class:`SchedulerUnreachable`.
     """
@@ -532,12 +533,13 @@ def run_batch(manifest, out_dir, *, defaults: dict | None = None, workers: int |
     try:
         _clean_leftovers(out)
         return _run(rows, out, defaults=defaults or {}, workers=workers or os.cpu_count() or 1,
-                    scheduler=scheduler, redo=redo, on_row=on_row, analyser=analyser)
+                    scheduler=scheduler, redo=redo, on_row=on_row, analyser=analyser,
+                    connect_timeout_s=connect_timeout_s)
     finally:
         lock.close()
 
 
-def _run(rows, out, *, defaults, workers, scheduler, redo, on_row, analyser):
+def _run(rows, out, *, defaults, workers, scheduler, redo, on_row, analyser, connect_timeout_s):
     width = len(str(max((r.row for r in rows), default=1)))
     by_row = {r.row: r for r in rows}
     folders = {r.row: row_folder_name(r.row, r.name, width) for r in rows}
@@ -567,7 +569,7 @@ def _run(rows, out, *, defaults, workers, scheduler, redo, on_row, analyser):
         tasks.append(RowTask(row.row, str(row.source.resolve()), options, folder, redo, analyser))
     if tasks:
         if scheduler:
-            run_dask(tasks, record, scheduler=scheduler)
+            run_dask(tasks, record, scheduler=scheduler, connect_timeout_s=connect_timeout_s)
         else:
             run_local(tasks, record, workers=workers)
     rows_done = [finished[k] for k in sorted(finished)]
