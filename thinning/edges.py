@@ -61,10 +61,10 @@ class Layout:
     ``roi`` is ``x0, y0, x1, y1`` (numpy slicing) of the region analysed;
     ``thread_span`` the axial range ``[start, stop)`` between the end bodies
     in the first frame; ``band`` the lateral range ``[start, stop)`` analysed
-    (within the roi); ``end_widths_px`` the widths of the bodies at the start
-    and end of the axis (None where there is none, ``inf`` for a body that
+    (within the roi); ``end_widths_px`` the widths along the image rows of the
+    bodies at the start and end of the axis (None where there is none, ``inf`` for a body that
     fills the band, like a substrate); ``plate_width_px`` the plate width
-    (plates) or nozzle outer diameter (dripping), sub-pixel, or None.
+    (plates) or nozzle outer diameter (dripping) across the axis, sub-pixel, or None.
     ``background_level`` and ``shadow_level`` are grey levels of the first
     frame; ``blur_sigma_px`` the estimated Gaussian-equivalent blur of an
     edge; ``noise`` the per-pixel noise as a fraction of the shadow depth;
@@ -291,8 +291,9 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
                          geometry=geometry, saturation=_saturation(frame))
     block = _oriented(frame, orientation, axial, band)
     rows = _measure_rows(block, provisional, shadow_fraction=provisional.shadow_fraction)
-    provisional = replace(provisional, backlight=_fit_backlight(block, rows, noise_abs,
-                                                                saturation=provisional.saturation))
+    floor = levels["shadow"] + 0.3 * (levels["background"] - levels["shadow"])
+    provisional = replace(provisional, backlight=_fit_backlight(
+        block, rows, noise_abs, saturation=provisional.saturation, floor=floor))
     fraction = _rim_fraction(_measure_rows(block, provisional,
                                            shadow_fraction=provisional.shadow_fraction)["rim_ratio"],
                              free)
@@ -327,7 +328,10 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
     else:
         line = free & rows["has"] & ~rows["truncated"]
         axis_slope = float(np.polyfit(index[line], rows["centre"][line], 1)[0]) if line.sum() >= 6 else 0.0
-    return replace(provisional, plate_width_px=_reference_width(widths, geometry), axis_slope=axis_slope,
+    plate = _reference_width(widths, geometry)
+    if plate is not None:
+        plate /= math.sqrt(1.0 + axis_slope * axis_slope)  # across the axis, not along the row
+    return replace(provisional, plate_width_px=plate, axis_slope=axis_slope,
                    end_widths_px=(widths[0], widths[1]),
                    noise=noise_abs / max(levels["background"] - float(shadow), 1e-6))
 
@@ -341,10 +345,11 @@ def _saturation(frame):
     return math.inf
 
 
-def _fit_backlight(block, rows, noise_abs, *, degree=2, saturation=math.inf):
+def _fit_backlight(block, rows, noise_abs, *, degree=2, saturation=math.inf, floor=-math.inf):
     """Static light field of the band: a 2-D polynomial through the background, plus dust.
 
-    Background pixels are those outside every row's integration window. The
+    Background pixels are those outside every row's integration window,
+    brighter than ``floor`` and below ``saturation``. The
     polynomial (``degree`` in the axial and lateral coordinate) carries the
     ramp and vignetting of the light; small dark specks of dust on the
     background are kept as they are (smoothed over 3×3 pixels), so that they
@@ -356,7 +361,7 @@ def _fit_backlight(block, rows, noise_abs, *, degree=2, saturation=math.inf):
     cols = np.arange(w)
     inside = (cols[None, :] >= (s0 - 2)[:, None]) & (cols[None, :] < (e0 + 2)[:, None])
     bg &= ~(inside & rows["has"][:, None])
-    bg &= block < saturation
+    bg &= (block < saturation) & (block > floor)  # not clipped, not in a body's shadow
     v = np.linspace(-1.0, 1.0, n)[:, None] * np.ones((1, w))
     u = np.ones((n, 1)) * np.linspace(-1.0, 1.0, w)[None, :]
     terms = [u ** i * v ** j for i in range(degree + 1) for j in range(degree + 1 - i)]
