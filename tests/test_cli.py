@@ -1,0 +1,148 @@
+"""The command-line contract of `thinning analyse` (shared/design/interface.md)."""
+
+import json
+import math
+
+import pytest
+from click.testing import CliRunner
+
+from thinning import synth
+from thinning.cli import cli
+
+REQUIRED_KEYS = [
+    "schema", "tool_version", "source", "fps_hz", "pixel_size_m", "options", "regime", "regimes",
+    "relaxation_time_s", "relaxation_time_ci95_s", "fit_window_s", "fit_window_frames",
+    "free_thinning_start_s", "initial_diameter_m", "elastic_modulus_Pa", "shear_viscosity_Pa_s",
+    "extensional_viscosity_max_Pa_s", "extensional_viscosity_terminal_Pa_s", "breakup_time_s",
+    "filament_lifetime_s", "warnings", "quality", "quality_reasons",
+]
+SMALL = dict(frame_size_px=(160, 144), pixel_size_m=25e-6, fps_hz=2500.0, initial_diameter_m=0.9e-3)
+
+
+@pytest.fixture(scope="module")
+def recording(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("rec")
+    path = folder / "bridge.avi"
+    truth = synth.write_recording(synth.dilute_polymer_plates(**SMALL), synth.Optics(), path,
+                                  fmt="avi-raw", seed=7)
+    return path, truth
+
+
+def run(*args):
+    result = CliRunner().invoke(cli, [str(a) for a in args], catch_exceptions=False)
+    return result
+
+
+def analyse_args(source, out, **extra):
+    args = ["analyse", source, "--out", out, "--fps", "2.5kHz", "--pixel-size", "25 µm/px",
+            "--surface-tension", "62mN/m"]
+    for key, value in extra.items():
+        args += [f"--{key.replace('_', '-')}", value]
+    return args
+
+
+def test_analyse_writes_the_contract_files(recording, tmp_path):
+    path, truth = recording
+    out = tmp_path / "out"
+    result = run(*analyse_args(path, out))
+    assert result.exit_code == 0, result.output
+    assert "relaxation time" in result.output
+    data = json.loads((out / "result.json").read_text())
+    assert list(data)[: len(REQUIRED_KEYS)] == REQUIRED_KEYS or set(REQUIRED_KEYS) <= set(data)
+    assert data["schema"] == "thinning.result/1"
+    assert data["source"]["n_frames"] == truth.n_frames
+    assert data["source"]["width_px"] == 144 and data["source"]["height_px"] == 160
+    assert data["fps_hz"] == 2500.0 and math.isclose(data["pixel_size_m"], 25e-6)
+    assert data["regime"] == "elasto-capillary"
+    assert abs(data["relaxation_time_s"] / truth.relaxation_time_s - 1) < 0.05
+    lines = (out / "diameter.csv").read_text().splitlines()
+    assert lines[0].split(",")[:3] == ["frame", "time_s", "diameter_m"]
+    assert len(lines) == truth.n_frames + 1
+    row = lines[11].split(",")
+    assert row[0] == "10" and float(row[1]) == 10 / 2500.0
+    assert "NaN" not in (out / "result.json").read_text()
+
+
+def test_same_input_same_output(recording, tmp_path):
+    path, _ = recording
+    for name in ("a", "b"):
+        assert run(*analyse_args(path, tmp_path / name)).exit_code == 0
+    for file in ("result.json", "diameter.csv", "diameter.png", "report.html"):
+        assert (tmp_path / "a" / file).read_bytes() == (tmp_path / "b" / file).read_bytes(), file
+
+
+def test_reference_width_calibration(recording, tmp_path):
+    path, truth = recording
+    out = tmp_path / "ref"
+    result = run("analyse", path, "--out", out, "--fps", "2500", "--reference-width",
+                 f"{truth.plate_diameter_m * 1e3}mm", "--surface-tension", "0.062 N/m")
+    assert result.exit_code == 0, result.output
+    data = json.loads((out / "result.json").read_text())
+    assert abs(data["pixel_size_m"] / truth.pixel_size_m - 1) < 0.01
+
+
+@pytest.mark.parametrize("case, message", [
+    ("missing", "no such file"),
+    ("empty-folder", "no image files"),
+    ("junk", "not a recording"),
+    ("no-fps", "frame rate"),
+    ("bad-unit", "not a surface tension"),
+    ("no-filament", "filament"),
+    ("no-surface-tension", "surface tension"),
+])
+def test_bad_input_is_one_sentence_and_exit_2(tmp_path, recording, case, message):
+    import numpy as np
+    import tifffile
+
+    good, _ = recording
+    source = tmp_path / "x.avi"
+    extra = []
+    args = None
+    if case == "empty-folder":
+        source = tmp_path / "empty"
+        source.mkdir()
+    elif case == "junk":
+        source.write_bytes(b"\x00garbage" * 500)
+    elif case == "no-filament":
+        source = tmp_path / "blank.tif"
+        tifffile.imwrite(source, np.full((20, 64, 64), 200, np.uint8), photometric="minisblack")
+    elif case == "no-fps":
+        source = tmp_path / "stack.tif"   # a TIFF carries no frame rate
+        tifffile.imwrite(source, np.full((3, 64, 64), 200, np.uint8), photometric="minisblack")
+        args = ["analyse", source, "--out", tmp_path / "o", "--pixel-size", "5um",
+                "--surface-tension", "30"]
+    elif case == "bad-unit":
+        args = analyse_args(good, tmp_path / "o")
+        args[args.index("--surface-tension") + 1] = "3 kg"
+    elif case == "no-surface-tension":
+        args = ["analyse", good, "--out", tmp_path / "o", "--fps", "2kHz", "--pixel-size", "5um"]
+    if args is None:
+        args = analyse_args(source, tmp_path / "o") + extra
+    result = CliRunner().invoke(cli, [str(a) for a in args])
+    assert result.exit_code == 2, result.output
+    assert message in result.output
+    assert "Traceback" not in result.output
+    assert len(result.output.strip().splitlines()) <= 2
+
+
+def test_failed_rerun_keeps_earlier_results(recording, tmp_path):
+    path, _ = recording
+    out = tmp_path / "keep"
+    assert run(*analyse_args(path, out)).exit_code == 0
+    before = (out / "result.json").read_bytes()
+    result = CliRunner().invoke(cli, [str(a) for a in analyse_args(tmp_path / "gone.avi", out)])
+    assert result.exit_code == 2
+    assert (out / "result.json").read_bytes() == before
+
+
+def test_truncated_video_is_analysed_with_a_warning(recording, tmp_path):
+    path, _ = recording
+    cut = tmp_path / "cut.avi"
+    data = path.read_bytes()
+    cut.write_bytes(data[: int(len(data) * 0.6)])
+    out = tmp_path / "cut"
+    result = run(*analyse_args(cut, out))
+    assert result.exit_code == 0, result.output
+    data = json.loads((out / "result.json").read_text())
+    assert data["quality"] == "doubtful"
+    assert any("broke off" in r for r in data["quality_reasons"])
