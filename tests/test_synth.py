@@ -116,6 +116,26 @@ def test_recording_is_deterministic(tmp_path):
     assert (tmp_path / "a.avi.truth.json").read_bytes() == (tmp_path / "b.avi.truth.json").read_bytes()
 
 
+@pytest.mark.parametrize(("fmt", "name"), [("tiff", "s.tif"), ("png-folder", "pngs"),
+                                         ("avi-mjpg", "m.avi")])
+def test_other_formats_are_deterministic(tmp_path, fmt, name):
+    scene, optics = small_scene(n_frames=8), synth.Optics(bit_depth=8)
+
+    def contents(folder):
+        synth.write_recording(scene, optics, folder / name, fmt=fmt, seed=5)
+        path = folder / name
+        files = sorted(path.iterdir()) if path.is_dir() else [path]
+        return [f.read_bytes() for f in files]
+
+    assert contents(tmp_path / "one") == contents(tmp_path / "two")
+
+
+def test_png_folder_rewrite_drops_stale_frames(tmp_path):
+    synth.write_recording(small_scene(n_frames=12), synth.Optics(), tmp_path / "f", fmt="png-folder", seed=0)
+    synth.write_recording(small_scene(n_frames=5), synth.Optics(), tmp_path / "f", fmt="png-folder", seed=0)
+    assert len(list((tmp_path / "f").glob("frame_*.png"))) == 5
+
+
 def test_frames_match_render(tmp_path):
     scene, optics = small_scene(), synth.Optics()
     frames, _ = synth.render_recording(scene, optics, seed=2)

@@ -2,22 +2,30 @@
 
 The neck history comes from :func:`thinning.laws.filament_model`; this module
 only draws it. Per frame it builds the liquid's radius profile R(a) along the
-filament axis (end plates or nozzle and substrate, a neck whose minimum is
-exactly the model's D(t)/2 at a known position, a uniform thread in
-elasto-capillary thinning, beads, the retracting halves after breakup), turns
-the silhouette into exact per-row pixel coverage (8 sub-rows per pixel row,
-exact 1-D coverage across), blurs it with the optics' PSF and paints a
-backlit image with uneven light, flicker, lens streak, dust, shot and read
-noise, quantised to the bit depth.
+filament axis: end plates (or a nozzle above a substrate with a spreading
+sessile drop) met by smooth menisci, a neck whose minimum is exactly the
+model's D(t)/2 at a known position (localised for Newtonian liquids, a long
+uniform thread in elasto-capillary thinning), optional beads, and after
+breakup two halves whose tips recede. The silhouette becomes exact per-row
+pixel coverage (8 sub-rows per pixel row, exact 1-D coverage across; tilt
+rotates the geometry, not the image), is blurred by the optics' PSF and
+painted as a backlit image with uneven light, flicker, lens streak, dust,
+shot and read noise, quantised to the bit depth.
+
+Timeline of a record (recording clock ``frame / fps_hz``): ``pre_roll_s`` at
+rest, ``stretch_duration_s`` of plate motion (dripping: the drop touches the
+substrate and drains), free thinning from ``pre_roll_s + stretch_duration_s``
+(the model's t = 0), breakup, and a few frames of the retracting halves.
 
 Conventions: SI units in names; pixel coordinates have their origin at the
 centre of the top-left pixel (pixel ``i`` spans ``i - 0.5 .. i + 0.5``), x to
-the right, y down; the recording clock is ``frame / fps_hz``. The truth is in
-the filament's own frame: jitter moves the neck position, never the diameter.
+the right, y down. A horizontal recording is the vertical one transposed:
+the upper end appears on the left. The truth is in the filament's own frame:
+jitter moves the neck position, never the diameter.
 
-Public entry points: :class:`Optics`, :class:`Scene`, :class:`Truth`,
-:func:`render_recording`, :func:`write_recording`,
-:func:`write_benchmark_recording`, :func:`standard_scenes` and the presets.
+Containers never carry the true frame rate (AVI/MKV/MP4 get a playback rate,
+25/s by default, as high-speed cameras do); MJPG AVIs are written by a small
+writer of our own, because OpenCV's ignores the JPEG quality.
 """
 
 from __future__ import annotations
@@ -35,6 +43,11 @@ import numpy as np
 from thinning import laws
 
 log = logging.getLogger(__name__)
+
+__all__ = ["Optics", "Scene", "Truth", "render_recording", "write_recording", "write_truth",
+           "load_truth", "truth_path", "write_benchmark_recording", "benchmark_scene",
+           "standard_scenes", "dilute_polymer_plates", "boger_fluid_plates",
+           "newtonian_viscous_plates", "water_like_dripping", "polymer_dripping"]
 
 #: Sub-rows per pixel row used to integrate coverage along the image rows' normal.
 SUB_ROWS = 8
@@ -183,7 +196,7 @@ class Truth:
     (cross-axis displacement per unit axial displacement, as an angle),
     ``upper_end_px`` / ``lower_end_px`` (axial image coordinate of the upper
     plate face or nozzle tip and of the lower plate face or substrate, on the
-    axis) and ``phase`` ("rest", "stretch", "free", "broken", "pendant").
+    axis; left and right ends of a horizontal recording) and ``phase`` ("rest", "stretch", "free", "broken", "pendant").
     """
 
     frame: np.ndarray
@@ -1023,6 +1036,8 @@ def _write_png_folder(frames, folder: Path, n_frames: int) -> None:
     import cv2
 
     folder.mkdir(parents=True, exist_ok=True)
+    for stale in folder.glob("frame_*.png"):    # a shorter rewrite must not keep old frames
+        stale.unlink()
     width = max(4, len(str(n_frames)))
     for i, frame in enumerate(frames, start=1):
         name = folder / f"frame_{i:0{width}d}.png"
