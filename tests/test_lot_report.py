@@ -28,8 +28,7 @@ def _lot(lot, lams, made_on, *, sample="S", notes=""):
             for i, lam in enumerate(lams, start=1)]
 
 
-@pytest.fixture
-def store(db_url, tmp_path):
+def _filled(url, tmp_path):
     rng = np.random.default_rng(5)
     rows = []
     for k in range(6):
@@ -38,16 +37,30 @@ def store(db_url, tmp_path):
     rows += _lot("NEW", [0.0100, 0.0101], "2026-01-21")
     write_batch(tmp_path / "batch", rows)
     (tmp_path / "specs.toml").write_text(SPECS)
-    with rec.open_records(db_url) as records:
-        records.load_specs(tmp_path / "specs.toml")
-        records.load_batch(tmp_path / "batch")
+    records = rec.open_records(url)
+    records.load_specs(tmp_path / "specs.toml")
+    records.load_batch(tmp_path / "batch")
+    return records
+
+
+@pytest.fixture
+def store(db_url, tmp_path):
+    with _filled(db_url, tmp_path) as records:
+        yield records
+
+
+@pytest.fixture
+def sqlite_store(tmp_path):
+    """The same records in SQLite only: for checks of the page itself, which no database changes."""
+    with _filled(f"sqlite:///{tmp_path / 'records.db'}", tmp_path) as records:
         yield records
 
 
 def _external_references(html):
     """Anything the page would fetch or run: scripts, links, non-data sources, CSS urls."""
     found = re.findall(r"<script|<link|<iframe|<object|@import", html, flags=re.I)
-    found += [s for s in re.findall(r'(?:src|href)\s*=\s*"([^"]*)"', html) if not s.startswith("data:image/png;base64,")]
+    found += [s for s in re.findall(r'(?:src|href)\s*=\s*"([^"]*)"', html)
+              if not s.startswith(("data:image/png;base64,", "#"))]
     found += [u for u in re.findall(r"url\(([^)]*)\)", html)]
     return found
 
@@ -105,10 +118,10 @@ def _console_messages(stderr: str) -> list[str]:
 
 
 @pytest.mark.chromium
-def test_chromium_shows_the_verdict_on_the_first_screen(store, tmp_path, chromium_path):
+def test_chromium_shows_the_verdict_on_the_first_screen(sqlite_store, tmp_path, chromium_path):
     from matplotlib.image import imread
 
-    page = write_lot_report(store, "A/B 7", out_dir=tmp_path / "out")
+    page = write_lot_report(sqlite_store, "A/B 7", out_dir=tmp_path / "out")
     shot = tmp_path / "first-screen.png"
     process = run_chromium(chromium_path, page, tmp_path / "profile", f"--screenshot={shot}")
     assert process.returncode == 0, process.stderr[-2000:]

@@ -106,6 +106,24 @@ def test_store_result_copies_the_diameter_curve(db_url, tmp_path):
     np.testing.assert_array_equal(d[~np.isnan(d)], d_true[~np.isnan(d_true)])
 
 
+def test_the_batch_store_and_a_later_load_of_its_folder_agree(db_url, tmp_path):
+    # the batch stores its in-memory result (tuples, numpy numbers, NaN where the file has null);
+    # loading the finished folder afterwards must find the identical result
+    rows = lot_rows("ink-A", "L1", [0.0103])
+    write_batch(tmp_path / "b", rows)
+    in_memory = dict(rows[0]["result"])
+    in_memory.update(relaxation_time_s=np.float64(0.0103), shear_viscosity_Pa_s=float("nan"),
+                     fit_window_s=(0.001, 0.02), fit_window_frames=np.int64(380))
+    manifest_row = {k: rows[0][k] for k in ("sample", "lot", "product", "replicate", "made_on")}
+    with rec.open_records(db_url) as store:
+        assert store.store_result({**manifest_row, "status": "ok", "sha256": in_memory["source"]["sha256"]},
+                                  in_memory, analysed_at="2026-02-01T10:00:00Z",
+                                  row_dir=tmp_path / "b" / "1-L1-s") == "inserted"
+        assert store.load_batch(tmp_path / "b")["unchanged"] == 1
+        (row,) = store.export_rows()
+    assert row["shear_viscosity_Pa_s"] is None and type(row["relaxation_time_s"]) is float
+
+
 def test_a_changed_result_supersedes_and_keeps_history(db_url, tmp_path):
     write_batch(tmp_path / "old", lot_rows("ink-A", "L1", [0.010, 0.010, 0.010], tool="0.1.0",
                                            options={"surface_tension_N_m": 0.05}))

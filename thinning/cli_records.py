@@ -97,10 +97,15 @@ def _ms(value, digits=4) -> str:
     return "—" if value is None else f"{value * 1e3:.{digits}g}"
 
 
+def _when(stamp: str) -> str:
+    """A stored UTC ISO time, shortened for tables: 2026-02-01 10:00."""
+    return stamp[:16].replace("T", " ")
+
+
 def _console():
     from rich.console import Console
 
-    return Console(file=sys.stdout, width=max(120, Console().width), highlight=False)
+    return Console(file=sys.stdout, width=max(150, Console().width), highlight=False)
 
 
 _VERDICT_STYLE = {"pass": "bold green", "review": "bold yellow", "fail": "bold red"}
@@ -142,7 +147,7 @@ def lots_command(db_url, product, as_csv):
         table.add_row(row["product"], row["lot"], row["made_on"] or "—", str(row["n_valid"]),
                       _ms(row["relaxation_time_mean_s"]), _ms(row["relaxation_time_sd_s"], 3), cv,
                       f"[{_VERDICT_STYLE[row['verdict']]}]{row['verdict']}[/]",
-                      row["reasons"].replace("; ", "\n") or "—", row["chart_flags"] or "—")
+                      row["reasons"].replace("; ", "\n") or "—", row["chart_flags"].replace("; ", "\n") or "—")
     _console().print(table)
 
 
@@ -183,20 +188,20 @@ def show_command(lot, db_url, product, as_csv, history):
         interval = f", 95 % interval {_ms(lam.ci95[0])}–{_ms(lam.ci95[1])} ms" if lam.ci95 else ""
         console.print(f"relaxation time: mean {_ms(lam.mean)} ms{extra}{interval}")
     table = Table(title="measurements")
-    for header in ("sample", "rep.", "λ (ms)", "95 % interval (ms)", "quality", "regime", "valid",
-                   "warnings", "analysed at", "tool", "sha256"):
-        table.add_column(header, overflow="fold")
+    for header in ("sample", "rep.", "λ (ms)", "95 % CI (ms)", "quality", "regime", "valid",
+                   "warnings", "analysed at (UTC)", "tool", "sha256"):
+        table.add_column(header, overflow="fold", no_wrap=header in ("regime", "analysed at (UTC)", "sha256"))
     valid = dict(zip((m["id"] for m in detail.measurements), verdict.valid))
     for m in detail.measurements:
         interval = ("—" if m["relaxation_time_ci95_low_s"] is None else
                     f"{_ms(m['relaxation_time_ci95_low_s'])}–{_ms(m['relaxation_time_ci95_high_s'])}")
         table.add_row(escape(m["sample"]), escape(m["replicate"]), _ms(m["relaxation_time_s"]), interval,
                       m["quality"] or "—", m["regime"] or "—", "yes" if valid[m["id"]] else "no",
-                      str(len(json.loads(m["warnings"]))), m["analysed_at"], m["tool_version"] or "—",
+                      str(len(json.loads(m["warnings"]))), _when(m["analysed_at"]), m["tool_version"] or "—",
                       m["sha256"][:12])
     for f in detail.failures:
         table.add_row(escape(f["sample"]), escape(f["replicate"]), "—", "—", "failed", "—", "no", "—",
-                      f["analysed_at"], f["tool_version"] or "—", (f["sha256"] or "—")[:12])
+                      _when(f["analysed_at"]), f["tool_version"] or "—", (f["sha256"] or "—")[:12])
     console.print(table)
     for f in detail.failures:
         console.print(f"failed: {escape(replicate_label(f))}: {escape(f['reason'])}")

@@ -272,8 +272,24 @@ def _natural_key(value: str):
     return [int(part) if part.isdigit() else part.lower() for part in re.split(r"(\d+)", value or "")]
 
 
+def _plain(value):
+    """JSON-ready copy: NaN/inf → None, tuples → lists, numpy scalars and arrays → Python."""
+    if isinstance(value, Mapping):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, Path):
+        return str(value)
+    return value
+
+
 def _json(value) -> str:
-    return json.dumps(value, sort_keys=True, allow_nan=False, separators=(",", ":"))
+    """Canonical JSON (sorted keys, no NaN): the same text for an in-memory result and its file."""
+    return json.dumps(_plain(value), sort_keys=True, allow_nan=False, separators=(",", ":"))
 
 
 def result_fingerprint(result: Mapping) -> str:
