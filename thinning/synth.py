@@ -39,6 +39,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from scipy.ndimage import minimum_filter1d
 
 from thinning import laws
 
@@ -413,7 +414,7 @@ def _timeline(scene: Scene, hist, n_frames: int, *, times=None) -> _Timeline:
         if fluid.density > 0:
             speeds.append(math.sqrt(2.0 * fluid.surface_tension / (fluid.density * r_ref)))
         speed_px = min(speeds) / px
-        tip = np.where(broken, np.minimum(speed_px * (t - t_b) + 1.0, 0.9 * side), 0.0)
+        tip = np.where(broken, np.minimum(speed_px * (t - t_b) + 1.0, 0.6 * side), 0.0)
 
     bead = np.zeros(n)
     if scene.beads and fluid.polymer_modulus > 0:
@@ -523,7 +524,8 @@ def _profile(a, tl: _Timeline, i: int, *, overlap_px: float = 0.0) -> np.ndarray
             bead = rb * np.sqrt(np.clip(1.0 - u ** 2, 0.0, None))
             rr = (rr ** 8 + bead ** 8) ** 0.125
         if tip > 0:
-            rr = rr * np.sqrt(-np.expm1(-np.clip(dd - tip, 0.0, None) / 2.0))
+            # a rounded tip, blunter the further it has receded
+            rr = rr * np.sqrt(-np.expm1(-np.clip(dd - tip, 0.0, None) / (2.0 + 0.05 * tip)))
         r[mask] = np.maximum(r[mask], np.minimum(rr, float(r_end)))
     return r
 
@@ -785,6 +787,8 @@ class _Renderer:
             mid = ox + (y - oy) * s / c
             half = np.clip(0.04 * (right - left), 0.75, 3.0)
             amp[touching | (mid - half < left + 3.0) | (mid + half > right - 3.0)] = 0.0
+            # ... and at least 4 px from where the liquid ends along the axis (tips, plates)
+            amp = minimum_filter1d(amp, 8 * SUB_ROWS + 1, mode="constant", cval=0.0)
             if amp.any():
                 cov.add(mid - half, mid + half, rows, -weight * amp)
 
