@@ -307,8 +307,13 @@ def test_real_batch_matches_single_analyses(tmp_path):
 
     manifest = write_synthetic_set(tmp_path / "data")
     out = tmp_path / "out"
+    specs = tmp_path / "specs.toml"
+    specs.write_text('[[product]]\nname = "ink"\nrelaxation_time_s = [0.004, 0.006]\n'
+                     'replicates = 3\nmax_cv = 0.10\n')
+    db_url = f"sqlite:///{tmp_path / 'records.db'}"
     runner = CliRunner()
-    args = ["batch", str(manifest), "--out", str(out), "--workers", "2"]
+    args = ["batch", str(manifest), "--out", str(out), "--workers", "2", "--db", db_url,
+            "--specs", str(specs)]
     for name, value in SYNTHETIC_DEFAULTS.items():
         args += [f"--{name.replace('_', '-')}", value]
     done = runner.invoke(cli, args)
@@ -330,6 +335,15 @@ def test_real_batch_matches_single_analyses(tmp_path):
         assert float(r["fps_hz"]) == 2000.0 and float(r["pixel_size_m"]) == single["pixel_size_m"]
         assert r["quality"] == single["quality"] and r["regime"] == single["regime"]
         assert r["warnings"] == "; ".join(single["warnings"])
+
+    # --db: every ok row stored as a measurement, from the coordinating process as rows finished
+    from thinning.records import open_records
+
+    with open_records(db_url) as records:
+        stored = records.export_rows()
+        lots = {lot.lot for lot in records.lots(product="ink")}
+    assert sorted(m["sha256"] for m in stored) == sorted(r["sha256"] for r in table if r["status"] == "ok")
+    assert lots == {"L1", "L2"}
 
 
 def test_killed_command_then_rerun_keeps_each_recording_once(tmp_path):

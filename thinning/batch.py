@@ -256,8 +256,19 @@ def _die_with_parent():
         pass
 
 
-def _worker_main(conn, log_level):
+def _worker_main(conn, log_level, parent_pid, single_thread):
+    import signal
+
     _die_with_parent()
+    if os.getppid() != parent_pid:   # the coordinator died before the line above took effect
+        return
+    signal.signal(signal.SIGINT, signal.SIG_IGN)   # Ctrl-C is the coordinator's to handle
+    if single_thread:  # one worker process per core: keep numeric libraries to one thread each
+        for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+            os.environ.setdefault(name, "1")
+        import cv2
+
+        cv2.setNumThreads(1)
     logging.basicConfig(level=log_level, format="%(levelname)s %(name)s: %(message)s")
     while True:
         try:
@@ -270,10 +281,10 @@ def _worker_main(conn, log_level):
 
 
 class _Worker:
-    def __init__(self, ctx, log_level):
+    def __init__(self, ctx, log_level, single_thread):
         self.conn, child = ctx.Pipe()
-        self.process = ctx.Process(target=_worker_main, args=(child, log_level), daemon=True,
-                                   name="thinning-batch-worker")
+        self.process = ctx.Process(target=_worker_main, args=(child, log_level, os.getpid(), single_thread),
+                                   daemon=True, name="thinning-batch-worker")
         self.process.start()
         child.close()
         self.task = None
@@ -283,13 +294,15 @@ class _Worker:
         self.conn.send(task)
 
     def stop(self, *, timeout=5.0):
+        """Ask the process to finish (``timeout=0``: kill it now)."""
         if self.conn.closed:
             return
-        try:
-            self.conn.send(None)
-        except (OSError, ValueError):
-            pass
-        self.process.join(timeout)
+        if timeout > 0:
+            try:
+                self.conn.send(None)
+            except (OSError, ValueError):
+                pass
+            self.process.join(timeout)
         if self.process.is_alive():
             self.process.kill()
             self.process.join()
@@ -308,7 +321,13 @@ def run_local(tasks, on_outcome, *, workers: int):
     level = logging.getLogger().getEffectiveLevel()
     queue = deque(tasks)
     attempts = {task.row: 0 for task in tasks}
-    pool = [_Worker(ctx, level) for _ in range(max(1, min(workers, len(queue))))]
+    n_workers = max(1, min(workers, len(queue)))
+    single_thread = workers > 1
+
+    def start():
+        return _Worker(ctx, level, single_thread)
+
+    pool = [start() for _ in range(n_workers)]
 
     def feed(worker):
         if queue:
@@ -347,8 +366,14 @@ def run_local(tasks, on_outcome, *, workers: int):
                             f"The worker process analysing it died {attempts[task.row]} times "
                             f"(last exit code {code}).", None, utc_now(), attempts=attempts[task.row]))
                     if queue:
-                        pool[i] = _Worker(ctx, level)
+                        pool[i] = start()
                         feed(pool[i])
+    except BaseException:  # Ctrl-C or a failing callback: stop at once, leave no half-written folder
+        for worker in pool:
+            worker.stop(timeout=0)
+            if worker.task is not None:
+                _remove_temp_folders(Path(worker.task.folder), worker.process.pid)
+        raise
     finally:
         for worker in pool:
             worker.stop()
