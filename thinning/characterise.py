@@ -9,7 +9,6 @@ untrustworthy (:class:`thinning.findings.Finding`). Pure: arrays in, a
 
 from __future__ import annotations
 
-import logging
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -20,8 +19,6 @@ from .findings import Finding, Severity
 from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_extensibility,
                    fit_inertiocapillary, fit_viscocapillary)
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
-
-logger = logging.getLogger(__name__)
 
 GEOMETRIES = ("plates", "dripping")
 UNDETERMINED = "undetermined"
@@ -132,8 +129,11 @@ def _check_inputs(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz, 
     return t, d
 
 
-def _initial_diameter(t, d, t0):
-    ok = np.flatnonzero(np.isfinite(d) & (d > 0) & (t >= t0 - 1e-12))
+def _initial_diameter(t, d, t0, outliers):
+    """D0: the diameter of the first frame with a thread at or after ``t0`` that is not an outlier."""
+    good = np.isfinite(d) & (d > 0) & (t >= t0 - 1e-12)
+    good[outliers] = False
+    ok = np.flatnonzero(good)
     if ok.size == 0:
         return None
     return float(d[ok[np.argmin(t[ok])]])
@@ -158,16 +158,19 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     floor defaults to 3 pixel sizes; ``diameter_noise_m`` is estimated from the
     data when None. ``breakup_time_s`` None: estimated from the record (None
     when the filament never broke). ``seed`` seeds the bootstrap.
+    ``geometry`` ("plates" or "dripping") is checked and recorded: the
+    elasto-capillary prefactor is the same for both (D0 = 2R0, physics.md
+    §3.3), so the numbers are computed alike.
     """
     t, d = _check_inputs(time_s, diameter_m, surface_tension=surface_tension,
                          pixel_size_m=pixel_size_m, fps_hz=fps_hz, geometry=geometry)
     t0 = float(free_thinning_start_s)
     floor = FLOOR_PIXELS * pixel_size_m if resolution_floor_m is None else float(resolution_floor_m)
     findings: list[Finding] = []
-    d0 = _initial_diameter(t, d, t0)
     t_b = breakup_time_s if breakup_time_s is not None else estimate_breakup_time(t, d, t_start_s=t0)
     ra = rg.analyse_regimes(t, d, resolution_floor_m=floor, diameter_noise_m=diameter_noise_m,
                             t_start_s=t0, breakup_time_s=t_b)
+    d0 = _initial_diameter(t, d, t0, ra.series.outlier_index)
     regs = ra.regimes
     noise = ra.series.noise_m if ra.series.n else diameter_noise_m
     d_fit = d.copy()

@@ -231,7 +231,7 @@ def fit_elastocapillary(time_s, diameter_m, *, window_s, surface_tension, initia
 # --- linear laws (visco-capillary, finite extensibility) -------------------------------
 
 def _fit_linear(time_s, diameter_m, *, window_s, diameter_noise_m, seed, resolution_floor_m,
-                n_boot, jitter_frames, min_points, model):
+                n_boot, jitter_frames, min_points):
     sel = _select(time_s, diameter_m, window_s, resolution_floor_m=resolution_floor_m,
                   diameter_noise_m=diameter_noise_m, min_points=min_points)
     if isinstance(sel, str):
@@ -271,7 +271,7 @@ def fit_viscocapillary(time_s, diameter_m, *, window_s, surface_tension, diamete
     model = "visco-capillary"
     why, r = _fit_linear(time_s, diameter_m, window_s=window_s, diameter_noise_m=diameter_noise_m,
                          seed=seed, resolution_floor_m=resolution_floor_m, n_boot=n_boot,
-                         jitter_frames=jitter_frames, min_points=min_points, model=model)
+                         jitter_frames=jitter_frames, min_points=min_points)
     if why is not None:
         return _failed(model, why, window_s, 0 if r is None else r[1])
     k = PAPAGEORGIOU_DIAMETER_COEFFICIENT * surface_tension
@@ -298,7 +298,7 @@ def fit_finite_extensibility(time_s, diameter_m, *, window_s, surface_tension,
     model = "finite-extensibility"
     why, r = _fit_linear(time_s, diameter_m, window_s=window_s, diameter_noise_m=diameter_noise_m,
                          seed=seed, resolution_floor_m=resolution_floor_m, n_boot=n_boot,
-                         jitter_frames=jitter_frames, min_points=min_points, model=model)
+                         jitter_frames=jitter_frames, min_points=min_points)
     if why is not None:
         return _failed(model, why, window_s, 0 if r is None else r[1])
     eta = surface_tension / r["speed"]

@@ -93,7 +93,6 @@ class PreparedSeries:
     resolution_floor_m: float
     outlier_index: np.ndarray
     below_floor_index: np.ndarray
-    last_thread_index: int | None
 
     @property
     def n(self) -> int:
@@ -213,7 +212,6 @@ def prepare_series(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=N
         index=cand, time_s=t[cand], diameter_m=d[cand], noise_m=noise,
         resolution_floor_m=float(resolution_floor_m), outlier_index=outliers,
         below_floor_index=below_floor,
-        last_thread_index=last_thread_position(t, d, t_start_s=t_start_s),
     )
 
 
