@@ -71,7 +71,8 @@ class Layout:
     ``saturation`` the grey level at which the sensor clips; ``axis_slope``
     the filament direction (lateral shift per axial pixel) from the straight
     sides of the end bodies (or the centre line); ``backlight`` the static
-    light field of the band (grey levels of the first frame, axis along rows).
+    light field of the band (grey levels of the first frame, axis along rows)
+    and ``light_pixels`` the number of background pixels it was fitted to.
     """
 
     orientation: str
@@ -88,6 +89,7 @@ class Layout:
     geometry: str = "plates"
     saturation: float = math.inf
     axis_slope: float = 0.0
+    light_pixels: int = 0
     backlight: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     @property
@@ -292,11 +294,12 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
     block = _oriented(frame, orientation, axial, band)
     rows = _measure_rows(block, provisional, shadow_fraction=provisional.shadow_fraction)
     floor = levels["shadow"] + 0.3 * (levels["background"] - levels["shadow"])
-    provisional = replace(provisional, backlight=_fit_backlight(
-        block, rows, noise_abs, saturation=provisional.saturation, floor=floor))
+    light, used = _fit_backlight(block, rows, noise_abs, saturation=provisional.saturation,
+                                 floor=floor)
+    provisional = replace(provisional, backlight=light, light_pixels=used)
     fraction = _rim_fraction(_measure_rows(block, provisional,
                                            shadow_fraction=provisional.shadow_fraction)["rim_ratio"],
-                             free)
+                             np.ones(n_ax, bool))
     if fraction is not None:
         provisional = replace(provisional, shadow_level=fraction * levels["background"])
     # sub-pixel widths of the end bodies, with the row machinery itself
@@ -371,7 +374,7 @@ def _fit_backlight(block, rows, noise_abs, *, degree=2, saturation=math.inf, flo
     if use.sum() < 4 * len(terms):
         use = bg
     if use.sum() < len(terms):
-        return np.full((n, w), float(np.median(block)), np.float32)
+        return np.full((n, w), float(np.median(block)), np.float32), 0
     design = np.stack([t[use] for t in terms], axis=1)
     target = block[use].astype(np.float64)
     keep = np.ones(target.size, bool)
@@ -392,7 +395,29 @@ def _fit_backlight(block, rows, noise_abs, *, degree=2, saturation=math.inf, flo
         weight = cv2.blur(bg.astype(np.float32), (3, 3))
         smooth = cv2.blur(np.where(bg, block, 0.0).astype(np.float32), (3, 3))
         field_ = np.where(spot, smooth / np.maximum(weight, 1e-6), field_)
-    return field_.astype(np.float32)
+    return field_.astype(np.float32), int(bg.sum())
+
+
+def refresh_light(frame, layout: Layout, *, min_gain=1.1) -> Layout | None:
+    """Refit the light field on a later frame that shows more background, else None.
+
+    As the filament thins and the plates part, background hides behind less
+    liquid: the field is refitted when this frame offers at least
+    ``min_gain`` times the background pixels of the current fit. The new field
+    is scaled to the first frame's brightness.
+    """
+    if layout.backlight is None:
+        return None
+    block = _oriented(np.asarray(frame), layout.orientation, layout.axial_range, layout.band)
+    rows = _measure_rows(block, layout, shadow_fraction=layout.shadow_fraction)
+    gain = rows["gain"]
+    depth = (layout.background_level - layout.shadow_level) * gain
+    floor = layout.shadow_level * gain + 0.3 * depth
+    light, used = _fit_backlight(block, rows, layout.noise * depth,
+                                 saturation=layout.saturation, floor=floor)
+    if used < min_gain * layout.light_pixels:
+        return None
+    return replace(layout, backlight=light / np.float32(gain), light_pixels=used)
 
 
 def _reference_width(widths, geometry):
@@ -468,14 +493,20 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
     margins = block[:, :k].sum(axis=1) + block[:, w - k:].sum(axis=1)
     if layout.backlight is not None:
         # backlight = flicker gain × the static light field of the layout
+        inv_light = layout.inverse_backlight
         ratio = margins / layout.margin_light
         lit = layout.lit_rows & np.isfinite(ratio)
         clipped = bool(block.max() >= layout.saturation)
         if clipped:  # a brighter frame clips part of the background: judge by the rest
             lit &= np.maximum(block[:, :k].max(axis=1), block[:, w - k:].max(axis=1)) < layout.saturation
-        gain = float(np.median(ratio[lit])) if lit.any() else 1.0
+        if lit.sum() >= 5:
+            gain = float(np.median(ratio[lit]))
+        else:  # margins clipped or dark: the unclipped background anywhere in the band
+            sub = (block[::3, ::3] * inv_light[::3, ::3]).ravel()
+            sub = sub[block[::3, ::3].ravel() < layout.saturation]
+            bright = sub[sub > 0.6 * np.percentile(sub, 95)] if sub.size else sub
+            gain = float(np.median(bright)) if bright.size else 1.0
         light = ratio / gain
-        inv_light = layout.inverse_backlight
         deficit = block * inv_light
         deficit *= np.float32(-scale / gain)
         deficit += scale
@@ -537,6 +568,12 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
     # rim level of thick rows (over the backlight): full shadow there, whatever a lens streak
     # does further in; NaN on rows too thin to have a rim
     thick = filled & (fb - fa > 12) & has
+    # ... on rows whose edges run along the axis: across a slanted edge (a meniscus foot)
+    # the row reaches less deep into the shadow than its length says
+    steady = np.zeros(n, bool)
+    steady[2:-2] = ((np.abs(lj[4:] - lj[:-4]) <= 1) & (np.abs(rj[4:] - rj[:-4]) <= 1)
+                    & has[4:] & has[:-4])
+    thick &= steady
     rim_ratio = np.full(n, np.nan)
     if thick.any():
         tr, ta, tb = rows[thick], fa[thick], fb[thick]
@@ -546,7 +583,7 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
     return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum.astype(np.float64),
             "core_n": core_n, "cut_width": np.where(has, edge_sum + core_n, np.nan),
             "truncated": truncated, "rim_ratio": rim_ratio,
-            "light": light, "window": (s0, e0)}
+            "light": light, "window": (s0, e0), "gain": gain}
 
 
 def _main_run(mask_row, pair_row, lo, hi, *, bridge_px=3):
@@ -618,7 +655,7 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     if hi > lo:
         free[lo:hi] = True
     peak = rows["peak"]
-    own = _rim_fraction(rows["rim_ratio"], free)
+    own = _rim_fraction(rows["rim_ratio"], np.ones(n, bool))
     new = own if shadow_fraction is None else float(shadow_fraction)
     if new is not None and new != fraction:
         # re-scale the partial sums to this frame's own shadow level (flicker, exposure)
@@ -648,7 +685,11 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
 
 
 def _rim_fraction(rim_ratio, rows_ok):
-    """Shadow level over backlight from the rims of thick free rows (None when too few)."""
+    """Shadow level over backlight from the rims of thick steady rows (None when too few).
+
+    Plates and nozzle count as well as the liquid: in a backlit shadowgraph the
+    refracting liquid is as dark as the solid bodies outside its lens streak.
+    """
     values = rim_ratio[rows_ok]
     values = values[np.isfinite(values)]
     if values.size < 3:

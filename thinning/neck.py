@@ -30,7 +30,7 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 
-from .edges import Layout, NoFilament, Profile, find_layout, locate_edges
+from .edges import Layout, NoFilament, Profile, find_layout, locate_edges, refresh_light
 from .findings import Finding, Severity
 
 log = logging.getLogger(__name__)
@@ -235,6 +235,10 @@ def measure_recording(frames: Iterable[np.ndarray], *, geometry="plates", roi=No
                 continue
             fraction = layout.shadow_fraction
             row_noise = _row_noise(layout)
+            first = index
+        since = index - first
+        if since >= 8 and since & (since - 1) == 0:  # 8, 16, 32, … frames after the layout
+            layout = refresh_light(frame, layout) or layout
         profile = locate_edges(frame, layout, shadow_fraction=fraction)
         if np.isfinite(profile.rim_fraction):
             fraction += SHADOW_SMOOTHING * (profile.rim_fraction - fraction)
