@@ -878,7 +878,7 @@ def render_recording(scene: Scene, optics: Optics, *, seed: int) -> tuple[Iterat
 def truth_path(path) -> Path:
     """Where :func:`write_recording` puts the truth of a recording written to ``path``."""
     path = Path(path)
-    if path.is_dir() or path.suffix == "":
+    if path.is_dir():
         return path / "truth.json"
     return path.with_name(path.name + ".truth.json")
 
