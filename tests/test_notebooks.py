@@ -1,0 +1,106 @@
+"""The tutorial notebooks run from top to bottom and show what they promise.
+
+Each notebook is copied into a temporary folder beside a link to the bundled
+``sample_videos/`` (the notebooks find it as ``../sample_videos``) and executed
+with nbclient on the ``python3`` kernel (ipykernel's, installed with the
+``test`` extra); outputs go to the folder named by ``THINNING_NOTEBOOK_OUT``.
+"""
+
+import importlib.util
+import math
+import re
+import shutil
+from pathlib import Path
+
+import nbformat
+import pytest
+from nbclient import NotebookClient
+
+ROOT = Path(__file__).resolve().parent.parent
+NOTEBOOKS = ROOT / "notebooks"
+SAMPLES = ROOT / "sample_videos"
+TIMEOUT_S = 300
+
+
+def _generator():
+    spec = importlib.util.spec_from_file_location("make_notebooks", ROOT / "scripts" / "make_notebooks.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def _execute(name, tmp_path, monkeypatch):
+    """Run notebook ``name`` in a scratch copy of the repository layout; return it and its output folder."""
+    work = tmp_path / "notebooks"
+    work.mkdir()
+    (tmp_path / "sample_videos").symlink_to(SAMPLES, target_is_directory=True)
+    shutil.copy(NOTEBOOKS / name, work / name)
+    out = tmp_path / "out"
+    monkeypatch.setenv("THINNING_NOTEBOOK_OUT", str(out))
+    monkeypatch.delenv("THINNING_DB", raising=False)
+    nb = nbformat.read(work / name, as_version=4)
+    client = NotebookClient(nb, kernel_name="python3", timeout=TIMEOUT_S,
+                            resources={"metadata": {"path": str(work)}})
+    client.execute()  # raises CellExecutionError on the first failing cell
+    return nb, out
+
+
+def _text(nb) -> str:
+    """Everything the code cells printed or displayed as text."""
+    parts = []
+    for cell in nb.cells:
+        for output in cell.get("outputs", []):
+            assert output.get("output_type") != "error", output
+            if "text" in output:
+                parts.append(output["text"])
+            parts.append(output.get("data", {}).get("text/plain", ""))
+            parts.append(output.get("data", {}).get("text/html", ""))
+    return "\n".join(parts)
+
+
+def _images(nb) -> int:
+    return sum("image/png" in output.get("data", {})
+               for cell in nb.cells for output in cell.get("outputs", []))
+
+
+def test_committed_notebooks_are_generated_and_without_outputs():
+    for name, text in _generator().notebook_texts().items():
+        committed = (NOTEBOOKS / name).read_text(encoding="utf-8")
+        assert committed == text, f"{name} is stale: run python scripts/make_notebooks.py"
+        nb = nbformat.reads(committed, as_version=4)
+        nbformat.validate(nb)
+        assert all(not cell.get("outputs") and cell.get("execution_count") is None
+                   for cell in nb.cells if cell.cell_type == "code")
+
+
+def test_one_recording_notebook(tmp_path, monkeypatch):
+    nb, out = _execute("01_one_recording.ipynb", tmp_path, monkeypatch)
+    text = _text(nb)
+    found = re.search(r"relaxation time λ = ([0-9.eE+-]+) ms \(95 % interval ([0-9.eE+-]+)–([0-9.eE+-]+) ms\), "
+                      r"fitted on (\d+) frames", text)
+    assert found, "the notebook did not print the relaxation time with its interval"
+    lam, low, high = (float(found.group(i)) for i in (1, 2, 3))
+    assert all(math.isfinite(v) for v in (lam, low, high))
+    assert low <= lam <= high
+    # The demo ink's lots have λ of 3.9–5.2 ms (thinning/demo.py LOTS), replicates within 3 %.
+    assert 1.0 < lam < 20.0
+    assert int(found.group(4)) >= 10
+    assert "elasto-capillary" in text
+    assert _images(nb) >= 4  # first frame, frame strip, D(t), η_E and strain rate
+    written = {p.name for p in (out / "HC-0101-r1").iterdir()}
+    assert {"result.json", "diameter.csv", "report.html"} <= written
+
+
+def test_batch_and_qc_notebook(tmp_path, monkeypatch):
+    nb, out = _execute("02_batch_and_qc.ipynb", tmp_path, monkeypatch)
+    text = _text(nb)
+    assert "HC-0101" in text
+    assert re.search(r"\b(pass|review|fail)\b", text)
+    assert "earlier lots" in text  # the control-chart table
+    assert (out / "batch" / "results.csv").is_file()
+    assert (out / "records.db").is_file()
+    report = out / "reports" / "HC-0107.html"
+    assert report.is_file() and "HC-0107" in report.read_text(encoding="utf-8")
+    assert _images(nb) >= 1
+    # Nothing was written beside the notebook or into the sample folder.
+    assert sorted(p.name for p in (tmp_path / "notebooks").iterdir()) == ["02_batch_and_qc.ipynb"]
