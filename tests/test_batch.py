@@ -271,6 +271,8 @@ def test_dying_worker_is_retried_once(tmp_path, fake_env):
     _, table = read_table(out / "results.csv")
     assert [r["status"] for r in table] == ["ok", "ok", "failed", "ok"]
     assert "died 2 times" in table[2]["reason"]
+    record = json.loads((out / table[2]["folder"] / "row.json").read_text())
+    assert record["status"] == "failed" and sorted(os.listdir(out / table[2]["folder"])) == ["row.json"]
     assert report.outcomes[2].attempts == 2 and report.outcomes[3].attempts == 2
     assert report.outcomes[1].attempts == 1 and report.outcomes[4].attempts == 1
     assert not any(p.name.endswith(TEMP_SUFFIX) for p in out.iterdir())

@@ -15,7 +15,8 @@ from pathlib import Path
 
 import pytest
 
-from test_batch import SYNTHETIC_DEFAULTS, read_table, write_synthetic_set
+from test_batch import (DEFAULTS, FAKE, SYNTHETIC_DEFAULTS, read_table, write_stack,
+                        write_synthetic_set)
 from thinning.batch import SchedulerUnreachable, run_batch
 
 pytestmark = pytest.mark.dask
@@ -39,14 +40,16 @@ def _stop(proc):
             proc.wait()
 
 
-@pytest.fixture
-def cluster(tmp_path):
-    """Address of a fresh scheduler with two single-threaded worker processes."""
+@pytest.fixture(scope="module")
+def cluster(tmp_path_factory):
+    """Address of a fresh scheduler with two single-threaded worker processes.
+
+    The workers can import this test folder's modules (the fake analyser of test_batch).
+    """
     pytest.importorskip("distributed")
     from distributed import Client
 
-    work = tmp_path / "dask"
-    work.mkdir()
+    work = tmp_path_factory.mktemp("dask")
     scheduler_file = work / "scheduler.json"
     logs = [open(work / "scheduler.log", "wb"), open(work / "worker.log", "wb")]
     scheduler = subprocess.Popen(
@@ -67,7 +70,9 @@ def cluster(tmp_path):
             _dask_command() + ["worker", address, "--host", "127.0.0.1", "--nworkers", "2",
                                "--nthreads", "1", "--dashboard-address", "127.0.0.1:0",
                                "--local-directory", str(work / "space")],
-            cwd=work, stdout=logs[1], stderr=subprocess.STDOUT, start_new_session=True)
+            cwd=work, stdout=logs[1], stderr=subprocess.STDOUT, start_new_session=True,
+            env={**os.environ, "PYTHONPATH": os.pathsep.join(
+                [str(Path(__file__).parent), os.environ.get("PYTHONPATH", "")]).rstrip(os.pathsep)})
         processes.append(worker)
         with Client(address, timeout="30s") as client:
             client.wait_for_workers(2, timeout=60)
@@ -100,6 +105,22 @@ def test_dask_gives_the_same_table_as_local_processes(tmp_path, cluster):
     # a rerun on the cluster finds every finished row up to date
     again = run_batch(manifest, tmp_path / "remote", defaults=SYNTHETIC_DEFAULTS, scheduler=cluster)
     assert again.n_skipped == 3
+
+
+def test_a_row_that_kills_its_dask_worker_fails_and_the_batch_goes_on(tmp_path, cluster):
+    import numpy as np
+
+    rng = np.random.default_rng(21)
+    for name in ("a", "crash-always", "b"):
+        write_stack(tmp_path / f"{name}.tif", rng)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path,fps\na.tif,1kHz\ncrash-always.tif,1kHz\nb.tif,1kHz\n")
+    report = run_batch(manifest, tmp_path / "out", defaults=DEFAULTS, scheduler=cluster, analyser=FAKE)
+    _, table = read_table(tmp_path / "out" / "results.csv")
+    assert [r["status"] for r in table] == ["ok", "failed", "ok"]
+    assert "KilledWorker" in table[1]["reason"]
+    assert sorted(os.listdir(tmp_path / "out" / table[1]["folder"])) == ["row.json"]
+    assert report.n_failed == 1
 
 
 def test_unreachable_scheduler_is_one_sentence(tmp_path):

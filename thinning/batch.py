@@ -361,10 +361,9 @@ def run_local(tasks, on_outcome, *, workers: int):
                     if attempts[task.row] < MAX_ATTEMPTS:
                         queue.appendleft(task)
                     else:
-                        on_outcome(RowOutcome(
-                            task.row, "failed",
-                            f"The worker process analysing it died {attempts[task.row]} times "
-                            f"(last exit code {code}).", None, utc_now(), attempts=attempts[task.row]))
+                        reason = (f"The worker process analysing it died {attempts[task.row]} times "
+                                  f"(last exit code {code}).")
+                        on_outcome(_with_attempts(write_failed_folder(task, reason), attempts[task.row]))
                     if queue:
                         pool[i] = start()
                         feed(pool[i])
@@ -416,9 +415,8 @@ def run_dask(tasks, on_outcome, *, scheduler: str, connect_timeout_s: float = 20
             try:
                 outcome = future.result()
             except Exception as exc:  # KilledWorker and friends: the row fails, the batch goes on
-                outcome = RowOutcome(task.row, "failed",
-                                     f"The Dask worker analysing it failed ({type(exc).__name__}: {exc}).",
-                                     None, utc_now())
+                outcome = write_failed_folder(
+                    task, f"The Dask worker analysing it failed ({type(exc).__name__}: {exc}).")
             on_outcome(outcome)
     finally:
         client.close()
