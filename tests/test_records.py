@@ -70,8 +70,10 @@ def test_load_batch_is_idempotent_and_keeps_full_precision(db_url, tmp_path):
     rows = lot_rows("ink-A", "L1", [lam, 0.0101, 0.0099])
     write_batch(tmp_path / "b", rows)
     with rec.open_records(db_url) as store:
-        assert store.load_batch(tmp_path / "b") == {"inserted": 3, "unchanged": 0, "superseded": 0, "failure": 0}
-        assert store.load_batch(tmp_path / "b") == {"inserted": 0, "unchanged": 3, "superseded": 0, "failure": 0}
+        assert store.load_batch(tmp_path / "b") == {"inserted": 3, "unchanged": 0, "superseded": 0, "history": 0,
+                                                   "failure": 0}
+        assert store.load_batch(tmp_path / "b") == {"inserted": 0, "unchanged": 3, "superseded": 0, "history": 0,
+                                                   "failure": 0}
         exported = store.export_rows()
     assert count(db_url, rec.measurements) == 3
     assert [r["relaxation_time_s"] for r in exported] == [lam, 0.0101, 0.0099]
@@ -131,7 +133,7 @@ def test_a_changed_result_supersedes_and_keeps_history(db_url, tmp_path):
                                            analysed_at="2026-03-01T09:00:00Z", options={"surface_tension_N_m": 0.06}))
     with rec.open_records(db_url) as store:
         store.load_batch(tmp_path / "old")
-        assert store.load_batch(tmp_path / "new") == {"inserted": 0, "unchanged": 0, "superseded": 3, "failure": 0}
+        assert store.load_batch(tmp_path / "new")["superseded"] == 3
         assert store.load_batch(tmp_path / "new")["unchanged"] == 3
         exported = store.export_rows()
         detail = store.lot_detail("L1")
@@ -146,6 +148,19 @@ def test_a_changed_result_supersedes_and_keeps_history(db_url, tmp_path):
     assert detail.summary.verdict.stats["relaxation_time_s"].mean == pytest.approx((0.011 + 0.020) / 3)
     result = run(["show", "L1", "--history"], db_url)
     assert result.exit_code == 0 and "superseded" in result.output and "0.1.0" in result.output
+
+
+def test_the_latest_analysis_stays_current_whatever_the_loading_order(db_url, tmp_path):
+    write_batch(tmp_path / "old", lot_rows("ink-A", "L1", [0.010, 0.010], tool="0.1.0"))
+    write_batch(tmp_path / "new", lot_rows("ink-A", "L1", [0.011, 0.011], tool="0.2.0",
+                                           analysed_at="2026-03-01T09:00:00Z"))
+    with rec.open_records(db_url) as store:
+        store.load_batch(tmp_path / "new")
+        assert store.load_batch(tmp_path / "old")["history"] == 2
+        assert store.load_batch(tmp_path / "old")["unchanged"] == 2
+        assert [r["tool_version"] for r in store.export_rows()] == ["0.2.0", "0.2.0"]
+        assert len(store.lot_detail("L1").history) == 2
+    assert count(db_url, rec.measurements) == 4
 
 
 def test_failed_rows_are_no_measurements_but_make_the_lot_review(db_url, tmp_path):

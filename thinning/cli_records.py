@@ -254,7 +254,8 @@ def load_command(batch_dir, db_url):
     with _open(db_url) as store:
         counts = _friendly(store.load_batch, batch_dir)
     click.echo(f"{batch_dir}: {counts['inserted']} new, {counts['superseded']} replaced (earlier kept as "
-               f"history), {counts['unchanged']} unchanged, {counts['failure']} failed rows noted")
+               f"history), {counts['history']} older than the stored ones (kept as history), "
+               f"{counts['unchanged']} unchanged, {counts['failure']} failed rows noted")
 
 
 @click.command("report")

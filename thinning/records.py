@@ -551,7 +551,7 @@ class Records:
             raise RecordsError(f"sample {meta['sample']!r} of lot {meta['lot']!r} has no source sha256.")
         fingerprint = result_fingerprint(result)
         current = conn.execute(
-            select(measurements.c.id, measurements.c.result_fingerprint).where(
+            select(measurements.c.id, measurements.c.result_fingerprint, measurements.c.analysed_at).where(
                 measurements.c.sample_id == sample_id, measurements.c.sha256 == sha,
                 measurements.c.is_current.is_(True))).first()
         if current is not None and current.result_fingerprint == fingerprint:
@@ -559,6 +559,20 @@ class Records:
                     curves.c.measurement_id == current.id)).first() is None:
                 self._insert_curve(conn, current.id, curve)
             return "unchanged"
+        if current is not None and analysed_at < current.analysed_at:
+            # an older analysis (e.g. an earlier batch folder loaded late): history, not current
+            known = conn.execute(select(measurements.c.id).where(
+                measurements.c.sample_id == sample_id, measurements.c.sha256 == sha,
+                measurements.c.result_fingerprint == fingerprint)).first()
+            if known is not None:
+                return "unchanged"
+            old_id = conn.execute(measurements.insert().values(
+                sample_id=sample_id, sha256=sha, stored_at=now, analysed_at=analysed_at, is_current=False,
+                superseded_at=now, superseded_by=current.id, result_fingerprint=fingerprint,
+                **self._measurement_values(meta, result))).inserted_primary_key[0]
+            if curve is not None:
+                self._insert_curve(conn, old_id, curve)
+            return "history"
         if current is not None:
             retired = conn.execute(update(measurements).where(
                 measurements.c.id == current.id, measurements.c.is_current.is_(True)).values(
@@ -606,7 +620,10 @@ class Records:
         ``result`` is the ``result.json`` dict (may be None for a failed row);
         ``row_dir`` the row's folder, whose ``diameter.csv`` is copied.
         Returns ``"inserted"``, ``"unchanged"``, ``"superseded"`` (a changed
-        result replaced the current one) or ``"failure"`` (a failed row noted).
+        result replaced the current one), ``"history"`` (a changed result
+        analysed before the current one: kept as superseded history, so the
+        latest analysis stays current whatever the loading order) or
+        ``"failure"`` (a failed row noted).
         """
         meta = self._meta(manifest_row)
         curve = read_curve(Path(row_dir)) if row_dir is not None and meta["status"] == "ok" else None
@@ -622,7 +639,7 @@ class Records:
         rows = read_batch(Path(batch_dir))
 
         def work(conn: Connection) -> dict[str, int]:
-            counts = {"inserted": 0, "unchanged": 0, "superseded": 0, "failure": 0}
+            counts = {"inserted": 0, "unchanged": 0, "superseded": 0, "history": 0, "failure": 0}
             for meta, result, stamp, curve in rows:
                 counts[self._store(conn, meta, result, stamp, curve)] += 1
             return counts
