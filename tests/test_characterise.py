@@ -344,3 +344,51 @@ def test_bad_arguments_raise(bad):
     kw.update(bad)
     with pytest.raises(ValueError):
         characterise(np.arange(10.0), np.ones(10), **kw)
+
+
+@pytest.mark.parametrize("disturbance", ["correlated-noise", "timing-jitter", "wobble", "dropouts"])
+def test_relaxation_time_is_robust_to_disturbances(disturbance):
+    # Oldroyd-B, λ = 2 ms, 20 kHz, 5 µm/px, 0.2 px noise plus one disturbance; tolerance 2 %
+    fluid = Fluid(0.06, 1e-3, 1000.0, 2.0, 2e-3)
+    hist = filament_model(fluid, 1e-3, duration=1.0)
+    fps, pixel, t0 = 20000, 5e-6, 0.002
+    n = int((t0 + hist.breakup_time_s) * fps) + 20
+    nominal = np.arange(n) / fps
+    for k in range(8):
+        rng = np.random.default_rng(300 + k)
+        shot = nominal + (rng.uniform(-0.1, 0.1, n) / fps if disturbance == "timing-jitter" else 0)
+        true = hist.diameter_at(np.clip(shot - t0, 0.0, None))
+        e = rng.normal(0.0, 0.2 * pixel, n)
+        if disturbance == "correlated-noise":          # AR(1), coefficient 0.6
+            for i in range(1, n):
+                e[i] = 0.6 * e[i - 1] + 0.8 * e[i]
+        if disturbance == "wobble":                    # a 700 Hz vibration of 0.3 px
+            e += 0.3 * pixel * np.sin(2 * np.pi * 700 * nominal)
+        d = blurred(true, pixel) + e
+        if disturbance == "dropouts":                  # 5 % of frames without a diameter
+            d[rng.choice(n, n // 20, replace=False)] = np.nan
+        d[nominal < t0] = 1.3e-3
+        d[true < 0.5 * pixel] = np.nan
+        c = characterise(nominal, d, surface_tension=0.06, pixel_size_m=pixel, fps_hz=fps,
+                         free_thinning_start_s=t0, density=1000.0, seed=k)
+        assert c.regime == "elasto-capillary", (k, c.regimes)
+        assert c.relaxation_time_s == pytest.approx(2e-3, rel=0.02), k
+
+
+def test_newtonian_liquids_with_correlated_noise_show_no_elastic_stretch():
+    cases = [(Fluid(0.063, 1.0, 1260.0), 5000, "visco-capillary"),
+             (Fluid(0.072, 1e-3, 1000.0), 50000, "inertio-capillary")]
+    for fluid, fps, expected in cases:
+        hist = filament_model(fluid, 1e-3, duration=1.0)
+        t = np.arange(int(hist.breakup_time_s * fps) + 20) / fps
+        for k in range(6):
+            rng = np.random.default_rng(400 + k)
+            e = rng.normal(0.0, 0.3 * 5e-6, t.size)
+            for i in range(1, t.size):
+                e[i] = 0.6 * e[i - 1] + 0.8 * e[i]
+            true = hist.diameter_at(t)
+            d = blurred(true, 5e-6) + e
+            d[true < 2.5e-6] = np.nan
+            c = characterise(t, d, surface_tension=fluid.surface_tension, pixel_size_m=5e-6,
+                             fps_hz=fps, free_thinning_start_s=0.0, density=fluid.density, seed=k)
+            assert c.regime == expected, (k, c.regimes)

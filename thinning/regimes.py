@@ -705,21 +705,28 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
     if series.n < min_points:
         empty = LocalSlopes(*(np.empty(0),) * 3, np.empty(0, int), np.empty(0, int))
         return RegimeAnalysis(series, empty, [], None, breakup_time_s)
-    slopes = local_log_slopes(series.time_s, series.diameter_m, noise_m=series.noise_m,
-                              target_rel_se=tolerance / 2.0)
     found = []
-    run = find_elastocapillary_run(series, slopes, tolerance=tolerance, min_points=min_points,
-                                   min_decrease=min_decrease)
+
+    def locate(noise_m):
+        sr = replace(series, noise_m=noise_m)
+        sl = local_log_slopes(sr.time_s, sr.diameter_m, noise_m=noise_m, target_rel_se=tolerance / 2.0)
+        return sr, sl, find_elastocapillary_run(sr, sl, tolerance=tolerance, min_points=min_points,
+                                                min_decrease=min_decrease)
+
+    series, slopes, run = locate(series.noise_m)
+    if run is None:
+        # noise correlated from frame to frame looks smaller than it is to the estimator:
+        # try once with twice the noise (the drift test does not depend on it)
+        retry = locate(2.0 * series.noise_m)
+        if retry[2] is not None:
+            series, slopes, run = retry
     if run is not None:
         # scatter about the elastic line larger than the noise says (correlated noise, an
         # underestimated σ_D): widen the noise to match and locate again
         chi2 = _reduced_chi2_log_line(series, *run)
         if chi2 > 1.5:
-            series = replace(series, noise_m=series.noise_m * float(np.sqrt(chi2)))
-            slopes = local_log_slopes(series.time_s, series.diameter_m, noise_m=series.noise_m,
-                                      target_rel_se=tolerance / 2.0)
-            run = find_elastocapillary_run(series, slopes, tolerance=tolerance,
-                                           min_points=min_points, min_decrease=min_decrease)
+            series, slopes, again = locate(series.noise_m * float(np.sqrt(chi2)))
+            run = again if again is not None else run
     gap = 2
     if run is not None:
         s, e = run
