@@ -246,9 +246,10 @@ In production each lot of a product is measured on several replicate bridges. Th
 back what a quality lab needs: the per-recording table, the **lot verdicts** against the product
 specification, the **control chart**, and one lot report.
 
-The demo product `harbour-cyan` (an invented ink) is specified in `sample_videos/specs.toml`:
-relaxation time 4.5–6.0 ms, filament lifetime 30–200 ms, 3 replicates per lot, coefficient of
-variation of λ at most 10 %. Lot HC-0107 was made with a degraded polymer.
+The demo product `harbour-cyan` (an invented ink) is specified in `sample_videos/specs.toml`
+(printed below): limits on the relaxation time and the filament lifetime, the number of replicates
+per lot, and the largest coefficient of variation of λ allowed. Lot HC-0107 was made with a degraded
+polymer.
 
 Everything is written into a fresh temporary folder with its own SQLite database. On two cores the
 notebook runs in well under a minute.'''),
@@ -283,6 +284,7 @@ subset = manifest if LOTS is None else manifest[manifest["lot"].isin(LOTS)].copy
 subset["path"] = [str((SAMPLES / p).resolve()) for p in subset["path"]]
 subset_csv = OUT / "manifest.csv"
 subset.to_csv(subset_csv, index=False)
+print((SAMPLES / "specs.toml").read_text(encoding="utf-8"))
 print(f"{len(subset)} recordings of {subset['lot'].nunique()} lots")
 subset.drop(columns="path").head(6)'''),
     ("md", '''\
@@ -350,6 +352,7 @@ A lot that breaks a control-chart rule keeps its verdict and gets **chart flags*
     ("code", '''\
 with open_records(DB_URL) as records:
     lots = records.lots(product=PRODUCT)
+    spec = records.specs()[PRODUCT]
 verdicts = pd.DataFrame([lot.as_row() for lot in lots])
 verdicts["λ mean (ms)"] = verdicts["relaxation_time_mean_s"] * 1e3
 verdicts["λ CV (%)"] = verdicts["relaxation_time_cv"] * 100
@@ -387,7 +390,8 @@ ax.plot(chart["lot"], chart["λ mean (ms)"], "o-", color="#22303c", label="lot m
 ax.step(chart["lot"], chart["UCL (ms)"], where="mid", color="#a23b54", ls="--", label="UCL / LCL")
 ax.step(chart["lot"], chart["LCL (ms)"], where="mid", color="#a23b54", ls="--")
 ax.step(chart["lot"], chart["centre (ms)"], where="mid", color="#3d7a1c", label="centre")
-ax.axhspan(4.5, 6.0, color="#d3ecc1", alpha=0.5, lw=0, label="specification")
+low_s, high_s = spec.relaxation_time_s
+ax.axhspan(low_s * 1e3, high_s * 1e3, color="#d3ecc1", alpha=0.5, lw=0, label="specification")
 flagged = chart[chart["flags"] != ""]
 ax.plot(flagged["lot"], flagged["λ mean (ms)"], "o", ms=11, mfc="none", mec="#a23b54", label="chart flag")
 ax.set_ylabel("relaxation time λ (ms)")

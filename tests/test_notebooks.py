@@ -96,6 +96,8 @@ def test_batch_and_qc_notebook(tmp_path, monkeypatch):
     text = _text(nb)
     assert "HC-0101" in text
     assert re.search(r"\b(pass|review|fail)\b", text)
+    # HC-0107 is the demo's drifted lot, made at λ = 3.9 ms below the 4.5 ms minimum (thinning/demo.py).
+    assert "HC-0107: fail" in text
     assert "earlier lots" in text  # the control-chart table
     assert (out / "batch" / "results.csv").is_file()
     assert (out / "records.db").is_file()
