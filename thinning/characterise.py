@@ -169,7 +169,7 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     findings: list[Finding] = []
     t_b = breakup_time_s if breakup_time_s is not None else estimate_breakup_time(t, d, t_start_s=t0)
     ra = rg.analyse_regimes(t, d, resolution_floor_m=floor, diameter_noise_m=diameter_noise_m,
-                            t_start_s=t0, breakup_time_s=t_b)
+                            t_start_s=t0)
     d0 = _initial_diameter(t, d, t0, ra.series.outlier_index)
     regs = ra.regimes
     noise = ra.series.noise_m if ra.series.n else diameter_noise_m

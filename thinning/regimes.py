@@ -8,26 +8,38 @@ The criteria (physics.md §3.5, §4, §5.1):
 1. Only frames after the start of free thinning, with a finite diameter above
    the resolution floor (default 3 pixels) and not flagged as outliers, are
    used. An outlier is a frame whose ln D departs from the running median of
-   its neighbours by more than 5 noise standard deviations (beads, dust,
-   mis-measured frames).
+   its 9 neighbours by more than 5 noise standard deviations (σ_D/D; beads,
+   dust, mis-measured frames), tested twice so a bead does not drag its
+   neighbours out.
 2. A local Hencky strain rate ε̇(t) = −2 d ln D/dt comes from sliding weighted
-   least-squares lines through ln D (weights (D/σ_D)², σ_D the diameter noise),
-   each window spanning about 0.2 in ln D (at least 5, at most 201 frames), so
-   it adapts to fast and slow thinning. The local relaxation time is
-   λ(t) = 2/(3 ε̇) (Anna & McKinley 2001).
+   least-squares lines through ln D (weights (D/σ_D)², σ_D the diameter noise,
+   constant in pixels), each window spanning about 0.2 in ln D (at least 3
+   frames), widened up to 8-fold where the slope would be less precise than
+   2.5 %. The local relaxation time is λ(t) = 2/(3 ε̇) (Anna & McKinley 2001).
 3. Elasto-capillary: the stretch covering the largest fall of ln D in which the
-   local λ stays within ±5 % of one value (plus 2.5 standard errors of each
-   local estimate), with at least 6 frames and D falling by at least a factor
-   2. This is where ln D is a straight line in t.
-4. Finite extensibility: the stretch after the elasto-capillary one in which the
-   strain rate rises clearly (by more than 5 % plus 2 standard errors) above
-   2/(3λ), i.e. ln D bends down, from the first to the last such frame. A linear stretch
-   after an elasto-capillary one is never called visco-capillary
-   (physics.md §3.4).
+   local λ stays within ±5 % of one value (±10 % at most where the local
+   estimates are noisy: 5 % plus 2 standard errors), with at least 6 frames and
+   D falling by at least a factor 2. It must then pass a straightness test: a
+   quadratic in t through ln D over the stretch may change λ from one end to
+   the other by no more than 25 % (with 2 standard errors from the scatter),
+   which no power law over a factor-2 fall can pass. Finally each end is cut
+   back while its first or last fifth (in ln D) has a slope that differs from
+   the rest by more than 2.5 standard errors (at most half the fall is cut).
+   When nothing is found the search is repeated once with twice the noise
+   (noise correlated from frame to frame looks smaller than it is); when the
+   scatter about the stretch's line exceeds the noise (reduced χ² > 1.5) the
+   noise is widened to match and the search repeated.
+4. Finite extensibility: after the elasto-capillary stretch, the frames where
+   the strain rate rises clearly above 2/(3λ) (local λ below the stretch's by
+   more than 5 % plus 2 standard errors), from the first to the last such
+   frame: ln D bends down. A linear stretch after an elasto-capillary one is
+   never called visco-capillary (physics.md §3.4).
 5. Before an elasto-capillary stretch, or when there is none, a stretch is
    visco-capillary when D follows a power law of (t_c − t) with exponent
-   1 ± 0.2, inertio-capillary with exponent 2/3 ± 0.1, tested on the local
-   exponent n(t) = ε̇ (t_c − t)/2 (t_c the breakup, or the fitted singular time).
+   1 ± 0.2, inertio-capillary with exponent 2/3 ± 0.1. The local exponent
+   comes without knowing t_c from the inverse strain rate, which for
+   D ∝ (t_c − t)^n is a line in t of slope −1/(2n) (physics.md §3.5); such a
+   stretch needs at least 6 frames and a 1.5-fold fall of D.
 """
 
 from __future__ import annotations
@@ -655,7 +667,6 @@ class RegimeAnalysis:
     slopes: LocalSlopes
     regimes: list
     elastic_run: tuple | None
-    breakup_time_s: float | None
 
 
 def _make_regime(kind, series, s, e, value):
@@ -697,14 +708,14 @@ def _merge_neighbours(regimes, series, *, max_gap):
 
 
 def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
-                    t_start_s=None, breakup_time_s=None, tolerance=0.05, min_points=6,
+                    t_start_s=None, tolerance=0.05, min_points=6,
                     min_decrease=2.0) -> RegimeAnalysis:
     """:func:`locate_regimes` with its working: prepared series, local slopes, run positions."""
     series = prepare_series(time_s, diameter_m, resolution_floor_m=resolution_floor_m,
                             diameter_noise_m=diameter_noise_m, t_start_s=t_start_s)
     if series.n < min_points:
         empty = LocalSlopes(*(np.empty(0),) * 3, np.empty(0, int), np.empty(0, int))
-        return RegimeAnalysis(series, empty, [], None, breakup_time_s)
+        return RegimeAnalysis(series, empty, [], None)
     found = []
 
     def locate(noise_m):
@@ -760,22 +771,22 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
             found.append(_make_regime(kind, series, a, b, n))
     found = _merge_neighbours(sorted(found, key=lambda r: r.t_start_s), series, max_gap=3 * gap)
     logger.debug("regimes: %s", found)
-    return RegimeAnalysis(series, slopes, found, run, breakup_time_s)
+    return RegimeAnalysis(series, slopes, found, run)
 
 
 def locate_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
-                   t_start_s=None, breakup_time_s=None, tolerance=0.05, min_points=6,
+                   t_start_s=None, tolerance=0.05, min_points=6,
                    min_decrease=2.0) -> list[Regime]:
     """The thinning regimes of a minimum-diameter series, in time order.
 
     ``time_s`` (s) and ``diameter_m`` (m, NaN where no thread) are the
     recording's series; frames before ``t_start_s`` (free-thinning start) and
     below ``resolution_floor_m`` are ignored. ``diameter_noise_m`` is the
-    noise standard deviation of D (estimated from the data when None);
-    ``breakup_time_s`` anchors power laws that run to breakup. Criteria: see
-    the module docstring. An empty list means no regime could be located.
+    noise standard deviation of D (estimated from the data when None).
+    Criteria: see the module docstring. An empty list means no regime could
+    be located.
     """
     return analyse_regimes(time_s, diameter_m, resolution_floor_m=resolution_floor_m,
                            diameter_noise_m=diameter_noise_m, t_start_s=t_start_s,
-                           breakup_time_s=breakup_time_s, tolerance=tolerance,
-                           min_points=min_points, min_decrease=min_decrease).regimes
+                           tolerance=tolerance, min_points=min_points,
+                           min_decrease=min_decrease).regimes
