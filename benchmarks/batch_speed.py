@@ -6,7 +6,7 @@ about 170 frames each, raw AVI) into a temporary folder, runs
 throughput of each (wall time from the call to the finished results table,
 worker start-up included) and their ratio.
 
-    python benchmarks/batch_speed.py [--recordings 12] [--repeats 1]
+    python benchmarks/batch_speed.py [--recordings 16] [--repeats 1]
 """
 
 from __future__ import annotations
@@ -53,7 +53,7 @@ def throughput(manifest: Path, out: Path, workers: int, repeats: int) -> float:
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--recordings", type=int, default=12)
+    parser.add_argument("--recordings", type=int, default=16)
     parser.add_argument("--repeats", type=int, default=1, help="runs per worker count; the fastest counts")
     args = parser.parse_args()
     base = Path(tempfile.mkdtemp(prefix="thinning-batch-bench-"))
