@@ -41,7 +41,11 @@ def _execute(name, tmp_path, monkeypatch):
     nb = nbformat.read(work / name, as_version=4)
     client = NotebookClient(nb, kernel_name="python3", timeout=TIMEOUT_S,
                             resources={"metadata": {"path": str(work)}})
+    samples_before = sorted(p.name for p in SAMPLES.iterdir())
     client.execute()  # raises CellExecutionError on the first failing cell
+    # Nothing was written beside the notebook or into the bundled recordings.
+    assert sorted(p.name for p in work.iterdir()) == [name]
+    assert sorted(p.name for p in SAMPLES.iterdir()) == samples_before
     return nb, out
 
 
@@ -104,5 +108,3 @@ def test_batch_and_qc_notebook(tmp_path, monkeypatch):
     report = out / "reports" / "HC-0107.html"
     assert report.is_file() and "HC-0107" in report.read_text(encoding="utf-8")
     assert _images(nb) >= 1
-    # Nothing was written beside the notebook or into the sample folder.
-    assert sorted(p.name for p in (tmp_path / "notebooks").iterdir()) == ["02_batch_and_qc.ipynb"]
