@@ -32,7 +32,7 @@ SAMPLES = Path.cwd().parent / "sample_videos"
 if not (SAMPLES / "manifest.csv").is_file():  # opened from elsewhere: the copy beside the package
     from thinning.demo import find_sample_videos
     SAMPLES = find_sample_videos()
-assert SAMPLES is not None, "sample_videos/ not found; run 'thinning demo' once or set the path by hand"
+assert SAMPLES is not None, "sample_videos/ not found: run python scripts/make_sample_videos.py, or set SAMPLES"
 
 # Everything this notebook writes goes into one fresh folder (never into the repository).
 OUT = Path(os.environ.get("THINNING_NOTEBOOK_OUT") or tempfile.mkdtemp(prefix="thinning-notebook-"))
