@@ -46,6 +46,7 @@ def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo
 
     Example:
 
+    \b
       thinning batch lots.csv --out batch-out --surface-tension 62mN/m --workers 2
     """
     parse_analysis_options(values)  # a bad command-line option is bad usage (exit 2)
