@@ -123,7 +123,7 @@ def test_tilted_thread_is_measured_across_its_axis():
     frame = render(neck=10.0, tilt_deg=4.0, blur=1.0)
     profile = locate_edges(frame, find_layout(frame, roi=(0, 30, 160, 170)))
     i = np.nanargmin(np.where(profile.valid, profile.width_px, np.nan))
-    assert profile.angle_deg[i] == pytest.approx(4.0, abs=0.3)
+    assert profile.angle_deg == pytest.approx(4.0, abs=0.3)
     assert profile.cut_width_px[i] == pytest.approx(10.0 / math.cos(math.radians(4.0)), abs=0.05)
     assert profile.width_px[i] == pytest.approx(10.0, abs=0.05)
 

@@ -167,7 +167,8 @@ class Profile:
     ``axial_px`` row positions along the axis; ``left_px``/``right_px`` the
     edges (lateral, full-frame); ``cut_width_px`` the width along the image
     row; ``width_px`` the width across the local axis; ``centre_px`` the
-    centre line; ``angle_deg`` the local axis angle from the image axis;
+    centre line; ``angle_deg`` the axis angle of this frame from the image
+    axis (a straight-line fit of the centre line over the free rows);
     ``contrast`` the peak deficit of the row (1 = full shadow); ``valid``
     rows where the width was measured in the free part of the filament;
     ``present`` rows crossed by a shadow; ``body`` rows belonging to the end
@@ -183,7 +184,7 @@ class Profile:
     width_px: np.ndarray
     cut_width_px: np.ndarray
     centre_px: np.ndarray
-    angle_deg: np.ndarray
+    angle_deg: float
     contrast: np.ndarray
     valid: np.ndarray
     present: np.ndarray
@@ -658,8 +659,8 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
     flat_mask = mask.ravel()
     step = np.arange(2 * a)
     probe = step < (rj - lj + 1)[:, None]
-    head = flat_mask.take(np.clip(lj[:, None] + step, 0, w - 1) + row_start[:, None])
-    tail = flat_mask.take(np.clip(rj[:, None] - step, 0, w - 1) + row_start[:, None])
+    head = flat_mask.take(np.minimum(lj[:, None] + step, w - 1) + row_start[:, None])
+    tail = flat_mask.take(np.maximum(rj[:, None] - step, 0) + row_start[:, None])
     gappy = has & (probe & ~(head & tail)).any(axis=1)
     if gappy.any():
         for r in np.flatnonzero(gappy):
@@ -676,7 +677,8 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
     inside = (cols >= 0) & (cols < w)
     use = inside & (thick[:, None] | (cols < (rj + 1 + m)[:, None]))
     truncated = has & ~inside.all(axis=1)
-    np.clip(cols, 0, w - 1, out=cols)
+    np.maximum(cols, 0, out=cols)
+    np.minimum(cols, w - 1, out=cols)
     index = (cols + row_start[:, None]).ravel()
     values = flat.take(index)
     deficit = values * flat_inv.take(index)
@@ -713,8 +715,8 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
         rim_ratio[rim_rows] = vals / gain
     return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum, "core_n": core_n,
             "cut_width": np.where(has, edge_sum + core_n, np.nan), "truncated": truncated,
-            "rim_ratio": rim_ratio, "light": light, "window": (np.clip(base, 0, w),
-                                                                np.clip(rj + 1 + m, 0, w)),
+            "rim_ratio": rim_ratio, "light": light, "window": (np.maximum(base, 0),
+                                                                np.minimum(rj + 1 + m, w)),
             "gain": gain}
 
 
@@ -740,35 +742,43 @@ def _main_run(mask_row, pair_row, lo, hi, *, bridge_px=3):
     return lo + keep_s[0], lo + keep_e[-1]
 
 
-def _local_slope(y, c, ok, half):
-    """Slope dc/dy of a sliding least-squares line over ``2·half + 1`` rows (NaN where too few)."""
-    wgt = ok.astype(np.float64)
-    cc = np.where(ok, c, 0.0)
-    yy = y - y.mean()
-    s0 = _box(wgt, half)
-    s1 = _box(wgt * yy, half)
-    s2 = _box(wgt * yy * yy, half)
-    t0 = _box(cc, half)
-    t1 = _box(cc * yy, half)
-    den = s0 * s2 - s1 * s1
-    with np.errstate(invalid="ignore", divide="ignore"):
-        slope = (s0 * t1 - s1 * t0) / den
-    slope[(s0 * (2 * half + 1) < 5) | ~np.isfinite(slope)] = np.nan
-    return slope
+def _axis_slope(y, centre, ok, layout_slope, max_bend_deg):
+    """Direction of the centre line (lateral px per axial px) over the rows ``ok``.
+
+    A straight-line fit, kept within ``max_bend_deg`` of the layout's
+    direction (from the end bodies): the liquid's own centre line wanders
+    near plate corners, beads and retracting tips.
+    """
+    bend = math.tan(math.radians(max_bend_deg))
+    if ok.sum() < 5:
+        return layout_slope
+    yy = y[ok] - y[ok].mean()
+    cc = centre[ok]
+    slope = float(np.dot(yy, cc - cc.mean()) / np.dot(yy, yy))
+    return min(max(slope, layout_slope - bend), layout_slope + bend)
+
+
+def local_axis_slope(profile, rows, *, layout_slope=None, max_bend_deg=1.5):
+    """Slope of the centre line over the selected ``rows`` (bool mask) of a profile.
+
+    Kept within ``max_bend_deg`` of ``layout_slope`` (default: the profile's
+    own direction).
+    """
+    base = math.tan(math.radians(profile.angle_deg)) if layout_slope is None else layout_slope
+    return _axis_slope(profile.axial_px, profile.centre_px, rows & np.isfinite(profile.centre_px),
+                       base, max_bend_deg)
 
 
 def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DETECT_LEVEL,
-                 presence_level=PRESENCE_LEVEL, axis_window_px=10, max_bend_deg=1.5) -> Profile:
+                 presence_level=PRESENCE_LEVEL, max_bend_deg=1.5) -> Profile:
     """Both edges of the filament on every row of the band, sub-pixel (see module docstring).
 
     ``shadow_fraction``: shadow level over backlight to use (e.g. a running
     estimate over earlier frames); None measures it on this frame's thick
     rims, falling back to the layout's. ``detect_level``: deficit fraction
     whose outer crossings locate the filament on a row; ``presence_level``:
-    smallest peak deficit of a row crossed by the thread;
-    ``axis_window_px``: half-length of the sliding centre-line fit giving
-    the local axis angle; ``max_bend_deg``: largest departure of the local
-    axis from the filament's direction in the layout.
+    smallest peak deficit of a row crossed by the thread; ``max_bend_deg``:
+    largest departure of this frame's axis from the layout's direction.
     """
     axial = layout.axial_range
     fast = layout.backlight is not None
@@ -802,17 +812,12 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     connected = bool(free.any() and present[free].all())
     y = np.arange(n, dtype=np.float64) + axial[0]
     centre = rows["centre"] + layout.band[0]
-    slope = _local_slope(y, centre, valid, axis_window_px)
-    axis = layout.axis_slope
-    # the axis bends slowly; rows where the sliding fit swings further (plate corners,
-    # beads, the retracting tips) take the filament's overall direction
-    bend = math.tan(math.radians(max_bend_deg))
-    slope = np.where(np.isfinite(slope), np.clip(slope, axis - bend, axis + bend), axis)
-    cosine = 1.0 / np.sqrt(1.0 + slope * slope)
+    slope = _axis_slope(y, centre, valid, layout.axis_slope, max_bend_deg)
+    cosine = 1.0 / math.sqrt(1.0 + slope * slope)
     half = 0.5 * cut
     return Profile(axial_px=y, left_px=centre - half, right_px=centre + half,
                    width_px=cut * cosine, cut_width_px=cut, centre_px=centre,
-                   angle_deg=np.degrees(np.arctan(slope)), contrast=peak, valid=valid,
+                   angle_deg=math.degrees(math.atan(slope)), contrast=peak, valid=valid,
                    present=present, body=body, free_span=(axial[0] + start, axial[0] + stop),
                    connected=connected, shadow_fraction=fraction,
                    rim_fraction=math.nan if own is None else own)
@@ -839,7 +844,7 @@ def _body_rows(rows, cut, layout, n):
         if width is None:
             continue
         if math.isfinite(width):
-            wide = no_light | (np.nan_to_num(cut, nan=0.0) >= width - max(1.0, 0.02 * width))
+            wide = no_light | (cut >= width - max(1.0, 0.02 * width))  # NaN: not wide
         else:
             wide = no_light
         seq = wide if end == 0 else wide[::-1]

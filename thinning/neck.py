@@ -30,7 +30,8 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 
-from .edges import Layout, NoFilament, Profile, find_layout, locate_edges, refresh_light
+from .edges import (Layout, NoFilament, Profile, find_layout, local_axis_slope, locate_edges,
+                    refresh_light)
 from .findings import Finding, Severity
 
 log = logging.getLogger(__name__)
@@ -80,73 +81,86 @@ class NeckSeries:
 # one frame
 
 
-def _masked_box(values, ok, half):
-    """Running mean of ``values`` over valid entries only (NaN where a window has none)."""
+def _smooth3(values, ok):
+    """Mean over each valid row and its valid neighbours (inf where a row is invalid)."""
     v = np.where(ok, values, 0.0)
-    c = np.concatenate(([0.0], np.cumsum(v)))
-    k = np.concatenate(([0], np.cumsum(ok)))
-    n = values.size
-    i = np.arange(n)
-    lo = np.clip(i - half, 0, n)
-    hi = np.clip(i + half + 1, 0, n)
-    count = k[hi] - k[lo]
+    c = ok.astype(np.float64)
+    total = v.copy()
+    count = c.copy()
+    total[1:] += v[:-1]
+    total[:-1] += v[1:]
+    count[1:] += c[:-1]
+    count[:-1] += c[1:]
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(count > 0, (c[hi] - c[lo]) / np.maximum(count, 1), np.nan)
+        return np.where(ok, total / count, np.inf)
 
 
-def neck_of(profile: Profile, *, row_noise_px=0.1, max_half_window=40, min_half_window=2):
+def _quadratic(x, y):
+    """Least-squares ``a x² + b x + c`` (closed form normal equations); None when singular."""
+    x2 = x * x
+    s = np.array([x.size, x.sum(), x2.sum(), (x2 * x).sum(), (x2 * x2).sum()])
+    t = np.array([(x2 * y).sum(), (x * y).sum(), y.sum()])
+    normal = np.array([[s[4], s[3], s[2]], [s[3], s[2], s[1]], [s[2], s[1], s[0]]])
+    try:
+        return np.linalg.solve(normal, t)
+    except np.linalg.LinAlgError:
+        return None
+
+
+def neck_of(profile: Profile, *, row_noise_px=0.1, max_half_window=40, min_half_window=3,
+            max_bend_deg=1.5):
     """Minimum diameter of one profile from a local quadratic fit along the axis.
 
     ``row_noise_px``: expected noise of one row's width; the fit window
     takes the contiguous rows around the thinnest one whose smoothed width
     stays within ``max(3·row_noise_px, 1.5 %)`` of it, half-length between
-    ``min_half_window`` and ``max_half_window`` rows. Returns a dict with
-    ``diameter_px``, ``neck_position_px``, ``axis_angle_deg``,
-    ``axis_lateral_px``, ``min_contrast``, ``fit_rows``, ``beads``
-    (NaN / 0 / False when there is no connected thread).
+    ``min_half_window`` and ``max_half_window`` rows. The widths are taken
+    across the local axis, whose angle is fitted to the centre line over
+    the same rows (within ``max_bend_deg`` of the frame's axis). Returns a
+    dict with ``diameter_px``, ``neck_position_px``, ``axis_angle_deg``,
+    ``axis_lateral_px``, ``min_contrast``, ``fit_rows``, ``beads`` (NaN / 0 /
+    False when there is no connected thread).
     """
     out = {"diameter_px": math.nan, "neck_position_px": math.nan, "axis_angle_deg": math.nan,
            "axis_lateral_px": math.nan, "min_contrast": math.nan, "fit_rows": 0, "beads": False}
-    width = profile.width_px
-    ok = profile.valid & np.isfinite(width)
+    cut = profile.cut_width_px
+    ok = profile.valid & np.isfinite(cut)
     if not profile.connected or ok.sum() < 3:
         return out
-    smooth = _masked_box(width, ok, 1)
-    smooth = np.where(ok, smooth, np.inf)
+    smooth = _smooth3(cut, ok)
     i0 = int(np.argmin(smooth))
     w0 = float(smooth[i0])
     level = w0 + max(3.0 * row_noise_px, 0.015 * w0)
-    inside = smooth <= level
-    n = width.size
-    lo = i0
-    while lo > 0 and inside[lo - 1] and i0 - lo < max_half_window:
-        lo -= 1
-    hi = i0
-    while hi < n - 1 and inside[hi + 1] and hi - i0 < max_half_window:
-        hi += 1
+    outside = ~(smooth <= level)
+    before = np.flatnonzero(outside[:i0])
+    after = np.flatnonzero(outside[i0 + 1:])
+    lo = max(int(before[-1]) + 1 if before.size else 0, i0 - max_half_window)
+    hi = min(i0 + int(after[0]) if after.size else cut.size - 1, i0 + max_half_window)
     mid = (lo + hi) // 2
     half = max((hi - lo + 1) // 2, min_half_window)
+    n = cut.size
     sel = np.zeros(n, bool)
     sel[max(0, mid - half): mid + half + 1] = True
     sel &= ok
+    slope = local_axis_slope(profile, sel, max_bend_deg=max_bend_deg)
+    cosine = 1.0 / math.sqrt(1.0 + slope * slope)
     y = profile.axial_px[sel] - profile.axial_px[i0]
-    w = width[sel]
+    w = cut[sel] * cosine
     position = float(profile.axial_px[i0])
-    if sel.sum() >= 5:
-        coef = np.polyfit(y, w, 2)
+    coef = _quadratic(y, w) if y.size >= 5 else None
+    if coef is None:
+        diameter = float(np.mean(w))
+    else:
         a, b, c = coef
         vertex = -b / (2.0 * a) if a > 0 else math.nan
         if np.isfinite(vertex) and y.min() <= vertex <= y.max():
             diameter = c - b * b / (4.0 * a)
             position += vertex
-        else:
-            diameter = float(np.polyval(coef, 0.0)) if a > 0 else float(np.mean(w))
-            if a <= 0:
-                diameter = min(diameter, float(np.polyval(coef, 0.0)))
-    else:
-        diameter = float(np.mean(w))
+        else:  # no minimum inside the window: the fit's lowest point in it
+            ends = [a * v * v + b * v + c for v in (y.min(), 0.0, y.max())]
+            diameter = min(ends)
     out.update(diameter_px=float(diameter), neck_position_px=position,
-               axis_angle_deg=float(profile.angle_deg[i0]),
+               axis_angle_deg=math.degrees(math.atan(slope)),
                axis_lateral_px=float(profile.centre_px[i0]),
                min_contrast=float(profile.contrast[i0]), fit_rows=int(sel.sum()),
                beads=_has_beads(smooth, ok))

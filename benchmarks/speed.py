@@ -1,0 +1,165 @@
+"""Decode and analysis speed on the 20,000-frame benchmark recording, and peak memory.
+
+Generates once (cached) the benchmark recording of ``thinning.synth``: an 8-bit
+MJPG AVI of 512 × 256 frames, a slowly thinning elastic filament between plates
+that breaks near the end. Then, each in a fresh child process (so that each peak
+memory figure is its own):
+
+- decode only, every route measured: the compressed packets decoded in a thread
+  pool (what :class:`thinning.frames.VideoSource` does) with 1–4 threads, and
+  OpenCV's plain ``read()`` with its colour conversion;
+- the neck measurement alone (:func:`thinning.neck.measure_recording`);
+- the whole analysis (:func:`thinning.analysis.analyse`: frames → diameters →
+  regimes, fits, figures, report, files), when that module is present.
+
+Prints frames/s, peak resident memory (``ru_maxrss`` of the child) and the ratio
+of the analysis rate to the fastest decode-only rate.
+
+    python benchmarks/speed.py [--frames 20000] [--dir FOLDER]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+
+def recording(folder: Path, n_frames: int) -> Path:
+    """The benchmark file (written when missing)."""
+    from thinning import synth
+
+    path = folder / f"benchmark-{n_frames}.avi"
+    if not path.exists():
+        folder.mkdir(parents=True, exist_ok=True)
+        started = time.perf_counter()
+        partial = folder / f"partial-{os.getpid()}-benchmark-{n_frames}.avi"
+        synth.write_benchmark_recording(partial, n_frames=n_frames, seed=0)
+        partial.rename(path)
+        truth = synth.truth_path(partial)
+        if truth.exists():
+            truth.rename(synth.truth_path(path))
+        print(f"wrote {path} in {time.perf_counter() - started:.0f} s", flush=True)
+    return path
+
+
+def _peak_rss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kB on Linux
+
+
+def child(mode: str, path: str, threads: int) -> dict:
+    """Run one measurement in this process; return frames, seconds and peak memory."""
+    import numpy as np
+
+    started = time.perf_counter()
+    if mode == "decode-packets":
+        from thinning.frames import VideoSource
+
+        count = 0
+        with VideoSource(path, decode_threads=threads) as source:
+            for frame in source:
+                count += 1
+    elif mode == "decode-read":
+        import cv2
+
+        cap = cv2.VideoCapture(path, cv2.CAP_FFMPEG)
+        count = 0
+        while True:
+            ok, frame = cap.read()
+            if not ok:
+                break
+            grey = cv2.cvtColor(frame, cv2.COLOR_BGR2GRAY)
+            count += 1
+        cap.release()
+        del grey
+    elif mode == "measure":
+        from thinning.frames import open_source
+        from thinning.neck import measure_recording
+
+        with open_source(path) as source:
+            series = measure_recording(source, n_frames=source.n_frames)
+        count = len(series.table)
+        finite = int(np.isfinite(series.table["diameter_px"]).sum())
+        extra = {"frames_with_diameter": finite}
+    elif mode == "analyse":
+        from thinning.analysis import analyse
+        from thinning.units import AnalysisOptions
+
+        options = AnalysisOptions(fps_hz=_benchmark_fps(path), pixel_size_m=15e-6,
+                                  surface_tension_N_m=0.036, geometry="plates")
+        with tempfile.TemporaryDirectory() as out:
+            result = analyse(path, out, options)
+        count = int(result["source"]["n_frames"])
+        extra = {"regime": result.get("regime")}
+    else:
+        raise SystemExit(f"unknown mode {mode}")
+    seconds = time.perf_counter() - started
+    out = {"mode": mode, "threads": threads, "frames": count, "seconds": seconds,
+           "frames_per_s": count / seconds, "peak_rss_mb": _peak_rss_mb()}
+    if mode in ("measure", "analyse"):
+        out.update(extra)
+    return out
+
+
+def _benchmark_fps(path) -> float:
+    from thinning import synth
+
+    n = int(Path(path).stem.split("-")[-1])
+    return synth.benchmark_scene(n).fps_hz
+
+
+def run_child(mode, path, threads=2):
+    cmd = [sys.executable, __file__, "--child", mode, "--path", str(path), "--threads", str(threads)]
+    done = subprocess.run(cmd, capture_output=True, text=True)
+    if done.returncode != 0:
+        return {"mode": mode, "threads": threads, "error": done.stderr.strip().splitlines()[-1:]}
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--frames", type=int, default=20000)
+    parser.add_argument("--dir", type=Path, default=Path(tempfile.gettempdir()) / "thinning-benchmark")
+    parser.add_argument("--child", help=argparse.SUPPRESS)
+    parser.add_argument("--path", help=argparse.SUPPRESS)
+    parser.add_argument("--threads", type=int, default=2, help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.child:
+        print(json.dumps(child(args.child, args.path, args.threads)))
+        return
+    path = recording(args.dir, args.frames)
+    print(f"recording: {path} ({path.stat().st_size / 1e6:.0f} MB, {args.frames} frames, "
+          f"{os.cpu_count()} cores)")
+    runs = [run_child("decode-packets", path, t) for t in (1, 2, 3, 4)]
+    runs.append(run_child("decode-read", path))
+    runs.append(run_child("measure", path))
+    try:
+        import thinning.analysis  # noqa: F401
+
+        runs.append(run_child("analyse", path))
+    except ImportError:
+        pass
+    for r in runs:
+        if "error" in r:
+            print(f"{r['mode']:>15} threads={r['threads']}: failed: {r['error']}")
+        else:
+            print(f"{r['mode']:>15} threads={r['threads']}: {r['frames_per_s']:8.0f} frames/s  "
+                  f"({r['frames']} frames in {r['seconds']:.1f} s), peak memory "
+                  f"{r['peak_rss_mb']:.0f} MB")
+    decode = [r for r in runs if r["mode"].startswith("decode") and "error" not in r]
+    best = max(decode, key=lambda r: r["frames_per_s"])
+    print(f"fastest decode-only: {best['mode']} threads={best['threads']}, "
+          f"{best['frames_per_s']:.0f} frames/s")
+    for r in runs:
+        if r["mode"] in ("measure", "analyse") and "error" not in r:
+            print(f"{r['mode']}/decode ratio: {r['frames_per_s'] / best['frames_per_s']:.2f}")
+
+
+if __name__ == "__main__":
+    main()
