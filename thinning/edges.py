@@ -126,6 +126,31 @@ class Layout:
             cache[key] = entry
         return entry[1]
 
+    @property
+    def gain_rows(self) -> np.ndarray:
+        """Every 4th lit row: where the flicker gain of a frame is read."""
+        return self._derived()[3]
+
+    @property
+    def row_starts(self) -> np.ndarray:
+        """Flat index of the first pixel of each row of the band block."""
+        return self._derived()[4]
+
+    @property
+    def zone_steps(self) -> np.ndarray:
+        """Column offsets 0 … 2·(margin + core) − 1 of the two edge zones."""
+        return np.arange(2 * (self.margin_px + self.core_px))
+
+    @property
+    def zone_weights(self) -> np.ndarray:
+        """(2·zone × 3) matrix: left-zone sum, right-zone sum, first moment of the window."""
+        zone = self.margin_px + self.core_px
+        weights = np.zeros((2 * zone, 3), np.float32)
+        weights[:zone, 0] = 1.0
+        weights[zone:, 1] = 1.0
+        weights[:, 2] = np.arange(2 * zone)
+        return weights
+
     def _derived(self):
         cache = self.__dict__.get("_cache")
         if cache is None:
@@ -133,8 +158,12 @@ class Layout:
             k = min(BACKGROUND_COLUMNS, max(1, p.shape[1] // 6))
             margins = p[:, :k].sum(axis=1) + p[:, -k:].sum(axis=1)
             top = float(np.median(margins))
-            cache = ((1.0 / p).astype(np.float32), margins.astype(np.float64),
-                     margins > 0.5 * top)
+            lit = margins > 0.5 * top
+            gain_rows = np.flatnonzero(lit)[::4]
+            if gain_rows.size < 5:
+                gain_rows = np.arange(p.shape[0])
+            cache = ((1.0 / p).astype(np.float32), margins.astype(np.float64), lit, gain_rows,
+                     np.arange(p.shape[0]) * p.shape[1])
             object.__setattr__(self, "_cache", cache)
         return cache
 
@@ -628,35 +657,37 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
     inv_light = layout.inverse_backlight
     flat_inv = inv_light.ravel()
     flat = block.ravel()
-    margins = (block[:, :k].sum(axis=1, dtype=np.float64)
-               + block[:, w - k:].sum(axis=1, dtype=np.float64))
-    ratio = margins / layout.margin_light
-    lit = layout.lit_rows
+    # flicker gain: the margins of every 4th lit row against the light field
+    probe_rows = layout.gain_rows
+    sample = block[probe_rows]
+    margins = (sample[:, :k].sum(axis=1, dtype=np.int64)
+               + sample[:, w - k:].sum(axis=1, dtype=np.int64))
+    ratio = margins / layout.margin_light[probe_rows]
     clipped = layout.saturation < math.inf and bool(block.max() >= layout.saturation)
     if clipped:
-        lit = lit & (np.maximum(block[:, :k].max(axis=1), block[:, w - k:].max(axis=1))
-                     < layout.saturation)
-    lit_ratio = ratio[lit]
-    if lit_ratio.size >= 5:
-        gain = float(np.median(lit_ratio[:: max(1, lit_ratio.size // 64)]))
+        ratio = ratio[np.maximum(sample[:, :k].max(axis=1), sample[:, w - k:].max(axis=1))
+                      < layout.saturation]
+    if ratio.size >= 5:
+        gain = float(np.partition(ratio, ratio.size // 2)[ratio.size // 2])
     else:  # margins clipped or dark: the unclipped background anywhere in the band
         sub = (block[::3, ::3] * inv_light[::3, ::3]).ravel()
         sub = sub[block[::3, ::3].ravel() < layout.saturation]
         bright = sub[sub > 0.6 * np.percentile(sub, 95)] if sub.size else sub
         gain = float(np.median(bright)) if bright.size else 1.0
-    light = ratio * (1.0 / gain)
     threshold, threshold_rev = layout.threshold_map(block.dtype, detect_level, gain)
     mask = block < threshold
+    flat_mask = mask.ravel()
     rows = np.arange(n)
-    row_start = rows * w
+    row_start = layout.row_starts
     lj = np.argmax(mask, axis=1)
-    has = mask.ravel().take(row_start + lj)
+    has = flat_mask.take(row_start + lj)
     rj = (w - 1) - np.argmax(cv2.flip(block, 1) < threshold_rev, axis=1)
+    # no backlight beside the filament (a substrate filling the band): dark at both margins
+    light = ~(flat_mask.take(row_start) & flat_mask.take(row_start + (w - 1)))
     m, a = layout.margin_px, layout.core_px
     # rows whose dark pixels are not one run (a speck of dust or a stray shadow beside the
     # filament): bright pixels among the first or last 2·core dark ones; keep the run
     # holding the darkest pixel
-    flat_mask = mask.ravel()
     step = np.arange(2 * a)
     probe = step < (rj - lj + 1)[:, None]
     head = flat_mask.take(np.minimum(lj[:, None] + step, w - 1) + row_start[:, None])
@@ -670,16 +701,16 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
     core_stop = rj + 1 - a
     thick = core_stop >= core_start
     base = lj - m
-    j = np.arange(2 * zone)
+    j = layout.zone_steps
     cols = base[:, None] + j
-    right = (core_stop - zone - base)[:, None]
-    cols[:, zone:] += np.where(thick, right[:, 0], 0)[:, None]
-    inside = (cols >= 0) & (cols < w)
-    use = inside & (thick[:, None] | (cols < (rj + 1 + m)[:, None]))
-    truncated = has & ~inside.all(axis=1)
+    cols[:, zone:] += ((core_stop - zone - base) * thick)[:, None]
+    stop = np.where(thick, w, np.minimum(rj + 1 + m, w))
+    use = (cols >= 0) & (cols < stop[:, None])
+    truncated = has & ((base < 0) | (np.where(thick, core_stop + m, rj + 1 + m) > w))
     np.maximum(cols, 0, out=cols)
     np.minimum(cols, w - 1, out=cols)
-    index = (cols + row_start[:, None]).ravel()
+    cols += row_start[:, None]
+    index = cols.ravel()
     values = flat.take(index)
     deficit = values * flat_inv.take(index)
     deficit *= np.float32(-scale / gain)
@@ -688,36 +719,37 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
         deficit[values >= layout.saturation] = 0.0
     deficit = deficit.reshape(n, 2 * zone)
     deficit *= use
-    sums = deficit.reshape(n, 2, zone).sum(axis=2).astype(np.float64)
-    left_sum, right_sum = sums[:, 0], sums[:, 1]
+    sums = (deficit @ layout.zone_weights).astype(np.float64)
+    left_sum, right_sum, moment = sums[:, 0], sums[:, 1], sums[:, 2]
     edge_sum = left_sum + right_sum
-    core_n = np.where(thick, core_stop - core_start, 0).astype(np.float64)
+    core_n = (core_stop - core_start) * thick
     with np.errstate(invalid="ignore", divide="ignore"):
-        centroid = np.einsum("ij,ij->i", deficit, cols.astype(np.float32)) / edge_sum
+        centroid = base + moment / edge_sum
     centre = np.where(thick, 0.5 * ((core_start - 0.5 - left_sum) + (core_stop - 0.5 + right_sum)),
                       centroid)
-    centre = np.where(has, centre, np.nan)
-    peak = np.where(thick, 1.0, deficit.max(axis=1))
+    centre[~has] = np.nan
+    peak = deficit.max(axis=1)
+    peak[thick] = 1.0
     empty = np.flatnonzero(~has)
     if empty.size:  # rows without a clear shadow: their faintest trace of one
         faint = 1.0 - (block[empty] * inv_light[empty]).min(axis=1) / gain
         peak[empty] = faint * scale
     # rim level of thick steady rows (see _measure_rows)
-    steady = np.zeros(n, bool)
-    steady[2:-2] = ((np.abs(lj[4:] - lj[:-4]) <= 1) & (np.abs(rj[4:] - rj[:-4]) <= 1)
-                    & has[4:] & has[:-4])
-    rim_rows = thick & (core_stop - core_start > 12) & has & steady
+    rim_rows = thick & (core_n > 12) & has
+    rim_rows[2:-2] &= (np.abs(lj[4:] - lj[:-4]) <= 1) & (np.abs(rj[4:] - rj[:-4]) <= 1)
+    rim_rows[:2] = rim_rows[-2:] = False
     rim_ratio = np.full(n, np.nan)
     if rim_rows.any():
         tr, ta, tb = row_start[rim_rows], core_start[rim_rows], core_stop[rim_rows]
         picks = np.concatenate([tr + ta, tr + ta + 1, tr + tb - 1, tr + tb - 2])
         vals = (flat.take(picks) * flat_inv.take(picks)).reshape(4, -1).mean(axis=0)
         rim_ratio[rim_rows] = vals / gain
-    return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum, "core_n": core_n,
-            "cut_width": np.where(has, edge_sum + core_n, np.nan), "truncated": truncated,
-            "rim_ratio": rim_ratio, "light": light, "window": (np.maximum(base, 0),
-                                                                np.minimum(rj + 1 + m, w)),
-            "gain": gain}
+    cut = edge_sum + core_n
+    cut[~has] = np.nan
+    return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum,
+            "core_n": core_n.astype(np.float64), "cut_width": cut, "truncated": truncated,
+            "rim_ratio": rim_ratio, "light": light.astype(np.float64),
+            "window": (np.maximum(base, 0), np.minimum(rj + 1 + m, w)), "gain": gain}
 
 
 def _main_run(mask_row, pair_row, lo, hi, *, bridge_px=3):
