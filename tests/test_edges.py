@@ -161,3 +161,30 @@ def test_roi_restricts_the_layout():
     assert profile.axial_px[0] == 40 and profile.axial_px[-1] == 159
     i = np.nanargmin(np.where(profile.valid, profile.width_px, np.nan))
     assert profile.width_px[i] == pytest.approx(10.0, abs=0.05)
+
+
+@pytest.mark.parametrize("neck,blur", [(4.0, 1.0), (12.0, 2.0), (40.0, 0.7)])
+def test_per_frame_path_matches_the_full_row_method(neck, blur):
+    # the per-frame path (edge zones only, light field) and the full-row method (deficit on
+    # every pixel, light interpolated between the margins) must give the same widths
+    from dataclasses import replace
+
+    frame = render(neck=neck, blur=blur, noise=0.005, seed=4)
+    layout = find_layout(frame)
+    fast = locate_edges(frame, layout)
+    full = locate_edges(frame, replace(layout, backlight=None))
+    slope = np.abs(np.gradient(full.left_px))
+    rows = fast.valid & full.valid & (slope < 0.3)  # edges along the axis (see above)
+    assert rows.sum() > 50
+    assert np.max(np.abs(fast.cut_width_px[rows] - full.cut_width_px[rows])) < 0.05
+    assert np.max(np.abs(fast.left_px[rows] - full.left_px[rows])) < 0.1
+
+
+def test_dust_speck_beside_the_thread_is_not_part_of_it():
+    frame = render(neck=8.0, blur=1.0)
+    layout = find_layout(frame)
+    speck = frame.copy()
+    speck[96:104, 64:68] = 120  # a dark speck 8 px left of the thread, after the layout
+    profile = locate_edges(speck, layout)
+    rows = (profile.axial_px >= 96) & (profile.axial_px < 104)
+    assert np.all(np.abs(profile.cut_width_px[rows] - 8.0) < 0.2)

@@ -99,3 +99,17 @@ def test_to_physical_uses_the_recording_clock():
     assert list(table.columns[:4]) == ["frame", "time_s", "diameter_m", "neck_position_m"]
     assert table["time_s"].iloc[5] == pytest.approx(0.005)
     assert table["diameter_m"].median() == pytest.approx(10.0 * 2e-6, rel=0.01)
+
+
+def test_beads_are_reported_and_the_neck_is_on_the_thread():
+    from thinning import synth
+
+    scene = synth.dilute_polymer_plates(fps_hz=1000.0, frame_size_px=(200, 160),
+                                        pixel_size_m=25e-6, beads=True)
+    frames, truth = synth.render_recording(scene, synth.Optics(), seed=5)
+    series = measure_recording(frames, n_frames=truth.n_frames)
+    assert any(f.code == "beads" for f in series.findings)
+    beaded = series.table["beads"].to_numpy() & (truth.diameter_px >= 1.0)
+    assert beaded.sum() >= 5
+    err = series.table["diameter_px"].to_numpy()[beaded] - truth.diameter_px[beaded]
+    assert np.nanmax(np.abs(err)) < 0.3

@@ -1,31 +1,37 @@
 """Where the filament is, and its two edges on every row, to a fraction of a pixel.
 
-:func:`find_layout` looks at the first frame once: which way the filament
-runs, where the end bodies are (plates, or nozzle and substrate: wide dark
-bodies at the ends of the axis), the lateral band worth analysing, the
-background and shadow levels, the blur and the noise. :func:`locate_edges`
-then measures one frame in that layout and returns a :class:`Profile`.
+:func:`find_layout` looks at the first frame that shows a filament: which way
+it runs, where the end bodies are (plates, or nozzle and substrate: dark
+bodies with straight sides at the ends of the axis), the lateral band worth
+analysing, the light field of that band, the shadow level, the blur and the
+noise. :func:`locate_edges` then measures one frame in that layout and
+returns a :class:`Profile`; :func:`refresh_light` refits the light field on
+a later frame that shows more background.
 
 Method, per frame (vectorised over rows, axis along the rows of the band):
 
-1. Illumination: the backlight B(x) of each row is interpolated linearly
-   between the bright margins beside the filament (so uneven and flickering
-   light are followed frame by frame); the shadow level is S = f·B, with f
-   measured on the dark rim of the thick parts of the same frame.
-2. Deficit d = (B − I)/(B − S): 0 in the background, 1 in the shadow.
-3. The outer crossings of d = ``detect_level`` locate the filament on each
-   row (outer edges only, so the bright lens streak of a transparent thread
-   does not split it); their midpoint is the centre line.
-4. The width of the row is the integrated deficit over a window reaching
-   a few blur widths beyond both edges, with the core of thick rows (well
-   inside both edges) counted as full shadow. Because a point-spread function
-   redistributes light without losing it, this partial-area width is
-   unbiased for any symmetric or asymmetric blur and for motion blur, even
-   when a thin thread is blurred into a shallow dip that a 50 % threshold
-   underestimates (``shared/reference/physics.md`` §8 table). The edges are
-   the centre ∓ half that width.
-5. The local axis angle comes from a sliding straight-line fit of the centre
-   line; widths are reported across the axis (row width × cos angle).
+1. Illumination. The backlight is the layout's static light field (a 2-D
+   quadratic through the background of the band, with dark specks of dust
+   kept as seen) times this frame's flicker gain, read on the bright
+   margins beside the filament; the shadow level is S = f·B, with f
+   measured on the dark rims of thick, straight sections (plates and thick
+   liquid alike). Uneven, vignetted and flickering light are followed.
+2. Deficit d = (B − I)/(B − S): 0 in the background, 1 in full shadow.
+3. Each row's dark extent is where d exceeds ``detect_level``: its outer
+   ends, so the bright lens streak of a transparent thread does not split
+   it (a separate dark speck beside the filament is dropped).
+4. The row width is the integrated deficit over a window reaching a few
+   blur widths beyond both edges, with the core of a thick row (well inside
+   both edges) counted as full shadow. A point-spread function moves light
+   without losing it, so this partial-area width is unbiased for any blur,
+   defocus or motion smear, even when a thin thread is blurred into a
+   shallow dip that a 50 % threshold underestimates
+   (``shared/reference/physics.md`` §8 table). Each edge is the end of its
+   zone minus (plus) the zone's integrated deficit; a thin row is centred on
+   its deficit centroid.
+5. The axis direction is a straight-line fit of the centre line, kept within
+   a degree and a half of the direction of the end bodies' straight sides;
+   widths across the axis are row widths × cos(angle).
 
 Coordinates are pixels of the full frame: ``axial`` runs along the filament
 (y for a vertical filament, x for a horizontal one), ``lateral`` across it.
@@ -730,10 +736,27 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
     centre[~has] = np.nan
     peak = deficit.max(axis=1)
     peak[thick] = 1.0
+    cut = edge_sum + core_n
+    cut[~has] = np.nan
     empty = np.flatnonzero(~has)
     if empty.size:  # rows without a clear shadow: their faintest trace of one
         faint = 1.0 - (block[empty] * inv_light[empty]).min(axis=1) / gain
         peak[empty] = faint * scale
+        if has.sum() >= 5:
+            # a thread fainter than the detection level (narrower than the blur): its
+            # integrated deficit in a window on the centre line still measures it
+            y = rows[has].astype(np.float64)
+            c = centre[has]
+            slope = float(np.dot(y - y.mean(), c - c.mean()) / max(np.dot(y - y.mean(), y - y.mean()), 1e-9))
+            guess = np.rint(c.mean() + slope * (empty - y.mean())).astype(np.int64)
+            window = np.arange(-(m + 2), m + 3)
+            wc = guess[:, None] + window
+            inside_w = (wc >= 0) & (wc < w)
+            wc = np.minimum(np.maximum(wc, 0), w - 1) + row_start[empty][:, None]
+            d = (1.0 - flat.take(wc) * flat_inv.take(wc) / gain) * scale * inside_w
+            cut[empty] = np.where(inside_w.all(axis=1), d.sum(axis=1), np.nan)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                centre[empty] = (d * (wc - row_start[empty][:, None])).sum(axis=1) / cut[empty]
     # rim level of thick steady rows (see _measure_rows)
     rim_rows = thick & (core_n > 12) & has
     rim_rows[2:-2] &= (np.abs(lj[4:] - lj[:-4]) <= 1) & (np.abs(rj[4:] - rj[:-4]) <= 1)
@@ -744,8 +767,6 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
         picks = np.concatenate([tr + ta, tr + ta + 1, tr + tb - 1, tr + tb - 2])
         vals = (flat.take(picks) * flat_inv.take(picks)).reshape(4, -1).mean(axis=0)
         rim_ratio[rim_rows] = vals / gain
-    cut = edge_sum + core_n
-    cut[~has] = np.nan
     return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum,
             "core_n": core_n.astype(np.float64), "cut_width": cut, "truncated": truncated,
             "rim_ratio": rim_ratio, "light": light.astype(np.float64),
@@ -820,7 +841,7 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     rows = measure(block, layout, shadow_fraction=layout.shadow_fraction, detect_level=detect_level)
     n = block.shape[0]
     fraction = layout.shadow_fraction
-    cut = np.where(rows["has"], rows["edge_sum"] + rows["core_n"], np.nan)
+    cut = rows["cut_width"]
     body = _body_rows(rows, cut, layout, n)
     start = int(np.argmin(body)) if not body.all() else n
     stop = n - int(np.argmin(body[::-1])) if not body.all() else n
@@ -836,11 +857,11 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     if new is not None and new != fraction:
         # re-scale the partial sums to this frame's own shadow level (flicker, exposure)
         gain = (1.0 - fraction) / (1.0 - new)
-        cut = np.where(rows["has"], rows["edge_sum"] * gain + rows["core_n"], np.nan)
+        cut = (cut - rows["core_n"]) * gain + rows["core_n"]
         peak = peak * gain
         fraction = new
     present = peak > max(presence_level, 5.0 * layout.noise)
-    valid = free & rows["has"] & ~rows["truncated"]
+    valid = free & np.isfinite(cut) & ~rows["truncated"]
     connected = bool(free.any() and present[free].all())
     y = np.arange(n, dtype=np.float64) + axial[0]
     centre = rows["centre"] + layout.band[0]
