@@ -198,7 +198,7 @@ def filament_model(fluid: Fluid, initial_diameter, *, duration, force_factor=NEW
 
         dA_zz/dt = 2 ε̇ A_zz − f (A_zz − 1)/λ,   dA_rr/dt = −ε̇ A_rr − f (A_rr − 1)/λ.
 
-    k = (3/2)² / X_IC³ makes the inviscid limit the inertio-capillary law; the
+    k = (3/2)² (2X − 1) / X_IC³ makes the inviscid limit the inertio-capillary law; the
     viscous limit is Papageorgiou's with X = 0.7127; the elastic limit thins at
     ε̇ = 2/(3λ). ``initial_conformation`` is A_zz at t = 0 (pre-stretch of the
     step). Integration ends when D falls to ``breakup_diameter`` (default
@@ -208,7 +208,7 @@ def filament_model(fluid: Fluid, initial_diameter, *, duration, force_factor=NEW
     d0 = float(initial_diameter)
     r0 = d0 / 2.0
     r_end = (breakup_diameter if breakup_diameter is not None else d0 * 1e-4) / 2.0
-    k = (1.5 ** 2) / inertio_capillary_prefactor ** 3
+    k = (1.5 ** 2) * (2.0 * force_factor - 1.0) / inertio_capillary_prefactor ** 3
     g = fluid.polymer_modulus
     lam = fluid.relaxation_time
     l2 = fluid.extensibility

@@ -724,6 +724,15 @@ def _merge_neighbours(regimes, series, *, max_gap):
     return out
 
 
+#: Multiples of the estimated diameter noise tried when locating the elastic run.
+NOISE_RETRY_FACTORS = (2.0, 3.0)
+
+
+def _log_fall(series, s, e) -> float:
+    """Fall of ln D between frames ``s`` and ``e`` of a prepared series."""
+    return float(np.log(series.diameter_m[s] / series.diameter_m[e]))
+
+
 def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
                     t_start_s=None, tolerance=0.05, min_points=6,
                     min_decrease=2.0) -> RegimeAnalysis:
@@ -742,19 +751,23 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
                                                 min_decrease=min_decrease)
 
     series, slopes, run = locate(series.noise_m)
-    if run is None:
-        # noise correlated from frame to frame looks smaller than it is to the estimator:
-        # try once with twice the noise (the drift test does not depend on it)
-        retry = locate(2.0 * series.noise_m)
-        if retry[2] is not None:
+    # noise correlated from frame to frame looks smaller than it is to the estimator, which
+    # can hide the elastic run or break it into pieces: try with two and three times the noise
+    # and keep whichever run covers the largest fall of ln D (the drift test and the cap on the
+    # allowance do not depend on the noise, so a power law still never passes as constant)
+    for factor in NOISE_RETRY_FACTORS:
+        retry = locate(factor * series.noise_m)
+        if retry[2] is not None and (run is None or _log_fall(retry[0], *retry[2])
+                                     > _log_fall(series, *run)):
             series, slopes, run = retry
     if run is not None:
         # scatter about the elastic line larger than the noise says (correlated noise, an
         # underestimated σ_D): widen the noise to match and locate again
         chi2 = _reduced_chi2_log_line(series, *run)
         if chi2 > 1.5:
-            series, slopes, again = locate(series.noise_m * float(np.sqrt(chi2)))
-            run = again if again is not None else run
+            widened = locate(series.noise_m * float(np.sqrt(chi2)))
+            if widened[2] is not None and _log_fall(widened[0], *widened[2]) >= 0.8 * _log_fall(series, *run):
+                series, slopes, run = widened
     gap = 2
     if run is not None:
         s, e = run
