@@ -113,3 +113,14 @@ def test_beads_are_reported_and_the_neck_is_on_the_thread():
     assert beaded.sum() >= 5
     err = series.table["diameter_px"].to_numpy()[beaded] - truth.diameter_px[beaded]
     assert np.nanmax(np.abs(err)) < 0.3
+
+
+def test_neck_quadratic_matches_numpy_polyfit():
+    # outside reference: numpy.polyfit (least squares with a Vandermonde matrix)
+    from thinning.neck import _quadratic
+
+    rng = np.random.default_rng(9)
+    for _ in range(5):
+        x = np.arange(-int(rng.integers(1, 9)), int(rng.integers(3, 15))).astype(float)
+        y = rng.normal(0, 1, 3) @ np.vstack([x ** 2, x, np.ones_like(x)]) + rng.normal(0, 0.01, x.size)
+        assert np.allclose(_quadratic(x, y), np.polyfit(x, y, 2), rtol=1e-9, atol=1e-9)

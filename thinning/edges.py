@@ -765,7 +765,7 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
     if rim_rows.any():
         tr, ta, tb = row_start[rim_rows], core_start[rim_rows], core_stop[rim_rows]
         picks = np.concatenate([tr + ta, tr + ta + 1, tr + tb - 1, tr + tb - 2])
-        vals = (flat.take(picks) * flat_inv.take(picks)).reshape(4, -1).mean(axis=0)
+        vals = (flat.take(picks) * flat_inv.take(picks)).reshape(4, -1).sum(axis=0) * 0.25
         rim_ratio[rim_rows] = vals / gain
     return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum,
             "core_n": core_n.astype(np.float64), "cut_width": cut, "truncated": truncated,
@@ -803,11 +803,12 @@ def _axis_slope(y, centre, ok, layout_slope, max_bend_deg):
     near plate corners, beads and retracting tips.
     """
     bend = math.tan(math.radians(max_bend_deg))
-    if ok.sum() < 5:
+    yy = y[ok]
+    if yy.size < 5:
         return layout_slope
-    yy = y[ok] - y[ok].mean()
     cc = centre[ok]
-    slope = float(np.dot(yy, cc - cc.mean()) / np.dot(yy, yy))
+    yy = yy - yy.sum() / yy.size
+    slope = float(np.dot(yy, cc) / np.dot(yy, yy))
     return min(max(slope, layout_slope - bend), layout_slope + bend)
 
 

@@ -96,15 +96,18 @@ def _smooth3(values, ok):
 
 
 def _quadratic(x, y):
-    """Least-squares ``a x² + b x + c`` (closed form normal equations); None when singular."""
+    """Least-squares ``a x² + b x + c`` (normal equations, Cramer's rule); None when singular."""
     x2 = x * x
-    s = np.array([x.size, x.sum(), x2.sum(), (x2 * x).sum(), (x2 * x2).sum()])
-    t = np.array([(x2 * y).sum(), (x * y).sum(), y.sum()])
-    normal = np.array([[s[4], s[3], s[2]], [s[3], s[2], s[1]], [s[2], s[1], s[0]]])
-    try:
-        return np.linalg.solve(normal, t)
-    except np.linalg.LinAlgError:
+    n, s1, s2 = float(x.size), float(x.sum()), float(x2.sum())
+    s3, s4 = float(np.dot(x2, x)), float(np.dot(x2, x2))
+    t0, t1, t2 = float(y.sum()), float(np.dot(x, y)), float(np.dot(x2, y))
+    det = s4 * (s2 * n - s1 * s1) - s3 * (s3 * n - s1 * s2) + s2 * (s3 * s1 - s2 * s2)
+    if abs(det) < 1e-12 * max(abs(s4 * s2 * n), 1e-300):
         return None
+    a = (t2 * (s2 * n - s1 * s1) - s3 * (t1 * n - s1 * t0) + s2 * (t1 * s1 - s2 * t0)) / det
+    b = (s4 * (t1 * n - t0 * s1) - t2 * (s3 * n - s1 * s2) + s2 * (s3 * t0 - t1 * s2)) / det
+    c = (s4 * (s2 * t0 - s1 * t1) - s3 * (s3 * t0 - s2 * t1) + t2 * (s3 * s1 - s2 * s2)) / det
+    return a, b, c
 
 
 def neck_of(profile: Profile, *, row_noise_px=0.1, max_half_window=40, min_half_window=3,
