@@ -887,7 +887,8 @@ def _rim_fraction(rim_ratio, rows_ok):
     values = values[np.isfinite(values)]
     if values.size < 3:
         return None
-    return float(np.clip(np.median(values), -0.5, 0.9))
+    middle = float(np.partition(values, values.size // 2)[values.size // 2])
+    return min(max(middle, -0.5), 0.9)
 
 
 def _body_rows(rows, cut, layout, n):
