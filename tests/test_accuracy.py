@@ -17,8 +17,8 @@ from thinning import synth
 from thinning.frames import open_source
 from thinning.neck import measure_recording
 
-PLATES = dict(fps_hz=1000.0, frame_size_px=(200, 160), pixel_size_m=25e-6)
-DRIP = dict(fps_hz=10000.0, frame_size_px=(240, 200), pixel_size_m=8e-6)
+PLATES = dict(fps_hz=2500.0, frame_size_px=(200, 160), pixel_size_m=25e-6)
+DRIP = dict(fps_hz=25000.0, frame_size_px=(240, 200), pixel_size_m=8e-6)
 
 
 def plates(**overrides):
@@ -50,10 +50,10 @@ CASES = {
     "png-folder-8bit": (plates(), O(), "png-folder"),
     "horizontal-plates": (plates(), O(orientation="horizontal"), "avi-raw"),
     "beads": (plates(beads=True), O(), "avi-raw"),
-    "viscous-newtonian": (synth.newtonian_viscous_plates(fps_hz=100.0, frame_size_px=(200, 160),
+    "viscous-newtonian": (synth.newtonian_viscous_plates(fps_hz=300.0, frame_size_px=(200, 160),
                                                          pixel_size_m=30e-6), O(), "tiff"),
     "dripping-polymer": (dripping(), O(), "avi-raw"),
-    "dripping-water": (synth.water_like_dripping(fps_hz=20000.0, frame_size_px=(240, 200),
+    "dripping-water": (synth.water_like_dripping(fps_hz=50000.0, frame_size_px=(240, 200),
                                                  pixel_size_m=10e-6), O(), "avi-mjpg"),
     "dripping-horizontal-tilted": (dripping(), O(orientation="horizontal", tilt_deg=2.0), "avi-raw"),
     "dripping-16bit-blur-2": (dripping(), O(bit_depth=12, blur_sigma_px=2.0), "tiff"),
@@ -78,13 +78,17 @@ def errors(series, truth):
 
 
 @pytest.mark.parametrize("name", list(CASES))
-def test_neck_diameter_accuracy(name, tmp_path):
+def test_neck_diameter_accuracy(name, tmp_path, record_property):
     scene, optics, fmt = CASES[name]
     series, truth = measure(tmp_path, scene, optics, fmt, seed=sum(map(ord, name)))
     assert len(series.table) == truth.n_frames
     err = errors(series, truth)
     assert err.size >= 10
     assert np.isfinite(err).all(), "a frame with a thread of at least 3 px got no diameter"
+    # the figures, for the record (pytest --junitxml=FILE keeps them)
+    record_property("frames_compared", int(err.size))
+    record_property("median_abs_error_px", float(np.median(np.abs(err))))
+    record_property("p95_abs_error_px", float(np.percentile(np.abs(err), 95)))
     assert np.median(np.abs(err)) <= 0.1
     assert np.percentile(np.abs(err), 95) <= 0.3
     assert series.layout.orientation == optics.orientation
@@ -120,3 +124,14 @@ def test_elastic_thread_breakup_is_after_the_thread_fades(tmp_path):
     last_visible = np.flatnonzero(truth.diameter_px >= 0.5)[-1]
     assert series.breakup_frame is not None
     assert last_visible - 10 <= series.breakup_frame <= truth.breakup_time_s * truth.fps_hz
+
+
+def test_long_tailed_blur_meets_the_median_but_not_the_tail(tmp_path):
+    # synth's "lorentzian" PSF puts 10 % of the light in a halo of 9 σ, beyond the deficit
+    # window (about 3 σ past each edge): part of the shadow leaks out of it, so a known
+    # systematic error remains on some frames (a documented limitation, README)
+    scene, optics = plates(), O(blur_kind="lorentzian", blur_sigma_px=1.0)
+    series, truth = measure(tmp_path, scene, optics, "avi-raw", seed=7)
+    err = np.abs(errors(series, truth))
+    assert np.median(err) <= 0.1
+    assert np.percentile(err, 95) <= 0.6
