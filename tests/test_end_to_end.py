@@ -82,6 +82,9 @@ def test_each_polymer_case_within_5_percent(polymer_results, name):
     assert result["regime"] == "elasto-capillary", (name, result["regimes"], result["warnings"])
     error = result["relaxation_time_s"] / truth.relaxation_time_s - 1.0
     assert abs(error) <= 0.05, (name, error)
+    # clean recordings with a long elastic window: nothing should make them doubtful
+    # (a sub-pixel thread flickering out of view just before breakup is expected, not a fault)
+    assert result["quality"] == "good", result["quality_reasons"]
 
 
 def test_median_relative_error_of_relaxation_time_within_2_percent(polymer_results):
