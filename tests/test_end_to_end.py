@@ -6,7 +6,6 @@ rheology"): median relative error of λ ≤ 2 %, every case within 5 %; visco-ca
 viscosity within 5 %; regime named correctly in every case.
 """
 
-import dataclasses
 
 import numpy as np
 import pytest
