@@ -13,7 +13,6 @@ import shutil
 from pathlib import Path
 
 import nbformat
-import pytest
 from nbclient import NotebookClient
 
 ROOT = Path(__file__).resolve().parent.parent
