@@ -26,7 +26,6 @@ from __future__ import annotations
 import contextlib
 import inspect
 import logging
-import math
 import os
 import tempfile
 from pathlib import Path
@@ -36,6 +35,7 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from thinning import laws
+from .values import finite_number as _number
 
 logger = logging.getLogger(__name__)
 
@@ -124,17 +124,6 @@ def _column(table, name):
         return np.asarray(table[name], dtype=float)
     n = 0 if table is None else len(table)
     return np.full(n, np.nan)
-
-
-def _number(value):
-    """``value`` as a finite float, else None."""
-    if value is None or isinstance(value, bool):
-        return None
-    try:
-        x = float(value)
-    except (TypeError, ValueError):
-        return None
-    return x if math.isfinite(x) else None
 
 
 def _time_scale(table, result):

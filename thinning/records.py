@@ -56,6 +56,7 @@ from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, OperationalError
 
 from . import qc
+from .values import finite_number as _number
 
 logger = logging.getLogger(__name__)
 
@@ -250,17 +251,6 @@ def _text(value) -> str:
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return ""
     return str(value).strip()
-
-
-def _number(value) -> float | None:
-    """A finite float, or None for missing / empty / NaN."""
-    if value is None or isinstance(value, bool) or value == "":
-        return None
-    try:
-        x = float(value)
-    except (TypeError, ValueError):
-        return None
-    return x if math.isfinite(x) else None
 
 
 def safe_name(name: str) -> str:

@@ -13,12 +13,12 @@ from __future__ import annotations
 
 import base64
 import contextlib
-import math
 import os
 import tempfile
 from pathlib import Path, PurePath
 
 import jinja2
+from ..values import finite_number as _number
 
 TEMPLATE_DIR = Path(__file__).parent / "templates"
 
@@ -69,17 +69,6 @@ MISSING = "—"
 
 #: result.json key → name of the same value in a fit's ``values`` (where they differ)
 _FIT_VALUE_NAMES = {"extensional_viscosity_terminal_Pa_s": "terminal_extensional_viscosity_Pa_s"}
-
-
-def _number(value):
-    """``value`` as a finite float, else None."""
-    if value is None or isinstance(value, bool):
-        return None
-    try:
-        x = float(value)
-    except (TypeError, ValueError):
-        return None
-    return x if math.isfinite(x) else None
 
 
 def _digits(x):
