@@ -374,10 +374,14 @@ def plot_frame_strip(snapshots, *, orientation="vertical", fps_hz=None, fig=None
             ax.imshow(img, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1.0, aspect="equal")
             if profile is not None:
                 axial = np.asarray(profile.axial_px, dtype=float)
+                # rows the measurement trusted (where the profile says so), inside the image
+                keep = np.asarray(getattr(profile, "valid", np.ones(axial.shape, bool)), dtype=bool)
                 for edge in (profile.left_px, profile.right_px):
-                    edge = np.asarray(edge, dtype=float)
+                    edge = np.where(keep, np.asarray(edge, dtype=float), np.nan)
                     x, y = (edge, axial) if orientation == "vertical" else (axial, edge)
                     ax.plot(x, y, "-", color="#ff8c1a", lw=0.9)
+            ax.set_xlim(-0.5, img.shape[1] - 0.5)
+            ax.set_ylim(img.shape[0] - 0.5, -0.5)
             title = f"frame {index}"
             if _number(fps_hz):
                 title += f"\n{_format_time(index / float(fps_hz))}"
