@@ -116,9 +116,9 @@ class Layout:
     def threshold_map(self, dtype, level, gain):
         """Grey level per pixel of a deficit of ``level`` under the light field × ``gain``.
 
-        Returns the map and its mirror image (columns reversed), in the frame's
-        dtype; cached, rebuilt when the gain moves by more than 8 % (it only has
-        to find each row's dark extent, not its edges).
+        Returns the map in the frame's dtype; cached, rebuilt when the gain
+        moves by more than 8 % (it only has to find each row's dark extent, not
+        its edges).
         """
         key = (np.dtype(dtype).str, level)
         cache = self.__dict__.setdefault("_thresholds", {})
@@ -128,7 +128,7 @@ class Layout:
             level_map = self.backlight * np.float32(gain * (1.0 - level * (1.0 - f)))
             if np.issubdtype(np.dtype(dtype), np.integer):
                 level_map = np.clip(np.round(level_map), 0, np.iinfo(dtype).max).astype(dtype)
-            entry = (gain, (level_map, np.ascontiguousarray(level_map[:, ::-1])))
+            entry = (gain, level_map)
             cache[key] = entry
         return entry[1]
 
@@ -643,7 +643,30 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
             "light": light, "window": (s0, e0), "gain": gain}
 
 
-def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
+def measure_block(frames, layout: Layout, *, detect_level=DETECT_LEVEL) -> list[dict]:
+    """Row measurements of several frames of one layout at once, one dict per frame.
+
+    The same quantities as measuring each frame alone (:func:`locate_edges`),
+    with each array operation done once for the whole stack: on frames this
+    small the per-call cost of numpy dominates. ``frames`` is a sequence of
+    2-D frames of one shape; the layout needs its light field. Each result
+    goes to :func:`profile_of`.
+    """
+    axial = layout.axial_range
+    if layout.backlight is None:
+        return [_measure_rows(_oriented(np.asarray(f), layout.orientation, axial, layout.band),
+                              layout, shadow_fraction=layout.shadow_fraction,
+                              detect_level=detect_level) for f in frames]
+    (a0, a1), (b0, b1) = axial, layout.band
+    first = np.asarray(frames[0])
+    blocks = np.empty((len(frames), a1 - a0, b1 - b0), first.dtype)
+    for block, frame in zip(blocks, frames):  # one copy per frame, straight into the stack
+        frame = np.asarray(frame)
+        block[...] = frame[a0:a1, b0:b1] if layout.orientation == "vertical" else frame[b0:b1, a0:a1].T
+    return _measure_rows_fast(blocks, layout, detect_level=detect_level)
+
+
+def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
     """The per-frame path of :func:`_measure_rows`: same quantities, a fraction of the work.
 
     Each row's dark extent comes from one comparison with a threshold map
@@ -653,80 +676,76 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
     row counts as full shadow. The edges are partial-area positions: the
     end of the left zone minus its integrated deficit, the start of the
     right zone plus its own; a thin row is placed at its deficit centroid.
-    ``block`` is the band in the frame's own dtype, contiguous.
+    ``blocks`` is a stack of bands (frame, row, column) in the frames' own
+    dtype, contiguous; returns one dict per frame.
     """
     import cv2
 
-    n, w = block.shape
+    nb, n, w = blocks.shape
     k = min(BACKGROUND_COLUMNS, max(1, w // 6))
-    scale = 1.0 / max(1.0 - shadow_fraction, 1e-3)
+    scale = 1.0 / max(1.0 - layout.shadow_fraction, 1e-3)
     inv_light = layout.inverse_backlight
     flat_inv = inv_light.ravel()
-    flat = block.ravel()
-    # flicker gain: the margins of every 4th lit row against the light field
-    probe_rows = layout.gain_rows
-    sample = block[probe_rows]
-    margins = (sample[:, :k].sum(axis=1, dtype=np.int64)
-               + sample[:, w - k:].sum(axis=1, dtype=np.int64))
-    ratio = margins / layout.margin_light[probe_rows]
-    clipped = layout.saturation < math.inf and bool(block.max() >= layout.saturation)
-    if clipped:
-        ratio = ratio[np.maximum(sample[:, :k].max(axis=1), sample[:, w - k:].max(axis=1))
-                      < layout.saturation]
-    if ratio.size >= 5:
-        gain = float(np.partition(ratio, ratio.size // 2)[ratio.size // 2])
-    else:  # margins clipped or dark: the unclipped background anywhere in the band
-        sub = (block[::3, ::3] * inv_light[::3, ::3]).ravel()
-        sub = sub[block[::3, ::3].ravel() < layout.saturation]
-        bright = sub[sub > 0.6 * np.percentile(sub, 95)] if sub.size else sub
-        gain = float(np.median(bright)) if bright.size else 1.0
-    threshold, threshold_rev = layout.threshold_map(block.dtype, detect_level, gain)
-    mask = block < threshold
-    flat_mask = mask.ravel()
-    rows = np.arange(n)
+    flat = blocks.ravel()
     row_start = layout.row_starts
-    lj = np.argmax(mask, axis=1)
-    has = flat_mask.take(row_start + lj)
-    rj = (w - 1) - np.argmax(cv2.flip(block, 1) < threshold_rev, axis=1)
-    # no backlight beside the filament (a substrate filling the band): dark at both margins
-    light = ~(flat_mask.take(row_start) & flat_mask.take(row_start + (w - 1)))
+    starts = (np.arange(nb) * (n * w))[:, None] + row_start  # (frame, row) flat index of column 0
+    probe_rows = layout.gain_rows
+    sample = blocks[:, probe_rows]
+    margins = (sample[:, :, :k].sum(axis=2, dtype=np.int64)
+               + sample[:, :, w - k:].sum(axis=2, dtype=np.int64))
+    ratio = margins / layout.margin_light[probe_rows]
+    if layout.saturation < math.inf:
+        clipped = blocks.reshape(nb, -1).max(axis=1) >= layout.saturation
+    else:
+        clipped = np.zeros(nb, bool)
+    if ratio.shape[1] >= 5:
+        gains = np.partition(ratio, ratio.shape[1] // 2, axis=1)[:, ratio.shape[1] // 2]
+    else:
+        gains = np.ones(nb)
+    gains = [float(g) for g in gains]
+    for b in np.flatnonzero(clipped | (ratio.shape[1] < 5)):
+        gains[b] = _frame_gain(blocks[b], layout, ratio[b], sample[b], k, bool(clipped[b]))
+    maps = [layout.threshold_map(blocks.dtype, detect_level, g) for g in gains]
+    threshold = maps[0] if all(m is maps[0] for m in maps) else np.stack(maps)
+    gain = np.array(gains)
+    mask = blocks < threshold
+    flat_mask = mask.ravel()
+    lj = np.argmax(mask, axis=2)
+    has = flat_mask.take(starts + lj)
+    flipped = cv2.flip(mask.view(np.uint8).reshape(nb * n, w), 1).view(bool)
+    rj = (w - 1) - np.argmax(flipped, axis=1).reshape(nb, n)
+    light = ~(mask[:, :, 0] & mask[:, :, w - 1])
     m, a = layout.margin_px, layout.core_px
-    # rows whose dark pixels are not one run (a speck of dust or a stray shadow beside the
-    # filament): bright pixels among the first or last 2·core dark ones; keep the run
-    # holding the darkest pixel
     step = np.arange(2 * a)
-    probe = step < (rj - lj + 1)[:, None]
-    head = flat_mask.take(np.minimum(lj[:, None] + step, w - 1) + row_start[:, None])
-    tail = flat_mask.take(np.maximum(rj[:, None] - step, 0) + row_start[:, None])
-    gappy = has & (probe & ~(head & tail)).any(axis=1)
+    probe = step < (rj - lj + 1)[:, :, None]
+    head = flat_mask.take(np.minimum(lj[:, :, None] + step, w - 1) + starts[:, :, None])
+    tail = flat_mask.take(np.maximum(rj[:, :, None] - step, 0) + starts[:, :, None])
+    gappy = has & (probe & ~(head & tail)).any(axis=2)
     if gappy.any():
-        for r in np.flatnonzero(gappy):
-            lj[r], rj[r] = _main_run(mask[r], -(block[r] * inv_light[r]), lj[r], rj[r])
+        for b, r in zip(*np.nonzero(gappy)):
+            lj[b, r], rj[b, r] = _main_run(mask[b, r], -(blocks[b, r] * inv_light[r]), lj[b, r], rj[b, r])
     zone = m + a
     core_start = lj + a
     core_stop = rj + 1 - a
     thick = core_stop >= core_start
     base = lj - m
-    j = layout.zone_steps
-    cols = base[:, None] + j
-    cols[:, zone:] += ((core_stop - zone - base) * thick)[:, None]
+    cols = base[:, :, None] + layout.zone_steps
+    cols[:, :, zone:] += ((core_stop - zone - base) * thick)[:, :, None]
     stop = np.where(thick, w, np.minimum(rj + 1 + m, w))
-    use = (cols >= 0) & (cols < stop[:, None])
+    use = (cols >= 0) & (cols < stop[:, :, None])
     truncated = has & ((base < 0) | (np.where(thick, core_stop + m, rj + 1 + m) > w))
     np.maximum(cols, 0, out=cols)
     np.minimum(cols, w - 1, out=cols)
     cols += row_start[:, None]
-    index = cols.ravel()
-    values = flat.take(index)
-    deficit = values * flat_inv.take(index)
-    deficit *= np.float32(-scale / gain)
+    values = flat.take(cols + (np.arange(nb) * (n * w))[:, None, None])
+    deficit = values * flat_inv.take(cols)
+    deficit *= (-scale / gain).astype(np.float32)[:, None, None]
     deficit += np.float32(scale)
-    if clipped:
+    if clipped.any():  # frames without clipping have no pixel at the saturation level
         deficit[values >= layout.saturation] = 0.0
-    deficit = deficit.reshape(n, 2 * zone)
     deficit *= use
-    sums = (deficit @ layout.zone_weights).astype(np.float64)
-    left_sum, right_sum, moment = sums[:, 0], sums[:, 1], sums[:, 2]
+    sums = (deficit @ layout.zone_weights).astype(np.float64)  # one small product per frame
+    left_sum, right_sum, moment = sums[:, :, 0], sums[:, :, 1], sums[:, :, 2]
     edge_sum = left_sum + right_sum
     core_n = (core_stop - core_start) * thick
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -734,43 +753,75 @@ def _measure_rows_fast(block, layout, *, shadow_fraction, detect_level=DETECT_LE
     centre = np.where(thick, 0.5 * ((core_start - 0.5 - left_sum) + (core_stop - 0.5 + right_sum)),
                       centroid)
     centre[~has] = np.nan
-    peak = deficit.max(axis=1)
+    peak = deficit.max(axis=2)
     peak[thick] = 1.0
     cut = edge_sum + core_n
     cut[~has] = np.nan
-    empty = np.flatnonzero(~has)
-    if empty.size:  # rows without a clear shadow: their faintest trace of one
-        faint = 1.0 - (block[empty] * inv_light[empty]).min(axis=1) / gain
-        peak[empty] = faint * scale
-        if has.sum() >= 5:
-            # a thread fainter than the detection level (narrower than the blur): its
-            # integrated deficit in a window on the centre line still measures it
-            y = rows[has].astype(np.float64)
-            c = centre[has]
-            slope = float(np.dot(y - y.mean(), c - c.mean()) / max(np.dot(y - y.mean(), y - y.mean()), 1e-9))
-            guess = np.rint(c.mean() + slope * (empty - y.mean())).astype(np.int64)
-            window = np.arange(-(m + 2), m + 3)
-            wc = guess[:, None] + window
-            inside_w = (wc >= 0) & (wc < w)
-            wc = np.minimum(np.maximum(wc, 0), w - 1) + row_start[empty][:, None]
-            d = (1.0 - flat.take(wc) * flat_inv.take(wc) / gain) * scale * inside_w
-            cut[empty] = np.where(inside_w.all(axis=1), d.sum(axis=1), np.nan)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                centre[empty] = (d * (wc - row_start[empty][:, None])).sum(axis=1) / cut[empty]
-    # rim level of thick steady rows (see _measure_rows)
+    for b in np.flatnonzero(~has.all(axis=1)):
+        _faint_rows(blocks[b], layout, has[b], centre[b], peak[b], cut[b], gains[b], scale)
     rim_rows = thick & (core_n > 12) & has
-    rim_rows[2:-2] &= (np.abs(lj[4:] - lj[:-4]) <= 1) & (np.abs(rj[4:] - rj[:-4]) <= 1)
-    rim_rows[:2] = rim_rows[-2:] = False
-    rim_ratio = np.full(n, np.nan)
+    rim_rows[:, 2:-2] &= (np.abs(lj[:, 4:] - lj[:, :-4]) <= 1) & (np.abs(rj[:, 4:] - rj[:, :-4]) <= 1)
+    rim_rows[:, :2] = rim_rows[:, -2:] = False
+    rim_ratio = np.full((nb, n), np.nan)
     if rim_rows.any():
-        tr, ta, tb = row_start[rim_rows], core_start[rim_rows], core_stop[rim_rows]
+        tr = starts[rim_rows]
+        ta, tb = core_start[rim_rows], core_stop[rim_rows]
         picks = np.concatenate([tr + ta, tr + ta + 1, tr + tb - 1, tr + tb - 2])
-        vals = (flat.take(picks) * flat_inv.take(picks)).reshape(4, -1).sum(axis=0) * 0.25
-        rim_ratio[rim_rows] = vals / gain
-    return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum,
-            "core_n": core_n.astype(np.float64), "cut_width": cut, "truncated": truncated,
-            "rim_ratio": rim_ratio, "light": light.astype(np.float64),
-            "window": (np.maximum(base, 0), np.minimum(rj + 1 + m, w)), "gain": gain}
+        local = picks % (n * w)
+        vals = (flat.take(picks) * flat_inv.take(local)).reshape(4, -1).sum(axis=0) * 0.25
+        rim_ratio[rim_rows] = vals / np.broadcast_to(gain.astype(np.float32)[:, None], (nb, n))[rim_rows]
+    core_n = core_n.astype(np.float64)
+    light = light.astype(np.float64)
+    window_lo, window_hi = np.maximum(base, 0), np.minimum(rj + 1 + m, w)
+    return [{"has": has[b], "peak": peak[b], "centre": centre[b], "edge_sum": edge_sum[b],
+             "core_n": core_n[b], "cut_width": cut[b], "truncated": truncated[b],
+             "rim_ratio": rim_ratio[b], "light": light[b], "window": (window_lo[b], window_hi[b]),
+             "gain": gains[b]} for b in range(nb)]
+
+
+
+def _frame_gain(block, layout, ratio, sample, k, clipped):
+    """Flicker gain of one frame whose margins clip (or too few lit rows): the unclipped rest."""
+    w = block.shape[1]
+    if clipped:
+        ratio = ratio[np.maximum(sample[:, :k].max(axis=1), sample[:, w - k:].max(axis=1))
+                      < layout.saturation]
+    if ratio.size >= 5:
+        return float(np.partition(ratio, ratio.size // 2)[ratio.size // 2])
+    # margins clipped or dark: the unclipped background anywhere in the band
+    inv_light = layout.inverse_backlight
+    sub = (block[::3, ::3] * inv_light[::3, ::3]).ravel()
+    sub = sub[block[::3, ::3].ravel() < layout.saturation]
+    bright = sub[sub > 0.6 * np.percentile(sub, 95)] if sub.size else sub
+    return float(np.median(bright)) if bright.size else 1.0
+
+
+def _faint_rows(block, layout, has, centre, peak, cut, gain, scale):
+    """Rows of one frame without a clear shadow: their faintest trace of one (arrays set in place).
+
+    A thread fainter than the detection level (narrower than the blur) is
+    still measured by its integrated deficit in a window on the centre line.
+    """
+    n, w = block.shape
+    inv_light = layout.inverse_backlight
+    flat, flat_inv, row_start = block.ravel(), inv_light.ravel(), layout.row_starts
+    m = layout.margin_px
+    empty = np.flatnonzero(~has)
+    faint = 1.0 - (block[empty] * inv_light[empty]).min(axis=1) / gain
+    peak[empty] = faint * scale
+    if has.sum() >= 5:
+        y = np.flatnonzero(has).astype(np.float64)
+        c = centre[has]
+        slope = float(np.dot(y - y.mean(), c - c.mean()) / max(np.dot(y - y.mean(), y - y.mean()), 1e-9))
+        guess = np.rint(c.mean() + slope * (empty - y.mean())).astype(np.int64)
+        window = np.arange(-(m + 2), m + 3)
+        wc = guess[:, None] + window
+        inside_w = (wc >= 0) & (wc < w)
+        wc = np.minimum(np.maximum(wc, 0), w - 1) + row_start[empty][:, None]
+        d = (1.0 - flat.take(wc) * flat_inv.take(wc) / gain) * scale * inside_w
+        cut[empty] = np.where(inside_w.all(axis=1), d.sum(axis=1), np.nan)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            centre[empty] = (d * (wc - row_start[empty][:, None])).sum(axis=1) / cut[empty]
 
 
 def _main_run(mask_row, pair_row, lo, hi, *, bridge_px=3):
@@ -834,15 +885,18 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     smallest peak deficit of a row crossed by the thread; ``max_bend_deg``:
     largest departure of this frame's axis from the layout's direction.
     """
+    rows = measure_block([frame], layout, detect_level=detect_level)[0]
+    return profile_of(rows, layout, shadow_fraction=shadow_fraction, presence_level=presence_level,
+                      max_bend_deg=max_bend_deg)
+
+
+def profile_of(rows, layout: Layout, *, shadow_fraction=None, presence_level=PRESENCE_LEVEL,
+               max_bend_deg=1.5) -> Profile:
+    """The :class:`Profile` of one frame from its row measurements (options of :func:`locate_edges`)."""
     axial = layout.axial_range
-    fast = layout.backlight is not None
-    block = _oriented(np.asarray(frame), layout.orientation, axial, layout.band,
-                      dtype=None if fast else np.float32)
-    measure = _measure_rows_fast if fast else _measure_rows
-    rows = measure(block, layout, shadow_fraction=layout.shadow_fraction, detect_level=detect_level)
-    n = block.shape[0]
-    fraction = layout.shadow_fraction
     cut = rows["cut_width"]
+    n = cut.size
+    fraction = layout.shadow_fraction
     body = _body_rows(rows, cut, layout, n)
     start = int(np.argmin(body)) if not body.all() else n
     stop = n - int(np.argmin(body[::-1])) if not body.all() else n
