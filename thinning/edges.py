@@ -643,20 +643,23 @@ def _measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
             "light": light, "window": (s0, e0), "gain": gain}
 
 
-def measure_block(frames, layout: Layout, *, detect_level=DETECT_LEVEL) -> list[dict]:
-    """Row measurements of several frames of one layout at once, one dict per frame.
+def measure_block(frames, layout: Layout, *, detect_level=DETECT_LEVEL) -> dict:
+    """Row measurements of several frames of one layout at once: arrays (frame, row).
 
     The same quantities as measuring each frame alone (:func:`locate_edges`),
     with each array operation done once for the whole stack: on frames this
     small the per-call cost of numpy dominates. ``frames`` is a sequence of
-    2-D frames of one shape; the layout needs its light field. Each result
-    goes to :func:`profile_of`.
+    2-D frames of one shape. The result goes to :func:`rim_fractions` and
+    :func:`profiles_of`.
     """
     axial = layout.axial_range
     if layout.backlight is None:
-        return [_measure_rows(_oriented(np.asarray(f), layout.orientation, axial, layout.band),
+        each = [_measure_rows(_oriented(np.asarray(f), layout.orientation, axial, layout.band),
                               layout, shadow_fraction=layout.shadow_fraction,
                               detect_level=detect_level) for f in frames]
+        rows = {key: np.stack([r[key] for r in each]) for key in each[0] if key != "window"}
+        rows["window"] = tuple(np.stack([r["window"][i] for r in each]) for i in (0, 1))
+        return rows
     (a0, a1), (b0, b1) = axial, layout.band
     first = np.asarray(frames[0])
     blocks = np.empty((len(frames), a1 - a0, b1 - b0), first.dtype)
@@ -677,7 +680,7 @@ def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
     end of the left zone minus its integrated deficit, the start of the
     right zone plus its own; a thin row is placed at its deficit centroid.
     ``blocks`` is a stack of bands (frame, row, column) in the frames' own
-    dtype, contiguous; returns one dict per frame.
+    dtype, contiguous; returns arrays (frame, row), and the gain of each frame.
     """
     import cv2
 
@@ -773,10 +776,10 @@ def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
     core_n = core_n.astype(np.float64)
     light = light.astype(np.float64)
     window_lo, window_hi = np.maximum(base, 0), np.minimum(rj + 1 + m, w)
-    return [{"has": has[b], "peak": peak[b], "centre": centre[b], "edge_sum": edge_sum[b],
-             "core_n": core_n[b], "cut_width": cut[b], "truncated": truncated[b],
-             "rim_ratio": rim_ratio[b], "light": light[b], "window": (window_lo[b], window_hi[b]),
-             "gain": gains[b]} for b in range(nb)]
+    return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum,
+            "core_n": core_n, "cut_width": cut, "truncated": truncated,
+            "rim_ratio": rim_ratio, "light": light, "window": (window_lo, window_hi),
+            "gain": gain}
 
 
 
@@ -885,50 +888,73 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     smallest peak deficit of a row crossed by the thread; ``max_bend_deg``:
     largest departure of this frame's axis from the layout's direction.
     """
-    rows = measure_block([frame], layout, detect_level=detect_level)[0]
-    return profile_of(rows, layout, shadow_fraction=shadow_fraction, presence_level=presence_level,
-                      max_bend_deg=max_bend_deg)
+    rows = measure_block([frame], layout, detect_level=detect_level)
+    fraction = rim_fractions(rows) if shadow_fraction is None else [float(shadow_fraction)]
+    return profiles_of(rows, layout, shadow_fraction=fraction, presence_level=presence_level,
+                       max_bend_deg=max_bend_deg)[0]
 
 
-def profile_of(rows, layout: Layout, *, shadow_fraction=None, presence_level=PRESENCE_LEVEL,
-               max_bend_deg=1.5) -> Profile:
-    """The :class:`Profile` of one frame from its row measurements (options of :func:`locate_edges`)."""
+def rim_fractions(rows) -> np.ndarray:
+    """Shadow level over backlight measured on each frame's thick rims (NaN without enough of them).
+
+    ``rows`` from :func:`measure_block`; the median of the rim levels of the
+    thick steady rows of each frame, within −0.5 … 0.9.
+    """
+    ratio = rows["rim_ratio"]
+    count = np.isfinite(ratio).sum(axis=1)
+    middle = np.sort(ratio, axis=1)[np.arange(ratio.shape[0]), count // 2]  # NaN sort last
+    return np.where(count >= 3, np.clip(middle, -0.5, 0.9), np.nan)
+
+
+def profiles_of(rows, layout: Layout, *, shadow_fraction, presence_level=PRESENCE_LEVEL,
+                max_bend_deg=1.5) -> list[Profile]:
+    """The :class:`Profile` of each frame from its row measurements (options of :func:`locate_edges`).
+
+    ``shadow_fraction``: per frame, the shadow level over backlight to scale
+    the widths to (NaN: the layout's).
+    """
     axial = layout.axial_range
     cut = rows["cut_width"]
-    n = cut.size
-    fraction = layout.shadow_fraction
+    nb, n = cut.shape
+    j = np.arange(n)
     body = _body_rows(rows, cut, layout, n)
-    start = int(np.argmin(body)) if not body.all() else n
-    stop = n - int(np.argmin(body[::-1])) if not body.all() else n
-    face = int(math.ceil(3.0 * layout.blur_sigma_px)) + 1 if body.any() else 0
-    free = np.zeros(n, bool)
-    lo = start + (face if start > 0 else 0)
-    hi = stop - (face if stop < n else 0)
-    if hi > lo:
-        free[lo:hi] = True
+    none = ~body.any(axis=1)
+    start = np.where(body.all(axis=1), n, np.argmin(body, axis=1))
+    stop = np.where(body.all(axis=1), n, n - np.argmin(body[:, ::-1], axis=1))
+    face = np.where(none, 0, int(math.ceil(3.0 * layout.blur_sigma_px)) + 1)
+    lo = start + np.where(start > 0, face, 0)
+    hi = stop - np.where(stop < n, face, 0)
+    free = (j >= lo[:, None]) & (j < hi[:, None])
+    own = rim_fractions(rows)
+    new = np.asarray(shadow_fraction, dtype=np.float64)
+    fraction = layout.shadow_fraction
+    scaled = np.isfinite(new) & (new != fraction)
     peak = rows["peak"]
-    own = _rim_fraction(rows["rim_ratio"], np.ones(n, bool))
-    new = own if shadow_fraction is None else float(shadow_fraction)
-    if new is not None and new != fraction:
+    if scaled.any():
         # re-scale the partial sums to this frame's own shadow level (flicker, exposure)
-        gain = (1.0 - fraction) / (1.0 - new)
-        cut = (cut - rows["core_n"]) * gain + rows["core_n"]
-        peak = peak * gain
-        fraction = new
+        with np.errstate(invalid="ignore", divide="ignore"):
+            gain = np.where(scaled, (1.0 - fraction) / (1.0 - new), 1.0)
+        core_n = rows["core_n"]
+        cut = np.where(scaled[:, None], (cut - core_n) * gain[:, None] + core_n, cut)
+        peak = np.where(scaled[:, None], peak * gain.astype(peak.dtype)[:, None], peak)
+    fractions = np.where(scaled, new, fraction)
     present = peak > max(presence_level, 5.0 * layout.noise)
     valid = free & np.isfinite(cut) & ~rows["truncated"]
-    connected = bool(free.any() and present[free].all())
+    connected = free.any(axis=1) & (present | ~free).all(axis=1)
     y = np.arange(n, dtype=np.float64) + axial[0]
     centre = rows["centre"] + layout.band[0]
-    slope = _axis_slope(y, centre, valid, layout.axis_slope, max_bend_deg)
-    cosine = 1.0 / math.sqrt(1.0 + slope * slope)
+    slope = np.array([_axis_slope(y, centre[b], valid[b], layout.axis_slope, max_bend_deg)
+                      for b in range(nb)])
+    cosine = 1.0 / np.sqrt(1.0 + slope * slope)
     half = 0.5 * cut
-    return Profile(axial_px=y, left_px=centre - half, right_px=centre + half,
-                   width_px=cut * cosine, cut_width_px=cut, centre_px=centre,
-                   angle_deg=math.degrees(math.atan(slope)), contrast=peak, valid=valid,
-                   present=present, body=body, free_span=(axial[0] + start, axial[0] + stop),
-                   connected=connected, shadow_fraction=fraction,
-                   rim_fraction=math.nan if own is None else own)
+    left, right, width = centre - half, centre + half, cut * cosine[:, None]
+    angle = [math.degrees(math.atan(v)) for v in slope]
+    return [Profile(axial_px=y, left_px=left[b], right_px=right[b], width_px=width[b],
+                    cut_width_px=cut[b], centre_px=centre[b], angle_deg=angle[b],
+                    contrast=peak[b], valid=valid[b], present=present[b], body=body[b],
+                    free_span=(axial[0] + int(start[b]), axial[0] + int(stop[b])),
+                    connected=bool(connected[b]), shadow_fraction=float(fractions[b]),
+                    rim_fraction=float(own[b])) for b in range(nb)]
 
 
 def _rim_fraction(rim_ratio, rows_ok):
@@ -946,9 +972,10 @@ def _rim_fraction(rim_ratio, rows_ok):
 
 
 def _body_rows(rows, cut, layout, n):
-    """Rows of the end bodies: contiguous from each end, as wide as the body or without backlight."""
+    """Rows of the end bodies (frame, row): contiguous from each end, as wide as the body or unlit."""
     no_light = rows["light"] < 0.5 * (1.0 + layout.shadow_fraction)
-    body = np.zeros(n, bool)
+    body = np.zeros(no_light.shape, bool)
+    j = np.arange(n)
     for end, width in enumerate(layout.end_widths_px):
         if width is None:
             continue
@@ -956,10 +983,7 @@ def _body_rows(rows, cut, layout, n):
             wide = no_light | (cut >= width - max(1.0, 0.02 * width))  # NaN: not wide
         else:
             wide = no_light
-        seq = wide if end == 0 else wide[::-1]
-        count = int(np.argmin(seq)) if not seq.all() else n
-        if end == 0:
-            body[:count] = True
-        else:
-            body[n - count:] = True
+        seq = wide if end == 0 else wide[:, ::-1]
+        count = np.where(seq.all(axis=1), n, np.argmin(seq, axis=1))
+        body |= (j < count[:, None]) if end == 0 else (j >= n - count[:, None])
     return body

@@ -2,8 +2,9 @@
 
 :func:`measure_recording` makes one pass over a stream of frames (constant
 memory in the number of frames): it finds the layout on the first frame
-that shows a filament, measures every frame with
-:func:`thinning.edges.locate_edges`, and reduces each profile to one row:
+that shows a filament, measures the frames in small blocks
+(:func:`thinning.edges.measure_block`, then a profile per frame), and reduces
+each profile to one row:
 
 - the neck is the thinnest part of the free filament (between beads, if
   any): around the thinnest rows a quadratic in the axial coordinate is
@@ -31,7 +32,7 @@ import numpy as np
 import pandas as pd
 
 from .edges import (Layout, NoFilament, Profile, find_layout, local_axis_slope, measure_block,
-                    profile_of, refresh_light)
+                    profiles_of, refresh_light, rim_fractions)
 from .findings import Finding, Severity
 
 log = logging.getLogger(__name__)
@@ -279,10 +280,13 @@ def _measure_pending(pending, layout, fraction, row_noise, records, snaps):
     """Measure the buffered frames as one block, in order; empties ``pending``, returns the shadow fraction."""
     if not pending:
         return fraction
-    for (index, frame), rows in zip(pending, measure_block([f for _, f in pending], layout)):
-        profile = profile_of(rows, layout, shadow_fraction=fraction)
-        if np.isfinite(profile.rim_fraction):
-            fraction += SHADOW_SMOOTHING * (profile.rim_fraction - fraction)
+    rows = measure_block([f for _, f in pending], layout)
+    fractions = []  # the running estimate of the shadow level before each frame
+    for own in rim_fractions(rows):
+        fractions.append(fraction)
+        if np.isfinite(own):
+            fraction += SHADOW_SMOOTHING * (own - fraction)
+    for (index, frame), profile in zip(pending, profiles_of(rows, layout, shadow_fraction=fractions)):
         neck = neck_of(profile, row_noise_px=row_noise)
         records.append((index, neck["diameter_px"], neck["neck_position_px"],
                         neck["axis_angle_deg"], neck["axis_lateral_px"], neck["min_contrast"],
