@@ -88,15 +88,15 @@ class NeckSeries:
 
 
 def _smooth3(values, ok):
-    """Mean over each valid row and its valid neighbours (inf where a row is invalid)."""
+    """Mean over each valid row and its valid neighbours along the last axis (inf where invalid)."""
     v = np.where(ok, values, 0.0)
     c = ok.astype(np.float64)
     total = v.copy()
     count = c.copy()
-    total[1:] += v[:-1]
-    total[:-1] += v[1:]
-    count[1:] += c[:-1]
-    count[:-1] += c[1:]
+    total[..., 1:] += v[..., :-1]
+    total[..., :-1] += v[..., 1:]
+    count[..., 1:] += c[..., :-1]
+    count[..., :-1] += c[..., 1:]
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(ok, total / count, np.inf)
 
@@ -130,23 +130,45 @@ def neck_of(profile: Profile, *, row_noise_px=0.1, max_half_window=40, min_half_
     ``axis_lateral_px``, ``min_contrast``, ``fit_rows``, ``beads`` (NaN / 0 /
     False when there is no connected thread).
     """
-    out = {"diameter_px": math.nan, "neck_position_px": math.nan, "axis_angle_deg": math.nan,
-           "axis_lateral_px": math.nan, "min_contrast": math.nan, "fit_rows": 0, "beads": False}
-    cut = profile.cut_width_px
-    ok = profile.valid & np.isfinite(cut)
-    if not profile.connected or ok.sum() < 3:
-        return out
+    return necks_of([profile], row_noise_px=row_noise_px, max_half_window=max_half_window,
+                    min_half_window=min_half_window, max_bend_deg=max_bend_deg)[0]
+
+
+def necks_of(profiles, *, row_noise_px=0.1, max_half_window=40, min_half_window=3,
+             max_bend_deg=1.5):
+    """:func:`neck_of` of several profiles of one layout (the window search done for all at once)."""
+    cut = np.stack([p.cut_width_px for p in profiles])
+    ok = np.stack([p.valid for p in profiles]) & np.isfinite(cut)
+    nb, n = cut.shape
     smooth = _smooth3(cut, ok)
-    i0 = int(np.argmin(smooth))
-    w0 = float(smooth[i0])
-    level = w0 + max(3.0 * row_noise_px, 0.015 * w0)
-    outside = ~(smooth <= level)
-    before = np.flatnonzero(outside[:i0])
-    after = np.flatnonzero(outside[i0 + 1:])
-    lo = max(int(before[-1]) + 1 if before.size else 0, i0 - max_half_window)
-    hi = min(i0 + int(after[0]) if after.size else cut.size - 1, i0 + max_half_window)
+    beads = _has_beads(smooth, ok)
+    i0 = np.argmin(smooth, axis=1)
+    w0 = smooth[np.arange(nb), i0]
+    level = w0 + np.maximum(3.0 * row_noise_px, 0.015 * w0)
+    outside = ~(smooth <= level[:, None])
+    j = np.arange(n)
+    before = np.where(outside & (j < i0[:, None]), j, -1).max(axis=1)  # last outside row before
+    after = np.where(outside & (j > i0[:, None]), j, n).min(axis=1)  # first outside row after
+    lo = np.maximum(before + 1, i0 - max_half_window)
+    hi = np.minimum(after - 1, i0 + max_half_window)
     mid = (lo + hi) // 2
-    half = max((hi - lo + 1) // 2, min_half_window)
+    half = np.maximum((hi - lo + 1) // 2, min_half_window)
+    usable = ok.sum(axis=1) >= 3
+    out = []
+    for b, profile in enumerate(profiles):
+        if not (profile.connected and usable[b]):
+            out.append({"diameter_px": math.nan, "neck_position_px": math.nan,
+                        "axis_angle_deg": math.nan, "axis_lateral_px": math.nan,
+                        "min_contrast": math.nan, "fit_rows": 0, "beads": False})
+            continue
+        out.append(_fit_neck(profile, ok[b], int(i0[b]), int(mid[b]), int(half[b]), max_bend_deg,
+                             bool(beads[b])))
+    return out
+
+
+def _fit_neck(profile, ok, i0, mid, half, max_bend_deg, beads):
+    """The quadratic fit of one profile's widths over rows ``mid ± half`` (see :func:`neck_of`)."""
+    cut = profile.cut_width_px
     n = cut.size
     sel = np.zeros(n, bool)
     sel[max(0, mid - half): mid + half + 1] = True
@@ -168,24 +190,20 @@ def neck_of(profile: Profile, *, row_noise_px=0.1, max_half_window=40, min_half_
         else:  # no minimum inside the window: the fit's lowest point in it
             ends = [a * v * v + b * v + c for v in (y.min(), 0.0, y.max())]
             diameter = min(ends)
-    out.update(diameter_px=float(diameter), neck_position_px=position,
-               axis_angle_deg=math.degrees(math.atan(slope)),
-               axis_lateral_px=float(profile.centre_px[i0]),
-               min_contrast=float(profile.contrast[i0]), fit_rows=int(sel.sum()),
-               beads=_has_beads(smooth, ok))
-    return out
+    return {"diameter_px": float(diameter), "neck_position_px": position,
+            "axis_angle_deg": math.degrees(math.atan(slope)),
+            "axis_lateral_px": float(profile.centre_px[i0]),
+            "min_contrast": float(profile.contrast[i0]), "fit_rows": int(sel.sum()), "beads": beads}
 
 
 def _has_beads(smooth, ok):
-    """A bead: a swelling of the thread with clearly thinner thread on both sides."""
+    """A bead: a swelling of the thread with clearly thinner thread on both sides (per profile)."""
     w = np.where(ok, smooth, np.inf)
-    if not np.isfinite(w).any():
-        return False
-    left = np.minimum.accumulate(w)
-    right = np.minimum.accumulate(w[::-1])[::-1]
+    left = np.minimum.accumulate(w, axis=-1)
+    right = np.minimum.accumulate(w[..., ::-1], axis=-1)[..., ::-1]
     thread = np.maximum(left, right)
     bead = ok & np.isfinite(thread) & (w > 1.6 * thread) & (w > thread + 3.0)
-    return bool(bead.any())
+    return bead.any(axis=-1)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -286,8 +304,8 @@ def _measure_pending(pending, layout, fraction, row_noise, records, snaps):
         fractions.append(fraction)
         if np.isfinite(own):
             fraction += SHADOW_SMOOTHING * (own - fraction)
-    for (index, frame), profile in zip(pending, profiles_of(rows, layout, shadow_fraction=fractions)):
-        neck = neck_of(profile, row_noise_px=row_noise)
+    profiles = profiles_of(rows, layout, shadow_fraction=fractions)
+    for (index, frame), profile, neck in zip(pending, profiles, necks_of(profiles, row_noise_px=row_noise)):
         records.append((index, neck["diameter_px"], neck["neck_position_px"],
                         neck["axis_angle_deg"], neck["axis_lateral_px"], neck["min_contrast"],
                         profile.connected, bool(profile.present.any()), _gap(profile, layout),
