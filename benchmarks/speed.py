@@ -8,7 +8,9 @@ memory figure is its own):
 - decode only, every route measured: the compressed packets decoded in a thread
   pool (what :class:`thinning.frames.VideoSource` does) with 1–4 threads, and
   OpenCV's plain ``read()`` with its colour conversion;
-- the neck measurement alone (:func:`thinning.neck.measure_recording`);
+- the neck measurement alone (:func:`thinning.neck.measure_recording`), on the
+  stream and on the first ``IN_MEMORY_FRAMES`` frames decoded beforehand (the
+  analysis cost alone, without decoders competing for the cores);
 - the whole analysis (:func:`thinning.analysis.analyse`: frames → diameters →
   regimes, fits, figures, report, files), when that module is present.
 
@@ -29,6 +31,10 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+
+
+#: Frames decoded into memory for the decoder-free measurement (about 260 MB).
+IN_MEMORY_FRAMES = 2000
 
 
 def recording(folder: Path, n_frames: int) -> Path:
@@ -87,6 +93,15 @@ def child(mode: str, path: str, threads: int) -> dict:
         count = len(series.table)
         finite = int(np.isfinite(series.table["diameter_px"]).sum())
         extra = {"frames_with_diameter": finite}
+    elif mode == "measure-in-memory":
+        from thinning.frames import open_source
+        from thinning.neck import measure_recording
+
+        with open_source(path) as source:
+            frames = [frame for _, frame in zip(range(IN_MEMORY_FRAMES), source)]
+        started = time.perf_counter()
+        series = measure_recording(frames, n_frames=len(frames))
+        count = len(series.table)
     elif mode == "analyse":
         from thinning.analysis import analyse
         from thinning.units import AnalysisOptions
@@ -139,6 +154,7 @@ def main(argv=None):
     runs = [run_child("decode-packets", path, t) for t in (1, 2, 3, 4)]
     runs.append(run_child("decode-read", path))
     runs.append(run_child("measure", path))
+    runs.append(run_child("measure-in-memory", path))
     try:
         import thinning.analysis  # noqa: F401
 
