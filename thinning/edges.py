@@ -6,7 +6,10 @@ bodies with straight sides at the ends of the axis), the lateral band worth
 analysing, the light field of that band, the shadow level, the blur and the
 noise. :func:`locate_edges` then measures one frame in that layout and
 returns a :class:`Profile`; :func:`refresh_light` refits the light field on
-a later frame that shows more background.
+a later frame that shows more background. For a stream, :func:`measure_block`
+measures a small stack of frames at once (each numpy call's fixed cost shared
+by the stack) and :func:`profiles_of` turns it into one profile per frame,
+with the same results as :func:`locate_edges` frame by frame.
 
 Method, per frame (vectorised over rows, axis along the rows of the band):
 
