@@ -40,6 +40,7 @@ from pathlib import Path
 from . import __version__
 from .manifest import ManifestRow, read_manifest, row_options
 from .units import AnalysisOptions, BadQuantity
+from .values import row_folder_name, safe_name  # noqa: F401  (safe_name: part of the batch API)
 
 log = logging.getLogger(__name__)
 
@@ -77,17 +78,7 @@ class SchedulerUnreachable(RuntimeError):
     """The Dask scheduler given with ``--scheduler`` cannot be reached (one sentence)."""
 
 
-# --- names ---------------------------------------------------------------------------------
-
-def safe_name(text: str) -> str:
-    """``text`` with every character outside ASCII letters, digits, ``.``, ``_``, ``-`` → ``_``."""
-    return "".join(c if (c.isascii() and (c.isalnum() or c in "._-")) else "_" for c in text)
-
-
-def row_folder_name(row: int, name: str, width: int) -> str:
-    """``<row>-<name>``: row zero-padded to ``width`` digits, name made safe."""
-    return f"{row:0{width}d}-{safe_name(name)}"
-
+# --- time ----------------------------------------------------------------------------------
 
 def utc_now() -> str:
     """The current UTC time, ISO 8601 to the second with a ``Z``."""

@@ -57,6 +57,7 @@ from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, Operationa
 
 from . import qc
 from .values import finite_number as _number
+from .values import row_folder_name
 
 logger = logging.getLogger(__name__)
 
@@ -252,10 +253,6 @@ def _text(value) -> str:
         return ""
     return str(value).strip()
 
-
-def safe_name(name: str) -> str:
-    """Every character outside ASCII letters, digits, '.', '_', '-' → '_' (batch folder rule)."""
-    return re.sub(r"[^A-Za-z0-9._-]", "_", name)
 
 
 def _natural_key(value: str):
@@ -761,7 +758,7 @@ def _replicates(rows: Sequence[Mapping], failed: Sequence[Mapping]) -> list[qc.R
 def _row_folder(batch_dir: Path, row: Mapping, width: int) -> Path:
     number = int(_text(row.get("row")))
     name = _text(row.get("sample")) or Path(_text(row.get("path"))).stem
-    folder = batch_dir / f"{number:0{width}d}-{safe_name(name)}"
+    folder = batch_dir / row_folder_name(number, name, width)
     if folder.is_dir():
         return folder
     matches = sorted(batch_dir.glob(f"{number:0{width}d}-*"))

@@ -253,7 +253,7 @@ def lot_report_html(detail, *, generated_at: str | None = None) -> str:
 
 def report_filename(lot: str) -> str:
     """``<LOT>.html`` with the batch folders' character rule applied to the lot id."""
-    from ..records import safe_name
+    from ..values import safe_name
 
     return f"{safe_name(lot)}.html"
 
