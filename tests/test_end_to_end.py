@@ -99,6 +99,7 @@ def test_newtonian_recordings(tmp_path, name):
     result, truth = _run(tmp_path, scene, optics, fmt, seed=5)
     assert result["regime"] == regime, (result["regimes"], result["warnings"])
     assert result["relaxation_time_s"] is None
+    assert result["quality"] == "good", result["quality_reasons"]
     if regime == "visco-capillary":
         # Papageorgiou (1995): D = 0.1418 σ/η (t_b − t); the 0-D model thins at exactly that rate
         assert result["shear_viscosity_Pa_s"] == pytest.approx(scene.fluid.solvent_viscosity, rel=0.05)

@@ -256,6 +256,11 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
         findings=findings)
 
 
+#: A Newtonian fit whose predicted breakup comes earlier than observed by more than this
+#: fraction of its own predicted remaining life flags elastic arrest below the floor.
+LATE_BREAKUP_FRACTION = 0.5
+
+
 def _findings(ra, regs, headline, head_fit, head_regime, *, t_b, fps_hz, floor, groups, lam):
     out = []
     series = ra.series
@@ -285,6 +290,27 @@ def _findings(ra, regs, headline, head_fit, head_regime, *, t_b, fps_hz, floor, 
                                f"The {headline} window ends at the resolution floor "
                                f"({floor * 1e6:.3g} µm); thinner frames were left out of the fits.",
                                head_fit.window_s))
+    if headline == rg.ELASTO_CAPILLARY and ra.elastic_unsettled:
+        out.append(Finding("elastic-not-settled", Severity.DOUBTFUL,
+                           "The strain rate kept falling after the elasto-capillary window, so the "
+                           "window may be the passage from viscous to elastic thinning; the settled "
+                           "elastic stretch lies later, near or below the resolution floor.",
+                           head_fit.window_s if head_fit is not None else None))
+    if headline in (rg.VISCO_CAPILLARY, rg.INERTIO_CAPILLARY) and head_fit:
+        # a Newtonian thread breaks when its law says; one that lives on far beyond that was
+        # held up by elastic stress in a stretch too thin to resolve
+        predicted = head_fit.values.get("breakup_time_s", head_fit.values.get("singular_time_s"))
+        start = head_fit.window_s[0]
+        observed = t_b
+        if predicted is not None and observed is not None and predicted > start:
+            late = observed - predicted
+            if late > max(LATE_BREAKUP_FRACTION * (predicted - start), 5.0 / fps_hz):
+                out.append(Finding(
+                    "late-breakup", Severity.DOUBTFUL,
+                    f"The thread broke {late * 1e3:.3g} ms after the {headline} law predicts, "
+                    "so elastic stress probably held it in a stretch too thin to measure; the "
+                    "liquid may not be Newtonian and no relaxation time could be resolved.",
+                    (predicted, observed)))
     if t_b is None and series.n:
         out.append(Finding("no-breakup", Severity.NOTE,
                            "The filament did not break within the record."))

@@ -684,6 +684,9 @@ class RegimeAnalysis:
     slopes: LocalSlopes
     regimes: list
     elastic_run: tuple | None
+    #: the local relaxation time rose clearly after the elastic run (strain rate still falling):
+    #: the run may be the viscous-to-elastic transition, the settled stretch lying later
+    elastic_unsettled: bool = False
 
 
 def _make_regime(kind, series, s, e, value):
@@ -769,6 +772,7 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
             if widened[2] is not None and _log_fall(widened[0], *widened[2]) >= 0.8 * _log_fall(series, *run):
                 series, slopes, run = widened
     gap = 2
+    unsettled = False
     if run is not None:
         s, e = run
         x = series.time_s[s:e + 1]
@@ -782,6 +786,10 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
             lam = slopes.relaxation_time_s[e + 1:]
             rel_se = np.abs(slopes.slope_se_1_s / slopes.slope_1_s)[e + 1:]
             faster = np.isfinite(lam) & (lam < lam_ec * (1.0 - tolerance - 2.0 * rel_se))
+            # after a settled elastic stretch the strain rate never falls again (finite
+            # extensibility only raises it); a sustained fall means the run was a transition
+            slower = np.isfinite(lam) & (lam > lam_ec * (1.0 + 2.0 * tolerance + 2.0 * rel_se))
+            unsettled = any(b - a + 1 >= min_points for a, b in _runs(_close_gaps(slower, gap)))
             runs = [r for r in _runs(_close_gaps(faster, gap)) if r[1] - r[0] + 1 >= min_points]
             if runs:
                 a, b = runs[0][0] + e + 1, runs[-1][1] + e + 1
@@ -801,7 +809,7 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
             found.append(_make_regime(kind, series, a, b, n))
     found = _merge_neighbours(sorted(found, key=lambda r: r.t_start_s), series, max_gap=3 * gap)
     logger.debug("regimes: %s", found)
-    return RegimeAnalysis(series, slopes, found, run)
+    return RegimeAnalysis(series, slopes, found, run, unsettled)
 
 
 def locate_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
