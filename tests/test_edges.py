@@ -188,3 +188,34 @@ def test_dust_speck_beside_the_thread_is_not_part_of_it():
     profile = locate_edges(speck, layout)
     rows = (profile.axial_px >= 96) & (profile.axial_px < 104)
     assert np.all(np.abs(profile.cut_width_px[rows] - 8.0) < 0.2)
+
+
+@pytest.mark.parametrize("optics", [
+    {},
+    {"blur_sigma_px": 2.0, "dust_specks": 20, "streak_strength": 0.8, "bit_depth": 12},
+    {"orientation": "horizontal", "tilt_deg": 3.0, "background_level": 0.99, "flicker": 0.08},
+], ids=["plain", "12-bit-dust-streak", "horizontal-clipping"])
+def test_compiled_row_pass_matches_the_numpy_path(optics, monkeypatch):
+    # the compiled row pass (thinning/_rowscan.c) and the numpy path are two codings of one
+    # method: the same rows, widths and centres to float32 rounding, frame for frame
+    from thinning import rowscan, synth
+    from thinning.edges import measure_block
+
+    if not rowscan.COMPILED:
+        pytest.skip("the compiled row pass was not built in this install")
+    scene = synth.dilute_polymer_plates(fps_hz=1000.0, frame_size_px=(200, 160),
+                                        pixel_size_m=25e-6, beads=True)
+    frames, _ = synth.render_recording(scene, synth.Optics(**optics), seed=3)
+    frames = list(frames)
+    compiled = measure_block(frames, find_layout(frames[0]))
+    monkeypatch.setattr(rowscan, "COMPILED", False)
+    plain = measure_block(frames, find_layout(frames[0]))  # its own cache of threshold maps
+    assert (~compiled["has"]).any() and compiled["has"].any()  # thick, thin and broken rows
+    for key in ("has", "truncated", "core_n", "light", "gain"):
+        assert np.array_equal(compiled[key], plain[key]), key
+    for key in ("cut_width", "peak", "rim_ratio"):
+        assert np.array_equal(np.isnan(compiled[key]), np.isnan(plain[key])), key
+        assert np.nanmax(np.abs(compiled[key] - plain[key])) < 1e-4, key
+    # a centre is defined to float32 rounding where the row holds some shadow
+    shadow = np.abs(plain["cut_width"]) > 0.5
+    assert np.max(np.abs(compiled["centre"] - plain["centre"])[shadow]) < 1e-4

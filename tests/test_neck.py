@@ -117,10 +117,25 @@ def test_beads_are_reported_and_the_neck_is_on_the_thread():
 
 def test_neck_quadratic_matches_numpy_polyfit():
     # outside reference: numpy.polyfit (least squares with a Vandermonde matrix)
-    from thinning.neck import _quadratic
+    from thinning.neck import quadratic_fits
 
     rng = np.random.default_rng(9)
+    xs, ys = [], []
     for _ in range(5):
         x = np.arange(-int(rng.integers(1, 9)), int(rng.integers(3, 15))).astype(float)
-        y = rng.normal(0, 1, 3) @ np.vstack([x ** 2, x, np.ones_like(x)]) + rng.normal(0, 0.01, x.size)
-        assert np.allclose(_quadratic(x, y), np.polyfit(x, y, 2), rtol=1e-9, atol=1e-9)
+        xs.append(x)
+        ys.append(rng.normal(0, 1, 3) @ np.vstack([x ** 2, x, np.ones_like(x)]) + rng.normal(0, 0.01, x.size))
+    # the fits of one block: rows of different lengths, padded with points that are not used
+    width = max(x.size for x in xs) + 3
+    use = np.zeros((len(xs), width), bool)
+    x_block = rng.normal(0, 50, (len(xs), width))
+    y_block = rng.normal(0, 50, (len(xs), width))
+    for i, (x, y) in enumerate(zip(xs, ys)):
+        use[i, 1:1 + x.size] = True
+        x_block[i, 1:1 + x.size], y_block[i, 1:1 + x.size] = x, y
+    a, b, c, solvable = quadratic_fits(x_block, y_block, use)
+    assert solvable.all()
+    for i, (x, y) in enumerate(zip(xs, ys)):
+        assert np.allclose([a[i], b[i], c[i]], np.polyfit(x, y, 2), rtol=1e-9, atol=1e-9)
+    # two points do not fix a parabola
+    assert not quadratic_fits(x_block[:1], y_block[:1], use[:1] & (np.arange(width) < 3))[3][0]

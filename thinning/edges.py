@@ -140,26 +140,6 @@ class Layout:
         """Every 4th lit row: where the flicker gain of a frame is read."""
         return self._derived()[3]
 
-    @property
-    def row_starts(self) -> np.ndarray:
-        """Flat index of the first pixel of each row of the band block."""
-        return self._derived()[4]
-
-    @property
-    def zone_steps(self) -> np.ndarray:
-        """Column offsets 0 … 2·(margin + core) − 1 of the two edge zones."""
-        return np.arange(2 * (self.margin_px + self.core_px))
-
-    @property
-    def zone_weights(self) -> np.ndarray:
-        """(2·zone × 3) matrix: left-zone sum, right-zone sum, first moment of the window."""
-        zone = self.margin_px + self.core_px
-        weights = np.zeros((2 * zone, 3), np.float32)
-        weights[:zone, 0] = 1.0
-        weights[zone:, 1] = 1.0
-        weights[:, 2] = np.arange(2 * zone)
-        return weights
-
     def _derived(self):
         cache = self.__dict__.get("_cache")
         if cache is None:
@@ -171,8 +151,7 @@ class Layout:
             gain_rows = np.flatnonzero(lit)[::4]
             if gain_rows.size < 5:
                 gain_rows = np.arange(p.shape[0])
-            cache = ((1.0 / p).astype(np.float32), margins.astype(np.float64), lit, gain_rows,
-                     np.arange(p.shape[0]) * p.shape[1])
+            cache = ((1.0 / p).astype(np.float32), margins.astype(np.float64), lit, gain_rows)
             object.__setattr__(self, "_cache", cache)
         return cache
 
@@ -663,57 +642,91 @@ def measure_block(frames, layout: Layout, *, detect_level=DETECT_LEVEL) -> dict:
         rows = {key: np.stack([r[key] for r in each]) for key in each[0] if key != "window"}
         rows["window"] = tuple(np.stack([r["window"][i] for r in each]) for i in (0, 1))
         return rows
+    import cv2
+
     (a0, a1), (b0, b1) = axial, layout.band
     first = np.asarray(frames[0])
     blocks = np.empty((len(frames), a1 - a0, b1 - b0), first.dtype)
     for block, frame in zip(blocks, frames):  # one copy per frame, straight into the stack
-        frame = np.asarray(frame)
-        block[...] = frame[a0:a1, b0:b1] if layout.orientation == "vertical" else frame[b0:b1, a0:a1].T
-    return _measure_rows_fast(blocks, layout, detect_level=detect_level)
+        if layout.orientation == "vertical":
+            block[...] = np.asarray(frame)[a0:a1, b0:b1]
+        else:
+            cv2.transpose(np.asarray(frame)[b0:b1, a0:a1], block)
+    return _measure_band_stack(blocks, layout, detect_level=detect_level)
 
 
-def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
+def _measure_band_stack(blocks, layout, *, detect_level=DETECT_LEVEL):
     """The per-frame path of :func:`_measure_rows`: same quantities, a fraction of the work.
 
     Each row's dark extent comes from one comparison with a threshold map
-    (the layout's light field at ``detect_level``); the deficit is then
-    computed only on two zones per row, from ``margin`` outside to ``core``
-    inside each edge (one window for a thin row), and the core of a thick
-    row counts as full shadow. The edges are partial-area positions: the
-    end of the left zone minus its integrated deficit, the start of the
-    right zone plus its own; a thin row is placed at its deficit centroid.
-    ``blocks`` is a stack of bands (frame, row, column) in the frames' own
-    dtype, contiguous; returns arrays (frame, row), and the gain of each frame.
+    (the layout's light field at ``detect_level``, under the frame's flicker
+    gain); the deficit is then integrated only over two zones per row, from
+    ``margin`` outside to ``core`` inside each edge (one window for a thin
+    row), and the core of a thick row counts as full shadow. The edges are
+    partial-area positions: the end of the left zone minus its integrated
+    deficit, the start of the right zone plus its own; a thin row is placed
+    at its deficit centroid. ``blocks`` is a stack of bands (frame, row,
+    column) in the frames' own dtype, C-contiguous. The row pass is compiled
+    (:mod:`thinning.rowscan`) where the install built it, numpy otherwise.
+    Returns arrays (frame, row), and the gain of each frame.
     """
-    import cv2
+    from . import rowscan
 
     nb, n, w = blocks.shape
     k = min(BACKGROUND_COLUMNS, max(1, w // 6))
-    scale = 1.0 / max(1.0 - layout.shadow_fraction, 1e-3)
-    inv_light = layout.inverse_backlight
-    flat_inv = inv_light.ravel()
-    flat = blocks.ravel()
-    row_start = layout.row_starts
-    starts = (np.arange(nb) * (n * w))[:, None] + row_start  # (frame, row) flat index of column 0
     probe_rows = layout.gain_rows
-    sample = blocks[:, probe_rows]
+    if rowscan.COMPILED:
+        gains, clipped = rowscan.frame_gains(blocks, probe_rows, layout.margin_light, k,
+                                             float(layout.saturation))
+    else:
+        gains, clipped = _frame_gains_numpy(blocks, probe_rows, layout.margin_light, k,
+                                            layout.saturation)
+    for b in np.flatnonzero(clipped | (probe_rows.size < 5)):
+        sample = blocks[b, probe_rows]
+        ratio = ((sample[:, :k].sum(axis=1, dtype=np.int64) + sample[:, w - k:].sum(axis=1, dtype=np.int64))
+                 / layout.margin_light[probe_rows])
+        gains[b] = _frame_gain(blocks[b], layout, ratio, sample, k, bool(clipped[b]))
+    maps = [layout.threshold_map(blocks.dtype, detect_level, g) for g in gains]
+    distinct = list({id(m): m for m in maps}.values())
+    map_of_frame = np.array([next(i for i, d in enumerate(distinct) if d is m) for m in maps])
+    thresholds = distinct[0][None] if len(distinct) == 1 else np.stack(distinct)
+    scan = rowscan.scan_rows if rowscan.COMPILED else _scan_rows_numpy
+    rows = scan(blocks, thresholds, map_of_frame, layout.inverse_backlight, gains, clipped,
+                float(layout.saturation), 1.0 / max(1.0 - layout.shadow_fraction, 1e-3),
+                layout.margin_px, layout.core_px)
+    rows["gain"] = gains
+    return rows
+
+
+def _frame_gains_numpy(blocks, gain_rows, margin_light, k, saturation):
+    """:func:`thinning.rowscan.frame_gains` in numpy."""
+    nb, n, w = blocks.shape
+    sample = blocks[:, gain_rows]
     margins = (sample[:, :, :k].sum(axis=2, dtype=np.int64)
                + sample[:, :, w - k:].sum(axis=2, dtype=np.int64))
-    ratio = margins / layout.margin_light[probe_rows]
-    if layout.saturation < math.inf:
-        clipped = blocks.reshape(nb, -1).max(axis=1) >= layout.saturation
+    ratio = margins / margin_light[gain_rows]
+    if saturation < math.inf:
+        clipped = blocks.reshape(nb, -1).max(axis=1) >= saturation
     else:
         clipped = np.zeros(nb, bool)
-    if ratio.shape[1] >= 5:
+    if ratio.shape[1]:
         gains = np.partition(ratio, ratio.shape[1] // 2, axis=1)[:, ratio.shape[1] // 2]
     else:
         gains = np.ones(nb)
-    gains = [float(g) for g in gains]
-    for b in np.flatnonzero(clipped | (ratio.shape[1] < 5)):
-        gains[b] = _frame_gain(blocks[b], layout, ratio[b], sample[b], k, bool(clipped[b]))
-    maps = [layout.threshold_map(blocks.dtype, detect_level, g) for g in gains]
-    threshold = maps[0] if all(m is maps[0] for m in maps) else np.stack(maps)
-    gain = np.array(gains)
+    return gains, clipped
+
+
+def _scan_rows_numpy(blocks, thresholds, map_of_frame, inv_light, gains, clipped, saturation,
+                     scale, margin, core):
+    """:func:`thinning.rowscan.scan_rows` in numpy, for installs without the compiled module."""
+    import cv2
+
+    nb, n, w = blocks.shape
+    flat_inv = inv_light.ravel()
+    flat = blocks.ravel()
+    row_start = np.arange(n) * w
+    starts = (np.arange(nb) * (n * w))[:, None] + row_start  # (frame, row) flat index of column 0
+    threshold = thresholds[0] if thresholds.shape[0] == 1 else thresholds[map_of_frame]
     mask = blocks < threshold
     flat_mask = mask.ravel()
     lj = np.argmax(mask, axis=2)
@@ -721,7 +734,7 @@ def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
     flipped = cv2.flip(mask.view(np.uint8).reshape(nb * n, w), 1).view(bool)
     rj = (w - 1) - np.argmax(flipped, axis=1).reshape(nb, n)
     light = ~(mask[:, :, 0] & mask[:, :, w - 1])
-    m, a = layout.margin_px, layout.core_px
+    m, a = margin, core
     step = np.arange(2 * a)
     probe = step < (rj - lj + 1)[:, :, None]
     head = flat_mask.take(np.minimum(lj[:, :, None] + step, w - 1) + starts[:, :, None])
@@ -733,9 +746,9 @@ def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
     zone = m + a
     core_start = lj + a
     core_stop = rj + 1 - a
-    thick = core_stop >= core_start
+    thick = (core_stop >= core_start) & has
     base = lj - m
-    cols = base[:, :, None] + layout.zone_steps
+    cols = base[:, :, None] + np.arange(2 * zone)
     cols[:, :, zone:] += ((core_stop - zone - base) * thick)[:, :, None]
     stop = np.where(thick, w, np.minimum(rj + 1 + m, w))
     use = (cols >= 0) & (cols < stop[:, :, None])
@@ -745,12 +758,15 @@ def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
     cols += row_start[:, None]
     values = flat.take(cols + (np.arange(nb) * (n * w))[:, None, None])
     deficit = values * flat_inv.take(cols)
-    deficit *= (-scale / gain).astype(np.float32)[:, None, None]
+    deficit *= (-scale / gains).astype(np.float32)[:, None, None]
     deficit += np.float32(scale)
     if clipped.any():  # frames without clipping have no pixel at the saturation level
-        deficit[values >= layout.saturation] = 0.0
+        deficit[values >= saturation] = 0.0
     deficit *= use
-    sums = (deficit @ layout.zone_weights).astype(np.float64)  # one small product per frame
+    weights = np.zeros((2 * zone, 3), np.float32)  # left-zone sum, right-zone sum, first moment
+    weights[:zone, 0] = weights[zone:, 1] = 1.0
+    weights[:, 2] = np.arange(2 * zone)
+    sums = (deficit @ weights).astype(np.float64)  # one small product per row
     left_sum, right_sum, moment = sums[:, :, 0], sums[:, :, 1], sums[:, :, 2]
     edge_sum = left_sum + right_sum
     core_n = (core_stop - core_start) * thick
@@ -759,13 +775,13 @@ def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
     centre = np.where(thick, 0.5 * ((core_start - 0.5 - left_sum) + (core_stop - 0.5 + right_sum)),
                       centroid)
     centre[~has] = np.nan
-    peak = deficit.max(axis=2)
+    peak = deficit.max(axis=2).astype(np.float64)
     peak[thick] = 1.0
     cut = edge_sum + core_n
     cut[~has] = np.nan
     for b in np.flatnonzero(~has.all(axis=1)):
-        _faint_rows(blocks[b], layout, has[b], centre[b], peak[b], cut[b], gains[b], scale)
-    rim_rows = thick & (core_n > 12) & has
+        _faint_rows(blocks[b], inv_light, has[b], centre[b], peak[b], cut[b], gains[b], scale, m)
+    rim_rows = thick & (core_n > 12)
     rim_rows[:, 2:-2] &= (np.abs(lj[:, 4:] - lj[:, :-4]) <= 1) & (np.abs(rj[:, 4:] - rj[:, :-4]) <= 1)
     rim_rows[:, :2] = rim_rows[:, -2:] = False
     rim_ratio = np.full((nb, n), np.nan)
@@ -775,15 +791,10 @@ def _measure_rows_fast(blocks, layout, *, detect_level=DETECT_LEVEL):
         picks = np.concatenate([tr + ta, tr + ta + 1, tr + tb - 1, tr + tb - 2])
         local = picks % (n * w)
         vals = (flat.take(picks) * flat_inv.take(local)).reshape(4, -1).sum(axis=0) * 0.25
-        rim_ratio[rim_rows] = vals / np.broadcast_to(gain.astype(np.float32)[:, None], (nb, n))[rim_rows]
-    core_n = core_n.astype(np.float64)
-    light = light.astype(np.float64)
-    window_lo, window_hi = np.maximum(base, 0), np.minimum(rj + 1 + m, w)
-    return {"has": has, "peak": peak, "centre": centre, "edge_sum": edge_sum,
-            "core_n": core_n, "cut_width": cut, "truncated": truncated,
-            "rim_ratio": rim_ratio, "light": light, "window": (window_lo, window_hi),
-            "gain": gain}
-
+        rim_ratio[rim_rows] = vals / np.broadcast_to(gains.astype(np.float32)[:, None], (nb, n))[rim_rows]
+    return {"has": has, "peak": peak, "centre": centre, "core_n": core_n.astype(np.float64),
+            "cut_width": cut, "truncated": truncated, "rim_ratio": rim_ratio,
+            "light": light.astype(np.float64)}
 
 
 def _frame_gain(block, layout, ratio, sample, k, clipped):
@@ -802,16 +813,15 @@ def _frame_gain(block, layout, ratio, sample, k, clipped):
     return float(np.median(bright)) if bright.size else 1.0
 
 
-def _faint_rows(block, layout, has, centre, peak, cut, gain, scale):
+def _faint_rows(block, inv_light, has, centre, peak, cut, gain, scale, margin):
     """Rows of one frame without a clear shadow: their faintest trace of one (arrays set in place).
 
     A thread fainter than the detection level (narrower than the blur) is
     still measured by its integrated deficit in a window on the centre line.
     """
     n, w = block.shape
-    inv_light = layout.inverse_backlight
-    flat, flat_inv, row_start = block.ravel(), inv_light.ravel(), layout.row_starts
-    m = layout.margin_px
+    flat, flat_inv, row_start = block.ravel(), inv_light.ravel(), np.arange(n) * w
+    m = margin
     empty = np.flatnonzero(~has)
     faint = 1.0 - (block[empty] * inv_light[empty]).min(axis=1) / gain
     peak[empty] = faint * scale
@@ -819,6 +829,8 @@ def _faint_rows(block, layout, has, centre, peak, cut, gain, scale):
         y = np.flatnonzero(has).astype(np.float64)
         c = centre[has]
         slope = float(np.dot(y - y.mean(), c - c.mean()) / max(np.dot(y - y.mean(), y - y.mean()), 1e-9))
+        if not (math.isfinite(slope) and math.isfinite(c.mean())):
+            return
         guess = np.rint(c.mean() + slope * (empty - y.mean())).astype(np.int64)
         window = np.arange(-(m + 2), m + 3)
         wc = guess[:, None] + window
@@ -852,32 +864,24 @@ def _main_run(mask_row, pair_row, lo, hi, *, bridge_px=3):
     return lo + keep_s[0], lo + keep_e[-1]
 
 
-def _axis_slope(y, centre, ok, layout_slope, max_bend_deg):
-    """Direction of the centre line (lateral px per axial px) over the rows ``ok``.
+def axis_slopes(y, centre, ok, base_slope, max_bend_deg):
+    """Direction of the centre line (lateral px per axial px) of each frame over its rows ``ok``.
 
-    A straight-line fit, kept within ``max_bend_deg`` of the layout's
-    direction (from the end bodies): the liquid's own centre line wanders
-    near plate corners, beads and retracting tips.
+    ``y`` the axial position of each row; ``centre`` and ``ok`` (frame, row);
+    ``base_slope`` the direction to keep to, per frame or one for all. A
+    straight-line fit, kept within ``max_bend_deg`` of ``base_slope`` (the
+    end bodies' direction, or the frame's own): the liquid's own centre line
+    wanders near plate corners, beads and retracting tips. Frames with fewer
+    than 5 rows keep ``base_slope``.
     """
     bend = math.tan(math.radians(max_bend_deg))
-    yy = y[ok]
-    if yy.size < 5:
-        return layout_slope
-    cc = centre[ok]
-    yy = yy - yy.sum() / yy.size
-    slope = float(np.dot(yy, cc) / np.dot(yy, yy))
-    return min(max(slope, layout_slope - bend), layout_slope + bend)
-
-
-def local_axis_slope(profile, rows, *, layout_slope=None, max_bend_deg=1.5):
-    """Slope of the centre line over the selected ``rows`` (bool mask) of a profile.
-
-    Kept within ``max_bend_deg`` of ``layout_slope`` (default: the profile's
-    own direction).
-    """
-    base = math.tan(math.radians(profile.angle_deg)) if layout_slope is None else layout_slope
-    return _axis_slope(profile.axial_px, profile.centre_px, rows & np.isfinite(profile.centre_px),
-                       base, max_bend_deg)
+    count = ok.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(ok, y, 0.0).sum(axis=1) / count
+        dy = np.where(ok, y - mean[:, None], 0.0)
+        slope = (dy * np.where(ok, centre, 0.0)).sum(axis=1) / (dy * dy).sum(axis=1)
+    base = np.broadcast_to(np.asarray(base_slope, dtype=np.float64), slope.shape)
+    return np.where(count >= 5, np.clip(slope, base - bend, base + bend), base)
 
 
 def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DETECT_LEVEL,
@@ -894,7 +898,7 @@ def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DE
     rows = measure_block([frame], layout, detect_level=detect_level)
     fraction = rim_fractions(rows) if shadow_fraction is None else [float(shadow_fraction)]
     return profiles_of(rows, layout, shadow_fraction=fraction, presence_level=presence_level,
-                       max_bend_deg=max_bend_deg)[0]
+                       max_bend_deg=max_bend_deg).frame(0)
 
 
 def rim_fractions(rows) -> np.ndarray:
@@ -910,8 +914,8 @@ def rim_fractions(rows) -> np.ndarray:
 
 
 def profiles_of(rows, layout: Layout, *, shadow_fraction, presence_level=PRESENCE_LEVEL,
-                max_bend_deg=1.5) -> list[Profile]:
-    """The :class:`Profile` of each frame from its row measurements (options of :func:`locate_edges`).
+                max_bend_deg=1.5) -> "ProfileBlock":
+    """The profiles of a block of frames from their row measurements (options of :func:`locate_edges`).
 
     ``shadow_fraction``: per frame, the shadow level over backlight to scale
     the widths to (NaN: the layout's).
@@ -946,18 +950,56 @@ def profiles_of(rows, layout: Layout, *, shadow_fraction, presence_level=PRESENC
     connected = free.any(axis=1) & (present | ~free).all(axis=1)
     y = np.arange(n, dtype=np.float64) + axial[0]
     centre = rows["centre"] + layout.band[0]
-    slope = np.array([_axis_slope(y, centre[b], valid[b], layout.axis_slope, max_bend_deg)
-                      for b in range(nb)])
+    slope = axis_slopes(y, centre, valid, layout.axis_slope, max_bend_deg)
     cosine = 1.0 / np.sqrt(1.0 + slope * slope)
-    half = 0.5 * cut
-    left, right, width = centre - half, centre + half, cut * cosine[:, None]
-    angle = [math.degrees(math.atan(v)) for v in slope]
-    return [Profile(axial_px=y, left_px=left[b], right_px=right[b], width_px=width[b],
-                    cut_width_px=cut[b], centre_px=centre[b], angle_deg=angle[b],
-                    contrast=peak[b], valid=valid[b], present=present[b], body=body[b],
-                    free_span=(axial[0] + int(start[b]), axial[0] + int(stop[b])),
-                    connected=bool(connected[b]), shadow_fraction=float(fractions[b]),
-                    rim_fraction=float(own[b])) for b in range(nb)]
+    return ProfileBlock(axial_px=y, centre_px=centre, cut_width_px=cut,
+                        width_px=cut * cosine[:, None], slope=slope, contrast=peak, valid=valid,
+                        present=present, body=body, free_start=axial[0] + start,
+                        free_stop=axial[0] + stop, connected=connected,
+                        shadow_fraction=fractions.astype(np.float64), rim_fraction=own)
+
+
+@dataclass(frozen=True)
+class ProfileBlock:
+    """The profiles of a block of frames of one layout: :class:`Profile`'s fields as arrays.
+
+    Per (frame, row): ``centre_px``, ``cut_width_px``, ``width_px``,
+    ``contrast``, ``valid``, ``present``, ``body``; per frame: ``slope``
+    (axis direction, lateral px per axial px), ``free_start``/``free_stop``
+    (the free span, axial px), ``connected``, ``shadow_fraction``,
+    ``rim_fraction``; ``axial_px`` the rows' axial positions.
+    """
+
+    axial_px: np.ndarray
+    centre_px: np.ndarray
+    cut_width_px: np.ndarray
+    width_px: np.ndarray
+    slope: np.ndarray
+    contrast: np.ndarray
+    valid: np.ndarray
+    present: np.ndarray
+    body: np.ndarray
+    free_start: np.ndarray
+    free_stop: np.ndarray
+    connected: np.ndarray
+    shadow_fraction: np.ndarray
+    rim_fraction: np.ndarray
+
+    def __len__(self):
+        return self.slope.size
+
+    def frame(self, b) -> Profile:
+        """The :class:`Profile` of frame ``b`` of the block."""
+        half = 0.5 * self.cut_width_px[b]
+        return Profile(axial_px=self.axial_px, left_px=self.centre_px[b] - half,
+                       right_px=self.centre_px[b] + half, width_px=self.width_px[b],
+                       cut_width_px=self.cut_width_px[b], centre_px=self.centre_px[b],
+                       angle_deg=math.degrees(math.atan(self.slope[b])), contrast=self.contrast[b],
+                       valid=self.valid[b], present=self.present[b], body=self.body[b],
+                       free_span=(int(self.free_start[b]), int(self.free_stop[b])),
+                       connected=bool(self.connected[b]),
+                       shadow_fraction=float(self.shadow_fraction[b]),
+                       rim_fraction=float(self.rim_fraction[b]))
 
 
 def _rim_fraction(rim_ratio, rows_ok):

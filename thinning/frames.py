@@ -13,12 +13,13 @@ the metadata, and add it to :func:`open_source` (see DEVELOPERS.md).
 
 from __future__ import annotations
 
-import collections
 import hashlib
 import logging
 import os
+import queue
 import re
-from concurrent.futures import ThreadPoolExecutor
+import threading
+from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -28,6 +29,8 @@ log = logging.getLogger(__name__)
 VIDEO_SUFFIXES = {".avi", ".mp4", ".mov", ".mkv", ".m4v", ".wmv", ".mpg", ".mpeg", ".webm", ".ogv"}
 TIFF_SUFFIXES = {".tif", ".tiff"}
 IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".pgm", ".ppm"}
+#: Bytes of frames read ahead of the consumer (decoded in a background thread meanwhile).
+READ_AHEAD_BYTES = 32 << 20
 
 
 class UnusableSource(ValueError):
@@ -69,6 +72,57 @@ def _quiet_opencv(cv2):
         cv2.setLogLevel(2)
 
 
+def read_ahead(items, depth):
+    """Yield the items of the iterator ``items``, advanced in a background thread.
+
+    At most ``depth`` items wait, so memory stays bounded while the consumer
+    works on earlier ones; the decoders release the GIL, so reading overlaps
+    the measurement. An exception from ``items`` is raised in the consumer.
+    Closing this generator stops the thread and closes ``items``.
+    """
+    waiting = queue.Queue()
+    slots = threading.Semaphore(depth)
+    stop = threading.Event()
+    end = object()
+
+    def produce():
+        try:
+            while True:
+                while not slots.acquire(timeout=0.05):
+                    if stop.is_set():
+                        return
+                if stop.is_set():
+                    return
+                item = next(items, end)
+                waiting.put(item)
+                if item is end:
+                    return
+        except BaseException as exc:  # handed to the consumer
+            waiting.put(_Raised(exc))
+        finally:
+            items.close()
+
+    reader = threading.Thread(target=produce, name="thinning-read-ahead", daemon=True)
+    reader.start()
+    try:
+        while True:
+            item = waiting.get()
+            if item is end:
+                return
+            if isinstance(item, _Raised):
+                raise item.exc
+            slots.release()
+            yield item
+    finally:
+        stop.set()
+        reader.join()
+
+
+class _Raised:
+    def __init__(self, exc):
+        self.exc = exc
+
+
 class FrameSource:
     """A recording as an ordered stream of grey frames.
 
@@ -94,9 +148,16 @@ class FrameSource:
         self._sha256 = None
 
     def __iter__(self):
+        """The frames in order, read and decoded ahead in a background thread."""
         self.frames_read = 0
         self.broken_off = False
-        for frame in self._frames():
+        frame_bytes = self.shape[0] * self.shape[1] * np.dtype(self.dtype).itemsize
+        depth = int(np.clip(READ_AHEAD_BYTES // max(frame_bytes, 1), 4, 256))
+        for frame in read_ahead(self._frames(), depth):
+            if isinstance(frame, Future):
+                frame = frame.result()
+                if frame is None:  # a packet that does not decode: the stream ends here
+                    break
             self.frames_read += 1
             yield frame
         if self.frames_read < self.n_frames:
@@ -106,6 +167,7 @@ class FrameSource:
         return self.n_frames
 
     def _frames(self):
+        """Generator of the frames in order (2-D arrays, or futures of them)."""
         raise NotImplementedError
 
     def _hashed_files(self):
@@ -187,10 +249,9 @@ class VideoSource(FrameSource):
             cap.release()
 
     def _mjpg_frames(self):
+        """Futures of the frames: compressed packets decoded in a thread pool."""
         cv2 = self._cv2
         cap = self._open(packets=True)
-        window = collections.deque()
-        depth = 4 * self._threads
 
         def decode(packet):
             return cv2.imdecode(packet, cv2.IMREAD_GRAYSCALE)
@@ -199,15 +260,9 @@ class VideoSource(FrameSource):
             with ThreadPoolExecutor(max_workers=self._threads) as pool:
                 while True:
                     ok, packet = cap.read()
-                    if ok and packet is not None:
-                        window.append(pool.submit(decode, packet.reshape(-1).copy()))
-                    if window and (len(window) >= depth or not ok):
-                        image = window.popleft().result()
-                        if image is None:
-                            break
-                        yield image
-                    elif not ok:
+                    if not ok or packet is None:
                         break
+                    yield pool.submit(decode, packet.reshape(-1).copy())
         finally:
             cap.release()
 

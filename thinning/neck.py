@@ -31,8 +31,8 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 
-from .edges import (Layout, NoFilament, Profile, find_layout, local_axis_slope, measure_block,
-                    profiles_of, refresh_light, rim_fractions)
+from .edges import (Layout, NoFilament, Profile, ProfileBlock, axis_slopes, find_layout,
+                    measure_block, profiles_of, refresh_light, rim_fractions)
 from .findings import Finding, Severity
 
 log = logging.getLogger(__name__)
@@ -45,9 +45,9 @@ SNAPSHOTS = 6
 SHADOW_SMOOTHING = 0.1
 #: Tilt of the axis (degrees) above which a finding is raised.
 TILT_LIMIT_DEG = 2.0
-#: Pixels of band measured together: a stack of frames shares the overhead of each numpy call,
-#: and stays small (about 0.5 MB) so that its working arrays stay in the processor's cache.
-BLOCK_PIXELS = 1 << 19
+#: Pixels of band measured together (about 4 MB of 8-bit frames): a stack of frames shares
+#: the fixed cost of each numpy call on the profiles.
+BLOCK_PIXELS = 1 << 22
 
 TABLE_COLUMNS = ["frame", "diameter_px", "neck_position_px", "axis_angle_deg", "axis_lateral_px",
                  "min_contrast", "thread_connected", "filament_seen", "plate_gap_px", "beads",
@@ -101,49 +101,51 @@ def _smooth3(values, ok):
         return np.where(ok, total / count, np.inf)
 
 
-def _quadratic(x, y):
-    """Least-squares ``a x² + b x + c`` (normal equations, Cramer's rule); None when singular."""
+def quadratic_fits(x, y, use):
+    """Least-squares ``a x² + b x + c`` of each row of ``y`` over the entries ``use``.
+
+    ``x``, ``y``, ``use`` (fit, point); normal equations solved by Cramer's
+    rule. Returns ``a, b, c`` and whether each fit was solvable (matrix not
+    singular).
+    """
+    x = np.where(use, x, 0.0)
+    y = np.where(use, y, 0.0)
     x2 = x * x
-    n, s1, s2 = float(x.size), float(x.sum()), float(x2.sum())
-    s3, s4 = float(np.dot(x2, x)), float(np.dot(x2, x2))
-    t0, t1, t2 = float(y.sum()), float(np.dot(x, y)), float(np.dot(x2, y))
+    n, s1, s2 = use.sum(axis=1).astype(np.float64), x.sum(axis=1), x2.sum(axis=1)
+    s3, s4 = (x2 * x).sum(axis=1), (x2 * x2).sum(axis=1)
+    t0, t1, t2 = y.sum(axis=1), (x * y).sum(axis=1), (x2 * y).sum(axis=1)
     det = s4 * (s2 * n - s1 * s1) - s3 * (s3 * n - s1 * s2) + s2 * (s3 * s1 - s2 * s2)
-    if abs(det) < 1e-12 * max(abs(s4 * s2 * n), 1e-300):
-        return None
+    solvable = np.abs(det) >= 1e-12 * np.maximum(np.abs(s4 * s2 * n), 1e-300)
+    det = np.where(solvable, det, 1.0)
     a = (t2 * (s2 * n - s1 * s1) - s3 * (t1 * n - s1 * t0) + s2 * (t1 * s1 - s2 * t0)) / det
     b = (s4 * (t1 * n - t0 * s1) - t2 * (s3 * n - s1 * s2) + s2 * (s3 * t0 - t1 * s2)) / det
     c = (s4 * (s2 * t0 - s1 * t1) - s3 * (s3 * t0 - s2 * t1) + t2 * (s3 * s1 - s2 * s2)) / det
-    return a, b, c
+    return a, b, c, solvable
 
 
-def neck_of(profile: Profile, *, row_noise_px=0.1, max_half_window=40, min_half_window=3,
-            max_bend_deg=1.5):
-    """Minimum diameter of one profile from a local quadratic fit along the axis.
+def necks_of(profiles: ProfileBlock, *, row_noise_px=0.1, max_half_window=40, min_half_window=3,
+             max_bend_deg=1.5) -> dict:
+    """Minimum diameter of each frame of a block from a local quadratic fit along the axis.
 
     ``row_noise_px``: expected noise of one row's width; the fit window
     takes the contiguous rows around the thinnest one whose smoothed width
     stays within ``max(3·row_noise_px, 1.5 %)`` of it, half-length between
     ``min_half_window`` and ``max_half_window`` rows. The widths are taken
     across the local axis, whose angle is fitted to the centre line over
-    the same rows (within ``max_bend_deg`` of the frame's axis). Returns a
-    dict with ``diameter_px``, ``neck_position_px``, ``axis_angle_deg``,
-    ``axis_lateral_px``, ``min_contrast``, ``fit_rows``, ``beads`` (NaN / 0 /
-    False when there is no connected thread).
+    the same rows (within ``max_bend_deg`` of the frame's axis). The fit
+    averages the row noise instead of picking its most negative excursion.
+    Returns arrays per frame: ``diameter_px``, ``neck_position_px``,
+    ``axis_angle_deg``, ``axis_lateral_px``, ``min_contrast``, ``fit_rows``,
+    ``beads`` (NaN / 0 / False where there is no connected thread).
     """
-    return necks_of([profile], row_noise_px=row_noise_px, max_half_window=max_half_window,
-                    min_half_window=min_half_window, max_bend_deg=max_bend_deg)[0]
-
-
-def necks_of(profiles, *, row_noise_px=0.1, max_half_window=40, min_half_window=3,
-             max_bend_deg=1.5):
-    """:func:`neck_of` of several profiles of one layout (the window search done for all at once)."""
-    cut = np.stack([p.cut_width_px for p in profiles])
-    ok = np.stack([p.valid for p in profiles]) & np.isfinite(cut)
+    cut = profiles.cut_width_px
+    ok = profiles.valid & np.isfinite(cut)
     nb, n = cut.shape
+    frames = np.arange(nb)
     smooth = _smooth3(cut, ok)
     beads = _has_beads(smooth, ok)
     i0 = np.argmin(smooth, axis=1)
-    w0 = smooth[np.arange(nb), i0]
+    w0 = smooth[frames, i0]
     level = w0 + np.maximum(3.0 * row_noise_px, 0.015 * w0)
     outside = ~(smooth <= level[:, None])
     j = np.arange(n)
@@ -153,47 +155,37 @@ def necks_of(profiles, *, row_noise_px=0.1, max_half_window=40, min_half_window=
     hi = np.minimum(after - 1, i0 + max_half_window)
     mid = (lo + hi) // 2
     half = np.maximum((hi - lo + 1) // 2, min_half_window)
-    usable = ok.sum(axis=1) >= 3
-    out = []
-    for b, profile in enumerate(profiles):
-        if not (profile.connected and usable[b]):
-            out.append({"diameter_px": math.nan, "neck_position_px": math.nan,
-                        "axis_angle_deg": math.nan, "axis_lateral_px": math.nan,
-                        "min_contrast": math.nan, "fit_rows": 0, "beads": False})
-            continue
-        out.append(_fit_neck(profile, ok[b], int(i0[b]), int(mid[b]), int(half[b]), max_bend_deg,
-                             bool(beads[b])))
-    return out
-
-
-def _fit_neck(profile, ok, i0, mid, half, max_bend_deg, beads):
-    """The quadratic fit of one profile's widths over rows ``mid ± half`` (see :func:`neck_of`)."""
-    cut = profile.cut_width_px
-    n = cut.size
-    sel = np.zeros(n, bool)
-    sel[max(0, mid - half): mid + half + 1] = True
-    sel &= ok
-    slope = local_axis_slope(profile, sel, max_bend_deg=max_bend_deg)
-    cosine = 1.0 / math.sqrt(1.0 + slope * slope)
-    y = profile.axial_px[sel] - profile.axial_px[i0]
-    w = cut[sel] * cosine
-    position = float(profile.axial_px[i0])
-    coef = _quadratic(y, w) if y.size >= 5 else None
-    if coef is None:
-        diameter = float(np.mean(w))
-    else:
-        a, b, c = coef
-        vertex = -b / (2.0 * a) if a > 0 else math.nan
-        if np.isfinite(vertex) and y.min() <= vertex <= y.max():
-            diameter = c - b * b / (4.0 * a)
-            position += vertex
-        else:  # no minimum inside the window: the fit's lowest point in it
-            ends = [a * v * v + b * v + c for v in (y.min(), 0.0, y.max())]
-            diameter = min(ends)
-    return {"diameter_px": float(diameter), "neck_position_px": position,
-            "axis_angle_deg": math.degrees(math.atan(slope)),
-            "axis_lateral_px": float(profile.centre_px[i0]),
-            "min_contrast": float(profile.contrast[i0]), "fit_rows": int(sel.sum()), "beads": beads}
+    measured = profiles.connected & (ok.sum(axis=1) >= 3)
+    # the fit: rows mid ± half, widths across the local axis over those rows
+    sel = (j >= (mid - half)[:, None]) & (j <= (mid + half)[:, None]) & ok
+    centre = profiles.centre_px
+    slope = axis_slopes(profiles.axial_px, centre, sel & np.isfinite(centre), profiles.slope,
+                        max_bend_deg)
+    cosine = 1.0 / np.sqrt(1.0 + slope * slope)
+    y = (j - i0[:, None]).astype(np.float64)  # axial offset from the thinnest row
+    w = cut * cosine[:, None]
+    a, b, c, solvable = quadratic_fits(y, w, sel)
+    count = sel.sum(axis=1)
+    solvable &= count >= 5
+    with np.errstate(invalid="ignore", divide="ignore"):
+        y_min = np.where(sel, y, np.inf).min(axis=1)
+        y_max = np.where(sel, y, -np.inf).max(axis=1)
+        vertex = np.where(a > 0, -b / (2.0 * a), np.nan)
+        inside = solvable & np.isfinite(vertex) & (y_min <= vertex) & (vertex <= y_max)
+        bottom = c - b * b / (4.0 * a)
+        # no minimum inside the window: the fit's lowest point in it
+        ends = np.minimum(np.minimum(a * y_min * y_min + b * y_min + c, c),
+                          a * y_max * y_max + b * y_max + c)
+        mean = np.where(sel, w, 0.0).sum(axis=1) / count
+    diameter = np.where(solvable, np.where(inside, bottom, ends), mean)
+    position = profiles.axial_px[i0] + np.where(inside, vertex, 0.0)
+    missing = ~measured
+    return {"diameter_px": np.where(missing, np.nan, diameter),
+            "neck_position_px": np.where(missing, np.nan, position),
+            "axis_angle_deg": np.where(missing, np.nan, np.degrees(np.arctan(slope))),
+            "axis_lateral_px": np.where(missing, np.nan, centre[frames, i0]),
+            "min_contrast": np.where(missing, np.nan, profiles.contrast[frames, i0]),
+            "fit_rows": np.where(missing, 0, count), "beads": beads & measured}
 
 
 def _has_beads(smooth, ok):
@@ -210,15 +202,19 @@ def _has_beads(smooth, ok):
 # the record
 
 
-def _gap(profile: Profile, layout: Layout):
-    """Axial gap between the end bodies of one frame (NaN unless both ends have a body)."""
-    if profile.body[0] and profile.body[-1]:
-        return float(profile.free_span[1] - profile.free_span[0])
-    if layout.end_widths_px[0] is not None and profile.body[0]:
-        return float(profile.free_span[0])
-    if layout.end_widths_px[1] is not None and profile.body[-1]:
-        return float(profile.free_span[1])
-    return math.nan
+def _gaps(profiles: ProfileBlock, layout: Layout):
+    """Axial gap between the end bodies of each frame (NaN unless both ends have a body).
+
+    With one end body only, the position of its face stands in for the gap.
+    """
+    first, last = profiles.body[:, 0], profiles.body[:, -1]
+    start, stop = profiles.free_start.astype(np.float64), profiles.free_stop.astype(np.float64)
+    gap = np.full(len(profiles), math.nan)
+    if layout.end_widths_px[1] is not None:
+        gap = np.where(last, stop, gap)
+    if layout.end_widths_px[0] is not None:
+        gap = np.where(first, start, gap)
+    return np.where(first & last, stop - start, gap)
 
 
 class _Snapshots:
@@ -231,16 +227,15 @@ class _Snapshots:
         if n_frames:
             self.targets = set(np.unique(np.round(np.linspace(0, n_frames - 1, SNAPSHOTS))).astype(int))
 
-    def offer(self, index, frame, profile):
-        if self.n_frames:
-            if index in self.targets:
-                self.kept.append((index, np.array(frame, copy=True), profile))
-            return
-        if index % self.step == 0:
-            self.kept.append((index, np.array(frame, copy=True), profile))
-            if len(self.kept) > 2 * SNAPSHOTS:
-                self.step *= 2
-                self.kept = [s for s in self.kept if s[0] % self.step == 0]
+    def wants(self, index):
+        """Whether frame ``index`` is to be kept."""
+        return index in self.targets if self.n_frames else index % self.step == 0
+
+    def keep(self, index, frame, profile):
+        self.kept.append((index, np.array(frame, copy=True), profile))
+        if not self.n_frames and len(self.kept) > 2 * SNAPSHOTS:
+            self.step *= 2
+            self.kept = [s for s in self.kept if s[0] % self.step == 0]
 
     def result(self):
         if self.n_frames or len(self.kept) <= SNAPSHOTS:
@@ -290,7 +285,8 @@ def measure_recording(frames: Iterable[np.ndarray], *, geometry="plates", roi=No
     if layout is None:
         raise NoFilament("No filament in view in any frame of the recording.")
     _measure_pending(pending, layout, fraction, row_noise, records, snaps)
-    table = pd.DataFrame.from_records(records, columns=TABLE_COLUMNS)
+    table = pd.DataFrame({column: np.concatenate([r[column] for r in records])
+                          for column in TABLE_COLUMNS})
     return summarise(table, layout, snapshots=snaps.result())
 
 
@@ -305,19 +301,23 @@ def _measure_pending(pending, layout, fraction, row_noise, records, snaps):
         if np.isfinite(own):
             fraction += SHADOW_SMOOTHING * (own - fraction)
     profiles = profiles_of(rows, layout, shadow_fraction=fractions)
-    for (index, frame), profile, neck in zip(pending, profiles, necks_of(profiles, row_noise_px=row_noise)):
-        records.append((index, neck["diameter_px"], neck["neck_position_px"],
-                        neck["axis_angle_deg"], neck["axis_lateral_px"], neck["min_contrast"],
-                        profile.connected, bool(profile.present.any()), _gap(profile, layout),
-                        neck["beads"], neck["fit_rows"]))
-        snaps.offer(index, frame, profile)
+    record = necks_of(profiles, row_noise_px=row_noise)
+    record.update(frame=np.array([index for index, _ in pending]), thread_connected=profiles.connected,
+                  filament_seen=profiles.present.any(axis=1), plate_gap_px=_gaps(profiles, layout))
+    records.append(record)
+    for b, (index, frame) in enumerate(pending):
+        if snaps.wants(index):
+            snaps.keep(index, frame, profiles.frame(b))
     pending.clear()
     return fraction
 
 
 def _empty(index):
-    return (index, math.nan, math.nan, math.nan, math.nan, math.nan, False, False, math.nan,
-            False, 0)
+    """The record of a frame before the first one that shows a filament."""
+    return {"frame": np.array([index]), "diameter_px": [math.nan], "neck_position_px": [math.nan],
+            "axis_angle_deg": [math.nan], "axis_lateral_px": [math.nan], "min_contrast": [math.nan],
+            "thread_connected": [False], "filament_seen": [False], "plate_gap_px": [math.nan],
+            "beads": [False], "fit_rows": [0]}
 
 
 def _row_noise(layout: Layout):
@@ -397,11 +397,9 @@ def _longest_run(mask):
 
 
 def _running_median(values, half):
-    n = values.size
-    out = np.empty(n)
-    for i in range(n):
-        out[i] = np.median(values[max(0, i - half): i + half + 1])
-    return out
+    """Median over each entry and ``half`` entries either side (shorter windows at the ends)."""
+    padded = np.concatenate((np.full(half, np.nan), values, np.full(half, np.nan)))
+    return np.nanmedian(np.lib.stride_tricks.sliding_window_view(padded, 2 * half + 1), axis=1)
 
 
 def free_thinning_start(gap_px, *, span=4, min_change_px=2.0, settle_px=1.0):

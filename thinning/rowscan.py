@@ -1,0 +1,109 @@
+"""The per-row pass of the edge measurement, compiled: a stack of bands → row arrays.
+
+:func:`thinning.edges.measure_block` hands a stack of bands (frame, row,
+column; axis along the rows; C-contiguous) to these two functions when the
+compiled module ``thinning._rowscan`` (``thinning/_rowscan.c``, built by
+``setup.py`` when a C compiler is at hand) is installed; without it the
+numpy path in :mod:`thinning.edges` gives the same quantities, about three
+times slower. The C functions are called through :mod:`ctypes`, which
+releases the GIL, so a block is measured while the decoding threads go on
+with the next frames.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import importlib.util
+import os
+
+import numpy as np
+
+#: Set (to anything but 0) to make a missing compiled module an error instead of a fallback.
+REQUIRE_ENV = "THINNING_REQUIRE_COMPILED"
+
+
+def _load():
+    spec = importlib.util.find_spec("thinning._rowscan")
+    if spec is None or not spec.origin:
+        if os.environ.get(REQUIRE_ENV, "0") not in ("", "0"):
+            raise ImportError(f"thinning._rowscan was not built, and {REQUIRE_ENV} asks for it")
+        return None
+    lib = ctypes.CDLL(spec.origin)
+    p, i, d = ctypes.c_void_p, ctypes.c_int64, ctypes.c_double
+    for suffix in ("u8", "u16"):
+        gains = getattr(lib, f"frame_gains_{suffix}")
+        gains.argtypes = [p, i, i, i, p, i, p, i, d, p, p]
+        gains.restype = ctypes.c_int
+        scan = getattr(lib, f"scan_rows_{suffix}")
+        scan.argtypes = [p, i, i, i, p, p, p, p, p, d, d, i, i, p, p, p, p, p, p, p, p]
+        scan.restype = ctypes.c_int
+    return lib
+
+
+_lib = _load()
+#: Whether the compiled row pass is installed.
+COMPILED = _lib is not None
+
+
+def _suffix(dtype):
+    if dtype == np.uint8:
+        return "u8"
+    if dtype == np.uint16:
+        return "u16"
+    raise TypeError(f"the compiled row pass reads 8- or 16-bit frames, not {dtype}")
+
+
+def _check(status):
+    if status != 0:
+        raise MemoryError("the compiled row pass could not allocate its row buffers")
+
+
+def frame_gains(blocks, gain_rows, margin_light, k, saturation):
+    """Flicker gain and clipping of each frame of ``blocks`` (frame, row, column).
+
+    The gain is the upper median, over ``gain_rows``, of the ratio of the
+    row's ``k`` margin columns on each side to ``margin_light`` (the light
+    field's margin sums per row); a frame is clipped when any pixel reaches
+    ``saturation``. Returns ``gains`` (float64) and ``clipped`` (bool).
+    """
+    nb, n, w = blocks.shape
+    rows = np.ascontiguousarray(gain_rows, dtype=np.int64)
+    light = np.ascontiguousarray(margin_light, dtype=np.float64)
+    gains = np.empty(nb)
+    clipped = np.zeros(nb, np.uint8)
+    _check(getattr(_lib, f"frame_gains_{_suffix(blocks.dtype)}")(
+        blocks.ctypes.data, nb, n, w, rows.ctypes.data, rows.size, light.ctypes.data, k,
+        saturation, gains.ctypes.data, clipped.ctypes.data))
+    return gains, clipped.view(bool)
+
+
+def scan_rows(blocks, thresholds, map_of_frame, inv_light, gains, clipped, saturation, scale,
+              margin, core):
+    """Row measurements of a stack of bands (see :func:`thinning.edges.measure_block`).
+
+    ``thresholds`` (map, row, column) grey levels of the detection level in
+    the frames' dtype, ``map_of_frame`` which map each frame uses;
+    ``inv_light`` 1 / light field (float32); ``gains``/``clipped`` from
+    :func:`frame_gains`; ``scale`` = 1 / (1 − shadow fraction);
+    ``margin``/``core`` the zone reach outside and inside an edge (px).
+    Returns a dict of arrays (frame, row): has, peak, centre, core_n,
+    cut_width, truncated, rim_ratio, light.
+    """
+    nb, n, w = blocks.shape
+    thresholds = np.ascontiguousarray(thresholds, dtype=blocks.dtype)
+    index = np.ascontiguousarray(map_of_frame, dtype=np.int64)
+    inv = np.ascontiguousarray(inv_light, dtype=np.float32)
+    gains = np.ascontiguousarray(gains, dtype=np.float64)
+    clip = np.ascontiguousarray(clipped, dtype=np.uint8)
+    out = {"has": np.zeros((nb, n), np.uint8), "peak": np.empty((nb, n)),
+           "centre": np.full((nb, n), np.nan), "core_n": np.zeros((nb, n)),
+           "cut_width": np.full((nb, n), np.nan), "truncated": np.zeros((nb, n), np.uint8),
+           "rim_ratio": np.full((nb, n), np.nan), "light": np.ones((nb, n))}
+    _check(getattr(_lib, f"scan_rows_{_suffix(blocks.dtype)}")(
+        blocks.ctypes.data, nb, n, w, thresholds.ctypes.data, index.ctypes.data, inv.ctypes.data,
+        gains.ctypes.data, clip.ctypes.data, saturation, scale, margin, core,
+        *(out[key].ctypes.data for key in ("has", "peak", "centre", "core_n", "cut_width",
+                                           "truncated", "rim_ratio", "light"))))
+    out["has"] = out["has"].view(bool)
+    out["truncated"] = out["truncated"].view(bool)
+    return out
