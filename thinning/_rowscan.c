@@ -1,6 +1,6 @@
 /* The per-row pass of the edge measurement, compiled (see thinning/rowscan.py).
  *
- * Plain C functions on C-contiguous arrays, called through ctypes (which releases the GIL
+ * Plain C functions on C arrays, called through ctypes (which releases the GIL
  * for the call, so a block is measured while the decoding threads go on). What they compute
  * is the numpy path of thinning/edges.py (_measure_rows_numpy), row by row: the flicker gain
  * of each frame, each row's dark extent against the threshold map, the deficit integrated
@@ -62,20 +62,29 @@ static int compare_double(const void *a, const void *b)
 
 #define DEFINE_KERNELS(SUFFIX, PIXEL)                                                           \
                                                                                                 \
-/* Flicker gain (upper median of the margin ratios of gain_rows) and clipping of each frame. */ \
-int frame_gains_##SUFFIX(const PIXEL *blocks, int64_t nb, int64_t n, int64_t w,                  \
+/* Flicker gain (upper median of the margin ratios of gain_rows) of each frame, and whether a   \
+ * margin pixel of those rows clips (then the caller judges the gain by the unclipped rows). */ \
+int frame_gains_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nb, int64_t n,      \
+                         int64_t w,                                                             \
                          const int64_t *gain_rows, int64_t g, const double *margin_light,       \
                          int64_t k, double saturation, double *gains, unsigned char *clipped)   \
 {                                                                                               \
     double *ratio = malloc((g > 0 ? g : 1) * sizeof(double));                                   \
     if (!ratio) return -1;                                                                      \
     for (int64_t b = 0; b < nb; b++) {                                                          \
-        const PIXEL *frame = blocks + b * n * w;                                                \
+        const PIXEL *frame = bands[b];                                                          \
+        clipped[b] = 0;                                                                         \
         for (int64_t i = 0; i < g; i++) {                                                       \
-            const PIXEL *row = frame + gain_rows[i] * w;                                        \
+            const PIXEL *row = frame + gain_rows[i] * stride;                                   \
             int64_t total = 0;                                                                  \
-            for (int64_t c = 0; c < k; c++) total += (int64_t)row[c] + (int64_t)row[w - k + c]; \
+            PIXEL top = 0;                                                                      \
+            for (int64_t c = 0; c < k; c++) {                                                   \
+                total += (int64_t)row[c] + (int64_t)row[w - k + c];                             \
+                top = row[c] > top ? row[c] : top;                                              \
+                top = row[w - k + c] > top ? row[w - k + c] : top;                              \
+            }                                                                                   \
             ratio[i] = (double)total / margin_light[gain_rows[i]];                              \
+            if ((double)top >= saturation) clipped[b] = 1;                                      \
         }                                                                                       \
         if (g > 0) {                                                                            \
             qsort(ratio, g, sizeof(double), compare_double);                                    \
@@ -83,19 +92,14 @@ int frame_gains_##SUFFIX(const PIXEL *blocks, int64_t nb, int64_t n, int64_t w, 
         } else {                                                                                \
             gains[b] = 1.0;                                                                     \
         }                                                                                       \
-        clipped[b] = 0;                                                                         \
-        if (saturation < INFINITY) {                                                            \
-            PIXEL top = 0;                                                                      \
-            for (int64_t i = 0; i < n * w; i++) top = frame[i] > top ? frame[i] : top;          \
-            clipped[b] = (double)top >= saturation;                                             \
-        }                                                                                       \
     }                                                                                           \
     free(ratio);                                                                                \
     return 0;                                                                                   \
 }                                                                                               \
                                                                                                 \
 /* Rows of one frame without a clear shadow: their faintest trace of one (set in place). */     \
-static void faint_rows_##SUFFIX(const PIXEL *block, int64_t n, int64_t w, const float *inv_light,\
+static void faint_rows_##SUFFIX(const PIXEL *block, int64_t stride, int64_t n, int64_t w,       \
+                                const float *inv_light,                                         \
                                 const unsigned char *has, double *centre, double *peak,         \
                                 double *cut, double gain, double scale, int64_t margin)         \
 {                                                                                               \
@@ -109,7 +113,7 @@ static void faint_rows_##SUFFIX(const PIXEL *block, int64_t n, int64_t w, const 
         if (has[r]) continue;                                                                   \
         float low = INFINITY;                                                                   \
         for (int64_t c = 0; c < w; c++) {                                                       \
-            float v = (float)block[r * w + c] * inv_light[r * w + c];                           \
+            float v = (float)block[r * stride + c] * inv_light[r * w + c];                      \
             low = v < low ? v : low;                                                            \
         }                                                                                       \
         peak[r] = (1.0f - low / g32) * s32;                                                     \
@@ -129,7 +133,7 @@ static void faint_rows_##SUFFIX(const PIXEL *block, int64_t n, int64_t w, const 
         if (guess - half < 0 || guess + half >= w) continue; /* window leaves the band */       \
         double total = 0.0, moment = 0.0;                                                       \
         for (int64_t c = guess - half; c <= guess + half; c++) {                                \
-            float d = (1.0f - ((float)block[r * w + c] * inv_light[r * w + c]) / g32) * s32;    \
+            float d = (1.0f - ((float)block[r * stride + c] * inv_light[r * w + c]) / g32) * s32; \
             total += d;                                                                         \
             moment += d * (double)c;                                                            \
         }                                                                                       \
@@ -138,11 +142,13 @@ static void faint_rows_##SUFFIX(const PIXEL *block, int64_t n, int64_t w, const 
     }                                                                                           \
 }                                                                                               \
                                                                                                 \
-/* Row measurements of a stack of bands; outputs (frame, row), preset by the caller:            \
+/* Row measurements of a block of bands (bands[b]: first pixel of frame b's band, rows `stride`  \
+ * pixels apart); outputs (frame, row), preset by the caller:                                   \
  * has = 0, centre = cut = rim_ratio = NaN, core_n = 0, truncated = 0, light = 1. */            \
-int scan_rows_##SUFFIX(const PIXEL *blocks, int64_t nb, int64_t n, int64_t w,                    \
+int scan_rows_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nb, int64_t n,        \
+                       int64_t w,                                                               \
                        const PIXEL *thresholds, const int64_t *map_of_frame,                    \
-                       const float *inv_light, const double *gains, const unsigned char *clipped,\
+                       const float *inv_light, const double *gains,                             \
                        double saturation, double scale, int64_t margin, int64_t core,           \
                        unsigned char *has, double *peak, double *centre, double *core_n,        \
                        double *cut, unsigned char *truncated, double *rim_ratio, double *light) \
@@ -159,14 +165,13 @@ int scan_rows_##SUFFIX(const PIXEL *blocks, int64_t nb, int64_t n, int64_t w,   
     unsigned char *mask = (unsigned char *)words; /* the row's dark pixels, eight to a word */  \
     float s32 = (float)scale;                                                                   \
     for (int64_t b = 0; b < nb; b++) {                                                          \
-        const PIXEL *frame = blocks + b * n * w;                                                \
+        const PIXEL *frame = bands[b];                                                          \
         const PIXEL *thr = thresholds + map_of_frame[b] * n * w;                                \
         double gain = gains[b];                                                                 \
         float g32 = (float)gain, factor = (float)(-scale / gain);                               \
-        int clip = clipped[b];                                                                  \
         int64_t o = b * n; /* offset of this frame's rows in the outputs */                    \
         for (int64_t r = 0; r < n; r++) {                                                       \
-            const PIXEL *row = frame + r * w, *t = thr + r * w;                                 \
+            const PIXEL *row = frame + r * stride, *t = thr + r * w;                            \
             const float *inv = inv_light + r * w;                                               \
             for (int64_t c = 0; c < w; c++) mask[c] = row[c] < t[c];                            \
             light[o + r] = (mask[0] && mask[w - 1]) ? 0.0 : 1.0;                                \
@@ -205,7 +210,7 @@ int scan_rows_##SUFFIX(const PIXEL *blocks, int64_t nb, int64_t n, int64_t w,   
                 int64_t col = (wide && s >= zone) ? core_stop + (s - zone) : base + s;          \
                 if (col < 0 || col >= stop) continue;                                           \
                 PIXEL v = row[col];                                                             \
-                if (clip && (double)v >= saturation) continue;                                  \
+                if ((double)v >= saturation) continue; /* clipped: no deficit known */          \
                 float d = ((float)v * inv[col]) * factor + s32;                                 \
                 if (s < zone) left_sum += d; else right_sum += d;                               \
                 moment += (double)s * d;                                                        \
@@ -228,7 +233,7 @@ int scan_rows_##SUFFIX(const PIXEL *blocks, int64_t nb, int64_t n, int64_t w,   
         for (int64_t r = 2; r < n - 2; r++) {                                                   \
             if (!(thick[r] && has[o + r] && core_n[o + r] > 12)) continue;                      \
             if (llabs(lj[r + 2] - lj[r - 2]) > 1 || llabs(rj[r + 2] - rj[r - 2]) > 1) continue; \
-            const PIXEL *row = frame + r * w;                                                   \
+            const PIXEL *row = frame + r * stride;                                              \
             const float *inv = inv_light + r * w;                                               \
             int64_t a0 = lj[r] + core, b0 = rj[r] + 1 - core;                                   \
             float total = (float)row[a0] * inv[a0] + (float)row[a0 + 1] * inv[a0 + 1];          \
@@ -236,7 +241,7 @@ int scan_rows_##SUFFIX(const PIXEL *blocks, int64_t nb, int64_t n, int64_t w,   
             total += (float)row[b0 - 2] * inv[b0 - 2];                                          \
             rim_ratio[o + r] = (total * 0.25f) / g32;                                           \
         }                                                                                       \
-        faint_rows_##SUFFIX(frame, n, w, inv_light, has + o, centre + o, peak + o, cut + o,     \
+        faint_rows_##SUFFIX(frame, stride, n, w, inv_light, has + o, centre + o, peak + o, cut + o,     \
                             gain, scale, margin);                                               \
     }                                                                                           \
     free(words); free(darkness); free(lj); free(rj); free(thick);                               \

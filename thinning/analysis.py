@@ -8,11 +8,14 @@ with one sentence for input it cannot use.
 
 from __future__ import annotations
 
+import importlib
 import json
 import logging
 import math
 import os
 import tempfile
+import threading
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -28,6 +31,8 @@ log = logging.getLogger(__name__)
 RESULT_SCHEMA = "thinning.result/1"
 #: Without --fps, a container rate below this (1/s) is used with a warning (likely a playback rate).
 PLAYBACK_RATE_LIMIT_HZ = 500.0
+#: Modules of the stages after the measurement, imported in the background while it runs.
+LATER_STAGES = ("thinning.characterise", "thinning.plots", "thinning.report.recording")
 DIAMETER_COLUMNS = ["frame", "time_s", "diameter_m", "neck_position_m", "strain_rate_1_s",
                     "hencky_strain", "apparent_extensional_viscosity_Pa_s"]
 
@@ -61,7 +66,6 @@ def analyse(source, out_dir, options: AnalysisOptions, *, progress=None) -> dict
     ``progress``: optional callable ``progress(frames_done, n_frames)``.
     Writes ``diameter.csv``, the figures, ``report.html`` and ``result.json``.
     """
-    from .characterise import characterise
     from .edges import NoFilament
     from .neck import measure_recording, to_physical
 
@@ -73,8 +77,12 @@ def analyse(source, out_dir, options: AnalysisOptions, *, progress=None) -> dict
         recording = open_source(source)
     except UnusableSource as exc:
         raise UnusableInput(str(exc)) from None
-    with recording:
+    # while the frames are measured: the file's hash, and the imports of the later stages
+    # (both mostly outside the GIL or on an idle core; about a second on a laptop)
+    threading.Thread(target=_import_later_stages, name="thinning-imports", daemon=True).start()
+    with recording, ThreadPoolExecutor(max_workers=1) as hasher:
         fps_hz, findings = resolve_frame_rate(options, recording.fps)
+        hashing = hasher.submit(lambda: recording.sha256)
         frames = _counted(recording, progress)
         try:
             series = measure_recording(frames, geometry=options.geometry, roi=options.roi_px,
@@ -88,10 +96,12 @@ def analyse(source, out_dir, options: AnalysisOptions, *, progress=None) -> dict
                 "record-broken-off", Severity.DOUBTFUL,
                 f"The recording broke off after frame {recording.frames_read - 1} of "
                 f"{recording.n_frames} expected; it was analysed up to its last good frame."))
-        sha256 = recording.sha256
+        sha256 = hashing.result()
         source_info = {"path": str(source), "sha256": sha256, "n_frames": int(recording.frames_read),
                        "width_px": int(recording.shape[1]), "height_px": int(recording.shape[0]),
                        "bit_depth": int(recording.bit_depth)}
+
+    from .characterise import characterise
 
     pixel_size_m = _pixel_size(options, series)
     calibration = Calibration(fps_hz=fps_hz, pixel_size_m=pixel_size_m)
@@ -128,6 +138,11 @@ def analyse(source, out_dir, options: AnalysisOptions, *, progress=None) -> dict
     result = _json_safe(result)
     write_outputs(out_dir, result, table, series, rheo)
     return result
+
+
+def _import_later_stages():
+    for name in LATER_STAGES:
+        importlib.import_module(name)
 
 
 def _counted(recording, progress):

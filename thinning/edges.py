@@ -645,17 +645,20 @@ def measure_block(frames, layout: Layout, *, detect_level=DETECT_LEVEL) -> dict:
     import cv2
 
     (a0, a1), (b0, b1) = axial, layout.band
-    first = np.asarray(frames[0])
-    blocks = np.empty((len(frames), a1 - a0, b1 - b0), first.dtype)
-    for block, frame in zip(blocks, frames):  # one copy per frame, straight into the stack
-        if layout.orientation == "vertical":
-            block[...] = np.asarray(frame)[a0:a1, b0:b1]
-        else:
-            cv2.transpose(np.asarray(frame)[b0:b1, a0:a1], block)
-    return _measure_band_stack(blocks, layout, detect_level=detect_level)
+    frames = [np.asarray(frame) for frame in frames]
+    if layout.orientation == "vertical":
+        bands = [frame[a0:a1, b0:b1] for frame in frames]  # views: no copy
+        if not all(band.strides[1] == band.itemsize for band in bands):
+            bands = [np.ascontiguousarray(band) for band in bands]
+    else:  # the axis along the rows: each band transposed into one stack
+        stack = np.empty((len(frames), a1 - a0, b1 - b0), frames[0].dtype)
+        for block, frame in zip(stack, frames):
+            cv2.transpose(frame[b0:b1, a0:a1], block)
+        bands = list(stack)
+    return _measure_bands(bands, layout, detect_level=detect_level)
 
 
-def _measure_band_stack(blocks, layout, *, detect_level=DETECT_LEVEL):
+def _measure_bands(bands, layout, *, detect_level=DETECT_LEVEL):
     """The per-frame path of :func:`_measure_rows`: same quantities, a fraction of the work.
 
     Each row's dark extent comes from one comparison with a threshold map
@@ -665,33 +668,35 @@ def _measure_band_stack(blocks, layout, *, detect_level=DETECT_LEVEL):
     row), and the core of a thick row counts as full shadow. The edges are
     partial-area positions: the end of the left zone minus its integrated
     deficit, the start of the right zone plus its own; a thin row is placed
-    at its deficit centroid. ``blocks`` is a stack of bands (frame, row,
-    column) in the frames' own dtype, C-contiguous. The row pass is compiled
-    (:mod:`thinning.rowscan`) where the install built it, numpy otherwise.
-    Returns arrays (frame, row), and the gain of each frame.
+    at its deficit centroid. ``bands`` is a list of the frames' bands (row,
+    column; axis along the rows) in the frames' own dtype, rows contiguous.
+    The row pass is compiled (:mod:`thinning.rowscan`) where the install
+    built it, numpy otherwise (on a stack of the bands). Returns arrays
+    (frame, row), and the gain of each frame.
     """
     from . import rowscan
 
-    nb, n, w = blocks.shape
+    n, w = bands[0].shape
     k = min(BACKGROUND_COLUMNS, max(1, w // 6))
     probe_rows = layout.gain_rows
     if rowscan.COMPILED:
-        gains, clipped = rowscan.frame_gains(blocks, probe_rows, layout.margin_light, k,
+        gains, clipped = rowscan.frame_gains(bands, probe_rows, layout.margin_light, k,
                                              float(layout.saturation))
     else:
-        gains, clipped = _frame_gains_numpy(blocks, probe_rows, layout.margin_light, k,
+        bands = np.stack(bands)
+        gains, clipped = _frame_gains_numpy(bands, probe_rows, layout.margin_light, k,
                                             layout.saturation)
     for b in np.flatnonzero(clipped | (probe_rows.size < 5)):
-        sample = blocks[b, probe_rows]
+        sample = bands[b][probe_rows]
         ratio = ((sample[:, :k].sum(axis=1, dtype=np.int64) + sample[:, w - k:].sum(axis=1, dtype=np.int64))
                  / layout.margin_light[probe_rows])
-        gains[b] = _frame_gain(blocks[b], layout, ratio, sample, k, bool(clipped[b]))
-    maps = [layout.threshold_map(blocks.dtype, detect_level, g) for g in gains]
+        gains[b] = _frame_gain(bands[b], layout, ratio, sample, k, bool(clipped[b]))
+    maps = [layout.threshold_map(bands[0].dtype, detect_level, g) for g in gains]
     distinct = list({id(m): m for m in maps}.values())
     map_of_frame = np.array([next(i for i, d in enumerate(distinct) if d is m) for m in maps])
     thresholds = distinct[0][None] if len(distinct) == 1 else np.stack(distinct)
     scan = rowscan.scan_rows if rowscan.COMPILED else _scan_rows_numpy
-    rows = scan(blocks, thresholds, map_of_frame, layout.inverse_backlight, gains, clipped,
+    rows = scan(bands, thresholds, map_of_frame, layout.inverse_backlight, gains,
                 float(layout.saturation), 1.0 / max(1.0 - layout.shadow_fraction, 1e-3),
                 layout.margin_px, layout.core_px)
     rows["gain"] = gains
@@ -705,10 +710,8 @@ def _frame_gains_numpy(blocks, gain_rows, margin_light, k, saturation):
     margins = (sample[:, :, :k].sum(axis=2, dtype=np.int64)
                + sample[:, :, w - k:].sum(axis=2, dtype=np.int64))
     ratio = margins / margin_light[gain_rows]
-    if saturation < math.inf:
-        clipped = blocks.reshape(nb, -1).max(axis=1) >= saturation
-    else:
-        clipped = np.zeros(nb, bool)
+    top = np.maximum(sample[:, :, :k].max(axis=2), sample[:, :, w - k:].max(axis=2))
+    clipped = top.max(axis=1, initial=0) >= saturation
     if ratio.shape[1]:
         gains = np.partition(ratio, ratio.shape[1] // 2, axis=1)[:, ratio.shape[1] // 2]
     else:
@@ -716,8 +719,8 @@ def _frame_gains_numpy(blocks, gain_rows, margin_light, k, saturation):
     return gains, clipped
 
 
-def _scan_rows_numpy(blocks, thresholds, map_of_frame, inv_light, gains, clipped, saturation,
-                     scale, margin, core):
+def _scan_rows_numpy(blocks, thresholds, map_of_frame, inv_light, gains, saturation, scale,
+                     margin, core):
     """:func:`thinning.rowscan.scan_rows` in numpy, for installs without the compiled module."""
     import cv2
 
@@ -760,8 +763,7 @@ def _scan_rows_numpy(blocks, thresholds, map_of_frame, inv_light, gains, clipped
     deficit = values * flat_inv.take(cols)
     deficit *= (-scale / gains).astype(np.float32)[:, None, None]
     deficit += np.float32(scale)
-    if clipped.any():  # frames without clipping have no pixel at the saturation level
-        deficit[values >= saturation] = 0.0
+    deficit[values >= saturation] = 0.0  # clipped: no deficit known
     deficit *= use
     weights = np.zeros((2 * zone, 3), np.float32)  # left-zone sum, right-zone sum, first moment
     weights[:zone, 0] = weights[zone:, 1] = 1.0

@@ -30,7 +30,9 @@ VIDEO_SUFFIXES = {".avi", ".mp4", ".mov", ".mkv", ".m4v", ".wmv", ".mpg", ".mpeg
 TIFF_SUFFIXES = {".tif", ".tiff"}
 IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".pgm", ".ppm"}
 #: Bytes of frames read ahead of the consumer (decoded in a background thread meanwhile).
-READ_AHEAD_BYTES = 32 << 20
+READ_AHEAD_BYTES = 16 << 20
+#: Compressed frames decoded together by one task of the decoding pool.
+DECODE_BATCH = 8
 
 
 class UnusableSource(ValueError):
@@ -140,6 +142,8 @@ class FrameSource:
     shape: tuple[int, int]
     dtype: np.dtype
     bit_depth: int
+    #: Frames in one item of ``_frames()`` (a batch decoded by one task), for the read-ahead depth.
+    _frames_per_item = 1
 
     def __init__(self, path):
         self.path = str(path)
@@ -153,13 +157,17 @@ class FrameSource:
         self.broken_off = False
         frame_bytes = self.shape[0] * self.shape[1] * np.dtype(self.dtype).itemsize
         depth = int(np.clip(READ_AHEAD_BYTES // max(frame_bytes, 1), 4, 256))
-        for frame in read_ahead(self._frames(), depth):
-            if isinstance(frame, Future):
-                frame = frame.result()
+        depth = max(4, depth // self._frames_per_item)
+        for item in read_ahead(self._frames(), depth):
+            batch = item.result() if isinstance(item, Future) else (item,)
+            for frame in batch:
                 if frame is None:  # a packet that does not decode: the stream ends here
                     break
-            self.frames_read += 1
-            yield frame
+                self.frames_read += 1
+                yield frame
+            else:
+                continue
+            break
         if self.frames_read < self.n_frames:
             self.broken_off = True
 
@@ -167,7 +175,8 @@ class FrameSource:
         return self.n_frames
 
     def _frames(self):
-        """Generator of the frames in order (2-D arrays, or futures of them)."""
+        """Generator of the frames in order: 2-D arrays, or futures of lists of them (None for a
+        frame that does not decode, which ends the stream)."""
         raise NotImplementedError
 
     def _hashed_files(self):
@@ -194,8 +203,9 @@ class VideoSource(FrameSource):
     """A video file read through OpenCV's FFmpeg backend, grey frames without colour conversion.
 
     MJPG files are read as compressed packets and decoded in a small thread
-    pool (OpenCV releases the GIL), the fastest route measured on this kind
-    of machine (``shared/reference/platform-notes.md``).
+    pool (OpenCV releases the GIL), :data:`DECODE_BATCH` packets per task,
+    the fastest route measured on this kind of machine
+    (``shared/reference/platform-notes.md``, ``benchmarks/speed.py``).
     """
 
     def __init__(self, path, *, decode_threads=2):
@@ -220,6 +230,8 @@ class VideoSource(FrameSource):
         self.fps = rate if rate > 0 and np.isfinite(rate) else None
         fourcc = int(cap.get(cv2.CAP_PROP_FOURCC) or 0)
         self.codec = "".join(chr((fourcc >> (8 * i)) & 0xFF) for i in range(4)).strip("\x00 ")
+        if self.codec.upper() == "MJPG":
+            self._frames_per_item = DECODE_BATCH
         cap.release()
 
     def _open(self, *, packets=False):
@@ -249,20 +261,25 @@ class VideoSource(FrameSource):
             cap.release()
 
     def _mjpg_frames(self):
-        """Futures of the frames: compressed packets decoded in a thread pool."""
+        """Futures of the frames, a few at a time: compressed packets decoded in a thread pool."""
         cv2 = self._cv2
         cap = self._open(packets=True)
 
-        def decode(packet):
-            return cv2.imdecode(packet, cv2.IMREAD_GRAYSCALE)
+        def decode(packets):
+            return [cv2.imdecode(packet, cv2.IMREAD_GRAYSCALE) for packet in packets]
 
         try:
             with ThreadPoolExecutor(max_workers=self._threads) as pool:
+                packets = []
                 while True:
                     ok, packet = cap.read()
+                    if ok and packet is not None:
+                        packets.append(packet.reshape(-1).copy())
+                    if packets and (len(packets) == DECODE_BATCH or not ok or packet is None):
+                        yield pool.submit(decode, packets)
+                        packets = []
                     if not ok or packet is None:
                         break
-                    yield pool.submit(decode, packet.reshape(-1).copy())
         finally:
             cap.release()
 

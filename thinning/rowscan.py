@@ -1,7 +1,8 @@
 """The per-row pass of the edge measurement, compiled: a stack of bands → row arrays.
 
-:func:`thinning.edges.measure_block` hands a stack of bands (frame, row,
-column; axis along the rows; C-contiguous) to these two functions when the
+:func:`thinning.edges.measure_block` hands a block of bands (the region
+analysed of each frame, axis along the rows: views into the decoded frames,
+or a transposed copy for a horizontal filament) to these two functions when the
 compiled module ``thinning._rowscan`` (``thinning/_rowscan.c``, built by
 ``setup.py`` when a C compiler is at hand) is installed; without it the
 numpy path in :mod:`thinning.edges` gives the same quantities, about three
@@ -32,10 +33,10 @@ def _load():
     p, i, d = ctypes.c_void_p, ctypes.c_int64, ctypes.c_double
     for suffix in ("u8", "u16"):
         gains = getattr(lib, f"frame_gains_{suffix}")
-        gains.argtypes = [p, i, i, i, p, i, p, i, d, p, p]
+        gains.argtypes = [p, i, i, i, i, p, i, p, i, d, p, p]
         gains.restype = ctypes.c_int
         scan = getattr(lib, f"scan_rows_{suffix}")
-        scan.argtypes = [p, i, i, i, p, p, p, p, p, d, d, i, i, p, p, p, p, p, p, p, p]
+        scan.argtypes = [p, i, i, i, i, p, p, p, p, d, d, i, i, p, p, p, p, p, p, p, p]
         scan.restype = ctypes.c_int
     return lib
 
@@ -53,55 +54,73 @@ def _suffix(dtype):
     raise TypeError(f"the compiled row pass reads 8- or 16-bit frames, not {dtype}")
 
 
+def _pointers(bands):
+    """The first pixel of each band and the common row stride (pixels) of a list of 2-D views."""
+    first = bands[0]
+    stride, item = first.strides[0], first.itemsize
+    for band in bands:
+        if (band.shape != first.shape or band.dtype != first.dtype or band.strides[0] != stride
+                or band.strides[1] != item):
+            raise ValueError("the bands of a block must share shape, dtype and row stride, "
+                             "with contiguous rows")
+    return (ctypes.c_void_p * len(bands))(*[band.ctypes.data for band in bands]), stride // item
+
+
 def _check(status):
     if status != 0:
         raise MemoryError("the compiled row pass could not allocate its row buffers")
 
 
-def frame_gains(blocks, gain_rows, margin_light, k, saturation):
-    """Flicker gain and clipping of each frame of ``blocks`` (frame, row, column).
+def frame_gains(bands, gain_rows, margin_light, k, saturation):
+    """Flicker gain and clipping of each band of a block (``bands``: list of 2-D views, row, column).
 
     The gain is the upper median, over ``gain_rows``, of the ratio of the
     row's ``k`` margin columns on each side to ``margin_light`` (the light
-    field's margin sums per row); a frame is clipped when any pixel reaches
-    ``saturation``. Returns ``gains`` (float64) and ``clipped`` (bool).
+    field's margin sums per row); ``clipped`` tells the frames where one of
+    those margin pixels reaches ``saturation`` (their gain is to be judged
+    by the unclipped rows). Returns ``gains`` (float64) and ``clipped`` (bool).
     """
-    nb, n, w = blocks.shape
+    (n, w), nb = bands[0].shape, len(bands)
+    pointers, stride = _pointers(bands)
     rows = np.ascontiguousarray(gain_rows, dtype=np.int64)
     light = np.ascontiguousarray(margin_light, dtype=np.float64)
     gains = np.empty(nb)
     clipped = np.zeros(nb, np.uint8)
-    _check(getattr(_lib, f"frame_gains_{_suffix(blocks.dtype)}")(
-        blocks.ctypes.data, nb, n, w, rows.ctypes.data, rows.size, light.ctypes.data, k,
+    _check(getattr(_lib, f"frame_gains_{_suffix(bands[0].dtype)}")(
+        pointers, stride, nb, n, w, rows.ctypes.data, rows.size, light.ctypes.data, k,
         saturation, gains.ctypes.data, clipped.ctypes.data))
     return gains, clipped.view(bool)
 
 
-def scan_rows(blocks, thresholds, map_of_frame, inv_light, gains, clipped, saturation, scale,
-              margin, core):
-    """Row measurements of a stack of bands (see :func:`thinning.edges.measure_block`).
+def scan_rows(bands, thresholds, map_of_frame, inv_light, gains, saturation, scale, margin, core):
+    """Row measurements of a block of bands (see :func:`thinning.edges.measure_block`).
 
+    ``bands`` a list of 2-D views (row, column; axis along the rows) with
+    contiguous rows and one row stride, such as the bands of the decoded
+    frames themselves (no copy).
     ``thresholds`` (map, row, column) grey levels of the detection level in
     the frames' dtype, ``map_of_frame`` which map each frame uses;
-    ``inv_light`` 1 / light field (float32); ``gains``/``clipped`` from
-    :func:`frame_gains`; ``scale`` = 1 / (1 − shadow fraction);
+    ``inv_light`` 1 / light field (float32); ``gains`` from
+    :func:`frame_gains` (pixels at ``saturation`` carry no deficit);
+    ``scale`` = 1 / (1 − shadow fraction);
     ``margin``/``core`` the zone reach outside and inside an edge (px).
     Returns a dict of arrays (frame, row): has, peak, centre, core_n,
     cut_width, truncated, rim_ratio, light.
     """
-    nb, n, w = blocks.shape
-    thresholds = np.ascontiguousarray(thresholds, dtype=blocks.dtype)
+    (n, w), nb = bands[0].shape, len(bands)
+    pointers, stride = _pointers(bands)
+    dtype = bands[0].dtype
+    thresholds = np.ascontiguousarray(thresholds, dtype=dtype)
     index = np.ascontiguousarray(map_of_frame, dtype=np.int64)
     inv = np.ascontiguousarray(inv_light, dtype=np.float32)
     gains = np.ascontiguousarray(gains, dtype=np.float64)
-    clip = np.ascontiguousarray(clipped, dtype=np.uint8)
     out = {"has": np.zeros((nb, n), np.uint8), "peak": np.empty((nb, n)),
            "centre": np.full((nb, n), np.nan), "core_n": np.zeros((nb, n)),
            "cut_width": np.full((nb, n), np.nan), "truncated": np.zeros((nb, n), np.uint8),
            "rim_ratio": np.full((nb, n), np.nan), "light": np.ones((nb, n))}
-    _check(getattr(_lib, f"scan_rows_{_suffix(blocks.dtype)}")(
-        blocks.ctypes.data, nb, n, w, thresholds.ctypes.data, index.ctypes.data, inv.ctypes.data,
-        gains.ctypes.data, clip.ctypes.data, saturation, scale, margin, core,
+    _check(getattr(_lib, f"scan_rows_{_suffix(dtype)}")(
+        pointers, stride, nb, n, w, thresholds.ctypes.data, index.ctypes.data, inv.ctypes.data,
+        gains.ctypes.data, saturation, scale, margin, core,
         *(out[key].ctypes.data for key in ("has", "peak", "centre", "core_n", "cut_width",
                                            "truncated", "rim_ratio", "light"))))
     out["has"] = out["has"].view(bool)
