@@ -57,6 +57,8 @@ BACKGROUND_COLUMNS = 6
 DETECT_LEVEL = 0.25
 #: Smallest peak deficit for a row to count as crossed by the thread (connectivity).
 PRESENCE_LEVEL = 0.12
+#: Largest departure (degrees) of a frame's axis from the layout's, and of the neck's from the frame's.
+MAX_BEND_DEG = 1.5
 
 
 class NoFilament(ValueError):
@@ -887,7 +889,7 @@ def axis_slopes(y, centre, ok, base_slope, max_bend_deg):
 
 
 def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DETECT_LEVEL,
-                 presence_level=PRESENCE_LEVEL, max_bend_deg=1.5) -> Profile:
+                 presence_level=PRESENCE_LEVEL, max_bend_deg=MAX_BEND_DEG) -> Profile:
     """Both edges of the filament on every row of the band, sub-pixel (see module docstring).
 
     ``shadow_fraction``: shadow level over backlight to use (e.g. a running
@@ -916,7 +918,7 @@ def rim_fractions(rows) -> np.ndarray:
 
 
 def profiles_of(rows, layout: Layout, *, shadow_fraction, presence_level=PRESENCE_LEVEL,
-                max_bend_deg=1.5) -> "ProfileBlock":
+                max_bend_deg=MAX_BEND_DEG) -> "ProfileBlock":
     """The profiles of a block of frames from their row measurements (options of :func:`locate_edges`).
 
     ``shadow_fraction``: per frame, the shadow level over backlight to scale

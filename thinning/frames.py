@@ -30,7 +30,7 @@ VIDEO_SUFFIXES = {".avi", ".mp4", ".mov", ".mkv", ".m4v", ".wmv", ".mpg", ".mpeg
 TIFF_SUFFIXES = {".tif", ".tiff"}
 IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".pgm", ".ppm"}
 #: Bytes of frames read ahead of the consumer (decoded in a background thread meanwhile).
-READ_AHEAD_BYTES = 16 << 20
+READ_AHEAD_BYTES = 32 << 20
 #: Compressed frames decoded together by one task of the decoding pool.
 DECODE_BATCH = 8
 

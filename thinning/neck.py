@@ -31,8 +31,10 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 
-from .edges import (Layout, NoFilament, Profile, ProfileBlock, axis_slopes, find_layout,
-                    measure_block, profiles_of, refresh_light, rim_fractions)
+from . import rowscan
+from .edges import (MAX_BEND_DEG, PRESENCE_LEVEL, Layout, NoFilament, Profile, ProfileBlock,
+                    axis_slopes, find_layout, measure_block, profiles_of, refresh_light,
+                    rim_fractions)
 from .findings import Finding, Severity
 
 log = logging.getLogger(__name__)
@@ -48,6 +50,9 @@ TILT_LIMIT_DEG = 2.0
 #: Pixels of band measured together (about 4 MB of 8-bit frames): a stack of frames shares
 #: the fixed cost of each numpy call on the profiles.
 BLOCK_PIXELS = 1 << 22
+#: Half-length (rows) of the neck fit's window: at most, and at least.
+MAX_HALF_WINDOW = 40
+MIN_HALF_WINDOW = 3
 
 TABLE_COLUMNS = ["frame", "diameter_px", "neck_position_px", "axis_angle_deg", "axis_lateral_px",
                  "min_contrast", "thread_connected", "filament_seen", "plate_gap_px", "beads",
@@ -123,8 +128,8 @@ def quadratic_fits(x, y, use):
     return a, b, c, solvable
 
 
-def necks_of(profiles: ProfileBlock, *, row_noise_px=0.1, max_half_window=40, min_half_window=3,
-             max_bend_deg=1.5) -> dict:
+def necks_of(profiles: ProfileBlock, *, row_noise_px=0.1, max_half_window=MAX_HALF_WINDOW,
+             min_half_window=MIN_HALF_WINDOW, max_bend_deg=MAX_BEND_DEG) -> dict:
     """Minimum diameter of each frame of a block from a local quadratic fit along the axis.
 
     ``row_noise_px``: expected noise of one row's width; the fit window
@@ -300,16 +305,41 @@ def _measure_pending(pending, layout, fraction, row_noise, records, snaps):
         fractions.append(fraction)
         if np.isfinite(own):
             fraction += SHADOW_SMOOTHING * (own - fraction)
-    profiles = profiles_of(rows, layout, shadow_fraction=fractions)
-    record = necks_of(profiles, row_noise_px=row_noise)
-    record.update(frame=np.array([index for index, _ in pending]), thread_connected=profiles.connected,
-                  filament_seen=profiles.present.any(axis=1), plate_gap_px=_gaps(profiles, layout))
+    frames = [index for index, _ in pending]
+    if rowscan.COMPILED:
+        record = rowscan.necks(rows, fractions, **_neck_options(layout, row_noise))
+        profile_of = _single_profiles(rows, layout, fractions)
+    else:
+        profiles = profiles_of(rows, layout, shadow_fraction=fractions)
+        record = necks_of(profiles, row_noise_px=row_noise)
+        record.update(thread_connected=profiles.connected, filament_seen=profiles.present.any(axis=1),
+                      plate_gap_px=_gaps(profiles, layout))
+        profile_of = profiles.frame
+    record["frame"] = np.array(frames)
     records.append(record)
     for b, (index, frame) in enumerate(pending):
         if snaps.wants(index):
-            snaps.keep(index, frame, profiles.frame(b))
+            snaps.keep(index, frame, profile_of(b))
     pending.clear()
     return fraction
+
+
+def _neck_options(layout: Layout, row_noise):
+    """The numbers of :func:`thinning.rowscan.necks` for one layout (see :func:`necks_of`)."""
+    return {"layout_fraction": layout.shadow_fraction, "end_widths": layout.end_widths_px,
+            "face_px": int(math.ceil(3.0 * layout.blur_sigma_px)) + 1,
+            "axial0": float(layout.axial_range[0]), "band0": float(layout.band[0]),
+            "present_level": max(PRESENCE_LEVEL, 5.0 * layout.noise),
+            "layout_slope": layout.axis_slope, "bend": math.tan(math.radians(MAX_BEND_DEG)),
+            "row_noise": row_noise, "max_half": MAX_HALF_WINDOW, "min_half": MIN_HALF_WINDOW}
+
+
+def _single_profiles(rows, layout, fractions):
+    """A function giving the :class:`Profile` of frame ``b`` of the block (for the snapshots)."""
+    def profile_of(b):
+        one = {key: value[b:b + 1] for key, value in rows.items()}
+        return profiles_of(one, layout, shadow_fraction=[fractions[b]]).frame(0)
+    return profile_of
 
 
 def _empty(index):

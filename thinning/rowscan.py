@@ -38,6 +38,8 @@ def _load():
         scan = getattr(lib, f"scan_rows_{suffix}")
         scan.argtypes = [p, i, i, i, i, p, p, p, p, d, d, i, i, p, p, p, p, p, p, p, p]
         scan.restype = ctypes.c_int
+    lib.necks.argtypes = [i, i] + [p] * 7 + [d, p, p, i, d, d, d, d, d, d, i, i] + [p] * 10
+    lib.necks.restype = ctypes.c_int
     return lib
 
 
@@ -125,4 +127,40 @@ def scan_rows(bands, thresholds, map_of_frame, inv_light, gains, saturation, sca
                                            "truncated", "rim_ratio", "light"))))
     out["has"] = out["has"].view(bool)
     out["truncated"] = out["truncated"].view(bool)
+    return out
+
+
+#: Per-frame results of :func:`necks`, in the order the C function writes them, and their dtypes.
+NECK_COLUMNS = (("diameter_px", np.float64), ("neck_position_px", np.float64),
+                ("axis_angle_deg", np.float64), ("axis_lateral_px", np.float64),
+                ("min_contrast", np.float64), ("fit_rows", np.int64), ("beads", np.uint8),
+                ("thread_connected", np.uint8), ("filament_seen", np.uint8),
+                ("plate_gap_px", np.float64))
+
+
+def necks(rows, fraction, *, layout_fraction, end_widths, face_px, axial0, band0, present_level,
+          layout_slope, bend, row_noise, max_half, min_half):
+    """The neck of each frame of a block: :func:`thinning.edges.profiles_of` and
+    :func:`thinning.neck.necks_of` in one compiled pass (same arithmetic).
+
+    ``rows`` from :func:`scan_rows`; ``fraction`` the shadow level over
+    backlight of each frame (NaN: ``layout_fraction``); ``end_widths`` the
+    layout's two end-body widths (None, a width in px, or inf); the rest
+    are the layout's numbers and the neck fit's options (px, slopes as
+    tangents). Returns a dict of per-frame arrays named as :data:`NECK_COLUMNS`.
+    """
+    nb, n = rows["cut_width"].shape
+    kinds = np.array([0 if v is None else (1 if np.isfinite(v) else 2) for v in end_widths], np.int64)
+    widths = np.array([v if v is not None and np.isfinite(v) else 0.0 for v in end_widths])
+    inputs = [np.ascontiguousarray(rows[key], dtype=np.float64)
+              for key in ("cut_width", "core_n", "peak", "centre")]
+    inputs.append(np.ascontiguousarray(rows["truncated"], dtype=np.uint8))
+    inputs.append(np.ascontiguousarray(rows["light"], dtype=np.float64))
+    inputs.append(np.ascontiguousarray(fraction, dtype=np.float64))
+    out = {name: np.empty(nb, dtype) for name, dtype in NECK_COLUMNS}
+    _check(_lib.necks(nb, n, *(a.ctypes.data for a in inputs), layout_fraction, kinds.ctypes.data,
+                      widths.ctypes.data, face_px, axial0, band0, present_level, layout_slope, bend,
+                      row_noise, max_half, min_half, *(out[name].ctypes.data for name, _ in NECK_COLUMNS)))
+    for name in ("beads", "thread_connected", "filament_seen"):
+        out[name] = out[name].view(bool)
     return out
