@@ -29,8 +29,10 @@ log = logging.getLogger(__name__)
 VIDEO_SUFFIXES = {".avi", ".mp4", ".mov", ".mkv", ".m4v", ".wmv", ".mpg", ".mpeg", ".webm", ".ogv"}
 TIFF_SUFFIXES = {".tif", ".tiff"}
 IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".pgm", ".ppm"}
-#: Bytes of frames read ahead of the consumer (decoded in a background thread meanwhile).
+#: Frames read ahead of the consumer (decoded in a background thread meanwhile): at most this
+#: many bytes, and at most this many items of ``_frames()`` (single frames, or decoded batches).
 READ_AHEAD_BYTES = 32 << 20
+READ_AHEAD_ITEMS = 32
 #: Compressed frames decoded together by one task of the decoding pool.
 DECODE_BATCH = 8
 
@@ -156,8 +158,8 @@ class FrameSource:
         self.frames_read = 0
         self.broken_off = False
         frame_bytes = self.shape[0] * self.shape[1] * np.dtype(self.dtype).itemsize
-        depth = int(np.clip(READ_AHEAD_BYTES // max(frame_bytes, 1), 4, 256))
-        depth = max(4, depth // self._frames_per_item)
+        per_item = frame_bytes * self._frames_per_item
+        depth = int(np.clip(READ_AHEAD_BYTES // max(per_item, 1), 2, READ_AHEAD_ITEMS))
         for item in read_ahead(self._frames(), depth):
             batch = item.result() if isinstance(item, Future) else (item,)
             for frame in batch:
