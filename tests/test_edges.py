@@ -190,23 +190,13 @@ def test_dust_speck_beside_the_thread_is_not_part_of_it():
     assert np.all(np.abs(profile.cut_width_px[rows] - 8.0) < 0.2)
 
 
-@pytest.mark.parametrize("optics", [
-    {},
-    {"blur_sigma_px": 2.0, "dust_specks": 20, "streak_strength": 0.8, "bit_depth": 12},
-    {"orientation": "horizontal", "tilt_deg": 3.0, "background_level": 0.99, "flicker": 0.08},
-], ids=["plain", "12-bit-dust-streak", "horizontal-clipping"])
-def test_compiled_row_pass_matches_the_numpy_path(optics, monkeypatch):
+def test_compiled_row_pass_matches_the_numpy_path(beaded_recording, monkeypatch):
     # the compiled row pass (thinning/_rowscan.c) and the numpy path are two codings of one
     # method: the same rows, widths and centres to float32 rounding, frame for frame
-    from thinning import rowscan, synth
+    from thinning import rowscan
     from thinning.edges import measure_block
 
-    if not rowscan.COMPILED:
-        pytest.skip("the compiled row pass was not built in this install")
-    scene = synth.dilute_polymer_plates(fps_hz=1000.0, frame_size_px=(200, 160),
-                                        pixel_size_m=25e-6, beads=True)
-    frames, _ = synth.render_recording(scene, synth.Optics(**optics), seed=3)
-    frames = list(frames)
+    frames = beaded_recording
     compiled = measure_block(frames, find_layout(frames[0]))
     monkeypatch.setattr(rowscan, "COMPILED", False)
     plain = measure_block(frames, find_layout(frames[0]))  # its own cache of threshold maps

@@ -141,22 +141,12 @@ def test_neck_quadratic_matches_numpy_polyfit():
     assert not quadratic_fits(x_block[:1], y_block[:1], use[:1] & (np.arange(width) < 3))[3][0]
 
 
-@pytest.mark.parametrize("optics", [
-    {},
-    {"blur_sigma_px": 2.0, "dust_specks": 20, "streak_strength": 0.8, "bit_depth": 12},
-    {"orientation": "horizontal", "tilt_deg": 3.0, "background_level": 0.99, "flicker": 0.08},
-], ids=["plain", "12-bit-dust-streak", "horizontal-clipping"])
-def test_compiled_measurement_matches_the_numpy_path(optics, monkeypatch):
+def test_compiled_measurement_matches_the_numpy_path(beaded_recording, monkeypatch):
     # thinning/_rowscan.c and the numpy path are two codings of one method: the same table,
     # frame for frame, to rounding (the compiled sums run in another order)
-    from thinning import rowscan, synth
+    from thinning import rowscan
 
-    if not rowscan.COMPILED:
-        pytest.skip("the compiled row pass was not built in this install")
-    scene = synth.dilute_polymer_plates(fps_hz=1000.0, frame_size_px=(200, 160),
-                                        pixel_size_m=25e-6, beads=True)
-    frames, truth = synth.render_recording(scene, synth.Optics(**optics), seed=3)
-    frames = list(frames)
+    frames = beaded_recording
     compiled = measure_recording(frames, n_frames=len(frames))
     monkeypatch.setattr(rowscan, "COMPILED", False)
     plain = measure_recording(frames, n_frames=len(frames))

@@ -7,9 +7,10 @@ analysing, the light field of that band, the shadow level, the blur and the
 noise. :func:`locate_edges` then measures one frame in that layout and
 returns a :class:`Profile`; :func:`refresh_light` refits the light field on
 a later frame that shows more background. For a stream, :func:`measure_block`
-measures a small stack of frames at once (each numpy call's fixed cost shared
-by the stack) and :func:`profiles_of` turns it into one profile per frame,
-with the same results as :func:`locate_edges` frame by frame.
+measures a block of frames at once (compiled in :mod:`thinning.rowscan` where
+the install built it, numpy otherwise) and :func:`profiles_of` turns it into
+the profiles of the block, with the same results as :func:`locate_edges`
+frame by frame.
 
 Method, per frame (vectorised over rows, axis along the rows of the band):
 
@@ -631,10 +632,11 @@ def measure_block(frames, layout: Layout, *, detect_level=DETECT_LEVEL) -> dict:
     """Row measurements of several frames of one layout at once: arrays (frame, row).
 
     The same quantities as measuring each frame alone (:func:`locate_edges`),
-    with each array operation done once for the whole stack: on frames this
-    small the per-call cost of numpy dominates. ``frames`` is a sequence of
-    2-D frames of one shape. The result goes to :func:`rim_fractions` and
-    :func:`profiles_of`.
+    with the fixed cost of each call shared by the block. ``frames`` is a
+    sequence of 2-D frames of one shape; the bands are read inside them (a
+    horizontal filament's are transposed into one stack). The result goes to
+    :func:`rim_fractions` and :func:`profiles_of` (or
+    :func:`thinning.rowscan.necks`).
     """
     axial = layout.axial_range
     if layout.backlight is None:
@@ -682,6 +684,7 @@ def _measure_bands(bands, layout, *, detect_level=DETECT_LEVEL):
     k = min(BACKGROUND_COLUMNS, max(1, w // 6))
     probe_rows = layout.gain_rows
     if rowscan.COMPILED:
+        bands = rowscan.Bands(bands)
         gains, clipped = rowscan.frame_gains(bands, probe_rows, layout.margin_light, k,
                                              float(layout.saturation))
     else:
@@ -695,7 +698,8 @@ def _measure_bands(bands, layout, *, detect_level=DETECT_LEVEL):
         gains[b] = _frame_gain(bands[b], layout, ratio, sample, k, bool(clipped[b]))
     maps = [layout.threshold_map(bands[0].dtype, detect_level, g) for g in gains]
     distinct = list({id(m): m for m in maps}.values())
-    map_of_frame = np.array([next(i for i, d in enumerate(distinct) if d is m) for m in maps])
+    which = {id(m): i for i, m in enumerate(distinct)}
+    map_of_frame = np.array([which[id(m)] for m in maps])
     thresholds = distinct[0][None] if len(distinct) == 1 else np.stack(distinct)
     scan = rowscan.scan_rows if rowscan.COMPILED else _scan_rows_numpy
     rows = scan(bands, thresholds, map_of_frame, layout.inverse_backlight, gains,

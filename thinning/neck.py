@@ -2,9 +2,11 @@
 
 :func:`measure_recording` makes one pass over a stream of frames (constant
 memory in the number of frames): it finds the layout on the first frame
-that shows a filament, measures the frames in small blocks
-(:func:`thinning.edges.measure_block`, then a profile per frame), and reduces
-each profile to one row:
+that shows a filament, measures the frames in blocks
+(:func:`thinning.edges.measure_block`, then the profiles and necks of the
+block: :func:`thinning.rowscan.necks` where it is compiled, else
+:func:`thinning.edges.profiles_of` and :func:`necks_of`), and reduces each
+frame to one row:
 
 - the neck is the thinnest part of the free filament (between beads, if
   any): around the thinnest rows a quadratic in the axial coordinate is

@@ -56,16 +56,28 @@ def _suffix(dtype):
     raise TypeError(f"the compiled row pass reads 8- or 16-bit frames, not {dtype}")
 
 
-def _pointers(bands):
-    """The first pixel of each band and the common row stride (pixels) of a list of 2-D views."""
-    first = bands[0]
-    stride, item = first.strides[0], first.itemsize
-    for band in bands:
-        if (band.shape != first.shape or band.dtype != first.dtype or band.strides[0] != stride
-                or band.strides[1] != item):
-            raise ValueError("the bands of a block must share shape, dtype and row stride, "
-                             "with contiguous rows")
-    return (ctypes.c_void_p * len(bands))(*[band.ctypes.data for band in bands]), stride // item
+class Bands:
+    """A block of bands for the compiled passes: 2-D views (row, column) sharing shape, dtype
+    and row stride, with contiguous rows (such as the same region of each decoded frame)."""
+
+    def __init__(self, views):
+        first = views[0]
+        self.shape, self.dtype = first.shape, first.dtype
+        stride, item = first.strides[0], first.itemsize
+        for view in views:
+            if (view.shape != self.shape or view.dtype != self.dtype or view.strides[0] != stride
+                    or view.strides[1] != item):
+                raise ValueError("the bands of a block must share shape, dtype and row stride, "
+                                 "with contiguous rows")
+        self.views = views
+        self.stride = stride // item  # pixels from one row to the next
+        self.pointers = (ctypes.c_void_p * len(views))(*[view.ctypes.data for view in views])
+
+    def __len__(self):
+        return len(self.views)
+
+    def __getitem__(self, b):
+        return self.views[b]
 
 
 def _check(status):
@@ -73,8 +85,8 @@ def _check(status):
         raise MemoryError("the compiled row pass could not allocate its row buffers")
 
 
-def frame_gains(bands, gain_rows, margin_light, k, saturation):
-    """Flicker gain and clipping of each band of a block (``bands``: list of 2-D views, row, column).
+def frame_gains(bands: Bands, gain_rows, margin_light, k, saturation):
+    """Flicker gain and clipping of each band of a block.
 
     The gain is the upper median, over ``gain_rows``, of the ratio of the
     row's ``k`` margin columns on each side to ``margin_light`` (the light
@@ -82,24 +94,23 @@ def frame_gains(bands, gain_rows, margin_light, k, saturation):
     those margin pixels reaches ``saturation`` (their gain is to be judged
     by the unclipped rows). Returns ``gains`` (float64) and ``clipped`` (bool).
     """
-    (n, w), nb = bands[0].shape, len(bands)
-    pointers, stride = _pointers(bands)
+    (n, w), nb = bands.shape, len(bands)
     rows = np.ascontiguousarray(gain_rows, dtype=np.int64)
     light = np.ascontiguousarray(margin_light, dtype=np.float64)
     gains = np.empty(nb)
     clipped = np.zeros(nb, np.uint8)
-    _check(getattr(_lib, f"frame_gains_{_suffix(bands[0].dtype)}")(
-        pointers, stride, nb, n, w, rows.ctypes.data, rows.size, light.ctypes.data, k,
+    _check(getattr(_lib, f"frame_gains_{_suffix(bands.dtype)}")(
+        bands.pointers, bands.stride, nb, n, w, rows.ctypes.data, rows.size, light.ctypes.data, k,
         saturation, gains.ctypes.data, clipped.ctypes.data))
     return gains, clipped.view(bool)
 
 
-def scan_rows(bands, thresholds, map_of_frame, inv_light, gains, saturation, scale, margin, core):
+def scan_rows(bands: Bands, thresholds, map_of_frame, inv_light, gains, saturation, scale, margin,
+              core):
     """Row measurements of a block of bands (see :func:`thinning.edges.measure_block`).
 
-    ``bands`` a list of 2-D views (row, column; axis along the rows) with
-    contiguous rows and one row stride, such as the bands of the decoded
-    frames themselves (no copy).
+    ``bands`` the bands of the frames (axis along the rows), such as views
+    into the decoded frames themselves (no copy).
     ``thresholds`` (map, row, column) grey levels of the detection level in
     the frames' dtype, ``map_of_frame`` which map each frame uses;
     ``inv_light`` 1 / light field (float32); ``gains`` from
@@ -109,9 +120,8 @@ def scan_rows(bands, thresholds, map_of_frame, inv_light, gains, saturation, sca
     Returns a dict of arrays (frame, row): has, peak, centre, core_n,
     cut_width, truncated, rim_ratio, light.
     """
-    (n, w), nb = bands[0].shape, len(bands)
-    pointers, stride = _pointers(bands)
-    dtype = bands[0].dtype
+    (n, w), nb = bands.shape, len(bands)
+    dtype = bands.dtype
     thresholds = np.ascontiguousarray(thresholds, dtype=dtype)
     index = np.ascontiguousarray(map_of_frame, dtype=np.int64)
     inv = np.ascontiguousarray(inv_light, dtype=np.float32)
@@ -121,7 +131,7 @@ def scan_rows(bands, thresholds, map_of_frame, inv_light, gains, saturation, sca
            "cut_width": np.full((nb, n), np.nan), "truncated": np.zeros((nb, n), np.uint8),
            "rim_ratio": np.full((nb, n), np.nan), "light": np.ones((nb, n))}
     _check(getattr(_lib, f"scan_rows_{_suffix(dtype)}")(
-        pointers, stride, nb, n, w, thresholds.ctypes.data, index.ctypes.data, inv.ctypes.data,
+        bands.pointers, bands.stride, nb, n, w, thresholds.ctypes.data, index.ctypes.data, inv.ctypes.data,
         gains.ctypes.data, saturation, scale, margin, core,
         *(out[key].ctypes.data for key in ("has", "peak", "centre", "core_n", "cut_width",
                                            "truncated", "rim_ratio", "light"))))
