@@ -9,6 +9,7 @@ import pytest
 from thinning.edges import NoFilament
 from thinning.neck import (TABLE_COLUMNS, diameter_noise, free_thinning_start, measure_recording,
                            to_physical)
+from thinning.findings import Severity
 from thinning.units import Calibration
 
 _spec = importlib.util.spec_from_file_location("_edge_frames", Path(__file__).with_name("test_edges.py"))
@@ -167,3 +168,15 @@ def test_compiled_measurement_matches_the_numpy_path(beaded_recording, monkeypat
     for (i, _, p), (j, _, q) in zip(compiled.snapshots, plain.snapshots):
         shadow = np.abs(q.cut_width_px) > 0.5  # a centre is defined where the row holds shadow
         assert i == j and np.allclose(p.left_px[shadow], q.left_px[shadow], atol=1e-4)
+
+
+def test_a_clipped_background_makes_the_record_doubtful():
+    # a backlight brighter than the sensor's maximum hides the outer part of each edge: the
+    # widths read low, so the record must say so (and stay quiet when the light is below it)
+    diameters = np.linspace(20.0, 6.0, 30)
+    frames = list(thinning_frames(diameters))
+    quiet = measure_recording(frames)
+    assert not any(f.code == "background-clipped" for f in quiet.findings)
+    bright = [np.clip(f * 1.5, 0, 255).astype(np.uint8) for f in frames]
+    flagged = [f for f in measure_recording(bright).findings if f.code == "background-clipped"]
+    assert len(flagged) == 1 and flagged[0].severity is Severity.DOUBTFUL

@@ -82,7 +82,8 @@ class Layout:
     edge; ``noise`` the per-pixel noise as a fraction of the shadow depth;
     ``saturation`` the grey level at which the sensor clips; ``axis_slope``
     the filament direction (lateral shift per axial pixel) from the straight
-    sides of the end bodies (or the centre line); ``backlight`` the static
+    sides of the end bodies (or the centre line); ``clipped_background`` the
+    fraction of the background of the region at the sensor's maximum; ``backlight`` the static
     light field of the band (grey levels of the first frame, axis along rows)
     and ``light_pixels`` the number of background pixels it was fitted to.
     """
@@ -102,6 +103,7 @@ class Layout:
     saturation: float = math.inf
     axis_slope: float = 0.0
     light_pixels: int = 0
+    clipped_background: float = 0.0
     backlight: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     @property
@@ -333,6 +335,9 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
                          shadow_level=levels["shadow"], blur_sigma_px=blur,
                          noise=noise_abs / max(levels["background"] - levels["shadow"], 1e-6),
                          geometry=geometry, saturation=_saturation(frame))
+    background = region[~mask] if orientation == "vertical" else region.T[~mask]
+    clipped = float(np.mean(background >= provisional.saturation)) if background.size else 0.0
+    provisional = replace(provisional, clipped_background=clipped)
     block = _oriented(frame, orientation, axial, band)
     rows = _measure_rows(block, provisional, shadow_fraction=provisional.shadow_fraction)
     floor = levels["shadow"] + 0.3 * (levels["background"] - levels["shadow"])

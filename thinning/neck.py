@@ -49,6 +49,8 @@ SNAPSHOTS = 6
 SHADOW_SMOOTHING = 0.1
 #: Tilt of the axis (degrees) above which a finding is raised.
 TILT_LIMIT_DEG = 2.0
+#: Fraction of the background at the sensor's maximum above which the record is doubtful.
+CLIPPED_BACKGROUND_LIMIT = 0.5
 #: Pixels of band measured together (about 4 MB of 8-bit frames): a stack of frames shares
 #: the fixed cost of each numpy call on the profiles.
 BLOCK_PIXELS = 1 << 22
@@ -478,7 +480,7 @@ def _frame_range(mask, frames):
 
 
 def _quality_findings(table, layout: Layout, start):
-    findings = []
+    findings = _clipping_findings(layout)
     frames = table["frame"].to_numpy()
     measured = table["diameter_px"].notna().to_numpy()
     if not measured.any():
@@ -515,6 +517,21 @@ def _quality_findings(table, layout: Layout, start):
             f"{int(low.sum())} frame(s) ({_frame_range(low, frames)}): it is blurred into a "
             "low-contrast dip and those diameters are less reliable."))
     return findings
+
+
+def _clipping_findings(layout: Layout):
+    """A backlight that saturates the sensor hides the outer part of each edge's light profile:
+    the partial-area widths then read low (by about a pixel when all the background clips)."""
+    share = layout.clipped_background
+    if share < 0.05:
+        return []
+    severity = Severity.DOUBTFUL if share > CLIPPED_BACKGROUND_LIMIT else Severity.NOTE
+    return [Finding(
+        "background-clipped", severity,
+        f"{share:.0%} of the background is at the camera's maximum grey level: where the light "
+        "saturates the sensor, edges read inward and diameters low (up to about a pixel when all "
+        "of it clips). Lower the exposure or the backlight so the background stays below the "
+        "maximum.")]
 
 
 def to_physical(series: NeckSeries, calibration) -> pd.DataFrame:
