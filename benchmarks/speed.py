@@ -88,11 +88,13 @@ def child(mode: str, path: str, threads: int) -> dict:
         from thinning.frames import open_source
         from thinning.neck import measure_recording
 
+        from thinning.rowscan import COMPILED
+
         with open_source(path) as source:
             series = measure_recording(source, n_frames=source.n_frames)
         count = len(series.table)
         finite = int(np.isfinite(series.table["diameter_px"]).sum())
-        extra = {"frames_with_diameter": finite}
+        extra = {"frames_with_diameter": finite, "compiled": COMPILED}
     elif mode == "measure-in-memory":
         from thinning.frames import open_source
         from thinning.neck import measure_recording
@@ -163,18 +165,22 @@ def main(argv=None):
         pass
     for r in runs:
         if "error" in r:
-            print(f"{r['mode']:>15} threads={r['threads']}: failed: {r['error']}")
+            print(f"{r['mode']:>17} threads={r['threads']}: failed: {r['error']}")
         else:
-            print(f"{r['mode']:>15} threads={r['threads']}: {r['frames_per_s']:8.0f} frames/s  "
+            note = "" if "compiled" not in r else (
+                "  (compiled row pass)" if r["compiled"] else "  (numpy row pass: no compiled module)")
+            print(f"{r['mode']:>17} threads={r['threads']}: {r['frames_per_s']:8.0f} frames/s  "
                   f"({r['frames']} frames in {r['seconds']:.1f} s), peak memory "
-                  f"{r['peak_rss_mb']:.0f} MB")
+                  f"{r['peak_rss_mb']:.0f} MB{note}")
     decode = [r for r in runs if r["mode"].startswith("decode") and "error" not in r]
     best = max(decode, key=lambda r: r["frames_per_s"])
     print(f"fastest decode-only: {best['mode']} threads={best['threads']}, "
           f"{best['frames_per_s']:.0f} frames/s")
+    labels = {"measure": "neck measurement (frames to diameters)",
+              "analyse": "whole analysis (+ rheology, figures, report, files)"}
     for r in runs:
-        if r["mode"] in ("measure", "analyse") and "error" not in r:
-            print(f"{r['mode']}/decode ratio: {r['frames_per_s'] / best['frames_per_s']:.2f}")
+        if r["mode"] in labels and "error" not in r:
+            print(f"{labels[r['mode']]} / decode-only: {r['frames_per_s'] / best['frames_per_s']:.2f}")
 
 
 if __name__ == "__main__":

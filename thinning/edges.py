@@ -341,8 +341,8 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
     block = _oriented(frame, orientation, axial, band)
     rows = _measure_rows(block, provisional, shadow_fraction=provisional.shadow_fraction)
     floor = levels["shadow"] + 0.3 * (levels["background"] - levels["shadow"])
-    light, used = _fit_backlight(block, rows, noise_abs, saturation=provisional.saturation,
-                                 floor=floor)
+    bg = _background(block, rows, saturation=provisional.saturation, floor=floor)
+    light, used = _fit_backlight(block, bg, noise_abs)
     provisional = replace(provisional, backlight=light, light_pixels=used)
     fraction = _rim_fraction(_measure_rows(block, provisional,
                                            shadow_fraction=provisional.shadow_fraction)["rim_ratio"],
@@ -395,23 +395,25 @@ def _saturation(frame):
     return math.inf
 
 
-def _fit_backlight(block, rows, noise_abs, *, degree=2, saturation=math.inf, floor=-math.inf):
-    """Static light field of the band: a 2-D polynomial through the background, plus dust.
+def _background(block, rows, *, saturation=math.inf, floor=-math.inf):
+    """Background pixels of a band: outside every row's integration window, brighter than
+    ``floor`` (not in a body's shadow) and below ``saturation`` (not clipped)."""
+    n, w = block.shape
+    s0, e0 = rows["window"]
+    cols = np.arange(w)
+    inside = (cols[None, :] >= (s0 - 2)[:, None]) & (cols[None, :] < (e0 + 2)[:, None])
+    return ~(inside & rows["has"][:, None]) & (block < saturation) & (block > floor)
 
-    Background pixels are those outside every row's integration window,
-    brighter than ``floor`` and below ``saturation``. The
-    polynomial (``degree`` in the axial and lateral coordinate) carries the
+
+def _fit_backlight(block, bg, noise_abs, *, degree=2):
+    """Static light field of the band: a 2-D polynomial through the background ``bg``, plus dust.
+
+    The polynomial (``degree`` in the axial and lateral coordinate) carries the
     ramp and vignetting of the light; small dark specks of dust on the
     background are kept as they are (smoothed over 3×3 pixels), so that they
     do not count as shadow when the thread later passes over them.
     """
     n, w = block.shape
-    bg = np.ones((n, w), bool)
-    s0, e0 = rows["window"]
-    cols = np.arange(w)
-    inside = (cols[None, :] >= (s0 - 2)[:, None]) & (cols[None, :] < (e0 + 2)[:, None])
-    bg &= ~(inside & rows["has"][:, None])
-    bg &= (block < saturation) & (block > floor)  # not clipped, not in a body's shadow
     v = np.linspace(-1.0, 1.0, n)[:, None] * np.ones((1, w))
     u = np.ones((n, 1)) * np.linspace(-1.0, 1.0, w)[None, :]
     terms = [u ** i * v ** j for i in range(degree + 1) for j in range(degree + 1 - i)]
@@ -460,8 +462,10 @@ def refresh_light(frame, layout: Layout, *, min_gain=1.1) -> Layout | None:
     gain = rows["gain"]
     depth = (layout.background_level - layout.shadow_level) * gain
     floor = layout.shadow_level * gain + 0.3 * depth
-    light, used = _fit_backlight(block, rows, layout.noise * depth,
-                                 saturation=layout.saturation, floor=floor)
+    bg = _background(block, rows, saturation=layout.saturation, floor=floor)
+    if bg.sum() < min_gain * layout.light_pixels:  # not worth a fit
+        return None
+    light, used = _fit_backlight(block, bg, layout.noise * depth)
     if used < min_gain * layout.light_pixels:
         return None
     return replace(layout, backlight=light / np.float32(gain), light_pixels=used)
