@@ -22,6 +22,7 @@ worker death is retried per the scheduler's ``allowed-failures``).
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import datetime as _dt
 import fcntl
@@ -137,7 +138,7 @@ def run_row(task: RowTask) -> RowOutcome:
 
     temp = _temp_sibling(folder, "new")
     temp.mkdir(parents=True)
-    try:
+    with _cleared(temp):
         try:
             result = _analyser(task.analyser)(task.source, temp, task.options)
             status, reason = "ok", ""
@@ -150,13 +151,7 @@ def run_row(task: RowTask) -> RowOutcome:
         if result is None:
             shutil.rmtree(temp)
             temp.mkdir()
-        outcome = RowOutcome(task.row, status, reason, result, utc_now())
-        _write_row_json(temp, task, outcome)
-        swap_in(temp, folder)
-    finally:
-        if temp.exists():
-            shutil.rmtree(temp, ignore_errors=True)
-    return outcome
+        return _publish(temp, folder, task, RowOutcome(task.row, status, reason, result, utc_now()))
 
 
 def _analyser(spec: str):
@@ -220,17 +215,28 @@ def swap_in(temp: Path, folder: Path):
 
 def write_failed_folder(task: RowTask, reason: str) -> RowOutcome:
     """A failed row decided by the coordinator (bad cells): its folder holds only ``row.json``."""
-    outcome = RowOutcome(task.row, "failed", reason, None, utc_now())
     folder = Path(task.folder)
     temp = _temp_sibling(folder, "new")
     temp.mkdir(parents=True)
+    with _cleared(temp):
+        return _publish(temp, folder, task, RowOutcome(task.row, "failed", reason, None, utc_now()))
+
+
+def _publish(temp: Path, folder: Path, task: RowTask, outcome: RowOutcome) -> RowOutcome:
+    """Add ``row.json`` to the finished folder ``temp`` and swap it in as the row's ``folder``."""
+    _write_row_json(temp, task, outcome)
+    swap_in(temp, folder)
+    return outcome
+
+
+@contextlib.contextmanager
+def _cleared(temp: Path):
+    """Whatever happens inside, ``temp`` does not outlive the block (it is gone once swapped in)."""
     try:
-        _write_row_json(temp, task, outcome)
-        swap_in(temp, folder)
+        yield
     finally:
         if temp.exists():
             shutil.rmtree(temp, ignore_errors=True)
-    return outcome
 
 
 # --- local worker processes ----------------------------------------------------------------
