@@ -164,12 +164,13 @@ def main(argv=None):
     except ImportError:
         pass
     for r in runs:
+        threads = f"threads={r['threads']}" if r["mode"].startswith("decode") else "as shipped"
         if "error" in r:
-            print(f"{r['mode']:>17} threads={r['threads']}: failed: {r['error']}")
+            print(f"{r['mode']:>17} {threads:>10}: failed: {r['error']}")
         else:
             note = "" if "compiled" not in r else (
                 "  (compiled row pass)" if r["compiled"] else "  (numpy row pass: no compiled module)")
-            print(f"{r['mode']:>17} threads={r['threads']}: {r['frames_per_s']:8.0f} frames/s  "
+            print(f"{r['mode']:>17} {threads:>10}: {r['frames_per_s']:8.0f} frames/s  "
                   f"({r['frames']} frames in {r['seconds']:.1f} s), peak memory "
                   f"{r['peak_rss_mb']:.0f} MB{note}")
     decode = [r for r in runs if r["mode"].startswith("decode") and "error" not in r]

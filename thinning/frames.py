@@ -210,13 +210,14 @@ class VideoSource(FrameSource):
     (``shared/reference/platform-notes.md``, ``benchmarks/speed.py``).
     """
 
-    def __init__(self, path, *, decode_threads=2):
+    def __init__(self, path, *, decode_threads=None):
         super().__init__(path)
         import cv2
 
         _quiet_opencv(cv2)
         self._cv2 = cv2
-        self._threads = decode_threads
+        # one thread more than the cores: the cores stay busy while the consumer waits for a frame
+        self._threads = decode_threads or min(os.cpu_count() or 2, 7) + 1
         cap = self._open()
         ok, first = cap.read()
         if not ok or first is None:
