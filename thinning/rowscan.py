@@ -1,14 +1,16 @@
-"""The per-row pass of the edge measurement, compiled: a stack of bands → row arrays.
+"""The per-frame hot path of the measurement, compiled: a block of bands → row arrays → necks.
 
 :func:`thinning.edges.measure_block` hands a block of bands (the region
 analysed of each frame, axis along the rows: views into the decoded frames,
-or a transposed copy for a horizontal filament) to these two functions when the
-compiled module ``thinning._rowscan`` (``thinning/_rowscan.c``, built by
-``setup.py`` when a C compiler is at hand) is installed; without it the
-numpy path in :mod:`thinning.edges` gives the same quantities, about three
-times slower. The C functions are called through :mod:`ctypes`, which
-releases the GIL, so a block is measured while the decoding threads go on
-with the next frames.
+or a transposed copy for a horizontal filament) to :func:`frame_gains` and
+:func:`scan_rows`, and :func:`thinning.neck.measure_recording` the resulting
+rows to :func:`necks`, when the compiled module ``thinning._rowscan``
+(``thinning/_rowscan.c``, built by ``setup.py`` when a C compiler is at hand)
+is installed. Without it the numpy path in :mod:`thinning.edges` and
+:mod:`thinning.neck` gives the same quantities, about two and a half times
+slower. The C functions are called through :mod:`ctypes`, which releases the
+GIL, so a block is measured while the decoding threads go on with the next
+frames.
 """
 
 from __future__ import annotations
