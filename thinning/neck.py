@@ -49,8 +49,10 @@ SNAPSHOTS = 6
 SHADOW_SMOOTHING = 0.1
 #: Tilt of the axis (degrees) above which a finding is raised.
 TILT_LIMIT_DEG = 2.0
-#: Fraction of the background at the sensor's maximum above which the record is doubtful.
-CLIPPED_BACKGROUND_LIMIT = 0.5
+#: Fraction of the background at the sensor's maximum above which the record is doubtful: up to
+#: about 0.8 (a background at the maximum, its noise clipping) the widths stay within 0.2 px on
+#: frames rendered outside thinning.synth; above 0.9 they read low by a pixel or more.
+CLIPPED_BACKGROUND_LIMIT = 0.85
 #: Pixels of band measured together (about 4 MB of 8-bit frames): a stack of frames shares
 #: the fixed cost of each numpy call on the profiles.
 BLOCK_PIXELS = 1 << 22
