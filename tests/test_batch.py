@@ -37,7 +37,8 @@ def fake_analyse(source, out_dir, options, *, progress=None):
     A source whose stem contains ``crash-always`` kills its process; ``crash-once`` does so
     on the first attempt only.
     """
-    from thinning.analysis import UnusableInput, atomic_write_bytes
+    from thinning.analysis import UnusableInput
+    from thinning.atomic import write_bytes as atomic_write_bytes
     from thinning.frames import UnusableSource, open_source
 
     stem = Path(source).stem

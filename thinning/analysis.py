@@ -12,8 +12,6 @@ import importlib
 import json
 import logging
 import math
-import os
-import tempfile
 import threading
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -21,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import __version__
+from . import __version__, atomic
 from .findings import Finding, Severity, quality_of, warning_sentences
 from .frames import UnusableSource, open_source
 from .units import AnalysisOptions, BadQuantity, Calibration, check_required
@@ -188,19 +186,6 @@ def _json_safe(value):
 
 # --- writers -------------------------------------------------------------------------
 
-def atomic_write_bytes(path: Path, data: bytes):
-    """Write ``data`` to ``path`` through a temporary sibling and ``os.replace``."""
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-
-
 def result_json_text(result: dict) -> str:
     """The ``result.json`` text: full precision, never NaN."""
     return json.dumps(result, indent=2, allow_nan=False) + "\n"
@@ -220,8 +205,8 @@ def write_outputs(out_dir, result, table, series, rheo):
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    atomic_write_bytes(out / "diameter.csv", diameter_csv_text(table).encode())
+    atomic.write_bytes(out / "diameter.csv", diameter_csv_text(table).encode())
     figures = write_figures(out, table, result, series.snapshots, fit_curves=None,
                             orientation=series.layout.orientation)
     write_recording_report(out, result, figures)
-    atomic_write_bytes(out / "result.json", result_json_text(result).encode())
+    atomic.write_bytes(out / "result.json", result_json_text(result).encode())

@@ -38,7 +38,7 @@ from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from . import __version__
+from . import __version__, atomic
 from .manifest import ManifestRow, read_manifest, row_options
 from .units import AnalysisOptions, BadQuantity
 from .values import row_folder_name, safe_name  # noqa: F401  (safe_name: part of the batch API)
@@ -468,26 +468,16 @@ def results_frame(rows: list[dict]):
     return frame
 
 
-def _atomic_write(path: Path, data: bytes):
-    """Write ``data`` to ``path`` through a temporary sibling and ``os.replace``."""
-    temp = path.with_name(f".{path.name}.{os.getpid()}-{secrets.token_hex(4)}.tmp")
-    try:
-        temp.write_bytes(data)
-        os.replace(temp, path)
-    finally:
-        temp.unlink(missing_ok=True)
-
-
 def write_results_csv(out: Path, rows: list[dict]):
     """Atomically (re)write ``out/results.csv`` from table rows."""
-    _atomic_write(out / "results.csv", results_csv_text(rows).encode("utf-8"))
+    atomic.write_bytes(out / "results.csv", results_csv_text(rows).encode("utf-8"))
 
 
 def write_results_parquet(out: Path, frame):
     """Atomically write ``out/results.parquet`` from the results DataFrame (needs pyarrow)."""
     buffer = io.BytesIO()
     frame.to_parquet(buffer, index=False)
-    _atomic_write(out / "results.parquet", buffer.getvalue())
+    atomic.write_bytes(out / "results.parquet", buffer.getvalue())
 
 
 def _parquet_available() -> bool:

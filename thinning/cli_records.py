@@ -16,6 +16,7 @@ import sys
 import click
 from platformdirs import user_data_dir
 
+from . import atomic
 from .cli import FriendlyError
 
 ENV_DB = "THINNING_DB"  # same name as thinning.records.ENV_DB
@@ -225,11 +226,9 @@ def export_command(db_url, out_path, product):
 
     with _open(db_url) as store:
         rows = _friendly(store.export_rows, product=product)
-    tmp = f"{out_path}.tmp-{os.getpid()}"
     try:
-        with open(tmp, "w", newline="", encoding="utf-8") as handle:
+        with atomic.replacing(out_path, "w", newline="", encoding="utf-8") as handle:
             _write_csv(handle, EXPORT_COLUMNS, rows)
-        os.replace(tmp, out_path)
     except OSError as exc:
         raise FriendlyError(f"cannot write {out_path} ({exc.strerror}).") from None
     click.echo(f"wrote {len(rows)} measurements to {out_path}")

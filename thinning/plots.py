@@ -26,15 +26,13 @@ from __future__ import annotations
 import contextlib
 import inspect
 import logging
-import os
-import tempfile
 from pathlib import Path
 
 import matplotlib
 import numpy as np
 from matplotlib.figure import Figure
 
-from thinning import laws
+from thinning import atomic, laws
 from .values import finite_number as _number
 
 logger = logging.getLogger(__name__)
@@ -408,15 +406,8 @@ def _format_time(t_s):
 def _save_png(fig, path):
     """Write ``fig`` to ``path`` atomically (temporary file in the same folder, then replace)."""
     path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh, _style():
-            fig.savefig(fh, format="png", dpi=DPI, metadata=PNG_METADATA)
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
+    with atomic.replacing(path) as fh, _style():
+        fig.savefig(fh, format="png", dpi=DPI, metadata=PNG_METADATA)
     return path
 
 

@@ -15,15 +15,13 @@ import base64
 import io
 import json
 import math
-import os
-import tempfile
 from datetime import datetime, timezone
 from pathlib import Path
 
 import jinja2
 import numpy as np
 
-from .. import __version__, qc
+from .. import __version__, atomic, qc
 
 TEMPLATE_DIR = Path(__file__).parent / "templates"
 
@@ -266,12 +264,5 @@ def write_lot_report(records, lot: str, *, product: str | None = None, out_dir: 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     path = out / report_filename(detail.summary.lot)
-    handle, tmp = tempfile.mkstemp(dir=out, prefix=".lot-", suffix=".html.tmp")
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as stream:
-            stream.write(html)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    atomic.write_text(path, html)
     return path

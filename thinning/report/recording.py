@@ -12,12 +12,10 @@ same byte for byte for the same input.
 from __future__ import annotations
 
 import base64
-import contextlib
-import os
-import tempfile
 from pathlib import Path, PurePath
 
 import jinja2
+from .. import atomic
 from ..values import finite_number as _number
 
 TEMPLATE_DIR = Path(__file__).parent / "templates"
@@ -303,13 +301,5 @@ def write_recording_report(out_dir, result, figures, *, name=None, details=None)
     out_dir.mkdir(parents=True, exist_ok=True)
     html = render_recording_report(result, figures, name=name, details=details)
     path = out_dir / "report.html"
-    fd, tmp = tempfile.mkstemp(prefix=".report.html.", suffix=".tmp", dir=out_dir)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(html)
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
+    atomic.write_text(path, html)
     return path
