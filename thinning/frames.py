@@ -13,6 +13,7 @@ the metadata, and add it to :func:`open_source` (see DEVELOPERS.md).
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import logging
 import os
@@ -127,6 +128,15 @@ class _Raised:
         self.exc = exc
 
 
+def _resolved(items):
+    """The frames of ``items`` (frames, or futures of lists of them) in order, up to a None."""
+    for item in items:
+        for frame in item.result() if isinstance(item, Future) else (item,):
+            if frame is None:  # a frame that does not decode: the stream ends here
+                return
+            yield frame
+
+
 class FrameSource:
     """A recording as an ordered stream of grey frames.
 
@@ -160,16 +170,10 @@ class FrameSource:
         frame_bytes = self.shape[0] * self.shape[1] * np.dtype(self.dtype).itemsize
         per_item = frame_bytes * self._frames_per_item
         depth = int(np.clip(READ_AHEAD_BYTES // max(per_item, 1), 2, READ_AHEAD_ITEMS))
-        for item in read_ahead(self._frames(), depth):
-            batch = item.result() if isinstance(item, Future) else (item,)
-            for frame in batch:
-                if frame is None:  # a packet that does not decode: the stream ends here
-                    break
+        with contextlib.closing(read_ahead(self._frames(), depth)) as items:
+            for frame in _resolved(items):
                 self.frames_read += 1
                 yield frame
-            else:
-                continue
-            break
         if self.frames_read < self.n_frames:
             self.broken_off = True
 
