@@ -158,8 +158,10 @@ static void faint_rows_##SUFFIX(const PIXEL *block, int64_t stride, int64_t n, i
     int64_t half = margin + 2;                                                                  \
     for (int64_t r = 0; r < n; r++) {                                                           \
         if (has[r]) continue;                                                                   \
-        int64_t guess = (int64_t)rint(cm + slope * (r - ym));                                   \
-        if (guess - half < 0 || guess + half >= w) continue; /* window leaves the band */       \
+        double line = cm + slope * (r - ym);                                                    \
+        if (!(fabs(line) < 1e15)) continue; /* far outside the band (and no integer overflow) */  \
+        int64_t guess = (int64_t)rint(line);                                                    \
+        if (guess - half < 0 || guess + half >= w) continue;                                    \
         double total = 0.0, moment = 0.0;                                                       \
         for (int64_t c = guess - half; c <= guess + half; c++) {                                \
             float d = (1.0f - ((float)block[r * stride + c] * inv_light[r * w + c]) / g32) * s32; \

@@ -49,6 +49,8 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from . import rowscan
+
 log = logging.getLogger(__name__)
 
 ORIENTATIONS = ("vertical", "horizontal")
@@ -687,9 +689,10 @@ def _measure_bands(bands, layout, *, detect_level=DETECT_LEVEL):
     built it, numpy otherwise (on a stack of the bands). Returns arrays
     (frame, row), and the gain of each frame.
     """
-    from . import rowscan
-
     n, w = bands[0].shape
+    if (n, w) != layout.inverse_backlight.shape:
+        raise ValueError(f"frames of another size than the first: band {n}×{w}, "
+                         f"layout {layout.inverse_backlight.shape}")
     k = min(BACKGROUND_COLUMNS, max(1, w // 6))
     probe_rows = layout.gain_rows
     if rowscan.COMPILED:

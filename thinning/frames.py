@@ -321,10 +321,12 @@ class TiffSource(FrameSource):
             except Exception:
                 log.warning("%s: page unreadable, stream stops here", self.path)
                 return
-            if self._planes_per_page > 1:
-                yield from data
-            else:
-                yield _to_grey(data)
+            planes = data if self._planes_per_page > 1 else (_to_grey(data),)
+            for plane in planes:
+                if plane.shape[:2] != self.shape:
+                    log.warning("%s: a page of another size, stream stops here", self.path)
+                    return
+                yield plane
 
     def close(self):
         self._tif.close()
