@@ -106,6 +106,22 @@ def test_horizontal_filament_is_measured_along_x():
     assert abs(profile.axial_px[i] - 100.27) < 8
 
 
+@pytest.mark.parametrize("view,horizontal", [(np.s_[:, 35:], False), (np.s_[:, :125], False),
+                                             (np.s_[35:, :], True)],
+                         ids=["left-cut", "right-cut", "horizontal-top-cut"])
+def test_plates_wider_than_the_view_on_one_side(view, horizontal):
+    # zoomed on the thread, the plates may run out of the frame on one side: the axis is still
+    # the one joining the plates, the neck is measured, and a cut plate is no width reference
+    frame = render(neck=12.0, blur=1.0, horizontal=horizontal)
+    frame = np.ascontiguousarray(frame[view])
+    layout = find_layout(frame)
+    assert layout.orientation == ("horizontal" if horizontal else "vertical")
+    assert layout.plate_width_px is None
+    profile = locate_edges(frame, layout)
+    i = np.nanargmin(np.where(profile.valid, profile.width_px, np.nan))
+    assert profile.width_px[i] == pytest.approx(12.0, abs=0.05)
+
+
 @pytest.mark.parametrize("neck,blur", [(3.0, 2.0), (4.0, 1.5), (6.0, 0.5)])
 def test_thin_blurred_thread_keeps_its_width(neck, blur):
     # a 50 % threshold loses ~40 % of a 1.5-sigma thread (physics.md §8 table); the

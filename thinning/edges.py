@@ -246,6 +246,12 @@ def _axis_score(mask):
     return rows_with * (ends + 1.0) / (inner + 1.0) + rows_with
 
 
+def _dark_at_both_ends(mask):
+    """Whether the rows at both ends of the axis (the first and last 1/30) hold shadow."""
+    e = max(1, mask.shape[0] // 30)
+    return bool(mask[:e].any() and mask[-e:].any())
+
+
 def _extent(mask):
     """First and last dark column of every row (−1 where the row has none)."""
     has = mask.any(axis=1)
@@ -255,25 +261,27 @@ def _extent(mask):
 
 
 def _end_body(has, first, last, n_lat, *, from_end):
-    """Rows of a body at one end of the axis: (count, extent) or (0, None).
+    """Rows of a body at one end of the axis: (count, extent, cut) or (0, None, False).
 
     A body (plate, nozzle, substrate) is dark at the very end and has straight
     sides over at least 5 rows, up to a face where the silhouette changes
     width; a liquid foot widening towards the end of the region is no body.
+    ``extent`` is inf for a body filling the region's width; ``cut`` tells a
+    body that one side of the region cuts (its visible width is not its width).
     """
     idx = np.arange(has.size)[::-1] if from_end else np.arange(has.size)
     if not has[idx[0]]:
-        return 0, None
+        return 0, None, False
     f0, l0 = first[idx[0]], last[idx[0]]
     if l0 - f0 + 1 < 8:
-        return 0, None
+        return 0, None, False
     slack = 2.0 + 0.08 * np.arange(idx.size)  # a tilted body's sides drift slowly
     inside = has[idx] & (np.abs(first[idx] - f0) <= slack) & (np.abs(last[idx] - l0) <= slack)
     count = int(np.argmin(inside)) if not inside.all() else int(inside.size)
     if count < 5 or count > has.size - 5:
-        return 0, None
+        return 0, None, False
     full = f0 <= 1 and l0 >= n_lat - 2
-    return count, (math.inf if full else float(l0 - f0 + 1))
+    return count, (math.inf if full else float(l0 - f0 + 1)), (f0 <= 1) != (l0 >= n_lat - 2)
 
 
 def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
@@ -302,15 +310,18 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
     mask = region < 0.5 * (bright + dark)
     if mask.mean() < 1e-3:
         raise NoFilament("No filament in view: the frame shows no dark shadow on a bright background.")
-    orientation = "vertical" if _axis_score(mask) >= _axis_score(mask.T) else "horizontal"
+    # the axis runs from end to end of the shadow (bodies at both ends), then the better score;
+    # plates wider than the view on one side make the other reading look like a neck
+    orientation = max((("vertical", mask), ("horizontal", mask.T)),
+                      key=lambda o: (_dark_at_both_ends(o[1]), _axis_score(o[1])))[0]
     if orientation == "vertical":
         axial, lateral = (y0, y1), (x0, x1)
     else:
         axial, lateral, mask = (x0, x1), (y0, y1), mask.T
     n_ax, n_lat = mask.shape
     has, first, last = _extent(mask)
-    n0, ext_start = _end_body(has, first, last, n_lat, from_end=False)
-    n1, ext_end = _end_body(has, first, last, n_lat, from_end=True)
+    n0, ext_start, cut_start = _end_body(has, first, last, n_lat, from_end=False)
+    n1, ext_end, cut_end = _end_body(has, first, last, n_lat, from_end=True)
     if n0 + n1 >= n_ax - 4:
         raise NoFilament("No filament in view: the frame is dark from end to end.")
     free = np.zeros(n_ax, bool)
@@ -380,7 +391,9 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
     else:
         line = free & rows["has"] & ~rows["truncated"]
         axis_slope = float(np.polyfit(index[line], rows["centre"][line], 1)[0]) if line.sum() >= 6 else 0.0
-    plate = _reference_width(widths, geometry)
+    # a body cut by the side of the region shows only part of its width: no reference
+    plate = _reference_width([None if cut else v for v, cut in zip(widths, (cut_start, cut_end))],
+                             geometry)
     if plate is not None:
         plate /= math.sqrt(1.0 + axis_slope * axis_slope)  # across the axis, not along the row
     return replace(provisional, plate_width_px=plate, axis_slope=axis_slope,
