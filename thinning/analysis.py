@@ -63,7 +63,16 @@ def analyse(source, out_dir, options: AnalysisOptions, *, progress=None) -> dict
 
     ``progress``: optional callable ``progress(frames_done, n_frames)``.
     Writes ``diameter.csv``, the figures, ``report.html`` and ``result.json``.
+    Linear algebra runs on one thread: the fits are small, and an idle BLAS
+    thread pool spins on cores that the decoders (or other workers) need.
     """
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _analyse(source, out_dir, options, progress)
+
+
+def _analyse(source, out_dir, options: AnalysisOptions, progress) -> dict:
     from .edges import NoFilament
     from .neck import measure_recording, to_physical
 
