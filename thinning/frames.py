@@ -32,7 +32,7 @@ TIFF_SUFFIXES = {".tif", ".tiff"}
 IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".pgm", ".ppm"}
 #: Frames read ahead of the consumer (decoded in a background thread meanwhile): at most this
 #: many bytes, and at most this many items of ``_frames()`` (single frames, or decoded batches).
-READ_AHEAD_BYTES = 32 << 20
+READ_AHEAD_BYTES = 16 << 20
 READ_AHEAD_ITEMS = 32
 #: Compressed frames decoded together by one task of the decoding pool.
 DECODE_BATCH = 8

@@ -419,10 +419,16 @@ def write_figures(out_dir, table, result, snapshots, *, fit_curves=None, orienta
     """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    figures = {
-        "diameter": plot_diameter(table, result, fit_curves=fit_curves).figure,
-        "extensional_viscosity": plot_extensional_viscosity(table, result).figure,
-        "strain_rate": plot_strain_rate(table, result).figure,
-        "frames": plot_frame_strip(snapshots, orientation=orientation, fps_hz=result.get("fps_hz")),
+    makers = {
+        "diameter": lambda: plot_diameter(table, result, fit_curves=fit_curves).figure,
+        "extensional_viscosity": lambda: plot_extensional_viscosity(table, result).figure,
+        "strain_rate": lambda: plot_strain_rate(table, result).figure,
+        "frames": lambda: plot_frame_strip(snapshots, orientation=orientation,
+                                           fps_hz=result.get("fps_hz")),
     }
-    return {name: _save_png(fig, out_dir / f"{name}.png") for name, fig in figures.items()}
+    paths = {}
+    for name, make in makers.items():  # one figure in memory at a time
+        figure = make()
+        paths[name] = _save_png(figure, out_dir / f"{name}.png")
+        figure.clear()
+    return paths
