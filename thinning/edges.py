@@ -676,8 +676,10 @@ def measure_block(frames, layout: Layout, *, detect_level=DETECT_LEVEL) -> dict:
     frames = [np.asarray(frame) for frame in frames]
     if layout.orientation == "vertical":
         bands = [frame[a0:a1, b0:b1] for frame in frames]  # views: no copy
-        if not all(band.strides[1] == band.itemsize for band in bands):
-            bands = [np.ascontiguousarray(band) for band in bands]
+        first = bands[0]
+        if not all(band.strides == first.strides and band.strides[1] == band.itemsize
+                   for band in bands):  # frames laid out otherwise: one stack
+            bands = list(np.stack(bands))
     else:  # the axis along the rows: each band transposed into one stack
         stack = np.empty((len(frames), a1 - a0, b1 - b0), frames[0].dtype)
         for block, frame in zip(stack, frames):
