@@ -6,7 +6,8 @@ that breaks near the end. Then, each in a fresh child process (so that each peak
 memory figure is its own):
 
 - decode only, every route measured: the compressed packets decoded in a thread
-  pool (what :class:`thinning.frames.VideoSource` does) with 1–4 threads, and
+  pool (what :class:`thinning.frames.VideoSource` does) with 1 to max(4, cores + 1)
+  threads, and
   OpenCV's plain ``read()`` with its colour conversion;
 - the neck measurement alone (:func:`thinning.neck.measure_recording`), on the
   stream and on the first ``IN_MEMORY_FRAMES`` frames decoded beforehand (the
@@ -153,7 +154,8 @@ def main(argv=None):
     path = recording(args.dir, args.frames)
     print(f"recording: {path} ({path.stat().st_size / 1e6:.0f} MB, {args.frames} frames, "
           f"{os.cpu_count()} cores)")
-    runs = [run_child("decode-packets", path, t) for t in (1, 2, 3, 4)]
+    # every pool size up to one more than the cores (what the analysis uses), at least 1-4
+    runs = [run_child("decode-packets", path, t) for t in range(1, max(4, (os.cpu_count() or 2) + 1) + 1)]
     runs.append(run_child("decode-read", path))
     runs.append(run_child("measure", path))
     runs.append(run_child("measure-in-memory", path))
