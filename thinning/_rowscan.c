@@ -18,7 +18,82 @@
 #include <stdlib.h>
 #include <string.h>
 
+#if defined(__SSE2__) && (defined(__GNUC__) || defined(__clang__)) && !defined(ROWSCAN_NO_SIMD)
+#include <emmintrin.h>
+#define ROWSCAN_SSE2 1
+#endif
+
 #define BRIDGE_PX 3
+
+/* The first and the last column of a row darker than its threshold (w, or -1, when none): the
+ * dark extent of the row, searched from each end, sixteen 8-bit (eight 16-bit) pixels at a time
+ * where the processor has SSE2. */
+static int64_t first_dark_u8(const uint8_t *row, const uint8_t *t, int64_t w)
+{
+    int64_t c = 0;
+#ifdef ROWSCAN_SSE2
+    for (; c + 16 <= w; c += 16) {
+        __m128i a = _mm_loadu_si128((const __m128i *)(row + c));
+        __m128i b = _mm_loadu_si128((const __m128i *)(t + c));
+        unsigned dark = ~(unsigned)_mm_movemask_epi8(_mm_cmpeq_epi8(_mm_max_epu8(a, b), a)) & 0xFFFFu;
+        if (dark) return c + __builtin_ctz(dark);
+    }
+#endif
+    for (; c < w; c++)
+        if (row[c] < t[c]) return c;
+    return w;
+}
+
+static int64_t last_dark_u8(const uint8_t *row, const uint8_t *t, int64_t w)
+{
+    int64_t c = w; /* columns [0, c) not yet searched */
+#ifdef ROWSCAN_SSE2
+    for (; c >= 16; c -= 16) {
+        __m128i a = _mm_loadu_si128((const __m128i *)(row + c - 16));
+        __m128i b = _mm_loadu_si128((const __m128i *)(t + c - 16));
+        unsigned dark = ~(unsigned)_mm_movemask_epi8(_mm_cmpeq_epi8(_mm_max_epu8(a, b), a)) & 0xFFFFu;
+        if (dark) return c - 16 + (31 - __builtin_clz(dark));
+    }
+#endif
+    for (c = c - 1; c >= 0; c--)
+        if (row[c] < t[c]) return c;
+    return -1;
+}
+
+static int64_t first_dark_u16(const uint16_t *row, const uint16_t *t, int64_t w)
+{
+    int64_t c = 0;
+#ifdef ROWSCAN_SSE2
+    const __m128i zero = _mm_setzero_si128();
+    for (; c + 8 <= w; c += 8) {
+        __m128i a = _mm_loadu_si128((const __m128i *)(row + c));
+        __m128i b = _mm_loadu_si128((const __m128i *)(t + c));
+        /* a < b exactly where the saturated difference b - a is not zero */
+        unsigned dark = ~(unsigned)_mm_movemask_epi8(_mm_cmpeq_epi16(_mm_subs_epu16(b, a), zero)) & 0xFFFFu;
+        if (dark) return c + __builtin_ctz(dark) / 2;
+    }
+#endif
+    for (; c < w; c++)
+        if (row[c] < t[c]) return c;
+    return w;
+}
+
+static int64_t last_dark_u16(const uint16_t *row, const uint16_t *t, int64_t w)
+{
+    int64_t c = w;
+#ifdef ROWSCAN_SSE2
+    const __m128i zero = _mm_setzero_si128();
+    for (; c >= 8; c -= 8) {
+        __m128i a = _mm_loadu_si128((const __m128i *)(row + c - 8));
+        __m128i b = _mm_loadu_si128((const __m128i *)(t + c - 8));
+        unsigned dark = ~(unsigned)_mm_movemask_epi8(_mm_cmpeq_epi16(_mm_subs_epu16(b, a), zero)) & 0xFFFFu;
+        if (dark) return c - 8 + (31 - __builtin_clz(dark)) / 2;
+    }
+#endif
+    for (c = c - 1; c >= 0; c--)
+        if (row[c] < t[c]) return c;
+    return -1;
+}
 
 /* First and last column of the dark run holding the row's darkest pixel (darkness: larger is
  * darker, first maximum wins). Runs closer than BRIDGE_PX, or separated by a gap narrower
@@ -82,13 +157,6 @@ static inline void zone_sums_##SUFFIX(const PIXEL *row, const float *inv, int64_
     *sum += total;                                                                              \
     *moment += first_moment;                                                                    \
     *top = peak;                                                                                \
-}                                                                                               \
-                                                                                                \
-/* The dark pixels of one row (restrict: the compiler may vectorise the comparison). */         \
-static void dark_pixels_##SUFFIX(unsigned char *restrict mask, const PIXEL *restrict row,        \
-                                 const PIXEL *restrict threshold, int64_t w)                    \
-{                                                                                               \
-    for (int64_t c = 0; c < w; c++) mask[c] = row[c] < threshold[c];                            \
 }                                                                                               \
                                                                                                 \
 /* Flicker gain (upper median of the margin ratios of gain_rows) of each frame, and whether a   \
@@ -184,16 +252,15 @@ int scan_rows_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nb, in
                        unsigned char *has, double *peak, double *centre, double *core_n,        \
                        double *cut, unsigned char *truncated, double *rim_ratio, double *light) \
 {                                                                                               \
-    int64_t nwords = (w + 7) / 8, zone = margin + core;                                         \
-    uint64_t *words = calloc(nwords, sizeof(uint64_t));                                         \
+    int64_t zone = margin + core;                                                               \
+    unsigned char *mask = malloc(w); /* the dark pixels of a row with a gap, where needed */    \
     float *darkness = malloc(w * sizeof(float));                                                \
     int64_t *lj = malloc(n * sizeof(int64_t)), *rj = malloc(n * sizeof(int64_t));               \
     unsigned char *thick = malloc(n);                                                           \
-    if (!words || !darkness || !lj || !rj || !thick) {                                          \
-        free(words); free(darkness); free(lj); free(rj); free(thick);                           \
+    if (!mask || !darkness || !lj || !rj || !thick) {                                           \
+        free(mask); free(darkness); free(lj); free(rj); free(thick);                            \
         return -1;                                                                              \
     }                                                                                           \
-    unsigned char *mask = (unsigned char *)words; /* the row's dark pixels, eight to a word */  \
     float s32 = (float)scale;                                                                   \
     for (int64_t b = 0; b < nb; b++) {                                                          \
         const PIXEL *frame = bands[b];                                                          \
@@ -204,26 +271,22 @@ int scan_rows_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nb, in
         for (int64_t r = 0; r < n; r++) {                                                       \
             const PIXEL *row = frame + r * stride, *t = thr + r * w;                            \
             const float *inv = inv_light + r * w;                                               \
-            dark_pixels_##SUFFIX(mask, row, t, w);                                              \
-            light[o + r] = (mask[0] && mask[w - 1]) ? 0.0 : 1.0;                                \
-            int64_t first = 0;                                                                  \
-            while (first < nwords && words[first] == 0) first++;                                \
-            if (first == nwords) { /* no shadow on this row: its faint trace, below */          \
+            light[o + r] = (row[0] < t[0] && row[w - 1] < t[w - 1]) ? 0.0 : 1.0;                \
+            int64_t left = first_dark_##SUFFIX(row, t, w);                                      \
+            if (left == w) { /* no shadow on this row: its faint trace, below */                \
                 lj[r] = 0; rj[r] = w - 1; thick[r] = 0;                                         \
                 continue;                                                                       \
             }                                                                                   \
-            int64_t left = 8 * first;                                                           \
-            while (!mask[left]) left++;                                                         \
-            int64_t last = nwords - 1;                                                          \
-            while (words[last] == 0) last--;                                                    \
-            int64_t right = 8 * last + 7 < w - 1 ? 8 * last + 7 : w - 1;                        \
-            while (!mask[right]) right--;                                                       \
+            int64_t right = last_dark_##SUFFIX(row, t, w);                                      \
             int64_t probe = 2 * core < right - left + 1 ? 2 * core : right - left + 1;          \
             for (int64_t s = 0; s < probe; s++) {                                               \
                 int64_t head = left + s < w - 1 ? left + s : w - 1;                             \
                 int64_t tail = right - s > 0 ? right - s : 0;                                   \
-                if (!(mask[head] && mask[tail])) {                                              \
-                    for (int64_t c = left; c <= right; c++) darkness[c] = -((float)row[c] * inv[c]); \
+                if (!(row[head] < t[head] && row[tail] < t[tail])) { /* a gap near an edge */    \
+                    for (int64_t c = left; c <= right; c++) {                                   \
+                        mask[c] = row[c] < t[c];                                                \
+                        darkness[c] = -((float)row[c] * inv[c]);                                \
+                    }                                                                           \
                     main_run(mask, darkness, left, right, &left, &right);                       \
                     break;                                                                      \
                 }                                                                               \
@@ -272,7 +335,7 @@ int scan_rows_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nb, in
         faint_rows_##SUFFIX(frame, stride, n, w, inv_light, has + o, centre + o, peak + o, cut + o,     \
                             gain, scale, margin);                                               \
     }                                                                                           \
-    free(words); free(darkness); free(lj); free(rj); free(thick);                               \
+    free(mask); free(darkness); free(lj); free(rj); free(thick);                                \
     return 0;                                                                                   \
 }
 
