@@ -15,10 +15,10 @@ memory figure is its own):
 - the whole analysis (:func:`thinning.analysis.analyse`: frames → diameters →
   regimes, fits, figures, report, files), when that module is present.
 
-Prints frames/s, peak resident memory (``ru_maxrss`` of the child) and the ratio
+Prints frames/s, peak resident memory (VmHWM of the child) and the ratio
 of the analysis rate to the fastest decode-only rate.
 
-    python benchmarks/speed.py [--frames 20000] [--dir FOLDER]
+    python benchmarks/speed.py [--frames 20000] [--dir FOLDER] [--orientation horizontal]
 """
 
 from __future__ import annotations
@@ -38,16 +38,17 @@ from pathlib import Path
 IN_MEMORY_FRAMES = 2000
 
 
-def recording(folder: Path, n_frames: int) -> Path:
+def recording(folder: Path, n_frames: int, orientation: str = "vertical") -> Path:
     """The benchmark file (written when missing)."""
     from thinning import synth
 
-    path = folder / f"benchmark-{n_frames}.avi"
+    name = "benchmark" if orientation == "vertical" else f"benchmark-{orientation}"
+    path = folder / f"{name}-{n_frames}.avi"
     if not path.exists():
         folder.mkdir(parents=True, exist_ok=True)
         started = time.perf_counter()
-        partial = folder / f"partial-{os.getpid()}-benchmark-{n_frames}.avi"
-        synth.write_benchmark_recording(partial, n_frames=n_frames, seed=0)
+        partial = folder / f"partial-{os.getpid()}-{name}-{n_frames}.avi"
+        synth.write_benchmark_recording(partial, n_frames=n_frames, seed=0, orientation=orientation)
         partial.rename(path)
         truth = synth.truth_path(partial)
         if truth.exists():
@@ -57,6 +58,17 @@ def recording(folder: Path, n_frames: int) -> Path:
 
 
 def _peak_rss_mb() -> float:
+    """Peak resident memory of this process (MB): VmHWM, which starts afresh at exec.
+
+    (``ru_maxrss`` would not: Linux carries into it the resident size of the forking parent.)
+    """
+    try:
+        with open("/proc/self/status") as status:
+            for line in status:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kB on Linux
 
 
@@ -119,7 +131,8 @@ def child(mode: str, path: str, threads: int) -> dict:
         raise SystemExit(f"unknown mode {mode}")
     seconds = time.perf_counter() - started
     out = {"mode": mode, "threads": threads, "frames": count, "seconds": seconds,
-           "frames_per_s": count / seconds, "peak_rss_mb": _peak_rss_mb()}
+           "frames_per_s": count / seconds, "peak_rss_mb": _peak_rss_mb(),
+           "pyarrow": "pyarrow" in sys.modules}
     if mode in ("measure", "analyse"):
         out.update(extra)
     return out
@@ -144,6 +157,8 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--frames", type=int, default=20000)
     parser.add_argument("--dir", type=Path, default=Path(tempfile.gettempdir()) / "thinning-benchmark")
+    parser.add_argument("--orientation", choices=("vertical", "horizontal"), default="vertical",
+                        help="the filament across the frame's short side (default) or along its long one")
     parser.add_argument("--child", help=argparse.SUPPRESS)
     parser.add_argument("--path", help=argparse.SUPPRESS)
     parser.add_argument("--threads", type=int, default=2, help=argparse.SUPPRESS)
@@ -151,7 +166,7 @@ def main(argv=None):
     if args.child:
         print(json.dumps(child(args.child, args.path, args.threads)))
         return
-    path = recording(args.dir, args.frames)
+    path = recording(args.dir, args.frames, args.orientation)
     print(f"recording: {path} ({path.stat().st_size / 1e6:.0f} MB, {args.frames} frames, "
           f"{os.cpu_count()} cores)")
     # every pool size up to one more than the cores (what the analysis uses), at least 1-4
@@ -179,6 +194,9 @@ def main(argv=None):
     best = max(decode, key=lambda r: r["frames_per_s"])
     print(f"fastest decode-only: {best['mode']} threads={best['threads']}, "
           f"{best['frames_per_s']:.0f} frames/s")
+    if any(r.get("pyarrow") for r in runs if r["mode"] == "analyse"):
+        print("note: pandas loaded pyarrow (installed here, e.g. by the test extras): about 40 MB "
+              "of the whole analysis's peak memory that a plain install does not have")
     labels = {"measure": "neck measurement (frames to diameters)",
               "analyse": "whole analysis (+ rheology, figures, report, files)"}
     for r in runs:

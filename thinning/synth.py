@@ -1114,6 +1114,9 @@ def benchmark_scene(n_frames: int = 20000) -> Scene:
     return dataclasses.replace(scene, fps_hz=float(fps), n_frames=int(n_frames))
 
 
-def write_benchmark_recording(path, n_frames: int = 20000, seed: int = 0) -> Truth:
-    """The benchmark file: an 8-bit MJPG AVI of 512 × 256 frames (width × height)."""
-    return write_recording(benchmark_scene(n_frames), Optics(), path, fmt="avi-mjpg", seed=seed)
+def write_benchmark_recording(path, n_frames: int = 20000, seed: int = 0,
+                              orientation: str = "vertical") -> Truth:
+    """The benchmark file: an 8-bit MJPG AVI of 512 × 256 frames (width × height), the filament
+    across the short side (``"vertical"``) or, turned, along the long one (``"horizontal"``)."""
+    return write_recording(benchmark_scene(n_frames), Optics(orientation=orientation), path,
+                           fmt="avi-mjpg", seed=seed)
