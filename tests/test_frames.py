@@ -130,3 +130,36 @@ def test_tiff_streams_in_constant_memory(tmp_path):
     tracemalloc.stop()
     assert count == 600
     assert peak < 600 * 128 * 128 / 10   # far below holding all frames (9.8 MB)
+
+
+def test_read_ahead_keeps_order_bounds_the_queue_and_stops_with_the_consumer():
+    import threading
+
+    from thinning.frames import read_ahead
+
+    produced = []
+
+    def items():
+        for i in range(1000):
+            produced.append(i)
+            yield i
+
+    reader = read_ahead(items(), 4)
+    assert [next(reader) for _ in range(10)] == list(range(10))
+    assert len(produced) <= 10 + 4 + 1  # never more than the bound ahead of the consumer
+    reader.close()  # the consumer stops early: the background thread ends with it
+    assert not any(t.name == "thinning-read-ahead" and t.is_alive() for t in threading.enumerate())
+    assert len(produced) < 1000
+
+
+def test_read_ahead_hands_a_failure_to_the_consumer():
+    from thinning.frames import read_ahead
+
+    def items():
+        yield 1
+        raise OSError("the disk went away")
+
+    reader = read_ahead(items(), 2)
+    assert next(reader) == 1
+    with pytest.raises(OSError, match="disk went away"):
+        next(reader)
