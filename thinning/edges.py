@@ -62,6 +62,10 @@ DETECT_LEVEL = 0.25
 PRESENCE_LEVEL = 0.12
 #: Largest departure (degrees) of a frame's axis from the layout's, and of the neck's from the frame's.
 MAX_BEND_DEG = 1.5
+#: Fraction of the background at the sensor's maximum above which edges are placed at the
+#: steepest light gradient instead of by partial area (measured with scripts/optics_probe.py:
+#: below it the partial area is the better of the two, above it by far the better is the gradient).
+CLIPPED_EDGE_LIMIT = 0.85
 
 
 class NoFilament(ValueError):
@@ -733,7 +737,51 @@ def _measure_bands(bands, layout, *, detect_level=DETECT_LEVEL):
                 float(layout.saturation), 1.0 / max(1.0 - layout.shadow_fraction, 1e-3),
                 layout.margin_px, layout.core_px)
     rows["gain"] = gains
+    if layout.clipped_background > CLIPPED_EDGE_LIMIT:
+        _steepest_edges(bands, rows, layout.margin_px)
     return rows
+
+
+def _steepest_edges(bands, rows, reach):
+    """Widths of a frame whose backlight saturates the sensor: from the steepest light gradient.
+
+    Where nearly all the background sits at the camera's maximum, the light
+    level is unknown and the outer part of each edge is cut off, so the
+    partial-area width reads low (by a pixel or more). For a symmetric blur
+    the steepest point of an edge is the edge itself, and it stays in view
+    while the light is under about twice the maximum: each edge is placed
+    there (a parabola through the gradient around its extreme, searched
+    within ``reach`` px of the partial-area edge). Rows with a shadow get
+    these widths and centres (arrays set in place; ``core_n`` = width, so
+    the shadow-level rescaling leaves them as they are).
+    """
+    has = rows["has"] & np.isfinite(rows["cut_width"]) & np.isfinite(rows["centre"])
+    if not has.any():
+        return
+    pixels = np.stack([np.asarray(band) for band in bands]).astype(np.float32)
+    w = pixels.shape[2]
+    frame, row = np.nonzero(has)
+    centre, cut = rows["centre"][has], rows["cut_width"][has]
+    steps = np.arange(-reach - 1, reach + 2)
+
+    def edge(guess, falling):
+        # light gradient between pixel c and c + 1 (at c + 0.5), signed to peak at the edge
+        cols = np.rint(guess - 0.5).astype(np.int64)[:, None] + steps
+        np.clip(cols, 0, w - 1, out=cols)
+        values = pixels[frame[:, None], row[:, None], cols]
+        grad = np.diff(values, axis=1) * (-1.0 if falling else 1.0)
+        k = np.clip(np.argmax(grad[:, 1:-1], axis=1) + 1, 1, grad.shape[1] - 2)
+        i = np.arange(k.size)
+        before, at, after = grad[i, k - 1], grad[i, k], grad[i, k + 1]
+        curve = before - 2.0 * at + after
+        with np.errstate(invalid="ignore", divide="ignore"):
+            shift = np.where(curve < 0, 0.5 * (before - after) / curve, 0.0)
+        return cols[i, k] + 0.5 + np.clip(shift, -0.5, 0.5)
+
+    left, right = edge(centre - 0.5 * cut, True), edge(centre + 0.5 * cut, False)
+    rows["cut_width"][has] = right - left
+    rows["centre"][has] = 0.5 * (left + right)
+    rows["core_n"][has] = right - left
 
 
 def _frame_gains_numpy(blocks, gain_rows, margin_light, k, saturation):

@@ -34,9 +34,9 @@ import numpy as np
 import pandas as pd
 
 from . import rowscan
-from .edges import (MAX_BEND_DEG, PRESENCE_LEVEL, Layout, NoFilament, Profile, ProfileBlock,
-                    axis_slopes, find_layout, measure_block, profiles_of, refresh_light,
-                    rim_fractions)
+from .edges import (CLIPPED_EDGE_LIMIT, MAX_BEND_DEG, PRESENCE_LEVEL, Layout, NoFilament,
+                    Profile, ProfileBlock, axis_slopes, find_layout, measure_block, profiles_of,
+                    refresh_light, rim_fractions)
 from .findings import Finding, Severity
 
 log = logging.getLogger(__name__)
@@ -49,10 +49,6 @@ SNAPSHOTS = 6
 SHADOW_SMOOTHING = 0.1
 #: Tilt of the axis (degrees) above which a finding is raised.
 TILT_LIMIT_DEG = 2.0
-#: Fraction of the background at the sensor's maximum above which the record is doubtful: up to
-#: about 0.8 (a background at the maximum, its noise clipping) the widths stay within 0.2 px on
-#: frames rendered outside thinning.synth; above 0.9 they read low by a pixel or more.
-CLIPPED_BACKGROUND_LIMIT = 0.85
 #: Pixels of band measured together (about 4 MB of 8-bit frames): a stack of frames shares
 #: the fixed cost of each numpy call on the profiles.
 BLOCK_PIXELS = 1 << 22
@@ -533,18 +529,23 @@ def _quality_findings(table, layout: Layout, start):
 
 
 def _clipping_findings(layout: Layout):
-    """A backlight that saturates the sensor hides the outer part of each edge's light profile:
-    the partial-area widths then read low (by about a pixel when all the background clips)."""
+    """A backlight that saturates the sensor hides the outer part of each edge's light profile
+    (see :func:`thinning.edges._steepest_edges`): a note, or doubtful when nearly all clips."""
     share = layout.clipped_background
     if share < 0.05:
         return []
-    severity = Severity.DOUBTFUL if share > CLIPPED_BACKGROUND_LIMIT else Severity.NOTE
+    advice = "Lower the exposure or the backlight so the background stays below the maximum."
+    if share > CLIPPED_EDGE_LIMIT:  # the edges came from the steepest light gradient
+        return [Finding(
+            "background-clipped", Severity.DOUBTFUL,
+            f"{share:.0%} of the background is at the camera's maximum grey level, so the light "
+            "level is unknown: edges were placed at the steepest light gradient, which reads "
+            "diameters low by up to a few tenths of a pixel (more the brighter the light). "
+            + advice)]
     return [Finding(
-        "background-clipped", severity,
+        "background-clipped", Severity.NOTE,
         f"{share:.0%} of the background is at the camera's maximum grey level: where the light "
-        "saturates the sensor, edges read inward and diameters low (up to about a pixel when all "
-        "of it clips). Lower the exposure or the backlight so the background stays below the "
-        "maximum.")]
+        "saturates the sensor, edges may read slightly inward. " + advice)]
 
 
 def to_physical(series: NeckSeries, calibration) -> pd.DataFrame:
