@@ -101,6 +101,7 @@ CASES = [
     ("light at the maximum, noise clips (1.275×)", {"change": scaled(1.275), "noise": 0.02}),
     ("light above the maximum (1.3×)", {"change": scaled(1.3)}),
     ("light far above the maximum (1.6×)", {"change": scaled(1.6)}),
+    ("light twice the maximum (2×)", {"change": scaled(2.0)}),
     ("bright edge fringe +8 %", {"change": fringe}),
 ]
 
