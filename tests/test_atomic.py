@@ -15,7 +15,8 @@ def _umask():
 
 
 def test_replaced_file_has_the_users_ordinary_permissions(tmp_path):
-    # a temporary file is owner-only (0600); a result in a shared lab folder must not be
+    # a temporary file is owner-only (0600); a result in a shared lab folder must not be: it gets
+    # what open() gives a new file, 0666 less the umask (POSIX open(2), common practice)
     path = tmp_path / "result.json"
     atomic.write_bytes(path, b"{}\n")
     assert path.read_bytes() == b"{}\n"
