@@ -19,6 +19,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from .errors import ThinningError
 from . import __version__, atomic
 from .findings import Finding, Severity, quality_of, warning_sentences
 from .frames import UnusableSource, open_source
@@ -35,7 +36,7 @@ DIAMETER_COLUMNS = ["frame", "time_s", "diameter_m", "neck_position_m", "strain_
                     "hencky_strain", "apparent_extensional_viscosity_Pa_s"]
 
 
-class UnusableInput(ValueError):
+class UnusableInput(ThinningError, ValueError):
     """The recording or its options cannot be analysed (message: one sentence for the user)."""
 
 

@@ -38,6 +38,7 @@ from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from .errors import ThinningError
 from . import __version__, atomic
 from .manifest import ManifestRow, read_manifest, row_options
 from .units import AnalysisOptions, BadQuantity
@@ -71,11 +72,11 @@ _RESULT_NUMBERS = ("relaxation_time_s", "elastic_modulus_Pa", "shear_viscosity_P
 _NUMERIC_COLUMNS = _RESULT_NUMBERS + ("relaxation_time_ci95_low_s", "relaxation_time_ci95_high_s")
 
 
-class BatchBusy(RuntimeError):
+class BatchBusy(ThinningError, RuntimeError):
     """Another batch is writing into the same output folder."""
 
 
-class SchedulerUnreachable(RuntimeError):
+class SchedulerUnreachable(ThinningError, RuntimeError):
     """The Dask scheduler given with ``--scheduler`` cannot be reached (one sentence)."""
 
 
@@ -133,16 +134,13 @@ def run_row(task: RowTask) -> RowOutcome:
         earlier = _up_to_date(task)
         if earlier is not None:
             return earlier
-    from .analysis import UnusableInput
-    from .frames import UnusableSource
-
     temp = _temp_sibling(folder, "new")
     temp.mkdir(parents=True)
     with _cleared(temp):
         try:
             result = _analyser(task.analyser)(task.source, temp, task.options)
             status, reason = "ok", ""
-        except (UnusableInput, UnusableSource, BadQuantity) as exc:
+        except ThinningError as exc:
             result, status, reason = None, "failed", str(exc)
         except Exception as exc:  # a bug must not stop the batch: the row fails, saying so
             log.exception("row %d: internal error", task.row)

@@ -15,6 +15,7 @@ import sys
 import click
 
 from . import __version__
+from .errors import ThinningError
 from .units import QUANTITIES, BadQuantity, GEOMETRIES, options_from_text
 
 #: subcommands living in their own modules: name → "module:attribute"
@@ -84,7 +85,28 @@ def parse_analysis_options(values: dict):
         raise FriendlyError(str(exc)) from None
 
 
-class LazyGroup(click.Group):
+class _Friendly:
+    """Mixin: any user error of the tool (:class:`~thinning.errors.ThinningError`) raised while
+    the command runs becomes its one sentence and exit status 2."""
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except ThinningError as exc:
+            raise FriendlyError(str(exc)) from None
+
+
+class FriendlyCommand(_Friendly, click.Command):
+    """A command whose user errors exit 2 with one sentence."""
+
+
+class FriendlyGroup(_Friendly, click.Group):
+    """A group whose user errors exit 2 with one sentence."""
+
+    command_class = FriendlyCommand
+
+
+class LazyGroup(FriendlyGroup):
     """A group whose subcommands are imported only when used."""
 
     def list_commands(self, ctx):
@@ -127,13 +149,10 @@ def analyse(source, out_dir, **values):
       thinning analyse bridge.avi --out results/bridge --fps 10kHz
       --pixel-size 8um --surface-tension 38mN/m
     """
-    from .analysis import UnusableInput, analyse as run
+    from .analysis import analyse as run
 
     options = parse_analysis_options(values)
-    try:
-        result = run(source, out_dir, options)
-    except UnusableInput as exc:
-        raise FriendlyError(str(exc)) from None
+    result = run(source, out_dir, options)
     click.echo(summary_text(result, out_dir))
 
 

@@ -12,10 +12,10 @@ import sys
 
 import click
 
-from .cli import OPTION_NAMES, FriendlyError, analysis_options, parse_analysis_options
+from .cli import OPTION_NAMES, FriendlyCommand, FriendlyError, analysis_options, parse_analysis_options
 
 
-@click.command()
+@click.command(cls=FriendlyCommand)
 @click.argument("manifest", type=click.Path(dir_okay=False))
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
               help="Output folder: one sub-folder per row, results.csv (and results.parquet).")
@@ -57,13 +57,10 @@ def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo
     if specs_file and not db_url:
         raise FriendlyError("--specs loads product specifications into a records database; "
                             "give --db URL too.")
-    from .batch import BatchBusy, SchedulerUnreachable, run_batch
-    from .manifest import UnusableManifest, read_manifest
+    from .batch import run_batch
+    from .manifest import read_manifest
 
-    try:
-        n_rows = len(read_manifest(manifest))
-    except UnusableManifest as exc:
-        raise FriendlyError(str(exc)) from None
+    n_rows = len(read_manifest(manifest))
     store = _open_store(db_url, specs_file) if db_url else None
     try:
         with _Progress(n_rows) as progress:
@@ -74,8 +71,6 @@ def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo
 
             report = run_batch(manifest, out_dir, defaults=defaults, workers=workers,
                                scheduler=scheduler, redo=redo, on_row=on_row)
-    except (UnusableManifest, BatchBusy, SchedulerUnreachable) as exc:
-        raise FriendlyError(str(exc)) from None
     finally:
         if store is not None:
             store.close()
@@ -120,15 +115,11 @@ class _Store:
 
 
 def _open_store(db_url, specs_file):
-    from .qc import SpecError
-    from .records import RecordsError, open_records
+    from .records import open_records
 
-    try:
-        records = open_records(db_url)
-        if specs_file:
-            records.load_specs(specs_file)
-    except (RecordsError, SpecError) as exc:
-        raise FriendlyError(str(exc)) from None
+    records = open_records(db_url)
+    if specs_file:
+        records.load_specs(specs_file)
     return _Store(records)
 
 

@@ -17,7 +17,7 @@ import click
 from platformdirs import user_data_dir
 
 from . import atomic
-from .cli import FriendlyError
+from .cli import FriendlyCommand, FriendlyError, FriendlyGroup
 
 ENV_DB = "THINNING_DB"  # same name as thinning.records.ENV_DB
 
@@ -57,23 +57,9 @@ def csv_option(func):
 
 
 def _open(db_url):
-    from .records import RecordsError, open_records
+    from .records import open_records
 
-    try:
-        return open_records(db_url)
-    except RecordsError as exc:
-        raise FriendlyError(str(exc)) from None
-
-
-def _friendly(call, *args, **kwargs):
-    """Run ``call``; a user-fixable error becomes a one-sentence exit 2."""
-    from .qc import SpecError
-    from .records import RecordsError
-
-    try:
-        return call(*args, **kwargs)
-    except (RecordsError, SpecError) as exc:
-        raise FriendlyError(str(exc)) from None
+    return open_records(db_url)
 
 
 def csv_cell(value) -> str:
@@ -112,7 +98,7 @@ def _console():
 _VERDICT_STYLE = {"pass": "bold green", "review": "bold yellow", "fail": "bold red"}
 
 
-@click.group()
+@click.group(cls=FriendlyGroup)
 def records():
     """Per-lot records: lots with verdicts, measurements, export, specifications.
 
@@ -129,7 +115,7 @@ def lots_command(db_url, product, as_csv):
     from .records import LOT_COLUMNS
 
     with _open(db_url) as store:
-        summaries = _friendly(store.lots, product=product)
+        summaries = store.lots(product=product)
     rows = [s.as_row() for s in summaries]
     if as_csv:
         _write_csv(sys.stdout, LOT_COLUMNS, rows)
@@ -168,7 +154,7 @@ def show_command(lot, db_url, product, as_csv, history):
     from .records import EXPORT_COLUMNS, replicate_label
 
     with _open(db_url) as store:
-        detail = _friendly(store.lot_detail, lot, product=product)
+        detail = store.lot_detail(lot, product=product)
     if as_csv:
         _write_csv(sys.stdout, EXPORT_COLUMNS, detail.measurements)
         return
@@ -225,7 +211,7 @@ def export_command(db_url, out_path, product):
     from .records import EXPORT_COLUMNS
 
     with _open(db_url) as store:
-        rows = _friendly(store.export_rows, product=product)
+        rows = store.export_rows(product=product)
     try:
         with atomic.replacing(out_path, "w", newline="", encoding="utf-8") as handle:
             _write_csv(handle, EXPORT_COLUMNS, rows)
@@ -240,7 +226,7 @@ def export_command(db_url, out_path, product):
 def load_specs_command(specs_file, db_url):
     """Load or update product specifications from a TOML file."""
     with _open(db_url) as store:
-        specs = _friendly(store.load_specs, specs_file)
+        specs = store.load_specs(specs_file)
     click.echo(f"loaded the specifications of {len(specs)} product{'s' if len(specs) != 1 else ''}: "
                + ", ".join(s.name for s in specs))
 
@@ -251,13 +237,13 @@ def load_specs_command(specs_file, db_url):
 def load_command(batch_dir, db_url):
     """Store a finished batch folder (its results.csv and row folders) in one transaction."""
     with _open(db_url) as store:
-        counts = _friendly(store.load_batch, batch_dir)
+        counts = store.load_batch(batch_dir)
     click.echo(f"{batch_dir}: {counts['inserted']} new, {counts['superseded']} replaced (earlier kept as "
                f"history), {counts['history']} older than the stored ones (kept as history), "
                f"{counts['unchanged']} unchanged, {counts['failure']} failed rows noted")
 
 
-@click.command("report")
+@click.command("report", cls=FriendlyCommand)
 @click.argument("lot")
 @db_option
 @product_option
@@ -269,7 +255,7 @@ def report(lot, db_url, product, out_dir):
 
     with _open(db_url) as store:
         try:
-            path = _friendly(write_lot_report, store, lot, product=product, out_dir=out_dir)
+            path = write_lot_report(store, lot, product=product, out_dir=out_dir)
         except OSError as exc:
             raise FriendlyError(f"cannot write the report into {out_dir} ({exc.strerror}).") from None
     click.echo(f"wrote {path}")

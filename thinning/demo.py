@@ -19,6 +19,8 @@ from pathlib import Path
 import click
 import numpy as np
 
+from .cli import FriendlyCommand
+
 PRODUCT = "harbour-cyan"
 SURFACE_TENSION = "41mN/m"
 FRAME_RATE = "2.5kHz"
@@ -104,7 +106,7 @@ def find_sample_videos() -> Path | None:
 MARKER = ".thinning-demo"
 
 
-@click.command()
+@click.command(cls=FriendlyCommand)
 @click.option("--out", "out_dir", default="thinning-demo", show_default=True,
               type=click.Path(file_okay=False),
               help="Fresh folder for the demo's batch, database and reports (a previous demo "

@@ -49,6 +49,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from .errors import ThinningError
 from . import rowscan
 
 log = logging.getLogger(__name__)
@@ -68,7 +69,7 @@ MAX_BEND_DEG = 1.5
 CLIPPED_EDGE_LIMIT = 0.85
 
 
-class NoFilament(ValueError):
+class NoFilament(ThinningError, ValueError):
     """No filament in view (message: one sentence for the user)."""
 
 

@@ -23,6 +23,7 @@ import logging
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from .errors import ThinningError
 from .units import OPTION_FIELDS, AnalysisOptions, BadQuantity, check_required, options_from_text
 
 log = logging.getLogger(__name__)
@@ -35,7 +36,7 @@ OPTION_COLUMNS = tuple(OPTION_FIELDS)
 MANIFEST_COLUMNS = ("path",) + IDENTITY_COLUMNS + OPTION_COLUMNS
 
 
-class UnusableManifest(ValueError):
+class UnusableManifest(ThinningError, ValueError):
     """The manifest as a whole cannot be used (message: one sentence for the user)."""
 
 

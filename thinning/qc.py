@@ -33,6 +33,8 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 from scipy import stats
 
+from .errors import ThinningError
+
 #: quantities a specification may limit: key → (plain name for sentences, SI unit)
 LIMITED_QUANTITIES = {
     "relaxation_time_s": ("relaxation time", "s"),
@@ -68,7 +70,7 @@ CHART_RULES = {
 }
 
 
-class SpecError(ValueError):
+class SpecError(ThinningError, ValueError):
     """A specifications file that cannot be used; the message is one sentence."""
 
 

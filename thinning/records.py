@@ -55,6 +55,7 @@ from sqlalchemy import (Boolean, Column, Double, ForeignKey, Index, Integer, Lar
 from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, OperationalError
 
+from .errors import ThinningError
 from . import qc
 from .values import finite_number as _number
 from .values import row_folder_name
@@ -195,7 +196,7 @@ failures = Table(
 )
 
 
-class RecordsError(ValueError):
+class RecordsError(ThinningError, ValueError):
     """A problem the user can fix (bad URL, unknown lot, unusable batch folder); one sentence."""
 
 

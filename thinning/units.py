@@ -13,10 +13,12 @@ import math
 import re
 from dataclasses import asdict, dataclass, fields
 
+from .errors import ThinningError
+
 GEOMETRIES = ("plates", "dripping")
 
 
-class BadQuantity(ValueError):
+class BadQuantity(ThinningError, ValueError):
     """A value that cannot be read as the quantity an option needs (one sentence)."""
 
 

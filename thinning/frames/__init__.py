@@ -25,6 +25,8 @@ from pathlib import Path
 
 import numpy as np
 
+from ..errors import ThinningError
+
 log = logging.getLogger(__name__)
 
 VIDEO_SUFFIXES = {".avi", ".mp4", ".mov", ".mkv", ".m4v", ".wmv", ".mpg", ".mpeg", ".webm", ".ogv"}
@@ -38,7 +40,7 @@ READ_AHEAD_ITEMS = 32
 DECODE_BATCH = 8
 
 
-class UnusableSource(ValueError):
+class UnusableSource(ThinningError, ValueError):
     """The path cannot be read as a recording (message: one sentence for the user)."""
 
 
