@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from thinning.characterise import characterise
-from thinning.findings import Severity
+from thinning.checks import Severity
 from thinning.laws import Fluid, filament_model
 
 CONTRACT_KEYS = {

@@ -9,7 +9,7 @@ import pytest
 from thinning.edges import NoFilament
 from thinning.neck import (TABLE_COLUMNS, diameter_noise, free_thinning_start, measure_recording,
                            to_physical)
-from thinning.findings import Severity
+from thinning.checks import Severity
 from thinning.units import Calibration
 
 _spec = importlib.util.spec_from_file_location("_edge_frames", Path(__file__).with_name("test_edges.py"))

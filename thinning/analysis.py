@@ -21,7 +21,7 @@ import pandas as pd
 
 from .errors import ThinningError
 from . import __version__, atomic
-from .findings import Finding, Severity, quality_of, warning_sentences
+from .checks import Code, Finding, Severity, quality_of, warning_sentences
 from .frames import UnusableSource, open_source
 from .units import AnalysisOptions, BadQuantity, Calibration, check_required
 
@@ -56,7 +56,7 @@ def resolve_frame_rate(options: AnalysisOptions, container_fps):
         return container_fps, []
     message = (f"No --fps given: the container's rate of {container_fps:g}/s was used, but for "
                "high-speed cameras it is usually a playback rate; pass --fps to be sure.")
-    return container_fps, [Finding("container-frame-rate", Severity.NOTE, message)]
+    return container_fps, [Finding(Code.CONTAINER_FRAME_RATE, Severity.NOTE, message)]
 
 
 def analyse(source, out_dir, options: AnalysisOptions, *, progress=None) -> dict:
@@ -100,8 +100,7 @@ def _analyse(source, out_dir, options: AnalysisOptions, progress) -> dict:
         if recording.frames_read == 0:
             raise UnusableInput(f"{source}: no frame could be decoded.")
         if recording.broken_off:
-            findings.append(Finding(
-                "record-broken-off", Severity.DOUBTFUL,
+            findings.append(Finding(Code.RECORD_BROKEN_OFF, Severity.DOUBTFUL,
                 f"The recording broke off after frame {recording.frames_read - 1} of "
                 f"{recording.n_frames} expected; it was analysed up to its last good frame."))
         sha256 = hashing.result()

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from . import regimes as rg
-from .findings import Finding, Severity
+from .checks import Code, Finding, Severity
 from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_extensibility,
                    fit_inertiocapillary, fit_viscocapillary)
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
@@ -229,7 +229,7 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     eta0 = zero_shear_viscosity
     if eta0 is None and solvent_viscosity is not None:
         eta0 = solvent_viscosity
-        findings.append(Finding("viscosity-fallback", Severity.NOTE,
+        findings.append(Finding(Code.VISCOSITY_FALLBACK, Severity.NOTE,
                                 "No zero-shear viscosity was given, so the solvent viscosity stands in "
                                 "for it in the Trouton ratio and the Ohnesorge number."))
     elif eta0 is None and eta_shear is not None:
@@ -265,33 +265,33 @@ def _findings(ra, regs, headline, head_fit, head_regime, *, t_b, fps_hz, floor, 
     out = []
     series = ra.series
     if headline == UNDETERMINED:
-        out.append(Finding("no-usable-regime", Severity.DOUBTFUL,
+        out.append(Finding(Code.NO_USABLE_REGIME, Severity.DOUBTFUL,
                            "No thinning regime could be located in the record, so no rheology "
                            "number from it can be trusted."))
     elif headline != rg.ELASTO_CAPILLARY:
-        out.append(Finding("no-elastic-regime", Severity.NOTE,
+        out.append(Finding(Code.NO_ELASTIC_REGIME, Severity.NOTE,
                            f"No elasto-capillary stretch was found: the liquid thinned like a "
                            f"Newtonian one ({headline}), so there is no relaxation time."))
     if head_fit is not None and head_fit.n_points < MIN_WINDOW_FRAMES:
         what = ("the frame rate is too low for this relaxation time"
                 if headline == rg.ELASTO_CAPILLARY else "the frame rate is too low for this liquid")
-        out.append(Finding("few-frames-in-window", Severity.DOUBTFUL,
+        out.append(Finding(Code.FEW_FRAMES_IN_WINDOW, Severity.DOUBTFUL,
                            f"Only {head_fit.n_points} frames lie in the {headline} fit window; {what}.",
                            head_fit.window_s))
     if head_regime is not None and head_regime.cut_by_floor:
         fall = head_regime.diameter_start_m / head_regime.diameter_end_m
         if headline == rg.ELASTO_CAPILLARY and fall < MIN_FLOOR_CUT_DECREASE:
-            out.append(Finding("window-cut-by-floor", Severity.DOUBTFUL,
+            out.append(Finding(Code.WINDOW_CUT_BY_FLOOR, Severity.DOUBTFUL,
                                f"The resolution floor ({floor * 1e6:.3g} µm) cuts the elasto-capillary "
                                f"window short: the diameter falls only {fall:.2g}-fold inside it.",
                                head_fit.window_s))
         else:
-            out.append(Finding("floor-ends-window", Severity.NOTE,
+            out.append(Finding(Code.FLOOR_ENDS_WINDOW, Severity.NOTE,
                                f"The {headline} window ends at the resolution floor "
                                f"({floor * 1e6:.3g} µm); thinner frames were left out of the fits.",
                                head_fit.window_s))
     if headline == rg.ELASTO_CAPILLARY and ra.elastic_unsettled:
-        out.append(Finding("elastic-not-settled", Severity.DOUBTFUL,
+        out.append(Finding(Code.ELASTIC_NOT_SETTLED, Severity.DOUBTFUL,
                            "The strain rate kept falling after the elasto-capillary window, so the "
                            "window may be the passage from viscous to elastic thinning; the settled "
                            "elastic stretch lies later, near or below the resolution floor.",
@@ -305,26 +305,25 @@ def _findings(ra, regs, headline, head_fit, head_regime, *, t_b, fps_hz, floor, 
         if predicted is not None and observed is not None and predicted > start:
             late = observed - predicted
             if late > max(LATE_BREAKUP_FRACTION * (predicted - start), 5.0 / fps_hz):
-                out.append(Finding(
-                    "late-breakup", Severity.DOUBTFUL,
+                out.append(Finding(Code.LATE_BREAKUP, Severity.DOUBTFUL,
                     f"The thread broke {late * 1e3:.3g} ms after the {headline} law predicts, "
                     "so elastic stress probably held it in a stretch too thin to measure; the "
                     "liquid may not be Newtonian and no relaxation time could be resolved.",
                     (predicted, observed)))
     if t_b is None and series.n:
-        out.append(Finding("no-breakup", Severity.NOTE,
+        out.append(Finding(Code.NO_BREAKUP, Severity.NOTE,
                            "The filament did not break within the record."))
     if series.outlier_index.size:
-        out.append(Finding("outlier-frames", Severity.NOTE,
+        out.append(Finding(Code.OUTLIER_FRAMES, Severity.NOTE,
                            f"{series.outlier_index.size} frames stood out from the thinning trend "
                            f"(beads or mis-measured frames) and were left out of the fits."))
     bo = groups.get("bond_number")
     if bo is not None and bo > SAGGING_BOND_NUMBER:
-        out.append(Finding("gravity-sagging", Severity.NOTE,
+        out.append(Finding(Code.GRAVITY_SAGGING, Severity.NOTE,
                            f"The Bond number is {bo:.2g}, so gravity may sag the filament "
                            f"and move its neck."))
     if lam is not None and lam * fps_hz < 10:
-        out.append(Finding("few-frames-per-relaxation-time", Severity.NOTE,
+        out.append(Finding(Code.FEW_FRAMES_PER_RELAXATION_TIME, Severity.NOTE,
                            f"The camera takes only {lam * fps_hz:.2g} frames per relaxation time; "
                            f"at least 10 are advisable."))
     return out

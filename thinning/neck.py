@@ -37,7 +37,7 @@ from . import rowscan
 from .edges import (CLIPPED_EDGE_LIMIT, MAX_BEND_DEG, PRESENCE_LEVEL, Layout, NoFilament,
                     Profile, ProfileBlock, axis_slopes, find_layout, measure_block, profiles_of,
                     refresh_light, rim_fractions)
-from .findings import Finding, Severity
+from .checks import Code, Finding, Severity
 
 log = logging.getLogger(__name__)
 
@@ -388,8 +388,7 @@ def summarise(table: pd.DataFrame, layout: Layout, *, snapshots=()) -> NeckSerie
             if seen[last + 1]:
                 breakup = float(frames[last]) + 0.5
             else:
-                findings.append(Finding(
-                    "filament-lost", Severity.DOUBTFUL,
+                findings.append(Finding(Code.FILAMENT_LOST, Severity.DOUBTFUL,
                     f"The filament disappeared from view after frame {int(frames[last])} "
                     "without a visible breakup."))
         gaps = ~connected[first:last + 1]
@@ -403,18 +402,15 @@ def summarise(table: pd.DataFrame, layout: Layout, *, snapshots=()) -> NeckSerie
             thick_gap = gaps & (before >= GAP_THIN_PX)
             serious = _longest_run(thick_gap) >= 3 or (lost & thick_gap).any()
             severity = Severity.DOUBTFUL if serious else Severity.NOTE
-            findings.append(Finding(
-                "thread-gaps", severity,
+            findings.append(Finding(Code.THREAD_GAPS, severity,
                 f"No connected thread was found in {int(gaps.sum())} frame(s) before the final "
                 f"breakup (longest run {longest}); their diameters are left empty."))
         if first > 0:
-            findings.append(Finding(
-                "no-filament-frames", Severity.NOTE,
+            findings.append(Finding(Code.NO_FILAMENT_FRAMES, Severity.NOTE,
                 f"The first {first} frame(s) show no connected filament; their diameters are empty."))
         table.loc[table.index > last, "diameter_px"] = np.nan
     else:
-        findings.append(Finding(
-            "no-connected-thread", Severity.DOUBTFUL,
+        findings.append(Finding(Code.NO_CONNECTED_THREAD, Severity.DOUBTFUL,
             "No frame shows a connected thread between the ends; nothing could be measured."))
     table.loc[~table["thread_connected"], "diameter_px"] = np.nan
     end = len(table) if breakup is None else int(breakup + 0.5)
@@ -497,8 +493,7 @@ def _quality_findings(table, layout: Layout, start):
     angle = table["axis_angle_deg"].to_numpy(float)[measured]
     tilt = float(np.median(angle))
     if abs(tilt) > TILT_LIMIT_DEG:
-        findings.append(Finding(
-            "tilt", Severity.NOTE,
+        findings.append(Finding(Code.TILT, Severity.NOTE,
             f"The filament axis is tilted by {abs(tilt):.1f}° from the image axis; diameters are "
             "measured across the axis, but check the camera alignment."))
     lateral = table["axis_lateral_px"].to_numpy(float)[measured]
@@ -507,21 +502,18 @@ def _quality_findings(table, layout: Layout, start):
         k = max(3, lateral.size // 10)
         drift = abs(float(np.median(lateral[-k:]) - np.median(lateral[:k])))
         if drift > max(3.0, 0.5 * float(np.nanmedian(diam[:k]))):
-            findings.append(Finding(
-                "axis-drift", Severity.NOTE,
+            findings.append(Finding(Code.AXIS_DRIFT, Severity.NOTE,
                 f"The filament axis drifted sideways by {drift:.1f} px during the record."))
     beads = table["beads"].to_numpy(bool) & measured
     if beads.sum() >= max(3, 0.05 * measured.sum()):
-        findings.append(Finding(
-            "beads", Severity.NOTE,
+        findings.append(Finding(Code.BEADS, Severity.NOTE,
             f"Beads formed on the thread ({_frame_range(beads, frames)}); the diameter is the "
             "thread's minimum between them."))
     floor = 3.0 * layout.blur_sigma_px
     contrast = table["min_contrast"].to_numpy(float)
     low = measured & ((table["diameter_px"].to_numpy(float) < floor) | (contrast < 0.8))
     if low.any():
-        findings.append(Finding(
-            "contrast-loss", Severity.NOTE,
+        findings.append(Finding(Code.CONTRAST_LOSS, Severity.NOTE,
             f"The thread is narrower than about three blur widths ({floor:.1f} px) in "
             f"{int(low.sum())} frame(s) ({_frame_range(low, frames)}): it is blurred into a "
             "low-contrast dip and those diameters are less reliable."))
@@ -536,14 +528,12 @@ def _clipping_findings(layout: Layout):
         return []
     advice = "Lower the exposure or the backlight so the background stays below the maximum."
     if share > CLIPPED_EDGE_LIMIT:  # the edges came from the steepest light gradient
-        return [Finding(
-            "background-clipped", Severity.DOUBTFUL,
+        return [Finding(Code.BACKGROUND_CLIPPED, Severity.DOUBTFUL,
             f"{share:.0%} of the background is at the camera's maximum grey level, so the light "
             "level is unknown: edges were placed at the steepest light gradient, which reads "
             "diameters low by up to a few tenths of a pixel (more the brighter the light). "
             + advice)]
-    return [Finding(
-        "background-clipped", Severity.NOTE,
+    return [Finding(Code.BACKGROUND_CLIPPED, Severity.NOTE,
         f"{share:.0%} of the background is at the camera's maximum grey level: where the light "
         "saturates the sensor, edges may read slightly inward. " + advice)]
 
