@@ -118,15 +118,15 @@ def child(mode: str, path: str, threads: int) -> dict:
         series = measure_recording(frames, n_frames=len(frames))
         count = len(series.table)
     elif mode == "analyse":
-        from thinning.analysis import analyse
+        from thinning.analysis import analyse_to
         from thinning.units import AnalysisOptions
 
         options = AnalysisOptions(fps_hz=_benchmark_fps(path), pixel_size_m=15e-6,
                                   surface_tension_N_m=0.036, geometry="plates")
         with tempfile.TemporaryDirectory() as out:
-            result = analyse(path, out, options)
-        count = int(result["source"]["n_frames"])
-        extra = {"regime": result.get("regime")}
+            result = analyse_to(path, out, options)
+        count = int(result.source.n_frames)
+        extra = {"regime": result.characterisation.regime}
     else:
         raise SystemExit(f"unknown mode {mode}")
     seconds = time.perf_counter() - started

@@ -70,9 +70,9 @@ def cases():
             synth.Optics(), "avi-mjpg", 5),
         "beads-plates": (synth.dilute_polymer_plates(beads=True, **plates), synth.Optics(),
                          "avi-raw", 21),
-        "plates-12bit-streak-mkv": (
+        "plates-12bit-streak-mp4": (
             synth.dilute_polymer_plates(**plates),
-            synth.Optics(bit_depth=12, streak_strength=0.9, flicker=0.05), "mkv-ffv1", 22),
+            synth.Optics(bit_depth=12, streak_strength=0.9, flicker=0.05), "mp4-ffv1", 22),
     }
 
 
@@ -82,7 +82,7 @@ SUFFIX = {"avi-raw": ".avi", "avi-mjpg": ".avi", "tiff": ".tif", "png-folder": "
 
 def run_case(name, folder: Path) -> dict:
     """Render and analyse one case in ``folder`` (outputs in ``folder/out``); its golden record."""
-    from thinning.analysis import analyse
+    from thinning.analysis import analyse_to
     from thinning.units import AnalysisOptions
 
     scene, optics, fmt, seed = cases()[name]
@@ -94,7 +94,7 @@ def run_case(name, folder: Path) -> dict:
     here = os.getcwd()
     os.chdir(folder)  # the source path is recorded as given: keep it relative and fixed
     try:
-        analyse(source, "out", options)
+        analyse_to(source, "out", options)
     finally:
         os.chdir(here)
     result = json.loads((folder / "out" / "result.json").read_text(encoding="utf-8"))

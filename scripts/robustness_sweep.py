@@ -10,7 +10,7 @@ import tempfile
 import numpy as np
 
 from thinning import synth, laws
-from thinning.analysis import analyse
+from thinning.analysis import analyse_to
 from thinning.units import AnalysisOptions
 rng=np.random.default_rng(int(sys.argv[1]) if len(sys.argv)>1 else 0)
 
@@ -40,7 +40,7 @@ for k in range(int(sys.argv[2]) if len(sys.argv)>2 else 6):
         print(k, 'synth failed', e); continue
     opts=AnalysisOptions(fps_hz=fps, pixel_size_m=px, surface_tension_N_m=sigma, geometry=geo)
     try:
-        r=analyse(path, d/"out", opts)
+        r=analyse_to(path, d/"out", opts).to_json()
     except Exception as e:
         print(k, 'ANALYSE FAILED', type(e).__name__, e, geo, fmt, optics.orientation); continue
     lamm=r['relaxation_time_s']

@@ -194,6 +194,10 @@ def fake_result(*, relaxation_time_s, sha256, quality="good", warnings=(), optio
         "extensional_viscosity_terminal_Pa_s": None, "breakup_time_s": filament_lifetime_s,
         "filament_lifetime_s": filament_lifetime_s, "warnings": list(warnings), "quality": quality,
         "quality_reasons": list(warnings) if quality == "doubtful" else [],
+        # the findings behind the sentences: doubtful ones as a short window, notes as beads
+        "findings": [{"code": "few-frames-in-window" if quality == "doubtful" else "beads",
+                      "severity": "doubtful" if quality == "doubtful" else "note",
+                      "message": w, "t_range_s": None} for w in warnings],
     }
 
 

@@ -23,6 +23,7 @@ from click.testing import CliRunner
 from thinning.batch import (RESULT_COLUMNS, TABLE_COLUMNS, TEMP_SUFFIX, row_folder_name, run_batch,
                             safe_name)
 from thinning.cli import cli
+from thinning.result import Result
 
 FAKE = "test_batch:fake_analyse"
 CALLS_ENV = "THINNING_TEST_CALLS"      # file the fake appends one line per analysis to
@@ -74,12 +75,16 @@ def fake_analyse(source, out_dir, options, *, progress=None):
         "relaxation_time_ci95_s": [lam * 0.9, lam * 1.1], "elastic_modulus_Pa": 1.0 / 3.0,
         "shear_viscosity_Pa_s": None, "extensional_viscosity_max_Pa_s": 12.5,
         "breakup_time_s": len(means) / fps, "filament_lifetime_s": len(means) / fps,
-        "initial_diameter_m": 1e-3, "quality": "good",
-        "warnings": ["First sentence.", "Second, with a comma."],
+        "initial_diameter_m": 1e-3,
+        "findings": [{"code": "beads", "severity": "note", "message": "First sentence.",
+                      "t_range_s": None},
+                     {"code": "tilt", "severity": "note", "message": "Second, with a comma.",
+                      "t_range_s": None}],
     }
     Path(out_dir).mkdir(parents=True, exist_ok=True)
     atomic_write_bytes(Path(out_dir) / "diameter.csv", b"frame,time_s,diameter_m\n")
-    atomic_write_bytes(Path(out_dir) / "result.json", json.dumps(result).encode())
+    result = Result.from_json(result)
+    atomic_write_bytes(Path(out_dir) / "result.json", result.to_json_text().encode())
     return result
 
 
@@ -305,7 +310,7 @@ def test_leftover_temporary_folders_are_removed(tmp_path, fake_env):
 
 
 def test_real_batch_matches_single_analyses(tmp_path):
-    from thinning.analysis import analyse
+    from thinning.analysis import analyse_to
     from thinning.units import options_from_text
 
     manifest = write_synthetic_set(tmp_path / "data")
@@ -328,7 +333,7 @@ def test_real_batch_matches_single_analyses(tmp_path):
     assert "no such file" in table[5]["reason"]
     options = options_from_text(SYNTHETIC_DEFAULTS)
     for r, (name, _, _) in zip([table[0], table[2], table[4]], SYNTHETIC):
-        single = analyse(tmp_path / "data" / name, tmp_path / "single" / name, options)
+        single = analyse_to(tmp_path / "data" / name, tmp_path / "single" / name, options).to_json()
         batched = json.loads((out / r["folder"] / "result.json").read_text())
         single["source"].pop("path"), batched["source"].pop("path")
         assert batched == single

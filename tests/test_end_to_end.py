@@ -63,7 +63,7 @@ def _run(tmp_path, scene, optics, fmt, seed):
     options = AnalysisOptions(fps_hz=scene.fps_hz, pixel_size_m=scene.pixel_size_m,
                               surface_tension_N_m=scene.fluid.surface_tension,
                               density_kg_m3=scene.fluid.density, geometry=scene.geometry)
-    return analyse(path, tmp_path / "out", options), truth
+    return analyse(path, options).to_json(), truth
 
 
 @pytest.fixture(scope="module")

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
 from types import SimpleNamespace
 
 import matplotlib.image
@@ -11,6 +12,8 @@ import pytest
 from matplotlib.figure import Figure
 
 from thinning import laws, plots
+from thinning.fits import Fit
+from thinning.result import Result
 
 SIGMA = 0.05  # N/m
 D0 = 5e-4  # m
@@ -52,6 +55,30 @@ def elastic():
     return _table(d, t), result
 
 
+def _elastic_result(elastic, snapshots=None, **changes):
+    table, fields = elastic
+    return _result({**fields, **changes}, table, fits={"elasto-capillary": _ec_fit()},
+                   snapshots=snapshots)
+
+
+def _result(fields, table, *, fits=None, snapshots=None):
+    """A :class:`Result` from result.json-style ``fields``, the per-frame ``table``, typed fits
+    and the frames of the picture strip."""
+    result = Result.from_json(fields, table=table)
+    if fits is not None:
+        result = replace(result, characterisation=replace(result.characterisation, fits=fits))
+    if snapshots is not None:
+        result = replace(result, neck=SimpleNamespace(snapshots=snapshots))
+    return result
+
+
+def _ec_fit(lam=0.005, g=40.0, window=(0.005, 0.06)):
+    law = {"initial_diameter": D0, "elastic_modulus": g, "surface_tension": SIGMA,
+           "relaxation_time": lam, "t0": 0.0}
+    return Fit(model="elasto-capillary", values={"relaxation_time_s": lam, "elastic_modulus_Pa": g},
+               window_s=window, n_points=100, success=True, law=law)
+
+
 def _snapshots(rng, *, dtype=np.uint8, n=3):
     top = np.iinfo(dtype).max
     snaps = []
@@ -70,9 +97,8 @@ def _labels(ax):
 
 
 def test_figures_are_written_and_not_blank(tmp_path, elastic):
-    table, result = elastic
     rng = np.random.default_rng(1)
-    paths = plots.write_figures(tmp_path, table, result, _snapshots(rng))
+    paths = plots.write_figures(tmp_path, _elastic_result(elastic, _snapshots(rng)))
     assert set(paths) == {"diameter", "extensional_viscosity", "strain_rate", "frames"}
     for name, path in paths.items():
         assert path == tmp_path / f"{name}.png"
@@ -84,16 +110,16 @@ def test_figures_are_written_and_not_blank(tmp_path, elastic):
 
 
 def test_same_input_gives_byte_identical_pngs(tmp_path, elastic):
-    table, result = elastic
-    first = plots.write_figures(tmp_path / "a", table, result, _snapshots(np.random.default_rng(2)))
-    second = plots.write_figures(tmp_path / "b", table, result, _snapshots(np.random.default_rng(2)))
+    first = plots.write_figures(tmp_path / "a",
+                                _elastic_result(elastic, _snapshots(np.random.default_rng(2))))
+    second = plots.write_figures(tmp_path / "b",
+                                 _elastic_result(elastic, _snapshots(np.random.default_rng(2))))
     for name in first:
         assert first[name].read_bytes() == second[name].read_bytes(), name
 
 
 def test_png_carries_no_software_or_date_text(tmp_path, elastic):
-    table, result = elastic
-    data = plots.write_figures(tmp_path, table, result, [])["diameter"].read_bytes()
+    data = plots.write_figures(tmp_path, _elastic_result(elastic, []))["diameter"].read_bytes()
     assert b"Software" not in data and b"matplotlib" not in data.lower()
 
 
@@ -111,17 +137,17 @@ def test_all_nan_table_still_gives_figures(tmp_path, keep_first):
     rng = np.random.default_rng(3)
     snaps = _snapshots(rng, n=1)
     snaps.append((1, snaps[0][1], None))  # a frame where no edge was found
-    paths = plots.write_figures(tmp_path, table, result, snaps)
+    paths = plots.write_figures(tmp_path, _result(result, table, snapshots=snaps))
     for path in paths.values():
         assert matplotlib.image.imread(path)[..., :3].std() > 0.01
 
 
 def test_missing_columns_are_tolerated(elastic):
-    table, result = elastic
-    bare = table[["frame", "time_s", "diameter_m"]]
-    ax = plots.plot_strain_rate(bare, result)
+    table, fields = elastic
+    bare = _result(fields, table[["frame", "time_s", "diameter_m"]])
+    ax = plots.plot_strain_rate(bare)
     assert not any(line.get_label() == "measured" for line in ax.lines)
-    ax = plots.plot_extensional_viscosity(bare, result)
+    ax = plots.plot_extensional_viscosity(bare)
     assert ax.get_yscale() == "log"
 
 
@@ -134,11 +160,12 @@ def test_newtonian_result_draws_the_visco_capillary_fit_and_no_plateau():
               "relaxation_time_ci95_s": None, "elastic_modulus_Pa": None,
               "regimes": [{"kind": "visco-capillary", "t_start_s": 0.002, "t_end_s": 0.018}],
               "fit_window_s": [0.002, 0.018], "breakup_time_s": t_b, "shear_viscosity_Pa_s": eta,
-              "options": {"surface_tension_N_m": SIGMA}, "pixel_size_m": 4e-6,
-              "fits": {"visco": {"model": "visco-capillary", "window_s": [0.002, 0.018],
-                                 "values": {"shear_viscosity_Pa_s": eta, "t_b_s": t_b}}}}
-    table = _table(d, t)
-    ax = plots.plot_diameter(table, result)
+              "options": {"surface_tension_N_m": SIGMA}, "pixel_size_m": 4e-6}
+    fit = Fit(model="visco-capillary", values={"shear_viscosity_Pa_s": eta, "breakup_time_s": t_b},
+              window_s=(0.002, 0.018), n_points=40, success=True,
+              law={"t_b": t_b, "surface_tension": SIGMA, "viscosity": eta})
+    result = _result(result, _table(d, t), fits={"visco-capillary": fit})
+    ax = plots.plot_diameter(result)
     fit = [line for line in ax.lines if line.get_label() == "visco-capillary fit"]
     assert len(fit) == 1
     ft_ms, fd_um = fit[0].get_data()
@@ -148,15 +175,14 @@ def test_newtonian_result_draws_the_visco_capillary_fit_and_no_plateau():
     np.testing.assert_allclose(np.asarray(fd_um) / 1e6, expected, rtol=1e-12)
     assert ax.get_xlabel() == "time t (ms)"
     assert ax.get_ylabel() == "minimum neck diameter D (µm)"
-    rate_ax = plots.plot_strain_rate(table, result)
+    rate_ax = plots.plot_strain_rate(result)
     assert r"$2/(3\lambda)$" not in _labels(rate_ax)
 
 
 def test_headline_curve_comes_from_the_elasto_capillary_law(elastic):
-    _, result = elastic
-    curves = plots.fit_curves_from_result(result)
-    t, d = curves["elasto-capillary"]
-    assert t[0] == result["fit_window_s"][0] and t[-1] == result["fit_window_s"][1]
+    result = _elastic_result(elastic)
+    t, d = plots.fit_curves(result)["elasto-capillary"]
+    assert t[0] == 0.005 and t[-1] == 0.06
     expected = laws.elasto_capillary_diameter(t, initial_diameter=D0, elastic_modulus=40.0,
                                               surface_tension=SIGMA, relaxation_time=0.005)
     np.testing.assert_allclose(d, expected, rtol=1e-12)
@@ -165,27 +191,19 @@ def test_headline_curve_comes_from_the_elasto_capillary_law(elastic):
     assert slope == pytest.approx(-1.0 / (3.0 * 0.005), rel=1e-9)
 
 
-def test_incomplete_fit_is_not_drawn(elastic):
-    _, result = elastic
-    result = dict(result, options={})  # no surface tension: the law cannot be evaluated
-    assert plots.fit_curves_from_result(result) == {}
-
-
-def test_caller_fit_curves_are_drawn(elastic):
-    table, result = elastic
-    t = np.linspace(0.01, 0.02, 5)
-    d = np.full(5, 1e-4)
-    ax = plots.plot_diameter(table, result, fit_curves={"finite-extensibility": (t, d)})
-    line = next(li for li in ax.lines if li.get_label() == "finite-extensibility fit")
-    np.testing.assert_allclose(line.get_ydata(), d * 1e6)
-    assert "elasto-capillary fit" not in _labels(ax)  # the caller's curves replace the default
+def test_a_fit_read_back_from_a_file_is_not_drawn(elastic):
+    # result.json keeps a fit's values, not its law's arguments: nothing is guessed
+    table, fields = elastic
+    fields = dict(fields, fits={"elasto-capillary": _ec_fit().to_dict()})
+    assert plots.fit_curves(_result(fields, table)) == {}
 
 
 def test_diameter_plot_shades_regimes_marks_breakup_and_floor(elastic):
-    table, result = elastic
+    fields = elastic[1]
+    result = _elastic_result(elastic)
     fig = Figure()
     ax = fig.add_subplot()
-    assert plots.plot_diameter(table, result, ax=ax) is ax
+    assert plots.plot_diameter(result, ax=ax) is ax
     assert ax.get_yscale() == "log"
     labels = _labels(ax)
     for kind in ("inertio-capillary", "elasto-capillary", "finite-extensibility"):
@@ -193,18 +211,16 @@ def test_diameter_plot_shades_regimes_marks_breakup_and_floor(elastic):
     spans = [p for p in ax.patches]
     assert len({tuple(p.get_facecolor()) for p in spans}) == 3  # each regime its own colour
     breakup = next(li for li in ax.lines if li.get_label() == "breakup")
-    assert breakup.get_xdata()[0] == pytest.approx(result["breakup_time_s"] * 1e3)
+    assert breakup.get_xdata()[0] == pytest.approx(fields["breakup_time_s"] * 1e3)
     floor = next(li for li in ax.lines if li.get_label() == "one pixel")
     assert floor.get_ydata()[0] == pytest.approx(4.0)  # 4 µm pixel
-    result = dict(result, resolution_floor_m=1e-5)
-    ax = plots.plot_diameter(table, result)
+    ax = plots.plot_diameter(_elastic_result(elastic, resolution_floor_m=1e-5))
     floor = next(li for li in ax.lines if li.get_label() == "resolution floor")
     assert floor.get_ydata()[0] == pytest.approx(10.0)
 
 
 def test_strain_rate_plateau_is_two_thirds_over_lambda(elastic):
-    table, result = elastic
-    ax = plots.plot_strain_rate(table, result)
+    ax = plots.plot_strain_rate(_elastic_result(elastic))
     plateau = next(c for c in ax.collections if c.get_label() == r"$2/(3\lambda)$")
     segment = plateau.get_segments()[0]
     # ε̇ = 2/(3λ) in the elasto-capillary regime (Anna & McKinley 2001, via physics.md)
@@ -214,8 +230,7 @@ def test_strain_rate_plateau_is_two_thirds_over_lambda(elastic):
 
 
 def test_extensional_viscosity_axes(elastic):
-    table, result = elastic
-    ax = plots.plot_extensional_viscosity(table, result)
+    ax = plots.plot_extensional_viscosity(_elastic_result(elastic))
     assert ax.get_yscale() == "log"
     assert ax.get_xlabel() == r"Hencky strain $\varepsilon$"
     eta_max = next(li for li in ax.lines if li.get_label() == "η_E max")
@@ -248,21 +263,20 @@ def test_empty_frame_strip_says_so():
     assert texts == ["no frames"]
 
 
-def test_fits_as_written_by_fit_to_dict_are_drawn_and_failures_skipped(elastic):
-    from thinning.fits import Fit
-
-    table, result = elastic
+def test_every_successful_fit_with_a_law_is_drawn_and_failures_skipped(elastic):
+    table, fields = elastic
     rho, x_ic, t_c = 1000.0, 0.7, 0.09
+    law = {"t_c": t_c, "surface_tension": SIGMA, "density": rho, "prefactor": x_ic}
     ic = Fit(model="inertio-capillary", values={"prefactor_X_IC": x_ic, "singular_time_s": t_c},
-             window_s=(0.0, 0.004), n_points=9, success=True).to_dict()
+             window_s=(0.0, 0.004), n_points=9, success=True, law=law)
     failed = Fit(model="visco-capillary", window_s=(0.0, 0.004), success=False,
-                 message="too few frames").to_dict()
-    result = dict(result, fits={"inertio-capillary": ic, "visco-capillary": failed},
-                  options={"surface_tension_N_m": SIGMA, "density_kg_m3": rho})
-    curves = plots.fit_curves_from_result(result)
+                 message="too few frames")
+    no_density = Fit(model="inertio-capillary", values={"singular_time_s": t_c},
+                     window_s=(0.0, 0.004), n_points=9, success=True)
+    result = _result(fields, table, fits={"inertio-capillary": ic, "visco-capillary": failed})
+    curves = plots.fit_curves(result)
     assert set(curves) == {"inertio-capillary"}
     t, d = curves["inertio-capillary"]
     np.testing.assert_allclose(d, laws.inertio_capillary_diameter(
         t, t_c=t_c, surface_tension=SIGMA, density=rho, prefactor=x_ic), rtol=1e-12)
-    no_density = dict(result, options={"surface_tension_N_m": SIGMA})
-    assert plots.fit_curves_from_result(no_density) == {}
+    assert plots.fit_curves(_result(fields, table, fits={"inertio-capillary": no_density})) == {}

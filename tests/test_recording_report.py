@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from thinning.report import recording
+from thinning.result import Result
 from thinning.report.recording import format_interval, format_quantity, write_recording_report
 
 EVIL = "<script>alert('x')</script>"
@@ -50,12 +51,11 @@ def _result(**changes):
         "elastic_modulus_Pa": 12.5, "shear_viscosity_Pa_s": None,
         "extensional_viscosity_max_Pa_s": 84.2, "extensional_viscosity_terminal_Pa_s": None,
         "breakup_time_s": 0.0831, "filament_lifetime_s": 0.0821,
-        "warnings": ["Beads form on the thread after 25 ms."],
-        "quality": "good", "quality_reasons": [],
-        "sample": EVIL,
+        "findings": [{"code": "beads", "severity": "note", "t_range_s": None,
+                      "message": "Beads form on the thread after 25 ms."}],
     }
     result.update(changes)
-    return result
+    return Result.from_json(result)
 
 
 def _visible(html):
@@ -64,7 +64,7 @@ def _visible(html):
 
 
 def test_report_is_written_with_the_numbers(tmp_path, figures):
-    path = write_recording_report(tmp_path / "out", _result(), figures)
+    path = write_recording_report(tmp_path / "out", _result(), figures, name=EVIL)
     assert path == tmp_path / "out" / "report.html"
     html = _visible(path.read_text(encoding="utf-8"))
     for text in ("5.2 ms", "5 – 5.4 ms", "12.5 Pa", "84.2 Pa·s", "83.1 ms", "82.1 ms", "450 µm",
@@ -112,7 +112,8 @@ def test_newtonian_result_shows_dashes_with_reasons_not_nan(tmp_path, figures):
 
 def test_doubtful_quality_reasons_are_prominent(tmp_path, figures):
     reason = "Only 6 frames in the fit window."
-    result = _result(quality="doubtful", quality_reasons=[reason], warnings=[reason])
+    result = _result(findings=[{"code": "few-frames-in-window", "severity": "doubtful",
+                                "message": reason, "t_range_s": None}])
     html = write_recording_report(tmp_path, result, figures).read_text("utf-8")
     alert = re.search(r'<div class="alert".*?</div>', html, flags=re.DOTALL)
     assert alert and reason in alert.group(0)
@@ -134,11 +135,9 @@ def test_missing_figure_file_is_reported_not_fatal(tmp_path, figures):
 
 
 def test_name_falls_back_to_the_source_file_name():
-    result = _result()
-    del result["sample"]
-    result["source"]["path"] = "/lab/run 7/lot-3_a.avi"
-    assert recording.recording_name(result) == "lot-3_a.avi"
-    assert recording.recording_name({}) == "recording"
+    source = {"path": "/lab/run 7/lot-3_a.avi", "sha256": "0" * 64}
+    assert recording.recording_name(_result(source=source)) == "lot-3_a.avi"
+    assert recording.recording_name(_result(source={"path": "", "sha256": ""})) == "recording"
 
 
 @pytest.mark.parametrize(("value", "unit", "text"), [
@@ -176,8 +175,9 @@ def test_intervals_come_from_the_headline_fits(tmp_path, figures):
     fe = Fit(model="finite-extensibility", values={"terminal_extensional_viscosity_Pa_s": 99.0},
              ci95={"terminal_extensional_viscosity_Pa_s": (90.0, 110.0)}, window_s=(0.03, 0.08),
              n_points=20, success=True).to_dict()
-    other = dict(ec, values={"elastic_modulus_Pa": 50.0}, ci95={"elastic_modulus_Pa": [1.0, 2.0]})
-    result = _result(fits={"other": other, "elasto-capillary": ec, "finite-extensibility": fe},
+    other = dict(ec, model="visco-capillary", values={"elastic_modulus_Pa": 50.0},
+                 ci95={"elastic_modulus_Pa": [1.0, 2.0]})
+    result = _result(fits={"visco-capillary": other, "elasto-capillary": ec, "finite-extensibility": fe},
                      extensional_viscosity_terminal_Pa_s=99.0)
     html = write_recording_report(tmp_path, result, figures).read_text("utf-8")
     assert "11 – 14 Pa" in html

@@ -18,12 +18,14 @@ from sqlalchemy import create_engine, func, select, update
 from services import fake_curve, fake_result, source_hash, write_batch
 from thinning import records as rec
 from thinning.cli_records import records as records_cli
+from thinning.result import Result
 
 # columns exactly as written in interface.md ("thinning records …")
 CONTRACT_EXPORT = ["product", "lot", "sample", "replicate", "status", "quality", "regime", "relaxation_time_s",
                    "relaxation_time_ci95_low_s", "relaxation_time_ci95_high_s", "shear_viscosity_Pa_s",
                    "extensional_viscosity_max_Pa_s", "breakup_time_s", "filament_lifetime_s", "sha256",
-                   "analysed_at", "tool_version"]
+                   "analysed_at", "tool_version",
+                   "warning_codes"]  # contract version 2: the findings' codes
 CONTRACT_LOTS = ["product", "lot", "made_on", "n_valid", "relaxation_time_mean_s", "relaxation_time_sd_s",
                  "relaxation_time_cv", "verdict", "reasons", "chart_flags"]
 
@@ -96,9 +98,9 @@ def test_store_result_copies_the_diameter_curve(db_url, tmp_path):
     manifest_row = {"sample": "L1-s", "lot": "L1", "product": "ink-A", "replicate": "1", "path": "x.avi",
                     "status": "ok", "sha256": result["source"]["sha256"], "made_on": "2026-01-05"}
     with rec.open_records(db_url) as store:
-        assert store.store_result(manifest_row, result, analysed_at="2026-02-01T10:00:00Z",
-                                  row_dir=row_dir) == "inserted"
-        assert store.store_result(manifest_row, result, analysed_at="2026-02-02T10:00:00Z",
+        assert store.store_result(manifest_row, Result.from_json(result),
+                                  analysed_at="2026-02-01T10:00:00Z", row_dir=row_dir) == "inserted"
+        assert store.store_result(manifest_row, Result.from_json(result), analysed_at="2026-02-02T10:00:00Z",
                                   row_dir=row_dir) == "unchanged"
         detail = store.lot_detail("L1")
     (t, d), = detail.curves.values()
@@ -119,7 +121,7 @@ def test_the_batch_store_and_a_later_load_of_its_folder_agree(db_url, tmp_path):
     manifest_row = {k: rows[0][k] for k in ("sample", "lot", "product", "replicate", "made_on")}
     with rec.open_records(db_url) as store:
         assert store.store_result({**manifest_row, "status": "ok", "sha256": in_memory["source"]["sha256"]},
-                                  in_memory, analysed_at="2026-02-01T10:00:00Z",
+                                  Result.from_json(in_memory), analysed_at="2026-02-01T10:00:00Z",
                                   row_dir=tmp_path / "b" / "1-L1-s") == "inserted"
         assert store.load_batch(tmp_path / "b")["unchanged"] == 1
         (row,) = store.export_rows()
@@ -142,7 +144,7 @@ def test_a_changed_result_supersedes_and_keeps_history(db_url, tmp_path):
     assert count(db_url, rec.measurements) == 6
     assert len(detail.history) == 3
     old = detail.history[0]
-    assert old["tool_version"] == "0.1.0" and json.loads(old["options"]) == {"surface_tension_N_m": 0.05}
+    assert old["tool_version"] == "0.1.0" and json.loads(old["options"])["surface_tension_N_m"] == 0.05
     assert old["superseded_at"] and old["superseded_by"] is not None and old["analysed_at"].startswith("2026-02-01")
     # the verdict only sees the current measurements
     assert detail.summary.verdict.stats["relaxation_time_s"].mean == pytest.approx((0.011 + 0.020) / 3)
@@ -178,7 +180,7 @@ def test_failed_rows_are_no_measurements_but_make_the_lot_review(db_url, tmp_pat
         # the same row analysed successfully later: the failure no longer counts
         fixed = fake_result(relaxation_time_s=0.0101, sha256="ab" * 32)
         store.store_result({"sample": "L1-s", "lot": "L1", "product": "ink-A", "replicate": "4", "status": "ok"},
-                           fixed, analysed_at="2026-02-02T10:00:00Z")
+                           Result.from_json(fixed), analysed_at="2026-02-02T10:00:00Z")
         (lot,) = store.lots()
     assert lot.verdict.verdict == "pass" and lot.verdict.n_valid == 4
     assert count(db_url, rec.failures) == 1  # kept, no longer counted
@@ -265,12 +267,13 @@ def _store_many(url, worker, n, barrier=None):
             sha = source_hash("race", worker, i)
             store.store_result({"sample": f"w{worker}-{i}", "lot": "RACE", "product": "ink-A", "replicate": "1",
                                 "status": "ok", "made_on": "2026-01-01"},
-                               fake_result(relaxation_time_s=0.01, sha256=sha),
+                               Result.from_json(fake_result(relaxation_time_s=0.01, sha256=sha)),
                                analysed_at=f"2026-02-01T10:00:{i:02d}Z")
             # every worker also rewrites one shared identity with its own result
             store.store_result({"sample": "shared", "lot": "RACE", "product": "ink-A", "replicate": "1",
                                 "status": "ok"},
-                               fake_result(relaxation_time_s=0.01 + 1e-5 * (worker * n + i), sha256="cd" * 32),
+                               Result.from_json(fake_result(relaxation_time_s=0.01 + 1e-5 * (worker * n + i),
+                                                            sha256="cd" * 32)),
                                analysed_at="2026-02-01T11:00:00Z")
 
 

@@ -1,17 +1,17 @@
-"""One recording end to end: source → neck diameters → regimes and fits → DIR files.
+"""One recording end to end: source → neck diameters → regimes and fits → Result → DIR files.
 
-:func:`analyse` is the whole ``thinning analyse`` job and the unit of work of a
-batch. It reads only the recording, writes only into ``out_dir`` (every file
-replaced atomically, ``result.json`` last), and raises :class:`UnusableInput`
-with one sentence for input it cannot use.
+:func:`analyse` turns a recording and its options into a
+:class:`~thinning.result.Result` (it reads only the recording and writes
+nothing); :func:`write_outputs` writes a result's files into a folder (every
+file replaced atomically, ``result.json`` last); :func:`analyse_to` is both,
+the ``thinning analyse`` job and the unit of work of a batch. Input it cannot
+use raises :class:`UnusableInput` with one sentence.
 """
 
 from __future__ import annotations
 
 import importlib
-import json
 import logging
-import math
 import threading
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -19,15 +19,15 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import ThinningError
 from . import __version__, atomic
-from .checks import Code, Finding, Severity, quality_of, warning_sentences
+from .checks import Code, Finding, Severity
+from .errors import ThinningError
 from .frames import UnusableSource, open_source
+from .result import MeasuredLayout, Result, SourceInfo
 from .units import AnalysisOptions, BadQuantity, Calibration, check_required
 
 log = logging.getLogger(__name__)
 
-RESULT_SCHEMA = "thinning.result/1"
 #: Without --fps, a container rate below this (1/s) is used with a warning (likely a playback rate).
 PLAYBACK_RATE_LIMIT_HZ = 500.0
 #: Modules of the stages after the measurement, imported in the background while it runs.
@@ -59,21 +59,30 @@ def resolve_frame_rate(options: AnalysisOptions, container_fps):
     return container_fps, [Finding(Code.CONTAINER_FRAME_RATE, Severity.NOTE, message)]
 
 
-def analyse(source, out_dir, options: AnalysisOptions, *, progress=None) -> dict:
-    """Analyse one recording into ``out_dir``; return the ``result.json`` content.
+def analyse(source, options: AnalysisOptions, *, progress=None) -> Result:
+    """Analyse one recording; return its :class:`~thinning.result.Result` (nothing is written).
 
-    ``progress``: optional callable ``progress(frames_done, n_frames)``.
-    Writes ``diameter.csv``, the figures, ``report.html`` and ``result.json``.
-    Linear algebra runs on one thread: the fits are small, and an idle BLAS
-    thread pool spins on cores that the decoders (or other workers) need.
+    ``source`` a recording path (see :func:`thinning.frames.open_source`);
+    ``options`` the analysis options in SI; ``progress`` an optional callable
+    ``progress(frames_done, n_frames)``. Raises :class:`UnusableInput` (one
+    sentence) for a recording or options it cannot use. Linear algebra runs on
+    one thread: the fits are small, and an idle BLAS thread pool spins on
+    cores that the decoders (or other workers) need.
     """
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1, user_api="blas"):
-        return _analyse(source, out_dir, options, progress)
+        return _analyse(source, options, progress)
 
 
-def _analyse(source, out_dir, options: AnalysisOptions, progress) -> dict:
+def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> Result:
+    """:func:`analyse`, then :func:`write_outputs` into ``out_dir``: the ``thinning analyse`` job."""
+    result = analyse(source, options, progress=progress)
+    write_outputs(result, out_dir)
+    return result
+
+
+def _analyse(source, options: AnalysisOptions, progress) -> Result:
     from .edges import NoFilament
     from .neck import measure_recording, to_physical
 
@@ -100,13 +109,14 @@ def _analyse(source, out_dir, options: AnalysisOptions, progress) -> dict:
         if recording.frames_read == 0:
             raise UnusableInput(f"{source}: no frame could be decoded.")
         if recording.broken_off:
-            findings.append(Finding(Code.RECORD_BROKEN_OFF, Severity.DOUBTFUL,
+            findings.append(Finding(
+                Code.RECORD_BROKEN_OFF, Severity.DOUBTFUL,
                 f"The recording broke off after frame {recording.frames_read - 1} of "
                 f"{recording.n_frames} expected; it was analysed up to its last good frame."))
         sha256 = hashing.result()
-        source_info = {"path": str(source), "sha256": sha256, "n_frames": int(recording.frames_read),
-                       "width_px": int(recording.shape[1]), "height_px": int(recording.shape[0]),
-                       "bit_depth": int(recording.bit_depth)}
+        source_info = SourceInfo(path=str(source), sha256=sha256, n_frames=int(recording.frames_read),
+                                 width_px=int(recording.shape[1]), height_px=int(recording.shape[0]),
+                                 bit_depth=int(recording.bit_depth))
 
     from .characterise import characterise
 
@@ -126,25 +136,12 @@ def _analyse(source, out_dir, options: AnalysisOptions, progress) -> dict:
     findings.extend(rheo.findings)
     for column in rheo.curves.columns:
         table[column] = rheo.curves[column].to_numpy()
-
-    quality, reasons = quality_of(findings)
-    result = {
-        "schema": RESULT_SCHEMA,
-        "tool_version": __version__,
-        "source": source_info,
-        "fps_hz": fps_hz,
-        "pixel_size_m": pixel_size_m,
-        "options": options.to_dict(),
-        **rheo.result_fields(),
-        "warnings": warning_sentences(findings),
-        "quality": quality,
-        "quality_reasons": reasons,
-        "finding_codes": list(dict.fromkeys(f.code for f in findings)),
-        "layout": _layout_dict(series),
-    }
-    result = _json_safe(result)
-    write_outputs(out_dir, result, table, series, rheo)
-    return result
+    layout = series.layout
+    return Result(source=source_info, calibration=calibration, options=options,
+                  characterisation=rheo, findings=tuple(findings),
+                  layout=MeasuredLayout(orientation=layout.orientation, roi_px=tuple(layout.roi),
+                                        plate_width_px=layout.plate_width_px),
+                  tool_version=__version__, neck=series, table=table)
 
 
 def _import_later_stages():
@@ -169,36 +166,7 @@ def _pixel_size(options: AnalysisOptions, series) -> float:
     return options.reference_width_m / float(width_px)
 
 
-def _layout_dict(series):
-    layout = series.layout
-    return {"orientation": layout.orientation, "roi_px": [int(v) for v in layout.roi],
-            "plate_width_px": layout.plate_width_px}
-
-
-def _json_safe(value):
-    """Plain Python for JSON: numpy scalars unwrapped, NaN/inf → None, tuples → lists."""
-    if isinstance(value, dict):
-        return {str(k): _json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_safe(v) for v in value]
-    if isinstance(value, (np.bool_, bool)):
-        return bool(value)
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        value = float(value)
-        return value if math.isfinite(value) else None
-    if isinstance(value, np.ndarray):
-        return _json_safe(value.tolist())
-    return value
-
-
 # --- writers -------------------------------------------------------------------------
-
-def result_json_text(result: dict) -> str:
-    """The ``result.json`` text: full precision, never NaN."""
-    return json.dumps(result, indent=2, allow_nan=False) + "\n"
-
 
 def diameter_csv_text(table: pd.DataFrame) -> str:
     """The ``diameter.csv`` text: the contract's columns first, empty cells where undefined."""
@@ -207,15 +175,19 @@ def diameter_csv_text(table: pd.DataFrame) -> str:
     return frame.to_csv(index=False, na_rep="", lineterminator="\n", float_format=lambda v: repr(float(v)))
 
 
-def write_outputs(out_dir, result, table, series, rheo):
-    """Write every file of one analysed recording into ``out_dir`` (created if needed)."""
+def write_outputs(result: Result, out_dir) -> Path:
+    """Write every file of one analysed recording into ``out_dir`` (created if needed).
+
+    ``diameter.csv``, the figures, ``report.html`` and, last, ``result.json``;
+    each replaced atomically. Returns the folder.
+    """
     from .plots import write_figures
     from .report.recording import write_recording_report
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    atomic.write_bytes(out / "diameter.csv", diameter_csv_text(table).encode())
-    figures = write_figures(out, table, result, series.snapshots, fit_curves=None,
-                            orientation=series.layout.orientation)
+    atomic.write_bytes(out / "diameter.csv", diameter_csv_text(result.table).encode())
+    figures = write_figures(out, result)
     write_recording_report(out, result, figures)
-    atomic.write_bytes(out / "result.json", result_json_text(result).encode())
+    atomic.write_bytes(out / "result.json", result.to_json_text().encode())
+    return out

@@ -41,12 +41,13 @@ from pathlib import Path
 from .errors import ThinningError
 from . import __version__, atomic
 from .manifest import ManifestRow, read_manifest, row_options
+from .result import Result
 from .units import AnalysisOptions, BadQuantity
 from .values import row_folder_name, safe_name  # noqa: F401  (safe_name: part of the batch API)
 
 log = logging.getLogger(__name__)
 
-DEFAULT_ANALYSER = "thinning.analysis:analyse"
+DEFAULT_ANALYSER = "thinning.analysis:analyse_to"
 ROW_SCHEMA = "thinning.batch-row/1"
 ROW_FILE = "row.json"
 #: Suffix of the temporary sibling folders a row is written through.
@@ -62,8 +63,9 @@ RESULT_COLUMNS = (
     "breakup_time_s", "filament_lifetime_s", "initial_diameter_m", "fps_hz", "pixel_size_m",
     "warnings", "sha256",
 )
-#: Further columns after the contract's: bookkeeping and provenance.
-EXTRA_COLUMNS = ("made_on", "notes", "folder", "analysed_at", "tool_version")
+#: Further columns after the contract's: the findings' codes (contract version 2), then
+#: bookkeeping and provenance.
+EXTRA_COLUMNS = ("warning_codes", "made_on", "notes", "folder", "analysed_at", "tool_version")
 TABLE_COLUMNS = RESULT_COLUMNS + EXTRA_COLUMNS
 #: Numeric result columns copied straight from result.json.
 _RESULT_NUMBERS = ("relaxation_time_s", "elastic_modulus_Pa", "shear_viscosity_Pa_s",
@@ -106,14 +108,15 @@ class RowOutcome:
     """What became of one row.
 
     ``status`` ``"ok"`` or ``"failed"``; ``reason`` one sentence when failed;
-    ``result`` the ``result.json`` content when ok; ``skipped`` True when an
+    ``result`` the :class:`~thinning.result.Result` when ok (without its neck
+    series and per-frame table, which stay in the row's folder); ``skipped`` True when an
     earlier run's result was reused; ``analysed_at`` UTC ISO time of the analysis.
     """
 
     row: int
     status: str
     reason: str = ""
-    result: dict | None = None
+    result: Result | None = None
     analysed_at: str = ""
     skipped: bool = False
     attempts: int = 1
@@ -138,7 +141,7 @@ def run_row(task: RowTask) -> RowOutcome:
     temp.mkdir(parents=True)
     with _cleared(temp):
         try:
-            result = _analyser(task.analyser)(task.source, temp, task.options)
+            result = _analyser(task.analyser)(task.source, temp, task.options).summary()
             status, reason = "ok", ""
         except ThinningError as exc:
             result, status, reason = None, "failed", str(exc)
@@ -162,11 +165,11 @@ def _plain_options(options: AnalysisOptions) -> dict:
 
 
 def _row_json(task: RowTask, outcome: RowOutcome) -> dict:
-    result = outcome.result or {}
+    result = outcome.result
     return {"schema": ROW_SCHEMA, "row": task.row, "status": outcome.status, "reason": outcome.reason,
-            "source": task.source, "sha256": (result.get("source") or {}).get("sha256"),
+            "source": task.source, "sha256": None if result is None else result.source.sha256,
             "options": _plain_options(task.options), "analysed_at": outcome.analysed_at,
-            "tool_version": result.get("tool_version", __version__)}
+            "tool_version": __version__ if result is None else result.tool_version}
 
 
 def _write_row_json(folder: Path, task: RowTask, outcome: RowOutcome):
@@ -181,8 +184,8 @@ def _up_to_date(task: RowTask) -> RowOutcome | None:
     folder = Path(task.folder)
     try:
         record = json.loads((folder / ROW_FILE).read_text(encoding="utf-8"))
-        result = json.loads((folder / "result.json").read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+        result = Result.from_json(json.loads((folder / "result.json").read_text(encoding="utf-8")))
+    except (OSError, ValueError, TypeError, KeyError):
         return None
     if record.get("status") != "ok" or record.get("options") != _plain_options(task.options):
         return None
@@ -191,7 +194,7 @@ def _up_to_date(task: RowTask) -> RowOutcome | None:
             sha256 = recording.sha256
     except (UnusableSource, OSError):
         return None
-    if sha256 != record.get("sha256") or sha256 != (result.get("source") or {}).get("sha256"):
+    if sha256 != record.get("sha256") or sha256 != result.source.sha256:
         return None
     return RowOutcome(task.row, "ok", "", result, record.get("analysed_at", ""), skipped=True)
 
@@ -421,19 +424,21 @@ def run_dask(tasks, on_outcome, *, scheduler: str, connect_timeout_s: float = 20
 
 def table_row(row: ManifestRow, outcome: RowOutcome, folder_name: str) -> dict:
     """One results.csv row (:data:`TABLE_COLUMNS`; None where empty)."""
-    result = outcome.result or {}
-    ci = result.get("relaxation_time_ci95_s") or [None, None]
     values = {"row": row.row, "path": row.path, **{k: row.identity.get(k, "") for k in
                                                     ("sample", "lot", "product", "replicate")},
-              "status": outcome.status, "reason": outcome.reason,
-              "quality": result.get("quality"), "regime": result.get("regime")}
-    values.update({name: result.get(name) for name in _RESULT_NUMBERS})
-    values["relaxation_time_ci95_low_s"], values["relaxation_time_ci95_high_s"] = ci[0], ci[1]
-    values["warnings"] = "; ".join(result.get("warnings") or [])
-    values["sha256"] = (result.get("source") or {}).get("sha256")
+              "status": outcome.status, "reason": outcome.reason}
     values.update(made_on=row.identity.get("made_on", ""), notes=row.identity.get("notes", ""),
-                  folder=folder_name, analysed_at=outcome.analysed_at,
-                  tool_version=result.get("tool_version", __version__))
+                  folder=folder_name, analysed_at=outcome.analysed_at, tool_version=__version__)
+    result = outcome.result
+    if result is not None:
+        fields = result.to_json()
+        ci = fields["relaxation_time_ci95_s"] or [None, None]
+        values.update({name: fields[name] for name in _RESULT_NUMBERS})
+        values.update(quality=result.quality, regime=fields["regime"],
+                      relaxation_time_ci95_low_s=ci[0], relaxation_time_ci95_high_s=ci[1],
+                      warnings="; ".join(result.warnings),
+                      warning_codes="; ".join(result.warning_codes),
+                      sha256=result.source.sha256, tool_version=result.tool_version)
     return {column: values.get(column) for column in TABLE_COLUMNS}
 
 

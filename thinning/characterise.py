@@ -109,10 +109,67 @@ class Characterisation:
             "resolution_floor_m": num(self.resolution_floor_m),
             "diameter_noise_m": num(self.diameter_noise_m),
         }
-        for key in ("ohnesorge_number", "deborah_number", "elasto_capillary_number", "bond_number"):
+        for key in GROUP_KEYS:
             out[key] = num(self.groups.get(key))
         out["fits"] = {name: f.to_dict() for name, f in self.fits.items()}
         return out
+
+    @classmethod
+    def from_fields(cls, data: dict) -> "Characterisation":
+        """The characterisation read back from the rheology keys of ``result.json`` (see
+        :meth:`result_fields`; missing keys are None): no curves, no findings, fits without
+        their residuals and law arguments."""
+        def pair(p):
+            return None if p is None else tuple(p)
+
+        frames = data.get("fit_window_frames")
+        return cls(
+            regime=data.get("regime") or UNDETERMINED,
+            regimes=[rg.Regime.from_dict(r) for r in data.get("regimes") or []],
+            relaxation_time_s=data.get("relaxation_time_s"),
+            relaxation_time_ci95_s=pair(data.get("relaxation_time_ci95_s")),
+            fit_window_s=pair(data.get("fit_window_s")),
+            fit_window_frames=None if frames is None else int(frames),
+            free_thinning_start_s=data.get("free_thinning_start_s"),
+            initial_diameter_m=data.get("initial_diameter_m"),
+            elastic_modulus_Pa=data.get("elastic_modulus_Pa"),
+            shear_viscosity_Pa_s=data.get("shear_viscosity_Pa_s"),
+            extensional_viscosity_max_Pa_s=data.get("extensional_viscosity_max_Pa_s"),
+            extensional_viscosity_terminal_Pa_s=data.get("extensional_viscosity_terminal_Pa_s"),
+            breakup_time_s=data.get("breakup_time_s"),
+            filament_lifetime_s=data.get("filament_lifetime_s"),
+            trouton_ratio_max=data.get("trouton_ratio_max"),
+            finite_extensibility_L2=data.get("finite_extensibility_L2"),
+            groups={key: data.get(key) for key in GROUP_KEYS},
+            resolution_floor_m=data.get("resolution_floor_m"),
+            diameter_noise_m=data.get("diameter_noise_m"),
+            fits={name: Fit.from_dict(f) for name, f in (data.get("fits") or {}).items()})
+
+    def interval(self, key: str):
+        """The 95 % interval ``(low, high)`` behind the headline number ``key`` (a
+        ``result.json`` key), taken from the fit that gave it; None when there is none."""
+        if key == "relaxation_time_s":
+            return self.relaxation_time_ci95_s
+        source = _INTERVAL_SOURCES.get(key)
+        if source is None:
+            return None
+        fit = self.fits.get(source[0])
+        if not fit or (key == "elastic_modulus_Pa" and self.regime != rg.ELASTO_CAPILLARY):
+            return None
+        interval = fit.ci95.get(source[1])
+        if interval is None or not all(np.isfinite(interval)):
+            return None
+        return tuple(float(v) for v in interval)
+
+
+#: Headline key → (fit, value name) whose interval it carries.
+_INTERVAL_SOURCES = {
+    "elastic_modulus_Pa": ("elasto-capillary", "elastic_modulus_Pa"),
+    "shear_viscosity_Pa_s": ("visco-capillary", "shear_viscosity_Pa_s"),
+    "extensional_viscosity_terminal_Pa_s": ("finite-extensibility", "terminal_extensional_viscosity_Pa_s"),
+}
+#: The dimensionless groups written to ``result.json``.
+GROUP_KEYS = ("ohnesorge_number", "deborah_number", "elasto_capillary_number", "bond_number")
 
 
 def _check_inputs(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz, geometry):

@@ -149,10 +149,10 @@ def analyse(source, out_dir, **values):
       thinning analyse bridge.avi --out results/bridge --fps 10kHz
       --pixel-size 8um --surface-tension 38mN/m
     """
-    from .analysis import analyse as run
+    from .analysis import analyse_to
 
     options = parse_analysis_options(values)
-    result = run(source, out_dir, options)
+    result = analyse_to(source, out_dir, options)
     click.echo(summary_text(result, out_dir))
 
 
@@ -162,27 +162,29 @@ def _fmt(value, unit, scale=1.0, digits=3):
     return f"{value * scale:.{digits}g} {unit}"
 
 
-def summary_text(result: dict, out_dir) -> str:
-    """A few human lines: λ with its interval, regime, quality, warnings."""
-    lam = result.get("relaxation_time_s")
-    ci = result.get("relaxation_time_ci95_s")
-    lines = [f"{result['source']['path']}: {result['source']['n_frames']} frames at "
-             f"{result['fps_hz']:g}/s, {result['pixel_size_m'] * 1e6:.4g} µm per pixel"]
+def summary_text(result, out_dir) -> str:
+    """A few human lines of a :class:`~thinning.result.Result`: λ with its interval, regime,
+    quality, warnings."""
+    c = result.characterisation
+    lam = c.relaxation_time_s
+    ci = c.relaxation_time_ci95_s
+    lines = [f"{result.source.path}: {result.source.n_frames} frames at "
+             f"{result.calibration.fps_hz:g}/s, {result.calibration.pixel_size_m * 1e6:.4g} µm per pixel"]
     if lam is not None:
         scale, unit = (1e3, "ms") if lam < 1 else (1.0, "s")
         interval = f" (95 % interval {ci[0] * scale:.3g}–{ci[1] * scale:.3g} {unit})" if ci else ""
         lines.append(f"  relaxation time      {lam * scale:.4g} {unit}{interval}")
     else:
         lines.append("  relaxation time      — (no elasto-capillary stretch located)")
-    lines.append(f"  regime               {result['regime']}")
-    if result.get("shear_viscosity_Pa_s") is not None:
-        lines.append(f"  shear viscosity      {_fmt(result['shear_viscosity_Pa_s'], 'mPa·s', 1e3, 4)}")
-    if result.get("extensional_viscosity_max_Pa_s") is not None:
-        lines.append(f"  ext. viscosity max   {_fmt(result['extensional_viscosity_max_Pa_s'], 'Pa·s')}")
-    lines.append(f"  breakup time         {_fmt(result.get('breakup_time_s'), 'ms', 1e3, 4)}")
-    lines.append(f"  quality              {result['quality']}")
-    for warning in result.get("warnings", []):
-        lines.append(f"  warning: {warning}")
+    lines.append(f"  regime               {c.regime}")
+    if c.shear_viscosity_Pa_s is not None:
+        lines.append(f"  shear viscosity      {_fmt(c.shear_viscosity_Pa_s, 'mPa·s', 1e3, 4)}")
+    if c.extensional_viscosity_max_Pa_s is not None:
+        lines.append(f"  ext. viscosity max   {_fmt(c.extensional_viscosity_max_Pa_s, 'Pa·s')}")
+    lines.append(f"  breakup time         {_fmt(c.breakup_time_s, 'ms', 1e3, 4)}")
+    lines.append(f"  quality              {result.quality}")
+    for code, warning in zip(result.warning_codes, result.warnings):
+        lines.append(f"  warning [{code}]: {warning}")
     lines.append(f"  written to {out_dir}")
     return "\n".join(lines)
 

@@ -106,7 +106,7 @@ class _Store:
     def __call__(self, row, outcome, folder):
         table_row = {"row": row.row, "path": row.path, **row.identity, "status": outcome.status,
                      "reason": outcome.reason,
-                     "sha256": ((outcome.result or {}).get("source") or {}).get("sha256") or ""}
+                     "sha256": "" if outcome.result is None else outcome.result.source.sha256}
         self.records.store_result(table_row, outcome.result, analysed_at=outcome.analysed_at,
                                   row_dir=folder if outcome.ok else None)
 

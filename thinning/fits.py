@@ -35,7 +35,9 @@ class Fit:
     ``ci95`` maps a value's name to its 95 % interval (low, high), ``stderr``
     to its standard error; ``residuals`` are D_data − D_fit (m) over the
     window; ``reduced_chi2`` uses the diameter noise. ``success`` False means
-    no usable fit, ``message`` says why.
+    no usable fit, ``message`` says why. ``law`` holds the keyword arguments
+    (SI) of the model's closed-form law in :mod:`thinning.laws`, which
+    :meth:`curve` evaluates (empty for a fit read back from ``result.json``).
     """
 
     model: str
@@ -48,9 +50,35 @@ class Fit:
     residuals: np.ndarray = field(default_factory=lambda: np.empty(0))
     success: bool = False
     message: str = ""
+    law: dict = field(default_factory=dict, compare=False, repr=False)
 
     def __bool__(self) -> bool:
         return self.success
+
+    def curve(self, t):
+        """The fitted law's diameter (m) at times ``t`` (s); NaN where it cannot be evaluated
+        (a failed fit, one read back from a file, an inertio-capillary fit without the density)."""
+        t = np.asarray(t, dtype=float)
+        law = LAWS.get(self.model)
+        if not self.success or law is None or not self.law:
+            return np.full(t.shape, np.nan)
+        with np.errstate(all="ignore"):
+            return np.asarray(law(t, **self.law), dtype=float)
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "Fit":
+        """A fit read back from its :meth:`to_dict` form (no residuals, no law arguments)."""
+        def num(v):
+            return float("nan") if v is None else float(v)
+
+        window = data.get("window_s") or [None, None]
+        return cls(model=str(data.get("model", "")),
+                   values={k: num(v) for k, v in (data.get("values") or {}).items()},
+                   ci95={k: (num(a), num(b)) for k, (a, b) in (data.get("ci95") or {}).items()},
+                   stderr={k: num(v) for k, v in (data.get("stderr") or {}).items()},
+                   window_s=(num(window[0]), num(window[1])), n_points=int(data.get("n_points") or 0),
+                   reduced_chi2=num(data.get("reduced_chi2")), success=bool(data.get("success")),
+                   message=str(data.get("message") or ""))
 
     def to_dict(self) -> dict:
         """Plain Python (JSON-ready: no NaN, no arrays) without the residuals."""
@@ -69,6 +97,15 @@ class Fit:
             "n_points": int(self.n_points),
             "reduced_chi2": num(self.reduced_chi2),
         }
+
+
+#: The closed-form law of each fit model (keyword arguments in ``Fit.law``).
+LAWS = {
+    "elasto-capillary": laws.elasto_capillary_diameter,
+    "visco-capillary": laws.visco_capillary_diameter,
+    "inertio-capillary": laws.inertio_capillary_diameter,
+    "finite-extensibility": laws.finite_extensibility_diameter,
+}
 
 
 def _failed(model, message, window_s=(float("nan"), float("nan")), n_points=0) -> Fit:
@@ -223,9 +260,11 @@ def fit_elastocapillary(time_s, diameter_m, *, window_s, surface_tension, initia
     se = {"relaxation_time_s": _stderr(b_lam), "elastic_modulus_Pa": _stderr(b_g),
           "relaxation_time_s_analytic": float(np.sqrt(cov[1, 1] * max(chi2, 1.0)) / (3 * slope ** 2))}
     resid = sel.d[sl] - np.exp(icpt + slope * x[sl])
+    law = {"initial_diameter": initial_diameter, "elastic_modulus": g,
+           "surface_tension": surface_tension, "relaxation_time": lam, "t0": t0}
     return Fit(model=model, values=values, ci95=ci, stderr=se,
                window_s=(float(sel.t[sel.s]), float(sel.t[sel.e])), n_points=n,
-               reduced_chi2=chi2, residuals=resid, success=True, message="")
+               reduced_chi2=chi2, residuals=resid, success=True, message="", law=law)
 
 
 # --- linear laws (visco-capillary, finite extensibility) -------------------------------
@@ -281,8 +320,9 @@ def fit_viscocapillary(time_s, diameter_m, *, window_s, surface_tension, diamete
     ci = {"shear_viscosity_Pa_s": _interval(b_eta), "breakup_time_s": _interval(r["b_tb"]),
           "thinning_speed_m_s": _interval(r["b_speed"])}
     se = {"shear_viscosity_Pa_s": _stderr(b_eta), "breakup_time_s": _stderr(r["b_tb"])}
+    law = {"t_b": r["t_b"], "surface_tension": surface_tension, "viscosity": eta}
     return Fit(model=model, values=values, ci95=ci, stderr=se, window_s=r["window"],
-               n_points=r["n"], reduced_chi2=r["chi2"], residuals=r["resid"], success=True)
+               n_points=r["n"], reduced_chi2=r["chi2"], residuals=r["resid"], success=True, law=law)
 
 
 def fit_finite_extensibility(time_s, diameter_m, *, window_s, surface_tension,
@@ -311,8 +351,9 @@ def fit_finite_extensibility(time_s, diameter_m, *, window_s, surface_tension,
         values["finite_extensibility_L2"] = eta / (2.0 * polymer_viscosity)
         ci["finite_extensibility_L2"] = tuple(v / (2.0 * polymer_viscosity)
                                               for v in ci["terminal_extensional_viscosity_Pa_s"])
+    law = {"t_b": r["t_b"], "surface_tension": surface_tension, "terminal_extensional_viscosity": eta}
     return Fit(model=model, values=values, ci95=ci, stderr=se, window_s=r["window"],
-               n_points=r["n"], reduced_chi2=r["chi2"], residuals=r["resid"], success=True)
+               n_points=r["n"], reduced_chi2=r["chi2"], residuals=r["resid"], success=True, law=law)
 
 
 # --- inertio-capillary -----------------------------------------------------------------
@@ -367,9 +408,13 @@ def fit_inertiocapillary(time_s, diameter_m, *, window_s, surface_tension, densi
     free = fit_power_law(sel.t[sl], sel.d[sl], t_c_min=sel.t[sel.e])
     if free is not None:
         values["exponent"] = free[2]
+    law = {}
+    if "prefactor_X_IC" in values:
+        law = {"t_c": t_c, "surface_tension": surface_tension, "density": density,
+               "prefactor": values["prefactor_X_IC"]}
     return Fit(model=model, values=values, ci95=ci, stderr=se,
                window_s=(float(sel.t[sel.s]), float(sel.t[sel.e])), n_points=n,
-               reduced_chi2=chi2, residuals=resid, success=True)
+               reduced_chi2=chi2, residuals=resid, success=True, law=law)
 
 
 # --- breakup ---------------------------------------------------------------------------

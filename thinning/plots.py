@@ -1,30 +1,16 @@
 """Figures for one analysed recording (matplotlib, Agg, no pyplot state).
 
-Every function takes plain data: the per-frame ``table`` (the columns of
-``diameter.csv``), the ``result`` dict (the keys of ``result.json``) and, for
-the frame strip, a list of snapshots. Each ``plot_*`` function draws on the
-``ax`` it is given (or on a fresh :class:`~matplotlib.figure.Figure`) and
-returns it; nothing is shown. :func:`write_figures` writes the four PNGs
+Every ``plot_*`` function takes the :class:`~thinning.result.Result` of a
+recording, draws on the ``ax`` it is given (or on a fresh
+:class:`~matplotlib.figure.Figure`) and returns it; nothing is shown. The
+fitted laws are drawn over their windows from the result's typed fits
+(:meth:`thinning.fits.Fit.curve`). :func:`write_figures` writes the four PNGs
 atomically and byte-identically for the same input.
-
-Fit curves
-----------
-``fit_curves`` maps a regime kind (``"elasto-capillary"``, ``"visco-capillary"``,
-``"inertio-capillary"``, ``"finite-extensibility"``) to ``(time_s, diameter_m)``
-arrays already evaluated by the caller. Without it, curves are evaluated with
-the closed-form laws of :mod:`thinning.laws` from ``result["fits"]`` when that
-key is present (``{name: {"model": kind, "values": {...}, "window_s": [a, b]}}``,
-as written by ``Fit.to_dict()`` of :mod:`thinning.fits`; values named like
-``relaxation_time_s`` or like the laws' keyword arguments; failed fits and
-fits whose law cannot be evaluated, e.g. an inertio-capillary fit without the
-density, are not drawn), otherwise from the headline elasto-capillary numbers of ``result``
-(λ, G, D0, t0 and the surface tension in ``options``).
 """
 
 from __future__ import annotations
 
 import contextlib
-import inspect
 import logging
 from pathlib import Path
 
@@ -77,32 +63,6 @@ _STYLE = {
 
 FIGSIZE_IN = (7.6, 3.9)
 
-_ALIASES = {  # result-style names → keyword names of thinning.laws
-    "relaxation_time_s": "relaxation_time",
-    "elastic_modulus_Pa": "elastic_modulus",
-    "initial_diameter_m": "initial_diameter",
-    "surface_tension_N_m": "surface_tension",
-    "density_kg_m3": "density",
-    "shear_viscosity_Pa_s": "viscosity",
-    "viscosity_Pa_s": "viscosity",
-    "breakup_time_s": "t_b",
-    "singular_time_s": "t_c",
-    "prefactor_X_IC": "prefactor",
-    "t0_s": "t0",
-    "t_b_s": "t_b",
-    "t_c_s": "t_c",
-    "terminal_extensional_viscosity_Pa_s": "terminal_extensional_viscosity",
-    "extensional_viscosity_terminal_Pa_s": "terminal_extensional_viscosity",
-}
-
-_LAWS = {
-    "elasto-capillary": laws.elasto_capillary_diameter,
-    "visco-capillary": laws.visco_capillary_diameter,
-    "inertio-capillary": laws.inertio_capillary_diameter,
-    "finite-extensibility": laws.finite_extensibility_diameter,
-}
-
-
 @contextlib.contextmanager
 def _style():
     with matplotlib.rc_context(_STYLE):
@@ -127,7 +87,7 @@ def _column(table, name):
 def _time_scale(table, result):
     """(factor, unit) so the time axis reads in s or ms."""
     times = [_column(table, "time_s")]
-    times.append(np.array([_number(result.get("breakup_time_s")) or np.nan]))
+    times.append(np.array([_number(result.characterisation.breakup_time_s) or np.nan]))
     t = np.concatenate(times)
     t = t[np.isfinite(t)]
     span = float(np.max(np.abs(t))) if t.size else 1.0
@@ -148,101 +108,53 @@ def _no_data(ax, text):
 def _shade_regimes(ax, result, t_factor):
     """Shade each located stretch in its own colour; return legend handles."""
     seen = set()
-    for regime in result.get("regimes") or []:
-        kind = regime.get("kind", "undetermined")
-        t0, t1 = _number(regime.get("t_start_s")), _number(regime.get("t_end_s"))
-        if t0 is None or t1 is None:
-            continue
+    for regime in result.characterisation.regimes:
+        kind = regime.kind
         shade, _ = REGIME_COLOURS.get(kind, REGIME_COLOURS["undetermined"])
-        ax.axvspan(t0 * t_factor, t1 * t_factor, color=shade, alpha=0.85, lw=0,
-                   label=None if kind in seen else kind, zorder=0)
+        ax.axvspan(regime.t_start_s * t_factor, regime.t_end_s * t_factor, color=shade, alpha=0.85,
+                   lw=0, label=None if kind in seen else kind, zorder=0)
         seen.add(kind)
 
 
 def _mark_breakup(ax, result, t_factor):
-    tb = _number(result.get("breakup_time_s"))
+    tb = _number(result.characterisation.breakup_time_s)
     if tb is not None:
         ax.axvline(tb * t_factor, color=MARK_COLOUR, ls="--", lw=1.0, label="breakup")
 
 
-def _law_kwargs(law, values, result):
-    """Keyword arguments of ``law`` from fit ``values``, completed from ``result``."""
-    params = {_ALIASES.get(k, k): v for k, v in (values or {}).items()}
-    options = result.get("options") or {}
-    fallback = {
-        "surface_tension": options.get("surface_tension_N_m"),
-        "density": options.get("density_kg_m3"),
-        "initial_diameter": result.get("initial_diameter_m"),
-        "t0": result.get("free_thinning_start_s"),
-        "t_b": result.get("breakup_time_s"),
-        "t_c": result.get("breakup_time_s"),
-    }
-    kwargs = {}
-    for name, p in inspect.signature(law).parameters.items():
-        if p.kind is not inspect.Parameter.KEYWORD_ONLY:
-            continue
-        value = _number(params.get(name, fallback.get(name)))
-        if value is None:
-            if p.default is inspect.Parameter.empty:
-                return None
-            continue
-        kwargs[name] = value
-    return kwargs
+def fit_curves(result, *, n_points=200):
+    """``{kind: (time_s, diameter_m)}``: each successful fit's law over its window.
 
-
-def fit_curves_from_result(result, *, n_points=200):
-    """``{kind: (time_s, diameter_m)}`` evaluated with :mod:`thinning.laws` from ``result``.
-
-    Uses ``result["fits"]`` when present, else the headline elasto-capillary
-    numbers (needs λ, G, D0, the fit window and ``options["surface_tension_N_m"]``).
-    A fit whose parameters are incomplete is skipped (logged), never guessed.
+    A fit whose law cannot be evaluated (read back from a file, or an
+    inertio-capillary fit without the density) gives no curve.
     """
-    fits = result.get("fits")
-    if not fits:
-        fits = {}
-        window = result.get("fit_window_s")
-        if _number(result.get("relaxation_time_s")) is not None and window:
-            fits["headline"] = {"model": "elasto-capillary", "window_s": window,
-                                "values": {"relaxation_time": result.get("relaxation_time_s"),
-                                           "elastic_modulus": result.get("elastic_modulus_Pa")}}
     curves = {}
-    for name, fit in fits.items():
-        kind = fit.get("model", name)
-        law = _LAWS.get(kind)
-        if fit.get("success") is False:
-            continue
-        window = fit.get("window_s") or [None, None]
-        a, b = (_number(w) for w in window)
-        if law is None or a is None or b is None or b <= a:
-            logger.debug("fit %r not drawn: unknown model or no window", name)
-            continue
-        kwargs = _law_kwargs(law, fit.get("values"), result)
-        if kwargs is None:
-            logger.debug("fit %r not drawn: parameters incomplete", name)
+    for name, fit in result.characterisation.fits.items():
+        a, b = (_number(w) for w in fit.window_s)
+        if not fit or a is None or b is None or b <= a:
             continue
         t = np.linspace(a, b, n_points)
-        with np.errstate(all="ignore"):
-            d = np.asarray(law(t, **kwargs), dtype=float)
-        curves[kind if kind not in curves else name] = (t, d)
+        d = fit.curve(t)
+        if np.isfinite(d).any():
+            curves[fit.model if fit.model not in curves else name] = (t, d)
     return curves
 
 
-def plot_diameter(table, result, *, fit_curves=None, ax=None):
+def plot_diameter(result, *, ax=None):
     """Minimum neck diameter against time on a log axis.
 
-    Each located regime is shaded in its own colour, the fit curves drawn over
-    their windows (``fit_curves``, see the module notes; default
-    :func:`fit_curves_from_result`), breakup marked by a dashed line, and the
-    resolution floor (``result["resolution_floor_m"]``, else one pixel) drawn
-    as a dotted line. Returns the Axes.
+    Each located regime is shaded in its own colour, the fits drawn over
+    their windows (:func:`fit_curves`), breakup marked by a dashed line, and
+    the resolution floor (else one pixel) drawn as a dotted line. Returns the
+    Axes.
     """
     with _style():
         ax = _new_axes(ax)
+        table = result.table
         t_factor, t_unit = _time_scale(table, result)
         t = _column(table, "time_s")
         d = _column(table, "diameter_m")
-        if fit_curves is None:
-            fit_curves = fit_curves_from_result(result)
+        curves = fit_curves(result)
         d_factor, d_unit = _diameter_scale(d)
         _shade_regimes(ax, result, t_factor)
         ok = np.isfinite(t) & np.isfinite(d) & (d > 0)
@@ -251,18 +163,18 @@ def plot_diameter(table, result, *, fit_curves=None, ax=None):
                     alpha=0.85, label="measured", zorder=3)
         else:
             _no_data(ax, "no filament measured")
-        for kind, (ft, fd) in fit_curves.items():
+        for kind, (ft, fd) in curves.items():
             ft, fd = np.asarray(ft, dtype=float), np.asarray(fd, dtype=float)
             good = np.isfinite(ft) & np.isfinite(fd) & (fd > 0)
             if good.any():
                 colour = REGIME_COLOURS.get(kind, REGIME_COLOURS["undetermined"])[1]
                 ax.plot(ft[good] * t_factor, fd[good] * d_factor, "-", color=colour, lw=1.8,
                         label=f"{kind} fit", zorder=4)
-        floor = _number(result.get("resolution_floor_m"))
+        floor = _number(result.characterisation.resolution_floor_m)
         floor_label = "resolution floor"
         if floor is None:
-            floor, floor_label = _number(result.get("pixel_size_m")), "one pixel"
-        if floor is not None and (ok.any() or fit_curves):
+            floor, floor_label = _number(result.calibration.pixel_size_m), "one pixel"
+        if floor is not None and (ok.any() or curves):
             ax.axhline(floor * d_factor, color=FLOOR_COLOUR, ls=":", lw=1.1, label=floor_label)
         _mark_breakup(ax, result, t_factor)
         ax.set_yscale("log")
@@ -275,10 +187,11 @@ def plot_diameter(table, result, *, fit_curves=None, ax=None):
     return ax
 
 
-def plot_extensional_viscosity(table, result, *, ax=None):
+def plot_extensional_viscosity(result, *, ax=None):
     """Apparent extensional viscosity against Hencky strain (log y), with η_E max marked."""
     with _style():
         ax = _new_axes(ax)
+        table = result.table
         eps = _column(table, "hencky_strain")
         eta = _column(table, "apparent_extensional_viscosity_Pa_s")
         ok = np.isfinite(eps) & np.isfinite(eta) & (eta > 0)
@@ -288,10 +201,10 @@ def plot_extensional_viscosity(table, result, *, ax=None):
         else:
             _no_data(ax, "no apparent extensional viscosity")
             ax.set_ylim(1e-3, 1e1)
-        eta_max = _number(result.get("extensional_viscosity_max_Pa_s"))
+        eta_max = _number(result.characterisation.extensional_viscosity_max_Pa_s)
         if eta_max is not None:
             ax.axhline(eta_max, color=MARK_COLOUR, ls="--", lw=1.0, label="η_E max")
-        eta_inf = _number(result.get("extensional_viscosity_terminal_Pa_s"))
+        eta_inf = _number(result.characterisation.extensional_viscosity_terminal_Pa_s)
         if eta_inf is not None:
             ax.axhline(eta_inf, color=REGIME_COLOURS["finite-extensibility"][1], ls="-.", lw=1.0,
                        label="terminal plateau")
@@ -303,10 +216,11 @@ def plot_extensional_viscosity(table, result, *, ax=None):
     return ax
 
 
-def plot_strain_rate(table, result, *, ax=None):
+def plot_strain_rate(result, *, ax=None):
     """Strain rate against time (log y), with the elasto-capillary plateau 2/(3λ) marked."""
     with _style():
         ax = _new_axes(ax)
+        table = result.table
         t_factor, t_unit = _time_scale(table, result)
         t = _column(table, "time_s")
         rate = _column(table, "strain_rate_1_s")
@@ -318,10 +232,10 @@ def plot_strain_rate(table, result, *, ax=None):
         else:
             _no_data(ax, "no strain rate measured")
             ax.set_ylim(1e0, 1e4)
-        lam = _number(result.get("relaxation_time_s"))
+        lam = _number(result.characterisation.relaxation_time_s)
         if lam is not None and lam > 0:
             plateau = laws.elasto_capillary_strain_rate(lam)
-            window = [_number(w) for w in (result.get("fit_window_s") or [])]
+            window = [_number(w) for w in (result.characterisation.fit_window_s or [])]
             colour = REGIME_COLOURS["elasto-capillary"][1]
             label = r"$2/(3\lambda)$"
             if len(window) == 2 and None not in window:
@@ -411,20 +325,24 @@ def _save_png(fig, path):
     return path
 
 
-def write_figures(out_dir, table, result, snapshots, *, fit_curves=None, orientation="vertical"):
+def write_figures(out_dir, result):
     """Write ``diameter.png``, ``extensional_viscosity.png``, ``strain_rate.png`` and ``frames.png``.
 
-    Returns ``{"diameter": Path, "extensional_viscosity": Path, "strain_rate": Path,
-    "frames": Path}``. The same input gives byte-identical files.
+    ``result`` a fresh :class:`~thinning.result.Result` (with its table and
+    neck series). Returns ``{"diameter": Path, "extensional_viscosity": Path,
+    "strain_rate": Path, "frames": Path}``. The same input gives
+    byte-identical files.
     """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
+    snapshots = result.neck.snapshots if result.neck is not None else []
+    orientation = result.layout.orientation if result.layout is not None else "vertical"
     makers = {
-        "diameter": lambda: plot_diameter(table, result, fit_curves=fit_curves).figure,
-        "extensional_viscosity": lambda: plot_extensional_viscosity(table, result).figure,
-        "strain_rate": lambda: plot_strain_rate(table, result).figure,
+        "diameter": lambda: plot_diameter(result).figure,
+        "extensional_viscosity": lambda: plot_extensional_viscosity(result).figure,
+        "strain_rate": lambda: plot_strain_rate(result).figure,
         "frames": lambda: plot_frame_strip(snapshots, orientation=orientation,
-                                           fps_hz=result.get("fps_hz")),
+                                           fps_hz=result.calibration.fps_hz),
     }
     paths = {}
     for name, make in makers.items():  # one figure in memory at a time

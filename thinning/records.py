@@ -57,6 +57,7 @@ from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, Operationa
 
 from .errors import ThinningError
 from . import qc
+from .result import Result
 from .values import finite_number as _number
 from .values import row_folder_name
 
@@ -72,7 +73,7 @@ EXPORT_COLUMNS = (
     "product", "lot", "sample", "replicate", "status", "quality", "regime", "relaxation_time_s",
     "relaxation_time_ci95_low_s", "relaxation_time_ci95_high_s", "shear_viscosity_Pa_s",
     "extensional_viscosity_max_Pa_s", "breakup_time_s", "filament_lifetime_s", "sha256",
-    "analysed_at", "tool_version",
+    "analysed_at", "tool_version", "warning_codes",
 )
 
 #: columns of ``thinning records lots`` (contract), in order
@@ -599,13 +600,13 @@ class Records:
         conn.execute(curves.insert().values(measurement_id=measurement_id, n_points=int(time_s.size),
                                             time_s=time_s.tobytes(), diameter_m=diameter_m.tobytes()))
 
-    def store_result(self, manifest_row: Mapping, result: Mapping | None, *, analysed_at: str,
+    def store_result(self, manifest_row: Mapping, result: Result | None, *, analysed_at: str,
                      row_dir: str | Path | None = None) -> str:
         """Store one finished batch row in its own transaction.
 
         ``manifest_row`` carries ``product, lot, sample, replicate, made_on,
         notes, path, status, reason, sha256`` (missing keys are empty);
-        ``result`` is the ``result.json`` dict (may be None for a failed row);
+        ``result`` is the row's :class:`~thinning.result.Result` (None for a failed row);
         ``row_dir`` the row's folder, whose ``diameter.csv`` is copied.
         Returns ``"inserted"``, ``"unchanged"``, ``"superseded"`` (a changed
         result replaced the current one), ``"history"`` (a changed result
@@ -616,7 +617,8 @@ class Records:
         meta = self._meta(manifest_row)
         curve = read_curve(Path(row_dir)) if row_dir is not None and meta["status"] == "ok" else None
         stamp = normalise_timestamp(analysed_at)
-        return self._transaction(lambda conn: self._store(conn, meta, result, stamp, curve))
+        data = None if result is None else result.to_json()
+        return self._transaction(lambda conn: self._store(conn, meta, data, stamp, curve))
 
     def load_batch(self, batch_dir: str | Path) -> dict[str, int]:
         """Store a finished batch folder (``results.csv`` + row folders) in one transaction.
@@ -649,7 +651,7 @@ class Records:
                                        lots.c.first_analysed_at).select_from(lots.join(products))).mappings().all()
         by_lot: dict[tuple, list[dict]] = {(r["product"], r["lot"]): [] for r in lot_rows}
         for row in conn.execute(self._joined()).mappings():
-            by_lot[(row["product"], row["lot"])].append(dict(row))
+            by_lot[(row["product"], row["lot"])].append(_measurement_row(row))
         has_current = select(measurements.c.id).where(measurements.c.sample_id == samples.c.id,
                                                       measurements.c.is_current.is_(True)).exists()
         open_failures: dict[tuple, dict[int, dict]] = {key: {} for key in by_lot}
@@ -722,9 +724,17 @@ class Records:
             query = self._joined()
             if product is not None:
                 query = query.where(products.c.name == product)
-            rows = [dict(r) for r in conn.execute(query).mappings()]
+            rows = [_measurement_row(r) for r in conn.execute(query).mappings()]
         rows.sort(key=lambda r: (r["product"], r["lot"], *_row_order(r)))
         return [{col: row[col] for col in EXPORT_COLUMNS} for row in rows]
+
+
+def _measurement_row(row: Mapping) -> dict:
+    """A stored measurement as a dict, with ``warning_codes`` (its findings' codes, one per
+    warning, joined by ``; ``) read from the stored ``result.json``."""
+    out = dict(row)
+    out["warning_codes"] = "; ".join(Result.from_json(json.loads(row["result_json"])).warning_codes)
+    return out
 
 
 def _row_order(row: Mapping):
@@ -790,11 +800,12 @@ def read_batch(batch_dir: Path) -> list[tuple[dict, dict | None, str, tuple | No
         if meta["status"] == "ok":
             if result_path.is_file():
                 try:
-                    result = json.loads(result_path.read_text(encoding="utf-8"))
-                except ValueError:
-                    raise RecordsError(f"{result_path} is not valid JSON.") from None
+                    result = Result.from_json(json.loads(result_path.read_text(encoding="utf-8")))
+                except (ValueError, TypeError, KeyError):
+                    raise RecordsError(f"{result_path} is not a result of this tool.") from None
             else:
-                result = result_from_results_row(row)
+                result = Result.from_json(result_from_results_row(row))
+            result = result.to_json()
             curve = read_curve(folder)
         stamp = _text(row.get("analysed_at")) or _text((result or {}).get("analysed_at"))
         if not stamp:

@@ -88,6 +88,14 @@ class Regime:
         """The ``result.json`` form ``{"kind", "t_start_s", "t_end_s"}``."""
         return {"kind": self.kind, "t_start_s": float(self.t_start_s), "t_end_s": float(self.t_end_s)}
 
+    @classmethod
+    def from_dict(cls, data: dict) -> "Regime":
+        """A stretch read back from its ``result.json`` form (frames and diameters unknown: 0, NaN)."""
+        nan = float("nan")
+        return cls(kind=str(data["kind"]), t_start_s=float(data["t_start_s"]),
+                   t_end_s=float(data["t_end_s"]), n_frames=0, diameter_start_m=nan,
+                   diameter_end_m=nan, value=nan)
+
 
 @dataclass(frozen=True)
 class PreparedSeries:

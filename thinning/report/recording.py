@@ -1,6 +1,6 @@
 """The one-page HTML report of one analysed recording.
 
-:func:`write_recording_report` turns a ``result.json`` dict and the PNGs of
+:func:`write_recording_report` turns a :class:`~thinning.result.Result` and the PNGs of
 :func:`thinning.plots.write_figures` into ``report.html``: self-contained (the
 figures are embedded as base64, no external file, font or script), printable,
 and escaped throughout (names and paths come from users). Numbers are shown
@@ -16,6 +16,7 @@ from pathlib import Path, PurePath
 
 import jinja2
 from .. import atomic
+from ..result import RESULT_SCHEMA
 from ..values import finite_number as _number
 
 TEMPLATE_DIR = Path(__file__).parent / "templates"
@@ -65,10 +66,6 @@ _OPTION_LABELS = {
 
 MISSING = "—"
 
-#: result.json key → name of the same value in a fit's ``values`` (where they differ)
-_FIT_VALUE_NAMES = {"extensional_viscosity_terminal_Pa_s": "terminal_extensional_viscosity_Pa_s"}
-
-
 def _digits(x):
     """Four significant digits, with a ×10ⁿ exponent instead of e-notation."""
     text = f"{x:.4g}"
@@ -112,34 +109,11 @@ def format_interval(interval, unit, like=None):
     return f"{_digits(low / scale)} – {_digits(high / scale)} {label}"
 
 
-def _interval_of(result, key):
-    """The 95 % interval of ``key``: stored beside it (``<base>_ci95_<unit>``), else in a fit.
-
-    A fit's interval (``result["fits"][name]["ci95"][key]``) is used only when
-    that fit's value is the headline value itself.
-    """
-    for suffix in ("_Pa_s", "_s", "_Pa", "_m"):
-        if key.endswith(suffix):
-            beside = result.get(f"{key[: -len(suffix)]}_ci95{suffix}")
-            if beside is not None:
-                return beside
-            break
-    value = _number(result.get(key))
-    fit_key = _FIT_VALUE_NAMES.get(key, key)
-    for fit in (result.get("fits") or {}).values():
-        if not isinstance(fit, dict) or fit.get("success") is False:
-            continue
-        interval = (fit.get("ci95") or {}).get(fit_key)
-        fitted = _number((fit.get("values") or {}).get(fit_key))
-        if interval is not None and value is not None and fitted == value:
-            return interval
-    return None
-
-
 def _headline(result):
     """Rows of the headline table: dicts with label, value, interval (strings)."""
-    broke = _number(result.get("breakup_time_s")) is not None
-    lam = _number(result.get("relaxation_time_s")) is not None
+    c = result.characterisation
+    broke = _number(c.breakup_time_s) is not None
+    lam = _number(c.relaxation_time_s) is not None
     #: (label, key, SI unit, reason when missing); an interval is expected for the first five
     rows = [
         ("relaxation time λ", "relaxation_time_s", "s",
@@ -160,15 +134,15 @@ def _headline(result):
     ]
     out = []
     for i, (label, key, unit, reason) in enumerate(rows):
-        value = result.get(key)
-        interval = format_interval(_interval_of(result, key), unit, like=value)
+        value = getattr(c, key)
+        interval = format_interval(c.interval(key), unit, like=value)
         if interval is None and _number(value) is not None and i < 5:
             interval = f"{MISSING} (not computed)"
         out.append({"label": label, "value": format_quantity(value, unit, missing=reason),
                     "interval": interval or "", "missing": _number(value) is None})
-    window = result.get("fit_window_s")
+    window = c.fit_window_s
     window_text = format_interval(window, "s", like=(window or [None, None])[1])
-    frames = result.get("fit_window_frames")
+    frames = c.fit_window_frames
     if window_text and frames is not None:
         window_text += f" ({frames} frames)"
     out.append({"label": "headline fit window", "value": window_text or
@@ -178,15 +152,16 @@ def _headline(result):
 
 
 def _regimes(result):
-    headline = result.get("regime")
-    window = [_number(w) for w in (result.get("fit_window_s") or [])]
+    c = result.characterisation
+    headline = c.regime
+    window = [_number(w) for w in (c.fit_window_s or [])]
     rows = []
-    for regime in result.get("regimes") or []:
-        t0, t1 = _number(regime.get("t_start_s")), _number(regime.get("t_end_s"))
-        in_fit = (regime.get("kind") == headline and len(window) == 2 and None not in window
+    for regime in c.regimes:
+        t0, t1 = _number(regime.t_start_s), _number(regime.t_end_s)
+        in_fit = (regime.kind == headline and len(window) == 2 and None not in window
                   and t0 is not None and t1 is not None and t0 < window[1] and window[0] < t1)
         rows.append({
-            "kind": str(regime.get("kind", "")),
+            "kind": regime.kind,
             "start": format_quantity(t0, "s"),
             "end": format_quantity(t1, "s"),
             "duration": format_quantity(t1 - t0, "s") if t0 is not None and t1 is not None else MISSING,
@@ -207,30 +182,30 @@ def _option_value(value, unit):
 
 def _calibration(result):
     rows = [
-        {"label": "frame rate used", "value": format_quantity(result.get("fps_hz"), "Hz",
+        {"label": "frame rate used", "value": format_quantity(result.calibration.fps_hz, "Hz",
                                                               missing="not recorded")},
-        {"label": "pixel size used", "value": format_quantity(result.get("pixel_size_m"), "m",
+        {"label": "pixel size used", "value": format_quantity(result.calibration.pixel_size_m, "m",
                                                               missing="not recorded")},
     ]
-    for key, value in (result.get("options") or {}).items():
+    for key, value in result.options.to_dict().items():
         label, unit = _OPTION_LABELS.get(key, (str(key), None))
         rows.append({"label": label, "value": _option_value(value, unit)})
     return rows
 
 
 def _provenance(result):
-    source = result.get("source") or {}
+    source = result.source
     size = None
-    if source.get("width_px") is not None and source.get("height_px") is not None:
-        size = f"{source['width_px']} × {source['height_px']} px"
+    if source.width_px is not None and source.height_px is not None:
+        size = f"{source.width_px} × {source.height_px} px"
     rows = [
-        ("source", source.get("path")),
-        ("source sha256", source.get("sha256")),
-        ("frames", source.get("n_frames")),
+        ("source", source.path),
+        ("source sha256", source.sha256),
+        ("frames", source.n_frames),
         ("frame size", size),
-        ("bit depth", source.get("bit_depth")),
-        ("tool version", result.get("tool_version")),
-        ("result schema", result.get("schema")),
+        ("bit depth", source.bit_depth),
+        ("tool version", result.tool_version or None),
+        ("result schema", RESULT_SCHEMA),
     ]
     return [{"label": k, "value": MISSING if v is None else str(v)} for k, v in rows]
 
@@ -253,10 +228,8 @@ def _embed(figures):
 
 
 def recording_name(result):
-    """A display name: ``result["sample"]`` if present, else the source's file name."""
-    if result.get("sample"):
-        return str(result["sample"])
-    path = (result.get("source") or {}).get("path")
+    """A display name: the source's file name."""
+    path = result.source.path
     return PurePath(str(path)).name if path else "recording"
 
 
@@ -268,19 +241,19 @@ def _environment():
 
 def render_recording_report(result, figures, *, name=None, details=None):
     """The report's HTML text (see :func:`write_recording_report`)."""
-    quality = result.get("quality") or "undetermined"
+    quality = result.quality
     context = {
         "name": name if name is not None else recording_name(result),
         "details": [{"label": str(k), "value": MISSING if v is None else str(v)}
                     for k, v in (details or {}).items()],
-        "regime": result.get("regime") or "undetermined",
+        "regime": result.characterisation.regime,
         "quality": quality,
         "doubtful": quality != "good",
-        "quality_reasons": [str(r) for r in result.get("quality_reasons") or []],
+        "quality_reasons": list(result.quality_reasons),
         "headline": _headline(result),
         "regimes": _regimes(result),
         "figures": _embed(figures or {}),
-        "warnings": [str(w) for w in result.get("warnings") or []],
+        "warnings": list(result.warnings),
         "calibration": _calibration(result),
         "provenance": _provenance(result),
         "cautions": CAUTIONS,
@@ -291,7 +264,7 @@ def render_recording_report(result, figures, *, name=None, details=None):
 def write_recording_report(out_dir, result, figures, *, name=None, details=None):
     """Write ``out_dir/report.html`` for one recording and return its path.
 
-    ``result`` is the ``result.json`` dict, ``figures`` maps figure names
+    ``result`` is the :class:`~thinning.result.Result`, ``figures`` maps figure names
     (``diameter``, ``strain_rate``, ``extensional_viscosity``, ``frames``) to
     PNG paths, which are embedded. ``name`` is the heading (default
     :func:`recording_name`); ``details`` an optional mapping shown under it
