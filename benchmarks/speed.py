@@ -9,7 +9,7 @@ memory figure is its own):
   pool (what :class:`thinning.frames.VideoSource` does) with 1 to max(4, cores + 1)
   threads, and
   OpenCV's plain ``read()`` with its colour conversion;
-- the neck measurement alone (:func:`thinning.neck.measure_recording`), on the
+- the neck measurement alone (:func:`thinning.measure.measure_recording`), on the
   stream and on the first ``IN_MEMORY_FRAMES`` frames decoded beforehand (the
   analysis cost alone, without decoders competing for the cores);
 - the whole analysis (:func:`thinning.analysis.analyse`: frames → diameters →
@@ -99,9 +99,9 @@ def child(mode: str, path: str, threads: int) -> dict:
         del grey
     elif mode == "measure":
         from thinning.frames import open_source
-        from thinning.neck import measure_recording
+        from thinning.measure import measure_recording
 
-        from thinning.rowscan import COMPILED
+        from thinning.measure.compiled import COMPILED
 
         with open_source(path) as source:
             series = measure_recording(source, n_frames=source.n_frames)
@@ -110,7 +110,7 @@ def child(mode: str, path: str, threads: int) -> dict:
         extra = {"frames_with_diameter": finite, "compiled": COMPILED}
     elif mode == "measure-in-memory":
         from thinning.frames import open_source
-        from thinning.neck import measure_recording
+        from thinning.measure import measure_recording
 
         with open_source(path) as source:
             frames = [frame for _, frame in zip(range(IN_MEMORY_FRAMES), source)]

@@ -15,7 +15,7 @@ import cv2
 import numpy as np
 from scipy.ndimage import binary_dilation, gaussian_filter, uniform_filter
 
-from thinning.neck import measure_recording
+from thinning.measure import measure_recording
 
 _spec = importlib.util.spec_from_file_location(
     "_edge_frames", Path(__file__).resolve().parent.parent / "tests" / "test_edges.py")

@@ -18,9 +18,10 @@ pytest_plugins = ["services"]
 def beaded_recording(request):
     """The frames of a rendered beaded thread to breakup, under three sets of optics; skips where
     the compiled row pass was not built (these recordings compare it with the numpy path)."""
-    from thinning import rowscan, synth
+    from thinning import synth
+    from thinning.measure import compiled
 
-    if not rowscan.COMPILED:
+    if not compiled.COMPILED:
         pytest.skip("the compiled row pass was not built in this install")
     scene = synth.dilute_polymer_plates(fps_hz=1000.0, frame_size_px=(200, 160),
                                         pixel_size_m=25e-6, beads=True)

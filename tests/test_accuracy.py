@@ -2,7 +2,7 @@
 
 Each case renders a short recording with thinning.synth (known diameter in every
 frame), writes it in one of the file formats, reads it back with
-thinning.frames.open_source and measures it with thinning.neck.measure_recording.
+thinning.frames.open_source and measures it with thinning.measure.measure_recording.
 The truth used for the comparison is the Truth object returned by the writer: the
 analyser only ever sees the frames (it never reads the truth JSON beside them).
 
@@ -15,7 +15,7 @@ import pytest
 
 from thinning import synth
 from thinning.frames import open_source
-from thinning.neck import measure_recording
+from thinning.measure import measure_recording
 
 PLATES = dict(fps_hz=2500.0, frame_size_px=(200, 160), pixel_size_m=25e-6)
 DRIP = dict(fps_hz=25000.0, frame_size_px=(240, 200), pixel_size_m=8e-6)

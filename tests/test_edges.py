@@ -1,4 +1,4 @@
-"""Sub-pixel edges and layout on simple rendered frames (thinning.edges)."""
+"""Sub-pixel edges and layout on simple rendered frames (thinning.measure.layout, rows, profile)."""
 
 import math
 
@@ -7,7 +7,7 @@ import pytest
 from scipy.ndimage import gaussian_filter
 from skimage.measure import find_contours
 
-from thinning.edges import NoFilament, find_layout, locate_edges
+from thinning.measure import NoFilament, find_layout, locate_edges
 
 BACKLIGHT = 200.0
 SHADOW = 0.05  # shadow level as a fraction of the backlight
@@ -188,7 +188,7 @@ def test_per_frame_path_matches_the_full_row_method(neck, blur):
     frame = render(neck=neck, blur=blur, noise=0.005, seed=4)
     layout = find_layout(frame)
     fast = locate_edges(frame, layout)
-    full = locate_edges(frame, replace(layout, backlight=None))
+    full = locate_edges(frame, replace(layout, light=None))
     slope = np.abs(np.gradient(full.left_px))
     rows = fast.valid & full.valid & (slope < 0.3)  # edges along the axis (see above)
     assert rows.sum() > 50
@@ -207,21 +207,22 @@ def test_dust_speck_beside_the_thread_is_not_part_of_it():
 
 
 def test_compiled_row_pass_matches_the_numpy_path(beaded_recording, monkeypatch):
-    # the compiled row pass (thinning/_rowscan.c) and the numpy path are two codings of one
+    # the compiled row pass (thinning/measure/_rowscan.c) and the numpy path are two codings of one
     # method: the same rows, widths and centres to float32 rounding, frame for frame
-    from thinning import rowscan
-    from thinning.edges import measure_block
+    from thinning.measure import compiled as compiled_pass
+    from thinning.measure.rows import measure_block
 
     frames = beaded_recording
     compiled = measure_block(frames, find_layout(frames[0]))
-    monkeypatch.setattr(rowscan, "COMPILED", False)
+    monkeypatch.setattr(compiled_pass, "COMPILED", False)
     plain = measure_block(frames, find_layout(frames[0]))  # its own cache of threshold maps
-    assert (~compiled["has"]).any() and compiled["has"].any()  # thick, thin and broken rows
+    assert (~compiled.has).any() and compiled.has.any()  # thick, thin and broken rows
     for key in ("has", "truncated", "core_n", "light", "gain"):
-        assert np.array_equal(compiled[key], plain[key]), key
+        assert np.array_equal(getattr(compiled, key), getattr(plain, key)), key
     for key in ("cut_width", "peak", "rim_ratio"):
-        assert np.array_equal(np.isnan(compiled[key]), np.isnan(plain[key])), key
-        assert np.nanmax(np.abs(compiled[key] - plain[key])) < 1e-4, key
+        a, b = getattr(compiled, key), getattr(plain, key)
+        assert np.array_equal(np.isnan(a), np.isnan(b)), key
+        assert np.nanmax(np.abs(a - b)) < 1e-4, key
     # a centre is defined to float32 rounding where the row holds some shadow
-    shadow = np.abs(plain["cut_width"]) > 0.5
-    assert np.max(np.abs(compiled["centre"] - plain["centre"])[shadow]) < 1e-4
+    shadow = np.abs(plain.cut_width) > 0.5
+    assert np.max(np.abs(compiled.centre - plain.centre)[shadow]) < 1e-4

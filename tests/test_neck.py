@@ -1,4 +1,4 @@
-"""Neck diameter per frame, breakup and start of free thinning (thinning.neck)."""
+"""Neck diameter per frame, breakup and start of free thinning (thinning.measure.neck, record)."""
 
 import importlib.util
 from pathlib import Path
@@ -6,8 +6,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from thinning.edges import NoFilament
-from thinning.neck import (TABLE_COLUMNS, diameter_noise, free_thinning_start, measure_recording,
+from thinning.measure import NoFilament
+from thinning.measure.record import (TABLE_COLUMNS, diameter_noise, free_thinning_start, measure_recording,
                            to_physical)
 from thinning.checks import Severity
 from thinning.units import Calibration
@@ -118,7 +118,7 @@ def test_beads_are_reported_and_the_neck_is_on_the_thread():
 
 def test_neck_quadratic_matches_numpy_polyfit():
     # outside reference: numpy.polyfit (least squares with a Vandermonde matrix)
-    from thinning.neck import quadratic_fits
+    from thinning.measure.neck import quadratic_fits
 
     rng = np.random.default_rng(9)
     xs, ys = [], []
@@ -143,13 +143,13 @@ def test_neck_quadratic_matches_numpy_polyfit():
 
 
 def test_compiled_measurement_matches_the_numpy_path(beaded_recording, monkeypatch):
-    # thinning/_rowscan.c and the numpy path are two codings of one method: the same table,
+    # thinning/measure/_rowscan.c and the numpy path are two codings of one method: the same table,
     # frame for frame, to rounding (the compiled sums run in another order)
-    from thinning import rowscan
+    from thinning.measure import compiled as compiled_pass
 
     frames = beaded_recording
     compiled = measure_recording(frames, n_frames=len(frames))
-    monkeypatch.setattr(rowscan, "COMPILED", False)
+    monkeypatch.setattr(compiled_pass, "COMPILED", False)
     plain = measure_recording(frames, n_frames=len(frames))
     a, b = compiled.table, plain.table
     assert a["thread_connected"].sum() > 20 and (~a["thread_connected"]).sum() > 5

@@ -83,8 +83,7 @@ def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> R
 
 
 def _analyse(source, options: AnalysisOptions, progress) -> Result:
-    from .edges import NoFilament
-    from .neck import measure_recording, to_physical
+    from .measure import NoFilament, measure_recording, to_physical
 
     try:
         check_required(options, container_fps=1.0)  # the frame rate is checked below, with the source

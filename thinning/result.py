@@ -67,7 +67,7 @@ class MeasuredLayout:
 class Result:
     """One analysed recording (SI units throughout).
 
-    ``neck`` is the measurement in pixels (:class:`thinning.neck.NeckSeries`,
+    ``neck`` is the measurement in pixels (:class:`thinning.measure.NeckSeries`,
     with the frames of the picture strip) and ``table`` the per-frame table in
     SI with the derived curves (the columns of ``diameter.csv`` and more);
     both are None for a result read back from ``result.json`` alone.

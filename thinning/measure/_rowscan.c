@@ -1,8 +1,8 @@
-/* The per-row pass of the edge measurement, compiled (see thinning/rowscan.py).
+/* The per-row pass of the edge measurement, compiled (see thinning/measure/compiled.py).
  *
  * Plain C functions on C arrays, called through ctypes (which releases the GIL
  * for the call, so a block is measured while the decoding threads go on). What they compute
- * is the numpy path of thinning/edges.py and thinning/neck.py, row by row: the flicker gain
+ * is the numpy path of thinning/measure/rows.py, profile.py and neck.py, row by row: the flicker gain
  * of each frame, each row's dark extent against the threshold map, the deficit integrated
  * over the two edge zones (one window for a thin row), the rim level of thick steady rows,
  * and the faint trace of rows without a clear shadow (scan_rows); then the end bodies, the

@@ -1,13 +1,13 @@
 """The per-frame hot path of the measurement, compiled: a block of bands → row arrays → necks.
 
-:func:`thinning.edges.measure_block` hands a block of bands (the region
+:func:`thinning.measure.rows.measure_block` hands a block of bands (the region
 analysed of each frame, axis along the rows: views into the decoded frames,
 or a transposed copy for a horizontal filament) to :func:`frame_gains` and
-:func:`scan_rows`, and :func:`thinning.neck.measure_recording` the resulting
-rows to :func:`necks`, when the compiled module ``thinning._rowscan``
-(``thinning/_rowscan.c``, built by ``setup.py`` when a C compiler is at hand)
-is installed. Without it the numpy path in :mod:`thinning.edges` and
-:mod:`thinning.neck` gives the same quantities, about two and a half times
+:func:`scan_rows`, and :func:`thinning.measure.record.measure_recording` the resulting
+rows to :func:`necks`, when the compiled module ``thinning.measure._rowscan``
+(``thinning/measure/_rowscan.c``, built by ``setup.py`` when a C compiler is at hand)
+is installed. Without it the numpy path in :mod:`thinning.measure.rows`,
+:mod:`thinning.measure.profile` and :mod:`thinning.measure.neck` gives the same quantities, about two and a half times
 slower. The C functions are called through :mod:`ctypes`, which releases the
 GIL, so a block is measured while the decoding threads go on with the next
 frames.
@@ -26,10 +26,10 @@ REQUIRE_ENV = "THINNING_REQUIRE_COMPILED"
 
 
 def _load():
-    spec = importlib.util.find_spec("thinning._rowscan")
+    spec = importlib.util.find_spec("thinning.measure._rowscan")
     if spec is None or not spec.origin:
         if os.environ.get(REQUIRE_ENV, "0") not in ("", "0"):
-            raise ImportError(f"thinning._rowscan was not built, and {REQUIRE_ENV} asks for it")
+            raise ImportError(f"thinning.measure._rowscan was not built, and {REQUIRE_ENV} asks for it")
         return None
     lib = ctypes.CDLL(spec.origin)
     p, i, d = ctypes.c_void_p, ctypes.c_int64, ctypes.c_double
@@ -109,7 +109,7 @@ def frame_gains(bands: Bands, gain_rows, margin_light, k, saturation):
 
 def scan_rows(bands: Bands, thresholds, map_of_frame, inv_light, gains, saturation, scale, margin,
               core):
-    """Row measurements of a block of bands (see :func:`thinning.edges.measure_block`).
+    """Row measurements of a block of bands (see :func:`thinning.measure.rows.measure_block`).
 
     ``bands`` the bands of the frames (axis along the rows), such as views
     into the decoded frames themselves (no copy).
@@ -152,22 +152,22 @@ NECK_COLUMNS = (("diameter_px", np.float64), ("neck_position_px", np.float64),
 
 def necks(rows, fraction, *, layout_fraction, end_widths, face_px, axial0, band0, present_level,
           layout_slope, bend, row_noise, max_half, min_half):
-    """The neck of each frame of a block: :func:`thinning.edges.profiles_of` and
-    :func:`thinning.neck.necks_of` in one compiled pass (same arithmetic).
+    """The neck of each frame of a block: :func:`thinning.measure.profile.profiles_of` and
+    :func:`thinning.measure.neck.necks_of` in one compiled pass (same arithmetic).
 
-    ``rows`` from :func:`scan_rows`; ``fraction`` the shadow level over
+    ``rows`` a :class:`~thinning.measure.rows.RowBlock` from :func:`scan_rows`; ``fraction`` the shadow level over
     backlight of each frame (NaN: ``layout_fraction``); ``end_widths`` the
     layout's two end-body widths (None, a width in px, or inf); the rest
     are the layout's numbers and the neck fit's options (px, slopes as
     tangents). Returns a dict of per-frame arrays named as :data:`NECK_COLUMNS`.
     """
-    nb, n = rows["cut_width"].shape
+    nb, n = rows.cut_width.shape
     kinds = np.array([0 if v is None else (1 if np.isfinite(v) else 2) for v in end_widths], np.int64)
     widths = np.array([v if v is not None and np.isfinite(v) else 0.0 for v in end_widths])
-    inputs = [np.ascontiguousarray(rows[key], dtype=np.float64)
+    inputs = [np.ascontiguousarray(getattr(rows, key), dtype=np.float64)
               for key in ("cut_width", "core_n", "peak", "centre")]
-    inputs.append(np.ascontiguousarray(rows["truncated"], dtype=np.uint8))
-    inputs.append(np.ascontiguousarray(rows["light"], dtype=np.float64))
+    inputs.append(np.ascontiguousarray(rows.truncated, dtype=np.uint8))
+    inputs.append(np.ascontiguousarray(rows.light, dtype=np.float64))
     inputs.append(np.ascontiguousarray(fraction, dtype=np.float64))
     out = {name: np.empty(nb, dtype) for name, dtype in NECK_COLUMNS}
     _check(_lib.necks(nb, n, *(a.ctypes.data for a in inputs), layout_fraction, kinds.ctypes.data,
