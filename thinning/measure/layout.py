@@ -84,6 +84,16 @@ class Layout:
         return int(math.ceil(3.0 * self.blur_sigma_px)) + 2
 
     @property
+    def face_px(self) -> int:
+        """Rows next to an end body's face left out of the free span (about 3 blur widths)."""
+        return int(math.ceil(3.0 * self.blur_sigma_px)) + 1
+
+    def presence_threshold(self, level) -> float:
+        """Smallest peak deficit of a row crossed by the thread: ``level``, or five times the
+        noise where that is larger."""
+        return max(level, 5.0 * self.noise)
+
+    @property
     def core_px(self) -> int:
         """How far inside the detection crossing a pixel is surely full shadow."""
         return int(math.ceil(3.5 * self.blur_sigma_px)) + 1

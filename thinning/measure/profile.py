@@ -106,6 +106,11 @@ class ProfileBlock:
                        rim_fraction=float(self.rim_fraction[b]))
 
 
+def bend_slope(max_bend_deg) -> float:
+    """The largest departure of a direction, ``max_bend_deg`` (degrees), as a slope."""
+    return math.tan(math.radians(max_bend_deg))
+
+
 def axis_slopes(y, centre, ok, base_slope, max_bend_deg):
     """Direction of the centre line (lateral px per axial px) of each frame over its rows ``ok``.
 
@@ -116,7 +121,7 @@ def axis_slopes(y, centre, ok, base_slope, max_bend_deg):
     wanders near plate corners, beads and retracting tips. Frames with fewer
     than 5 rows keep ``base_slope``.
     """
-    bend = math.tan(math.radians(max_bend_deg))
+    bend = bend_slope(max_bend_deg)
     count = ok.sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(ok, y, 0.0).sum(axis=1) / count
@@ -158,7 +163,7 @@ def profiles_of(rows, layout: Layout, *, shadow_fraction, presence_level=PRESENC
     none = ~body.any(axis=1)
     start = np.where(body.all(axis=1), n, np.argmin(body, axis=1))
     stop = np.where(body.all(axis=1), n, n - np.argmin(body[:, ::-1], axis=1))
-    face = np.where(none, 0, int(math.ceil(3.0 * layout.blur_sigma_px)) + 1)
+    face = np.where(none, 0, layout.face_px)
     lo = start + np.where(start > 0, face, 0)
     hi = stop - np.where(stop < n, face, 0)
     free = (j >= lo[:, None]) & (j < hi[:, None])
@@ -175,7 +180,7 @@ def profiles_of(rows, layout: Layout, *, shadow_fraction, presence_level=PRESENC
         cut = np.where(scaled[:, None], (cut - core_n) * gain[:, None] + core_n, cut)
         peak = np.where(scaled[:, None], peak * gain.astype(peak.dtype)[:, None], peak)
     fractions = np.where(scaled, new, fraction)
-    present = peak > max(presence_level, 5.0 * layout.noise)
+    present = peak > layout.presence_threshold(presence_level)
     valid = free & np.isfinite(cut) & ~rows.truncated
     connected = free.any(axis=1) & (present | ~free).all(axis=1)
     y = np.arange(n, dtype=np.float64) + axial[0]

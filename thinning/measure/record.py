@@ -38,7 +38,7 @@ from . import compiled
 from .layout import Layout, NoFilament, find_layout
 from .light import refresh_light
 from .neck import MAX_HALF_WINDOW, MIN_HALF_WINDOW, necks_of
-from .profile import MAX_BEND_DEG, PRESENCE_LEVEL, Profile, ProfileBlock, profiles_of
+from .profile import MAX_BEND_DEG, PRESENCE_LEVEL, Profile, ProfileBlock, bend_slope, profiles_of
 from .rows import CLIPPED_EDGE_LIMIT, measure_block, rim_fractions
 
 log = logging.getLogger(__name__)
@@ -230,10 +230,10 @@ def _measure_pending(pending, layout, fraction, row_noise, records, snaps):
 def _neck_options(layout: Layout, row_noise):
     """The numbers of :func:`thinning.compiled.necks` for one layout (see :func:`necks_of`)."""
     return {"layout_fraction": layout.shadow_fraction, "end_widths": layout.end_widths_px,
-            "face_px": int(math.ceil(3.0 * layout.blur_sigma_px)) + 1,
+            "face_px": layout.face_px,
             "axial0": float(layout.axial_range[0]), "band0": float(layout.band[0]),
-            "present_level": max(PRESENCE_LEVEL, 5.0 * layout.noise),
-            "layout_slope": layout.axis_slope, "bend": math.tan(math.radians(MAX_BEND_DEG)),
+            "present_level": layout.presence_threshold(PRESENCE_LEVEL),
+            "layout_slope": layout.axis_slope, "bend": bend_slope(MAX_BEND_DEG),
             "row_noise": row_noise, "max_half": MAX_HALF_WINDOW, "min_half": MIN_HALF_WINDOW}
 
 
