@@ -4,8 +4,9 @@ import numpy as np
 import pytest
 
 from thinning import laws
-from thinning.regimes import (KINDS, Regime, estimate_diameter_noise, flag_outliers,
-                              local_exponents, local_log_slopes, locate_regimes, prepare_series)
+from thinning.kinematics import local_exponents, local_log_slopes
+from thinning.regimes import KINDS, Regime, locate_regimes
+from thinning.series import estimate_diameter_noise, flag_outliers, prepare_series
 
 PIXEL = 5e-6
 FLOOR = 3 * PIXEL

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy.signal import savgol_filter
 
-from thinning.regimes import local_log_slopes
+from thinning.kinematics import local_log_slopes
 from thinning.rheology import CURVE_COLUMNS, derived_curves, dimensionless_groups, extensional_viscosity_max
 
 SIGMA = 0.06

@@ -18,6 +18,7 @@ from . import regimes as rg
 from .checks import Code, Finding, Severity
 from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_extensibility,
                    fit_inertiocapillary, fit_viscocapillary)
+from .series import check_series
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
 
 GEOMETRIES = ("plates", "dripping")
@@ -173,10 +174,7 @@ GROUP_KEYS = ("ohnesorge_number", "deborah_number", "elasto_capillary_number", "
 
 
 def _check_inputs(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz, geometry):
-    t = np.asarray(time_s, dtype=float)
-    d = np.asarray(diameter_m, dtype=float)
-    if t.ndim != 1 or t.shape != d.shape:
-        raise ValueError("time_s and diameter_m must be 1-D arrays of the same length")
+    t, d = check_series(time_s, diameter_m)
     for name, v in (("surface_tension", surface_tension), ("pixel_size_m", pixel_size_m),
                     ("fps_hz", fps_hz)):
         if not (v is not None and np.isfinite(v) and v > 0):

@@ -20,7 +20,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import laws
-from .regimes import estimate_diameter_noise, fit_power_law, last_thread_position
+from .kinematics import fit_power_law, weighted_line
+from .series import check_series, estimate_diameter_noise, last_thread_position
 
 logger = logging.getLogger(__name__)
 
@@ -126,10 +127,7 @@ class _Selection:
 
 
 def _select(time_s, diameter_m, window_s, *, resolution_floor_m, diameter_noise_m, min_points):
-    t = np.asarray(time_s, dtype=float)
-    d = np.asarray(diameter_m, dtype=float)
-    if t.shape != d.shape or t.ndim != 1:
-        raise ValueError("time_s and diameter_m must be 1-D arrays of the same length")
+    t, d = check_series(time_s, diameter_m)
     ok = np.isfinite(t) & np.isfinite(d) & (d > 0)
     if resolution_floor_m is not None:
         ok &= d >= resolution_floor_m
@@ -150,15 +148,6 @@ def _select(time_s, diameter_m, window_s, *, resolution_floor_m, diameter_noise_
     if not noise > 0:
         noise = 1e-3 * float(np.median(d[inside]))  # noise-free data: any positive scale
     return _Selection(t=t, d=d, s=int(inside[0]), e=int(inside[-1]), noise_m=noise)
-
-
-def _wline(x, y, w):
-    """Weighted least-squares line: (slope, intercept at x = 0, cov 2×2 from the weights)."""
-    a = np.vstack([np.ones_like(x), x]).T
-    aw = a * w[:, None]
-    cov = np.linalg.inv(a.T @ aw)
-    coef = cov @ (aw.T @ y)
-    return coef[1], coef[0], cov
 
 
 def _bootstrap_lines(x, y, w, s, e, *, rng, n_boot, jitter, block=None):
@@ -189,7 +178,7 @@ def _bootstrap_lines(x, y, w, s, e, *, rng, n_boot, jitter, block=None):
         ystar = smooth + zz / np.sqrt(ws)
         a0 = int(rng.integers(0, jitter + 1))
         b0 = m - 1 - int(rng.integers(0, jitter + 1))
-        sl, ic, _ = _wline(xs[a0:b0 + 1], ystar[a0:b0 + 1], ws[a0:b0 + 1])
+        sl, ic, _ = weighted_line(xs[a0:b0 + 1], ystar[a0:b0 + 1], ws[a0:b0 + 1])
         slopes[b], icpts[b] = sl, ic
     return slopes, icpts
 
@@ -233,11 +222,11 @@ def fit_elastocapillary(time_s, diameter_m, *, window_s, surface_tension, initia
     # weights (D/σ_D)² from the fitted diameter, not the noisy one (which would favour
     # frames with positive noise), and ln D corrected for E[ln(D + e)] ≈ ln D − σ²/2D²
     w = (sel.d / sel.noise_m) ** 2
-    slope, icpt, _ = _wline(x[sl], np.log(sel.d[sl]), w[sl])
+    slope, icpt, _ = weighted_line(x[sl], np.log(sel.d[sl]), w[sl])
     d_fit = np.exp(icpt + slope * x)
     w = (d_fit / sel.noise_m) ** 2
     y = np.log(sel.d) + 0.5 * (sel.noise_m / d_fit) ** 2
-    slope, icpt, cov = _wline(x[sl], y[sl], w[sl])
+    slope, icpt, cov = weighted_line(x[sl], y[sl], w[sl])
     n = sel.e - sel.s + 1
     if not slope < 0:
         return _failed(model, "the diameter does not fall in the fit window",
@@ -279,7 +268,7 @@ def _fit_linear(time_s, diameter_m, *, window_s, diameter_noise_m, seed, resolut
     x = sel.t - t_ref
     w = np.full(sel.d.size, 1.0 / sel.noise_m ** 2)
     sl = slice(sel.s, sel.e + 1)
-    slope, icpt, _ = _wline(x[sl], sel.d[sl], w[sl])
+    slope, icpt, _ = weighted_line(x[sl], sel.d[sl], w[sl])
     n = sel.e - sel.s + 1
     if not slope < 0:
         return "the diameter does not fall in the fit window", (sel, n)
@@ -380,7 +369,7 @@ def fit_inertiocapillary(time_s, diameter_m, *, window_s, surface_tension, densi
     w = 1.0 / (1.5 * np.sqrt(sel.d) * sel.noise_m) ** 2
     sl = slice(sel.s, sel.e + 1)
     n = sel.e - sel.s + 1
-    slope, icpt, _ = _wline(x[sl], y[sl], w[sl])
+    slope, icpt, _ = weighted_line(x[sl], y[sl], w[sl])
     if not slope < 0:
         return _failed(model, "the diameter does not fall in the fit window",
                        (sel.t[sel.s], sel.t[sel.e]), n)

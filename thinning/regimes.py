@@ -49,9 +49,9 @@ import logging
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy.ndimage import median_filter
-from scipy.optimize import least_squares
-from scipy.signal import savgol_filter
+
+from .kinematics import LocalSlopes, local_exponents, local_log_slopes, weighted_line
+from .series import DiameterSeries, prepare_series
 
 logger = logging.getLogger(__name__)
 
@@ -97,250 +97,28 @@ class Regime:
                    diameter_end_m=nan, value=nan)
 
 
-@dataclass(frozen=True)
-class PreparedSeries:
-    """The usable part of a series.
-
-    ``index`` holds the positions (in the input arrays) of the usable frames,
-    in time order; ``time_s``/``diameter_m`` their values; ``noise_m`` the
-    diameter noise (given or estimated); ``outlier_index`` and
-    ``below_floor_index`` the positions left out for each reason.
-    """
-
-    index: np.ndarray
-    time_s: np.ndarray
-    diameter_m: np.ndarray
-    noise_m: float
-    resolution_floor_m: float
-    outlier_index: np.ndarray
-    below_floor_index: np.ndarray
-
-    @property
-    def n(self) -> int:
-        return int(self.index.size)
 
 
-@dataclass(frozen=True)
-class LocalSlopes:
-    """Sliding weighted line fits of ln D: slope (1/s), its standard error, fitted ln D, window."""
-
-    slope_1_s: np.ndarray
-    slope_se_1_s: np.ndarray
-    log_diameter_fit: np.ndarray
-    left: np.ndarray
-    right: np.ndarray
-
-    @property
-    def strain_rate_1_s(self) -> np.ndarray:
-        return -2.0 * self.slope_1_s
-
-    @property
-    def relaxation_time_s(self) -> np.ndarray:
-        """Local λ = −1/(3 d ln D/dt), NaN where D is not falling."""
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return np.where(self.slope_1_s < 0, -1.0 / (3.0 * self.slope_1_s), np.nan)
 
 
 # --- preparing a series ----------------------------------------------------------------
 
-def estimate_diameter_noise(diameter_m, *, minimum_m=0.0) -> float:
-    """Noise standard deviation of D (m) from residuals about a local quadratic (7 frames).
-
-    The quadratic is fitted both to D and to ln D (whose residuals, times D,
-    are diameter noise too) and the smaller estimate is kept: real curvature
-    only ever inflates an estimate, and an exponential stretch is straight in
-    ln D. Robust (median absolute deviation), so beads and the steep last
-    frames do not inflate it. ``diameter_m`` must be finite, in time order.
-    """
-    d = np.asarray(diameter_m, dtype=float)
-    if d.size < 9:
-        return float(minimum_m)
-
-    def mad_sigma(resid):
-        # residual of a 7-point quadratic smoother has variance σ²·(1 − 1/3)
-        return 1.4826 * np.median(np.abs(resid - np.median(resid))) / np.sqrt(2.0 / 3.0)
-
-    in_d = mad_sigma(d - savgol_filter(d, 7, 2))
-    lnd = np.log(d)
-    in_log = mad_sigma((lnd - savgol_filter(lnd, 7, 2)) * d)
-    return float(max(min(in_d, in_log), minimum_m))
 
 
-def last_thread_position(time_s, diameter_m, *, t_start_s=None) -> int | None:
-    """Position of the last frame showing a thread, when every later frame shows none.
-
-    None when the last frame of the record still shows a thread (no breakup
-    within the record) or no frame shows one.
-    """
-    t = np.asarray(time_s, dtype=float)
-    d = np.asarray(diameter_m, dtype=float)
-    has = np.isfinite(d) & (d > 0)
-    if t_start_s is not None:
-        has &= t >= t_start_s - 1e-12
-    if not has.any():
-        return None
-    last = int(np.flatnonzero(has)[-1])
-    if last == d.size - 1:
-        return None
-    return last
 
 
-def flag_outliers(time_s, diameter_m, *, noise_m, threshold=5.0, size=9):
-    """Frames whose ln D departs from the running median of its neighbours by > ``threshold`` σ.
-
-    σ = σ_D/D. Two passes: the second median leaves out what the first
-    flagged, so a bead does not drag its neighbours out with it. Frames below
-    the resolution floor take part as neighbours (a bead lifts a thin frame
-    above the floor).
-    """
-    t = np.asarray(time_s, dtype=float)
-    lnd = np.log(np.asarray(diameter_m, dtype=float))
-    bad = np.zeros(lnd.size, dtype=bool)
-    if lnd.size < size:
-        return bad
-    for _ in range(2):
-        keep = ~bad
-        med = median_filter(lnd[keep], size=size, mode="nearest")
-        ref = np.interp(t, t[keep], med)
-        bad = np.abs(lnd - ref) > threshold * noise_m / np.exp(ref)
-    return bad
 
 
-def prepare_series(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=None,
-                   t_start_s=None, outlier_threshold=5.0) -> PreparedSeries:
-    """Select the usable frames: finite D, after ``t_start_s``, above the floor, not outliers."""
-    t = np.asarray(time_s, dtype=float)
-    d = np.asarray(diameter_m, dtype=float)
-    if t.shape != d.shape or t.ndim != 1:
-        raise ValueError("time_s and diameter_m must be 1-D arrays of the same length")
-    finite = np.isfinite(t) & np.isfinite(d) & (d > 0)
-    if t_start_s is not None:
-        finite &= t >= t_start_s - 1e-12
-    order = np.flatnonzero(finite)
-    order = order[np.argsort(t[order], kind="stable")]
-    above = d[order] >= resolution_floor_m
-    floor_noise = 0.01 * resolution_floor_m / 3.0  # 0.01 px: keeps weights finite on clean data
-    if diameter_noise_m is not None:
-        noise = float(diameter_noise_m)
-    else:
-        noise = estimate_diameter_noise(d[order[above]], minimum_m=floor_noise)
-    noise = max(noise, floor_noise)
-    bad = flag_outliers(t[order], d[order], noise_m=noise, threshold=outlier_threshold)
-    outliers = order[bad & above]
-    below_floor = order[~above & ~bad]
-    cand = order[above & ~bad]
-    return PreparedSeries(
-        index=cand, time_s=t[cand], diameter_m=d[cand], noise_m=noise,
-        resolution_floor_m=float(resolution_floor_m), outlier_index=outliers,
-        below_floor_index=below_floor,
-    )
 
 
 # --- local fits ------------------------------------------------------------------------
 
-def _window_bounds(log_d, *, log_span, min_half, max_half):
-    """Per point, the inclusive window [left, right] spanning about ``log_span`` in ln D."""
-    n = log_d.size
-    smooth = median_filter(log_d, size=min(5, n) | 1, mode="nearest")
-    mono = np.minimum.accumulate(smooth)  # D only falls during free thinning
-    key = -mono                           # increasing
-    half = log_span / 2.0
-    i = np.arange(n)
-    left = np.searchsorted(key, key - half, side="left")
-    right = np.searchsorted(key, key + half, side="right") - 1
-    left = np.clip(np.minimum(left, i - min_half), np.maximum(i - max_half, 0), None)
-    right = np.clip(np.maximum(right, i + min_half), None, np.minimum(i + max_half, n - 1))
-    left = np.clip(left, 0, n - 1)
-    right = np.clip(right, 0, n - 1)
-    return left, right
 
 
-def _line_fits(x, y, w, left, right):
-    """Weighted lines through (x, y) over inclusive windows [left, right], via prefix sums."""
-    def csum(v):
-        return np.concatenate([[0.0], np.cumsum(v)])
-
-    p_w, p_x, p_y, p_xx, p_xy = (csum(v) for v in (w, w * x, w * y, w * x * x, w * x * y))
-    r1 = right + 1
-    s_w = p_w[r1] - p_w[left]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        xm = (p_x[r1] - p_x[left]) / s_w
-        ym = (p_y[r1] - p_y[left]) / s_w
-        sxx = (p_xx[r1] - p_xx[left]) - s_w * xm * xm
-        sxy = (p_xy[r1] - p_xy[left]) - s_w * xm * ym
-        slope = np.where(sxx > 0, sxy / sxx, np.nan)
-        se = np.where(sxx > 0, 1.0 / np.sqrt(sxx), np.nan)
-    return slope, se, ym + slope * (x - xm)
 
 
-def _lopsided_quadratic(x, y, w, left, right, slope, se, fit, *, max_offset=0.1):
-    """Slope at the point itself from a weighted quadratic where its window is lopsided.
-
-    A line through a one-sided window (ends of the data) gives the slope at
-    the window's middle, not at the point; a quadratic evaluated at the point
-    removes that first-order bias. Windows with ≤ 3 points keep the line.
-    """
-    i = np.arange(x.size)
-    lopsided = np.flatnonzero((np.abs(0.5 * (left + right) - i) > max_offset * (right - left))
-                              & (right - left >= 3))
-    slope, se, fit = slope.copy(), se.copy(), fit.copy()
-    for k in lopsided:
-        sl = slice(left[k], right[k] + 1)
-        u = x[sl] - x[k]
-        a = np.vstack([np.ones_like(u), u, u * u]).T
-        aw = a * w[sl, None]
-        try:
-            cov = np.linalg.inv(a.T @ aw)
-        except np.linalg.LinAlgError:
-            continue
-        coef = cov @ (aw.T @ y[sl])
-        slope[k], se[k], fit[k] = coef[1], np.sqrt(cov[1, 1]), coef[0]
-    return slope, se, fit
 
 
-def local_log_slopes(time_s, diameter_m, *, noise_m, log_span=0.2, min_half_width=1,
-                     max_half_width=100, half_width=None, target_rel_se=None) -> LocalSlopes:
-    """Sliding weighted least-squares lines through ln D, one per point.
-
-    Weights are (D/σ_D)² (noise constant in D makes σ_lnD = σ_D/D). Each
-    window spans about ``log_span`` in ln D, clipped to [``min_half_width``,
-    ``max_half_width``] points either side (one-sided at the ends, where a
-    quadratic gives the slope at the point itself). With
-    ``target_rel_se``, a point whose slope is less precise than that is refitted
-    over 2, 4, 8 times the span (noisy thin frames get wider windows). A fixed
-    ``half_width`` (points) overrides the adaptive choice. Returns slopes
-    d ln D/dt (1/s) with standard errors from the weights.
-    """
-    t = np.asarray(time_s, dtype=float)
-    d = np.asarray(diameter_m, dtype=float)
-    y = np.log(d)
-    n = y.size
-    # weights from a running median, not the noisy D (which would favour positive noise)
-    w = (median_filter(d, size=min(5, n) | 1, mode="nearest") / noise_m) ** 2
-    scale = np.median(np.diff(t)) if n > 1 else 1.0
-    x = (t - t[0]) / scale
-    if half_width is not None:
-        i = np.arange(n)
-        left = np.clip(i - half_width, 0, n - 1)
-        right = np.clip(i + half_width, 0, n - 1)
-        slope, se, fit = _line_fits(x, y, w, left, right)
-    else:
-        left, right = _window_bounds(y, log_span=log_span, min_half=min_half_width,
-                                     max_half=max_half_width)
-        slope, se, fit = _line_fits(x, y, w, left, right)
-        if target_rel_se is not None:
-            for k in (2.0, 4.0, 8.0):
-                poor = ~(np.abs(se / slope) <= target_rel_se)
-                if not poor.any():
-                    break
-                l2, r2 = _window_bounds(y, log_span=k * log_span, min_half=min_half_width,
-                                        max_half=int(k * max_half_width))
-                s2, e2, f2 = _line_fits(x, y, w, l2, r2)
-                slope, se, fit = (np.where(poor, a, b) for a, b in ((s2, slope), (e2, se), (f2, fit)))
-                left, right = np.where(poor, l2, left), np.where(poor, r2, right)
-        slope, se, fit = _lopsided_quadratic(x, y, w, left, right, slope, se, fit)
-    return LocalSlopes(slope_1_s=slope / scale, slope_se_1_s=se / scale, log_diameter_fit=fit,
-                       left=left, right=right)
 
 
 # --- elasto-capillary run --------------------------------------------------------------
@@ -370,17 +148,9 @@ def _runs(mask):
     return list(zip(starts.tolist(), ends.tolist()))
 
 
-def _weighted_line(x, y, w):
-    """Weighted least-squares line: slope, intercept at x = 0, slope SE from weights."""
-    sw = w.sum()
-    xm = (w * x).sum() / sw
-    ym = (w * y).sum() / sw
-    sxx = (w * (x - xm) ** 2).sum()
-    slope = (w * (x - xm) * (y - ym)).sum() / sxx
-    return slope, ym - slope * xm, 1.0 / np.sqrt(sxx)
 
 
-def find_elastocapillary_run(series: PreparedSeries, slopes: LocalSlopes, *, tolerance=0.05,
+def find_elastocapillary_run(series: DiameterSeries, slopes: LocalSlopes, *, tolerance=0.05,
                              z=2.0, min_points=6, min_decrease=2.0, max_gap=2, max_drift=0.25):
     """Positions (start, end) in ``series`` of the elasto-capillary run, or None.
 
@@ -422,7 +192,7 @@ def find_elastocapillary_run(series: PreparedSeries, slopes: LocalSlopes, *, tol
     for _ in range(6):
         x = series.time_s[s:e + 1]
         w = (series.diameter_m[s:e + 1] / series.noise_m) ** 2
-        slope, _, _ = _weighted_line(x - x[0], log_d[s:e + 1], w)
+        slope, _, _ = weighted_line(x - x[0], log_d[s:e + 1], w)
         if slope >= 0:
             return None
         ref = -1.0 / (3.0 * slope)
@@ -464,8 +234,8 @@ def _trim_curved_edges(series, s, e, *, min_points, min_decrease, z=2.5, edge_fr
     budget = key[s] + max_trim_fraction * span0, key[e] - max_trim_fraction * span0
 
     def slope(a, b):
-        sl, _, se = _weighted_line(t[a:b + 1] - t[a], log_d[a:b + 1], w[a:b + 1])
-        return sl, se
+        sl, _, cov = weighted_line(t[a:b + 1] - t[a], log_d[a:b + 1], w[a:b + 1])
+        return sl, np.sqrt(cov[1, 1])
 
     def long_enough(a, b):
         return b - a + 1 >= min_points and log_d[a] - log_d[b] >= np.log(min_decrease)
@@ -583,84 +353,8 @@ def _trim_to_constant_rate(series, s, e, *, max_drift, min_points, min_decrease)
 
 # --- power-law stretches ---------------------------------------------------------------
 
-def fit_power_law(time_s, diameter_m, *, t_c_min, exponent=None):
-    """Least-squares D = A (t_c − t)^n (uniform weights in D), t_c > ``t_c_min``.
-
-    ``exponent`` fixes n; otherwise n is free. Returns (A, t_c, n, rms residual)
-    or None when the fit fails.
-    """
-    t = np.asarray(time_s, dtype=float)
-    d = np.asarray(diameter_m, dtype=float)
-    if t.size < 4:
-        return None
-    span = max(t[-1] - t[0], np.finfo(float).tiny)
-    n0 = 1.0 if exponent is None else exponent
-    # start: for the trial exponent, D^(1/n) is linear in t
-    q = d ** (1.0 / n0)
-    slope, icpt = np.polyfit(t - t[0], q, 1)
-    if slope < 0:
-        tc0 = t[0] - icpt / slope
-    else:
-        tc0 = t[-1] + span
-    tc0 = max(tc0, t_c_min + 1e-6 * span)
-    # parametrise t_c = t_c_min + exp(u)·span so it stays above the bound
-    u0 = np.log((tc0 - t_c_min) / span)
-    scale = np.median(d)
-
-    def unpack(p):  # A in units of D per span^n
-        tc = t_c_min + np.exp(p[1]) * span
-        n = exponent if exponent is not None else p[2]
-        return p[0] * scale, tc, n
-
-    def resid_scaled(p):
-        a, tc, n = unpack(p)
-        return (a * ((tc - t) / span) ** n - d) / scale
-
-    p0 = [d[0] / ((tc0 - t[0]) / span) ** n0 / scale, u0] + ([] if exponent is not None else [n0])
-    try:
-        sol = least_squares(resid_scaled, p0, method="lm", max_nfev=2000)
-    except (ValueError, FloatingPointError):
-        return None
-    if not sol.success:
-        return None
-    a, tc, n = unpack(sol.x)
-    rms = float(np.sqrt(np.mean(sol.fun ** 2))) * scale
-    return a / span ** n, tc, float(n), rms
 
 
-def local_exponents(time_s, slopes: LocalSlopes, *, min_half_width=3, max_half_width=200,
-                    span_factor=2.0):
-    """Local power-law exponent n(t) and its standard error, free of the singular time.
-
-    For D ∝ (t_c − t)^n the inverse strain rate q = 1/ε̇ = (t_c − t)/(2n) is a
-    line in t (physics.md §3.5), so n = −1/(2 dq/dt). dq/dt comes from sliding
-    weighted line fits of q over windows ``span_factor`` times those of the ln D
-    fits. An elasto-capillary stretch has dq/dt = 0 (n infinite).
-    """
-    t = np.asarray(time_s, dtype=float)
-    s = slopes.slope_1_s
-    with np.errstate(divide="ignore", invalid="ignore"):
-        q = -1.0 / (2.0 * s)
-        q_se = slopes.slope_se_1_s / (2.0 * s * s)
-    ok = np.isfinite(q) & np.isfinite(q_se) & (q > 0) & (q_se > 0)
-    n = t.size
-    i = np.arange(n)
-    half = np.clip(np.ceil(span_factor * (slopes.right - slopes.left) / 2.0), min_half_width,
-                   max_half_width).astype(int)
-    left = np.clip(i - half, 0, n - 1)
-    right = np.clip(i + half, 0, n - 1)
-    w = np.where(ok, 1.0 / np.where(ok, q_se, 1.0) ** 2, 0.0)
-    y = np.where(ok, q, 0.0)
-    scale = np.median(np.diff(t)) if n > 1 else 1.0
-    x = (t - t[0]) / scale
-    dq, dq_se, _ = _line_fits(x, y, w, left, right)
-    dq, dq_se = dq / scale, dq_se / scale
-    with np.errstate(divide="ignore", invalid="ignore"):
-        expo = -1.0 / (2.0 * dq)
-        # the q values of neighbouring windows share frames: inflate for that
-        expo_se = 2.0 * expo * expo * dq_se * np.sqrt(slopes.right - slopes.left + 1.0)
-    expo = np.where(ok, expo, np.nan)
-    return expo, expo_se
 
 
 def _power_law_stretches(series, slopes, s, e, *, min_points, min_decrease, max_gap):
@@ -688,7 +382,7 @@ def _power_law_stretches(series, slopes, s, e, *, min_points, min_decrease, max_
 class RegimeAnalysis:
     """Everything :func:`locate_regimes` found, for the fits and the findings."""
 
-    series: PreparedSeries
+    series: DiameterSeries
     slopes: LocalSlopes
     regimes: list
     elastic_run: tuple | None
@@ -713,7 +407,7 @@ def _reduced_chi2_log_line(series, s, e):
     x = series.time_s[s:e + 1] - series.time_s[s]
     y = np.log(series.diameter_m[s:e + 1])
     w = (series.diameter_m[s:e + 1] / series.noise_m) ** 2
-    slope, icpt, _ = _weighted_line(x, y, w)
+    slope, icpt, _ = weighted_line(x, y, w)
     return float(np.sum(w * (y - icpt - slope * x) ** 2) / max(e - s - 1, 1))
 
 
@@ -785,7 +479,7 @@ def analyse_regimes(time_s, diameter_m, *, resolution_floor_m, diameter_noise_m=
         s, e = run
         x = series.time_s[s:e + 1]
         w = (series.diameter_m[s:e + 1] / series.noise_m) ** 2
-        slope, _, _ = _weighted_line(x - x[0], np.log(series.diameter_m[s:e + 1]), w)
+        slope, _, _ = weighted_line(x - x[0], np.log(series.diameter_m[s:e + 1]), w)
         lam_ec = -1.0 / (3.0 * slope)
         found.append(_make_regime(ELASTO_CAPILLARY, series, s, e, lam_ec))
         # after: finite extensibility from where the strain rate first rises clearly above

@@ -3,7 +3,7 @@
 Kinematics of a slender thinning cylinder (McKinley 2005; physics.md §4):
 ε̇ = −2 d ln D/dt, ε = 2 ln(D0/D), and the apparent extensional viscosity in
 the X = 1 convention, η_E = σ/(−dD/dt). Derivatives come from sliding
-weighted line fits of ln D (:func:`thinning.regimes.local_log_slopes`), never
+weighted line fits of ln D (:func:`thinning.kinematics.local_log_slopes`), never
 from differences of raw frames.
 """
 
@@ -13,7 +13,8 @@ import numpy as np
 import pandas as pd
 
 from . import laws
-from .regimes import local_log_slopes, prepare_series
+from .kinematics import local_log_slopes
+from .series import check_series, prepare_series
 
 #: Columns of :func:`derived_curves`, in order.
 CURVE_COLUMNS = ("time_s", "diameter_m", "strain_rate_1_s", "strain_rate_se_1_s", "hencky_strain",
@@ -35,10 +36,7 @@ def derived_curves(time_s, diameter_m, *, surface_tension, initial_diameter, t_s
     outlier frames; the strain is NaN where there is no thread or before
     ``t_start_s``.
     """
-    t = np.asarray(time_s, dtype=float)
-    d = np.asarray(diameter_m, dtype=float)
-    if t.shape != d.shape or t.ndim != 1:
-        raise ValueError("time_s and diameter_m must be 1-D arrays of the same length")
+    t, d = check_series(time_s, diameter_m)
     n = t.size
     rate = np.full(n, np.nan)
     rate_se = np.full(n, np.nan)
