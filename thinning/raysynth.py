@@ -321,7 +321,7 @@ def _source_preimage(q, slope, n, *, iterations=10, step=2e-5):
 class TransmissionTable:
     """Light through the liquid relative to the bare backlight, per recording.
 
-    ``transmission[k, j, i]`` at κR = ``absorbance[k]`` (Napierian absorption
+    ``transmission[k, j, i]`` at κR = ``absorbance[k]`` (quadratically spaced; Napierian absorption
     coefficient × local radius), |dR/dz| = ``slope[j]`` and impact coordinate
     b/R = ``q[i]`` (1 beyond ``q[-1]``). ``deficit`` holds the running integral
     ∫_0^q (1 − T) dq' on the uniform grid ``q_uniform`` (float32, rows k·n_slope + j),
@@ -337,12 +337,6 @@ class TransmissionTable:
     refractive_index: float
     numerical_aperture: float
     illumination_half_angle_deg: float
-
-    def at(self, q, slope=0.0, absorbance_index=0):
-        """Transmission at b/R = ``q`` (linear interpolation; nearest tabulated slope)."""
-        j = int(np.argmin(np.abs(self.slope - abs(slope))))
-        t = self.transmission[absorbance_index, j]
-        return np.interp(np.abs(q), self.q, t, right=1.0)
 
 
 def _q_grid(numerical_aperture: float, n_inner: int = 640, n_outer: int = 128) -> np.ndarray:
@@ -373,7 +367,8 @@ def transmission_table(refractive_index: float, numerical_aperture: float,
     sin_beta = math.sin(math.radians(illumination_half_angle_deg))
     q = _q_grid(na)
     slope = SLOPE_MAX * np.linspace(0.0, 1.0, n_slopes) ** 2
-    absorbance = np.linspace(0.0, absorbance_max, n_absorbance) if absorbance_max > 0 else np.zeros(1)
+    absorbance = absorbance_max * np.linspace(0.0, 1.0, n_absorbance) ** 2 if absorbance_max > 0 \
+        else np.zeros(1)
     qq, ss = np.meshgrid(q, slope)                       # (n_slopes, n_q)
     entries_q = np.concatenate([qq.ravel(), [1e3]])      # the last: the bare backlight
     entries_s = np.concatenate([ss.ravel(), [0.0]])
@@ -454,7 +449,7 @@ def psf_kernel(optics: RayOptics, pixel_size_m: float) -> np.ndarray:
     r_defocus = abs(optics.defocus_m) * math.tan(alpha)
     support = min(r_defocus + AIRY_SUPPORT_ZEROS * r_zero, PSF_MAX_RADIUS_PX * pixel_size_m)
     m = max(1, int(math.ceil(support / cell)))
-    fine = int(min(15, max(3, math.ceil(5.0 * cell / r_zero))))
+    fine = int(min(15, max(3, math.ceil(5.0 * cell / r_zero)))) | 1   # odd: the centre is a sample
     h = cell / fine
     x = (np.arange((2 * m + 1) * fine) + 0.5) * h - (m + 0.5) * cell
     rr = np.hypot(x[:, None], x[None, :])
@@ -465,6 +460,33 @@ def psf_kernel(optics: RayOptics, pixel_size_m: float) -> np.ndarray:
     kernel = airy.reshape(2 * m + 1, fine, 2 * m + 1, fine).sum(axis=(1, 3))
     kernel = np.clip(kernel, 0.0, None)
     return (kernel / kernel.sum()).astype(np.float32)
+
+
+def _pixel_phases(kernel: np.ndarray, k: int):
+    """Split "convolve the k-supersampled image with ``kernel``, then average each pixel's k × k
+    cells" into k² correlations at pixel resolution, one per sub-pixel phase.
+
+    Returns [(p, q, weights, anchor)]: pixel image = Σ filter2D(sub[p::k, q::k], weights, anchor).
+    """
+    size = kernel.shape[0]
+    m = size // 2
+    a = np.arange(size)
+    sigma = np.arange(k)
+    d = sigma[:, None] - a[None, :] + m                  # sub-pixel offset (σ, a)
+    shift, phase = np.divmod(d, k)
+    lo = int(shift.min())
+    n = int(shift.max()) - lo + 1
+    phases = []
+    for p in range(k):
+        for q in range(k):
+            w = np.zeros((n, n))
+            rows = phase == p
+            cols = phase == q
+            for (s1, a1) in zip(*np.nonzero(rows)):
+                for (s2, a2) in zip(*np.nonzero(cols)):
+                    w[shift[s1, a1] - lo, shift[s2, a2] - lo] += kernel[a1, a2]
+            phases.append((p, q, (w / (k * k)).astype(np.float32), (-lo, -lo)))
+    return phases
 
 
 # --- parameters ------------------------------------------------------------------------------
@@ -851,7 +873,7 @@ def _fringes(image: np.ndarray, optics: RayOptics, cell_m: float) -> np.ndarray:
 
     z, lam = optics.fringe_distance_m, optics.wavelength_m
     pad = int(math.ceil(4.0 * math.sqrt(lam * z) / cell_m)) + 8
-    field = np.sqrt(np.pad(image, pad, mode="reflect")).astype(np.complex64)
+    field = np.sqrt(np.clip(np.pad(image, pad, mode="reflect"), 0.0, None)).astype(np.complex64)
     fy = fft.fftfreq(field.shape[0], d=cell_m)
     fx = fft.fftfreq(field.shape[1], d=cell_m)
     transfer = np.exp(-1j * math.pi * lam * z * (fy[:, None] ** 2 + fx[None, :] ** 2)).astype(np.complex64)
@@ -932,7 +954,7 @@ class RayRenderer:
         self._z = (np.arange(n_axis * k) + 0.5) / k - 0.5
         self._x_edges = np.arange(n_across * k + 1) / k - 0.5
         self._table = None
-        self._kernel = None
+        self._phases = None
         self.max_value = 2 ** optics.bit_depth - 1
         self.dtype = np.uint8 if optics.bit_depth == 8 else np.uint16
 
@@ -979,8 +1001,8 @@ class RayRenderer:
         if table.absorbance.size == 1:
             slices = [(np.zeros(rows.size, int), None)]
         else:
-            f = np.clip(self.scene.absorption_per_m * r * self.scene.pixel_size_m
-                        / table.absorbance[-1], 0.0, 1.0) * (table.absorbance.size - 1)
+            f = np.sqrt(np.clip(self.scene.absorption_per_m * r * self.scene.pixel_size_m
+                                / table.absorbance[-1], 0.0, 1.0)) * (table.absorbance.size - 1)
             k0 = np.minimum(np.floor(f).astype(int), table.absorbance.size - 2)
             w = (f - k0).astype(np.float32)[:, None]
             slices = [(k0, 1.0 - w), (k0 + 1, w)]
@@ -1049,12 +1071,15 @@ class RayRenderer:
         k = o.supersample
         if o.coherent_fraction > 0:
             image = _fringes(image, o, s.pixel_size_m / k)
-        if self._kernel is None:
-            self._kernel = psf_kernel(o, s.pixel_size_m)
-        image = cv2.filter2D(image, -1, self._kernel, borderType=cv2.BORDER_REPLICATE)
-        n_axis, n_across = s.frame_size_px
-        if k > 1:   # the pixels' box integration (exact for an integer factor)
-            image = cv2.resize(image, (n_across, n_axis), interpolation=cv2.INTER_AREA)
+        if self._phases is None:
+            self._phases = _pixel_phases(psf_kernel(o, s.pixel_size_m), k)
+        # the PSF and the pixels' box integration, evaluated at pixel resolution only
+        out = None
+        for p, q, weights, anchor in self._phases:
+            part = cv2.filter2D(np.ascontiguousarray(image[p::k, q::k]), -1, weights, anchor=anchor,
+                                borderType=cv2.BORDER_REPLICATE)
+            out = part if out is None else out + part
+        image = out
         return np.ascontiguousarray(image.T) if o.orientation == "horizontal" else image
 
     def frame(self, i: int) -> np.ndarray:
@@ -1063,7 +1088,9 @@ class RayRenderer:
         light = self.optical_image(i)
         if o.veiling_glare > 0:
             light = np.float32(o.veiling_glare) + np.float32(1.0 - o.veiling_glare) * light
-        light *= cam.gain * np.float32(o.background_level * cam.flicker[i])
+        light *= np.float32(o.background_level * cam.flicker[i])
+        if o.uneven_light > 0:
+            light *= cam.gain
         height, width = self.sensor_shape
         if o.texture_amplitude > 0:
             waves, phases, drift = cam.texture
@@ -1084,11 +1111,20 @@ class RayRenderer:
                                         + phase0 + step * i)) / math.tanh(3.0)
             light *= (1.0 + o.banding_amplitude * wave).astype(np.float32)[:, None]
         if o.full_well > 0 or o.read_noise > 0:
-            variance = np.float32(o.read_noise ** 2) + (np.maximum(light, 0.0) / np.float32(o.full_well)
-                                                        if o.full_well > 0 else np.float32(0.0))
+            if o.full_well > 0:
+                spread = np.maximum(light, 0.0)
+                spread *= np.float32(1.0 / o.full_well)
+                spread += np.float32(o.read_noise ** 2)
+                np.sqrt(spread, out=spread)
+            else:
+                spread = np.float32(o.read_noise)
             noise = np.random.default_rng([self.seed, 2, i]).standard_normal(light.shape, np.float32)
-            light += np.sqrt(variance) * noise
-        out = np.clip(np.rint(light * np.float32(self.max_value)), 0, self.max_value).astype(self.dtype)
+            noise *= spread
+            light += noise
+        light *= np.float32(self.max_value)
+        np.rint(light, out=light)
+        np.clip(light, 0, self.max_value, out=light)
+        out = light.astype(self.dtype)
         flat = out.reshape(-1)
         flat[cam.hot] = self.max_value
         flat[cam.dead] = 0
@@ -1152,3 +1188,177 @@ def write_recording(scene: RayScene, optics: RayOptics, path, *, fmt: str, seed:
                  bit_depth=optics.bit_depth, quality=quality, playback_fps=playback_fps)
     write_truth(truth, path / "truth.json" if fmt == "png-folder" else truth_path(path))
     return truth
+
+
+# --- random cases for probes and coverage tests ----------------------------------------------
+
+#: The real-footage artefacts the "artefacts" family draws one or two of.
+ARTEFACTS = ("coherence", "texture", "dust", "banding", "stuck", "low-contrast", "uneven", "flicker")
+
+
+def _log_uniform(rng, lo, hi):
+    return float(math.exp(rng.uniform(math.log(lo), math.log(hi))))
+
+
+def elastic_window_s(hist, relaxation_time: float, tolerance: float = 0.25) -> float:
+    """Longest span (s) over which the model thins at ε̇ = 2/(3λ) within ``tolerance``
+    (relative), i.e. the elasto-capillary window of a history from :func:`laws.filament_model`."""
+    t, d = hist.time_s, hist.diameter_m
+    rate = -np.gradient(np.log(d), t) * 3.0 * relaxation_time
+    inside = np.abs(rate - 1.0) < tolerance
+    best, start = 0.0, None
+    for k, flag in enumerate(np.append(inside, False)):
+        if flag and start is None:
+            start = k
+        elif not flag and start is not None:
+            best = max(best, t[k - 1] - t[start])
+            start = None
+    return float(best)
+
+
+def _draw_fluid(rng, kind: str, d0: float):
+    """A fluid of ``kind`` ("elastic", "viscous", "inertial") for initial diameter d0, or None."""
+    sigma = rng.uniform(0.020, 0.075)
+    rho = rng.uniform(800.0, 1300.0)
+    if kind == "elastic":
+        eta = _log_uniform(rng, 1e-3, 10.0)
+        lam = _log_uniform(rng, 3e-4, 1.0)
+        g = _log_uniform(rng, 0.5, 100.0)
+        if g * d0 / (4.0 * sigma) > 0.5 or laws.elasto_capillary_number(
+                lam, d0 / 2, surface_tension=sigma, viscosity=eta + g * lam) < 1.0:
+            return None
+        ext = _log_uniform(rng, 1e3, 1e5) if rng.random() < 0.6 else None
+        return laws.Fluid(surface_tension=sigma, solvent_viscosity=eta, density=rho,
+                          polymer_modulus=g, relaxation_time=lam, extensibility=ext)
+    eta = _log_uniform(rng, 0.05, 10.0) if kind == "viscous" else _log_uniform(rng, 1e-3, 0.02)
+    oh = laws.ohnesorge_number(d0 / 2, surface_tension=sigma, density=rho, viscosity=eta)
+    if (kind == "viscous" and oh < 0.5) or (kind == "inertial" and oh > 0.2):
+        return None
+    return laws.Fluid(surface_tension=sigma, solvent_viscosity=eta, density=rho)
+
+
+def _draw_scene(rng, family: str):
+    """A scene of ``family`` with its frame rate set from the model, or None (draw again)."""
+    still = family == "newtonian-still"
+    if still:
+        kind = str(rng.choice(["viscous", "inertial"]))
+    else:
+        kind = "elastic" if rng.random() < 0.6 else str(rng.choice(["viscous", "inertial"]))
+    dripping = not still and rng.random() < (0.2 if family == "refraction" else 0.3)
+    n_axis, n_across = int(rng.integers(160, 513)), int(rng.integers(128, 385))
+    px = _log_uniform(rng, 2e-6, 20e-6)
+    plate = rng.uniform(0.3, 0.75) * n_across * px
+    gap = rng.uniform(0.55, 0.84) * n_axis * px
+    if not 0.5e-3 <= plate <= 6e-3 or not 0.8 <= gap / (plate / 2) <= 8.0:
+        return None
+    wide = family == "refraction"
+    d0 = plate * (rng.uniform(0.3, 0.6) if dripping else rng.uniform(0.3, 0.45) if wide
+                  else rng.uniform(0.15, 0.4))
+    if wide and d0 / px < 80:
+        return None
+    fluid = _draw_fluid(rng, kind, d0)
+    if fluid is None:
+        return None
+    n_index = (rng.uniform(1.33, 1.36) if rng.random() < 0.5 else rng.uniform(1.47, 1.50)) if wide \
+        else rng.uniform(1.33, 1.50)
+    absorb = rng.random() < (0.3 if wide else 0.15)
+    base = RayScene(fluid=fluid, geometry="dripping" if dripping else "plates", plate_diameter_m=plate,
+                    initial_diameter_m=d0, gap_m=gap, pixel_size_m=px, fps_hz=1000.0,
+                    frame_size_px=(n_axis, n_across), refractive_index=n_index,
+                    absorption_per_m=rng.uniform(0.05, 1.0 if wide else 0.5) / d0 if absorb else 0.0,
+                    sag=rng.uniform(0.03, 0.2) if rng.random() < 0.4 else 0.0)
+    hist, _ = _model(base)
+    life = hist.breakup_time_s
+    changes = {}
+    if not still and (dripping or rng.random() < 0.6):
+        changes["stretch_duration_s"] = rng.uniform(0.05, 0.2) * life
+        if dripping or rng.random() < 0.5:
+            changes["pre_roll_s"] = rng.uniform(0.02, 0.08) * life
+        if not dripping:
+            changes["stretch_ratio"] = rng.uniform(1.8, min(4.0, (0.8 * plate / d0) ** 2))
+    t_end = changes.get("stretch_duration_s", 0.0) + changes.get("pre_roll_s", 0.0) + life
+    fps = (int(rng.integers(120, 500)) - FRAMES_AFTER_BREAKUP) / t_end
+    if kind == "elastic":
+        window = elastic_window_s(hist, fluid.relaxation_time)
+        if window <= 0.0:
+            return None
+        fps = max(fps, 16.0 / window)
+    if math.floor(t_end * fps) + 1 + FRAMES_AFTER_BREAKUP > 600:
+        return None
+    return dataclasses.replace(base, fps_hz=float(fps), **changes)
+
+
+def _draw_optics(rng, family: str, scene: RayScene) -> RayOptics:
+    px = scene.pixel_size_m
+    lam = rng.uniform(0.45e-6, 0.65e-6)
+    # lenses matched to the pixels: Airy radius 0.25–2 px, NA within 0.02–0.2
+    na_lo, na_hi = max(0.02, 0.61 * lam / (2.0 * px)), min(0.2, 0.61 * lam / (0.25 * px))
+    if family == "refraction":
+        na = _log_uniform(rng, na_lo, min(na_hi, 1.3 * na_lo)) if rng.random() < 0.5 \
+            else _log_uniform(rng, max(na_lo, na_hi / 1.3), na_hi)
+        beta = rng.uniform(0.2, 0.4) if rng.random() < 0.5 else rng.uniform(30.0, 40.0)
+    else:
+        na = _log_uniform(rng, na_lo, na_hi)
+        pick = rng.random()
+        beta = rng.uniform(0.2, 1.0) if pick < 0.4 else _log_uniform(rng, 1.0, 10.0) if pick < 0.7 \
+            else rng.uniform(10.0, 40.0)
+    alpha = math.asin(na)
+    o = dict(numerical_aperture=na, wavelength_m=lam, illumination_half_angle_deg=beta,
+             orientation=str(rng.choice(ORIENTATIONS)),
+             bit_depth=int(rng.choice([8, 8, 8, 12, 16])), background_level=rng.uniform(0.6, 0.9),
+             full_well=_log_uniform(rng, 5e3, 4e4), read_noise=rng.uniform(0.001, 0.006))
+    if rng.random() < 0.4:
+        o["defocus_m"] = float(rng.choice([-1.0, 1.0])) * rng.uniform(0.3, 2.0) * px / math.tan(alpha)
+    if rng.random() < 0.2:
+        o["exposure_fraction"] = rng.uniform(0.2, 1.0)
+        o["sub_exposures"] = 4
+    if family == "artefacts":
+        for name in rng.choice(ARTEFACTS, size=int(rng.integers(1, 3)), replace=False):
+            if name == "coherence":      # fringes survive only under collimated light
+                o.update(coherent_fraction=rng.uniform(0.5, 1.0), fringe_distance_m=rng.uniform(50e-6, 400e-6),
+                         illumination_half_angle_deg=rng.uniform(0.2, 0.6))
+            elif name == "texture":
+                o.update(texture_amplitude=rng.uniform(0.01, 0.04), texture_speed_px=rng.uniform(0.3, 3.0))
+            elif name == "dust":
+                o.update(dust_blob_depth=rng.uniform(0.1, 0.4), dust_blob_radius_px=rng.uniform(6.0, 25.0))
+            elif name == "banding":
+                o.update(banding_amplitude=rng.uniform(0.02, 0.08), banding_period_px=rng.uniform(16.0, 96.0))
+            elif name == "stuck":
+                o.update(stuck_pixels=int(rng.integers(5, 60)))
+            elif name == "low-contrast":  # the thread only ~25 grey levels (of 255) below the light
+                o.update(veiling_glare=1.0 - rng.uniform(20.0, 30.0) / (255.0 * o["background_level"]))
+            elif name == "uneven":
+                o.update(uneven_light=rng.uniform(0.1, 0.4))
+            else:
+                o.update(flicker=rng.uniform(0.01, 0.05))
+    return RayOptics(**o)
+
+
+def random_case(seed: int, *, family: str = "regular") -> tuple[RayScene, RayOptics]:
+    """A (scene, optics) drawn across the parameter ranges of ``family`` (deterministic per seed).
+
+    Common ranges: pixel 2–20 µm; plate / nozzle 0.5–6 mm (30–75 % of the frame's
+    width); frames ≤ 512 × 512; σ 20–75 mN/m; ρ 800–1300 kg/m³; n 1.33–1.50;
+    NA 0.02–0.2 matched to the pixel (Airy radius 0.25–2 px); λ 0.45–0.65 µm;
+    records of about 110–600 frames ending 10 frames after breakup, elastic
+    windows ≥ 16 frames; shot and read noise; 8/12/16 bits. Families:
+
+    - ``"regular"``: elastic (60 %: η_s 1 mPa·s–10 Pa·s, λ 0.3 ms–1 s, G 0.5–100 Pa,
+      FENE or Oldroyd-B) and Newtonian (viscous η 0.05–10 Pa·s, Oh > 0.5; inertial
+      1–20 mPa·s, Oh < 0.2) liquids, plates (step stretch or still) and dripping,
+      both orientations, collimated / intermediate / diffuse backlight (β 0.2–40°),
+      defocus (blur disk 0.3–2 px), motion blur, sag, dye;
+    - ``"artefacts"``: as regular, plus one or two of :data:`ARTEFACTS`;
+    - ``"refraction"``: wide threads (D0 ≥ 80 px) with n near 1.33 or 1.50, NA at
+      either end of its range, β 0.2–0.4° or 30–40°, dye in 30 %;
+    - ``"newtonian-still"``: viscous or inertial Newtonian liquids between still
+      plates, free thinning from frame 0.
+    """
+    if family not in FAMILIES:
+        raise ValueError(f"family must be one of {FAMILIES}, not {family!r}")
+    rng = np.random.default_rng([int(seed), FAMILIES.index(family), 11])
+    for _ in range(500):
+        scene = _draw_scene(rng, family)
+        if scene is not None:
+            return scene, _draw_optics(rng, family, scene)
+    raise RuntimeError(f"no {family} case drawn for seed {seed}")
