@@ -76,7 +76,8 @@ from thinning.synth_io import FORMATS, Truth, check_format, truth_path, write_fr
 
 __all__ = ["RayOptics", "RayScene", "RayRenderer", "TransmissionTable", "render_recording",
            "write_recording", "random_case", "transmission_table", "trace_cone", "refract",
-           "fresnel_reflectance", "airy_psf", "psf_kernel", "FAMILIES", "FORMATS", "RENDERER"]
+           "fresnel_reflectance", "airy_psf", "psf_kernel", "face_transmission", "elastic_window_s",
+           "FAMILIES", "ARTEFACTS", "FORMATS", "RENDERER"]
 
 #: Name of this renderer in the truth's ``optics`` record.
 RENDERER = "raysynth"
@@ -862,6 +863,16 @@ def _radius_and_slope(z, tl: _Timeline, i: int, dz: float = 0.01):
     return r, slope
 
 
+def face_transmission(distance, depth, lit_pupil: float):
+    """Light left at ``distance`` (px, > 0) in front of an opaque face reaching ``depth`` (px)
+    out of the object plane on both sides, for a lit pupil of radius ``lit_pupil`` (direction
+    cosines): the rays of slope |d_z/d_y| above distance/depth hit the face. Closed form for a
+    uniform disk of directions (its part with |u_z| < c); the rays' sideways tilt is ignored."""
+    distance = np.asarray(distance, float)
+    c = np.clip(distance / np.hypot(distance, depth) / lit_pupil, 0.0, 1.0)
+    return 1.0 - 2.0 / math.pi * (np.arccos(c) - c * np.sqrt(1.0 - c * c))
+
+
 # --- the renderer ----------------------------------------------------------------------------
 
 def _fringes(image: np.ndarray, optics: RayOptics, cell_m: float) -> np.ndarray:
@@ -955,6 +966,10 @@ class RayRenderer:
         self._x_edges = np.arange(n_across * k + 1) / k - 0.5
         self._table = None
         self._phases = None
+        # directions (cosines) in which the bare backlight is seen: the pupil or the source
+        self._lit_pupil = min(optics.numerical_aperture,
+                              math.sin(math.radians(optics.illumination_half_angle_deg)))
+        self._penumbra_slope = self._lit_pupil / math.sqrt(1.0 - self._lit_pupil ** 2)
         self.max_value = 2 ** optics.bit_depth - 1
         self.dtype = np.uint8 if optics.bit_depth == 8 else np.uint16
 
@@ -1038,10 +1053,19 @@ class RayRenderer:
         rows = np.flatnonzero(upper > 0)
         image[rows] *= 1.0 - upper[rows, None].astype(np.float32) * across
         rows = np.flatnonzero(lower > 0)
-        if self.scene.geometry == "plates":
+        plates = self.scene.geometry == "plates"
+        if plates:
             image[rows] *= 1.0 - lower[rows, None].astype(np.float32) * across
         else:
             image[rows] *= (1.0 - lower[rows]).astype(np.float32)[:, None]
+        # the faces of the discs (and of the nozzle) reach out of the object plane
+        x = 0.5 * (lo + hi) - x_c
+        depth = np.sqrt(np.clip(end * end - x * x, 0.0, None))
+        for distance in (z - tl.z_upper[i], tl.z_lower[i] - z) if plates else (z - tl.z_upper[i],):
+            near = np.flatnonzero((distance > 0.0) & (distance < depth.max() * self._penumbra_slope))
+            if near.size:
+                image[near] *= face_transmission(distance[near, None], depth[None, :],
+                                                 self._lit_pupil).astype(np.float32)
 
     def _state_image(self, tl: _Timeline, i: int) -> np.ndarray:
         n_axis, n_across = self.scene.frame_size_px
@@ -1160,7 +1184,8 @@ def _truth(scene: RayScene, optics: RayOptics, hist, tl: _Timeline, axis_px: flo
         geometry=scene.geometry, orientation=optics.orientation, frame_shape=tuple(shape),
         bit_depth=optics.bit_depth, dtype="uint8" if optics.bit_depth == 8 else "uint16",
         optics={**dataclasses.asdict(optics), "renderer": RENDERER, "lens": "object-side telecentric",
-                "airy_radius_px": 0.6098 * optics.wavelength_m / optics.numerical_aperture / px},
+                "airy_radius_px": J1_FIRST_ZERO / (2.0 * math.pi) * optics.wavelength_m
+                / optics.numerical_aperture / px},
         scene=scene_dict, seed=int(seed),
     )
 
