@@ -338,6 +338,25 @@ def test_psf_kernel(defocus, supersample):
         assert variance < (0.6098 * 0.55e-6 / 0.1) ** 2
 
 
+@pytest.mark.parametrize("k", [1, 2, 3])
+def test_psf_at_pixel_resolution_equals_convolving_then_binning(k):
+    """The renderer's polyphase shortcut against the plain method: convolve the supersampled image
+    with the PSF, then average each pixel's k × k cells."""
+    import cv2
+
+    optics = raysynth.RayOptics(numerical_aperture=0.05, defocus_m=100e-6, supersample=k)
+    kernel = raysynth.psf_kernel(optics, 5e-6)
+    rng = np.random.default_rng(k)
+    image = rng.random((70 * k, 60 * k)).astype(np.float32)
+    plain = cv2.filter2D(image, -1, kernel, borderType=cv2.BORDER_REPLICATE)
+    plain = plain.reshape(70, k, 60, k).mean(axis=(1, 3))
+    fast = sum(cv2.filter2D(np.ascontiguousarray(image[p::k, q::k]), -1, w, anchor=a,
+                            borderType=cv2.BORDER_REPLICATE)
+               for p, q, w, a in raysynth._pixel_phases(kernel, k))
+    m = kernel.shape[0] // k + 1                # away from the borders (replicated differently)
+    np.testing.assert_allclose(fast[m:-m, m:-m], plain[m:-m, m:-m], atol=2e-6)
+
+
 # --- truth -----------------------------------------------------------------------------------
 
 def test_truth_diameter_is_the_model_and_breakup_is_right():

@@ -479,13 +479,12 @@ def _pixel_phases(kernel: np.ndarray, k: int):
     n = int(shift.max()) - lo + 1
     phases = []
     for p in range(k):
+        rows, a_rows = np.nonzero(phase == p)
         for q in range(k):
+            cols, a_cols = np.nonzero(phase == q)
             w = np.zeros((n, n))
-            rows = phase == p
-            cols = phase == q
-            for (s1, a1) in zip(*np.nonzero(rows)):
-                for (s2, a2) in zip(*np.nonzero(cols)):
-                    w[shift[s1, a1] - lo, shift[s2, a2] - lo] += kernel[a1, a2]
+            np.add.at(w, (shift[rows, a_rows][:, None] - lo, shift[cols, a_cols][None, :] - lo),
+                      kernel[a_rows[:, None], a_cols[None, :]])
             phases.append((p, q, (w / (k * k)).astype(np.float32), (-lo, -lo)))
     return phases
 
@@ -858,9 +857,8 @@ def _radius(z, tl: _Timeline, i: int) -> np.ndarray:
 
 def _radius_and_slope(z, tl: _Timeline, i: int, dz: float = 0.01):
     """Radius (px) and |dR/dz| at ``z`` (central differences over ±``dz`` px)."""
-    r = _radius(z, tl, i)
-    slope = np.abs(_radius(z + dz, tl, i) - _radius(z - dz, tl, i)) / (2.0 * dz)
-    return r, slope
+    r = _radius(np.concatenate([z - dz, z, z + dz]), tl, i).reshape(3, -1)
+    return r[1], np.abs(r[2] - r[0]) / (2.0 * dz)
 
 
 def face_transmission(distance, depth, lit_pupil: float):
@@ -994,7 +992,7 @@ class RayRenderer:
         if rows.size == 0:
             return
         reach = self.table.q_uniform[-1] * r[rows] + 1.0
-        group = np.floor(np.log(reach) / math.log(1.25)).astype(int)
+        group = np.floor(np.log(reach) / math.log(1.4)).astype(int)
         for g in np.unique(group):
             mine = rows[group == g]
             self._liquid_rows(image, mine, r[mine], slope[mine], float(reach[group == g].max()))
@@ -1090,8 +1088,7 @@ class RayRenderer:
             tl = _timeline(s, self.model, self.n_frames, (i + spread) / s.fps_hz)
             image = sum(self._state_image(tl, j) for j in range(o.sub_exposures)) / o.sub_exposures
         else:
-            tl = _timeline(s, self.model, self.n_frames, self.frame_times[i:i + 1])
-            image = self._state_image(tl, 0)
+            image = self._state_image(self.timeline, i)
         k = o.supersample
         if o.coherent_fraction > 0:
             image = _fringes(image, o, s.pixel_size_m / k)
