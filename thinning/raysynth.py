@@ -5,36 +5,39 @@ accuracy claims never rest on one way of drawing a filament. The liquid is not
 an absorber: it is a transparent axisymmetric body of refractive index n whose
 image is found by tracing light through it (physics.md §8.1).
 
-Geometry. Per frame the liquid is a radius profile R(z) along the filament
-axis whose minimum is exactly the 0-D model's D(t)/2
+Geometry. Per frame the liquid is a radius profile R(z) along the filament axis
+whose minimum is exactly the 0-D model's D(t)/2
 (:func:`thinning.laws.filament_model`) at a known axial position: a core
 (elastic: a long, nearly uniform thread; viscous Newtonian: a parabolic
-hourglass; inertial Newtonian: an asymmetric cone-like neck) joined to
-spherical-cap drops on the end faces by a 4-norm, clipped to the plates'
-radius. Plates are opaque rectangles (discs seen edge-on); dripping has an
-opaque nozzle above and an opaque substrate below with a spreading sessile
-drop. After breakup the core is cut at two tips that recede from the pinch
-point. Timeline: ``pre_roll_s`` at rest (dripping: a pendant drop growing
-towards the substrate), ``stretch_duration_s`` of exponential plate
-separation (dripping: drainage after contact), free thinning from
-``free_thinning_start_s`` (the model's t = 0), breakup, retracting halves.
+hourglass; inertial Newtonian: an asymmetric cone-like neck) joined by a 4-norm
+to spherical-cap drops on the end faces, whose bases are chosen so that the
+liquid meets each plate's rim at its radius. Plates are opaque discs seen
+edge-on (rectangles in the object plane, their faces reaching out of it and
+shading tilted rays, :func:`face_transmission`); dripping has an opaque nozzle
+above (shading likewise) and an opaque substrate below, taken as a thin sheet
+in the object plane, with a spreading sessile drop. After breakup the core is
+cut at two tips that recede from the pinch point. Timeline: ``pre_roll_s`` at
+rest (dripping: a pendant drop growing towards the substrate),
+``stretch_duration_s`` of exponential plate separation (dripping: drainage
+after contact), free thinning from ``free_thinning_start_s`` (the model's t =
+0), breakup, retracting halves.
 
 Optics. An object-side telecentric lens of numerical aperture NA images the
 plane through the filament axis (y = 0; the optical axis is y, the camera at
 +y). For an image point (x, 0, z) the rays of the lens's acceptance cone are
 straight lines through that point, uniformly distributed in direction cosines
-(|(d_x, d_z)| < NA). Each is traced backwards: to where its extension meets
-the liquid's camera-side surface (the last intersection along the ray), into
-the liquid by 3-D Snell's law at the local cone surface (radius R, slope
-dR/dz), to the far surface, out again (total internal reflection: no light),
-to the backlight, whose radiance is uniform within a half-angle β about the
-optical axis (collimated ≈ 0.2–1°, diffuse up to ~40°; Lambertian within its
-extent, with a soft rim). The pixel's light is the pupil mean of radiance ×
-Fresnel transmission (unpolarised light, exact Fresnel equations, the
-polarisation followed through both interfaces) × exp(−κ × path), relative to
-the backlight seen directly. Only directly transmitted light (one passage,
-no internal or external reflections) is counted. Because ray optics scales
-with R, this is tabulated once per recording against b/R, |dR/dz| and κR
+(|(d_x, d_z)| < NA). Each is traced backwards: to where its extension meets the
+liquid's camera-side surface (the last intersection along the ray), into the
+liquid by 3-D Snell's law at the local cone surface (radius R, slope dR/dz, the
+local-cone approximation), to the far surface, out again (total internal
+reflection: no light), to the backlight, whose radiance is uniform within a
+half-angle β about the optical axis (collimated ≈ 0.2–1°, diffuse up to ~40°;
+Lambertian within its extent, with a soft rim). The pixel's light is the pupil
+mean of radiance × Fresnel transmission (unpolarised light, exact Fresnel
+equations, the polarisation followed through both interfaces) × exp(−κ × path),
+relative to the backlight seen directly. Only directly transmitted light (one
+passage, no internal or external reflections) is counted. Because ray optics
+scales with R, this is tabulated once per recording against b/R, |dR/dz| and κR
 (:func:`transmission_table`); a narrow backlight is sampled where it is seen
 (the pupil region mapped onto it, found by Newton's method), a wide one over
 the whole pupil. Frames are then drawn from the table's running integral, so
@@ -42,22 +45,23 @@ each sub-pixel column gets its exact area average across the axis, on
 ``supersample`` sub-rows per pixel row.
 
 Image formation. Diffraction-limited Airy PSF of the NA at the wavelength,
-convolved with the geometric defocus disk (radius |defocus| tan α), applied on
-the supersampled image, then box integration to pixels; optional motion blur
+convolved with the geometric defocus disk (radius |defocus| tan α), applied to
+the supersampled image together with the box integration to pixels (both at
+once, evaluated at pixel resolution by sub-pixel phase); optional motion blur
 (sub-exposures averaged). Optional partially coherent light: the image's
 amplitude is propagated by the paraxial Fresnel transfer function over
 ``fringe_distance_m`` and its intensity smoothed by the backlight's angular
 size (the coherence envelope), giving a bright fringe outside each edge.
 Sensor: veiling glare, uneven and flickering backlight, a drifting backlight
-texture and dust blob, rolling read-out banding under a PWM lamp, shot and
-read noise, quantisation to 8/12/16 bits (12-bit in uint16, maximum 4095),
-stuck pixels. Every artefact is off by default.
+texture and dust blob, rolling read-out banding under a PWM lamp, shot and read
+noise, quantisation to 8/12/16 bits (12-bit in uint16, maximum 4095), stuck
+pixels. Every artefact is off by default.
 
 Conventions: SI units in names; pixel coordinates have their origin at the
 centre of the top-left pixel; a vertical recording has the axis along image
 rows (z = row), a horizontal one is the vertical one transposed. The truth
-(:class:`thinning.synth_io.Truth`, same schema as :mod:`thinning.synth`) is
-the geometric minimum neck diameter perpendicular to the axis.
+(:class:`thinning.synth_io.Truth`, same schema as :mod:`thinning.synth`) is the
+geometric minimum neck diameter perpendicular to the axis.
 """
 
 from __future__ import annotations
@@ -95,7 +99,7 @@ BACKLIGHT_RIM = 0.2
 #: The Airy PSF is kept out to this many first-zero radii (beyond: ≈ 2/(π·3.83·6) ≈ 3 % of the
 #: energy, dropped; the kept part is normalised to 1).
 AIRY_SUPPORT_ZEROS = 6.0
-#: Largest PSF support radius (px).
+#: Largest radius (px) to which the Airy pattern is kept (a defocus disk adds its own radius).
 PSF_MAX_RADIUS_PX = 16.0
 #: Exponent of the norm that joins the neck core to the end drops.
 JOIN_NORM = 4.0
@@ -293,14 +297,13 @@ def _source_preimage(q, slope, n, *, iterations=10, step=2e-5):
     """Pupil direction u0 whose backward ray leaves exactly towards the backlight's centre
     (Newton's method on the exit direction), the map's Jacobian there, and a success mask."""
     u = np.zeros(q.shape + (2,))
-    ex = np.array([step, 0.0])
-    ez = np.array([0.0, step])
-    ok = np.ones(q.shape, bool)
+    step_x = np.array([step, 0.0])
+    step_z = np.array([0.0, step])
     jac = np.zeros(q.shape + (2, 2))
     for it in range(iterations + 1):
         g = _exit_transverse(q, slope, u, n)
-        jac[..., :, 0] = (_exit_transverse(q, slope, u + ex, n) - g) / step
-        jac[..., :, 1] = (_exit_transverse(q, slope, u + ez, n) - g) / step
+        jac[..., :, 0] = (_exit_transverse(q, slope, u + step_x, n) - g) / step
+        jac[..., :, 1] = (_exit_transverse(q, slope, u + step_z, n) - g) / step
         det = jac[..., 0, 0] * jac[..., 1, 1] - jac[..., 0, 1] * jac[..., 1, 0]
         ok = np.isfinite(det) & (np.abs(det) > 1e-9) & np.all(np.isfinite(g), axis=-1)
         if it == iterations:
@@ -440,7 +443,7 @@ def psf_kernel(optics: RayOptics, pixel_size_m: float) -> np.ndarray:
 
     Airy pattern of the NA (kept out to :data:`AIRY_SUPPORT_ZEROS` first-zero
     radii, at most :data:`PSF_MAX_RADIUS_PX`) convolved with the geometric defocus
-    disk of radius |defocus| tan α, each integrated over its cells.
+    disk of radius |defocus| tan α, integrated over the cells.
     """
     from scipy.signal import fftconvolve
 
@@ -448,7 +451,7 @@ def psf_kernel(optics: RayOptics, pixel_size_m: float) -> np.ndarray:
     r_zero = J1_FIRST_ZERO / (2.0 * math.pi) * optics.wavelength_m / optics.numerical_aperture
     alpha = math.asin(optics.numerical_aperture)
     r_defocus = abs(optics.defocus_m) * math.tan(alpha)
-    support = min(r_defocus + AIRY_SUPPORT_ZEROS * r_zero, PSF_MAX_RADIUS_PX * pixel_size_m)
+    support = r_defocus + min(AIRY_SUPPORT_ZEROS * r_zero, PSF_MAX_RADIUS_PX * pixel_size_m)
     m = max(1, int(math.ceil(support / cell)))
     fine = int(min(15, max(3, math.ceil(5.0 * cell / r_zero)))) | 1   # odd: the centre is a sample
     h = cell / fine
