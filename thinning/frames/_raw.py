@@ -76,24 +76,25 @@ def unpack(raw: np.ndarray, bits: int) -> np.ndarray:
     bits : int
         10 or 12.
     """
+    group, per = (3, 2) if bits == 12 else (5, 4)
+    b = raw.reshape(-1, group)
+    # each byte column as a contiguous uint16 array, combined in place (about three times faster
+    # than working on the strided columns), then stored interleaved
+    c = [b[:, i].astype(np.uint16) for i in range(group - 1)] + [b[:, -1]]
+    out = np.empty((b.shape[0], per), np.uint16)
     if bits == 12:
-        b = raw.reshape(-1, 3)
-        out = np.empty((b.shape[0], 2), np.uint16)
-        np.left_shift(b[:, 0], 4, out=out[:, 0], dtype=np.uint16)
-        out[:, 0] |= b[:, 1] >> 4
-        np.left_shift(b[:, 1] & 0x0F, 8, out=out[:, 1], dtype=np.uint16)
-        out[:, 1] |= b[:, 2]
-        return out.reshape(-1)
-    b = raw.reshape(-1, 5)
-    out = np.empty((b.shape[0], 4), np.uint16)
-    np.left_shift(b[:, 0], 2, out=out[:, 0], dtype=np.uint16)
-    out[:, 0] |= b[:, 1] >> 6
-    np.left_shift(b[:, 1] & 0x3F, 4, out=out[:, 1], dtype=np.uint16)
-    out[:, 1] |= b[:, 2] >> 4
-    np.left_shift(b[:, 2] & 0x0F, 6, out=out[:, 2], dtype=np.uint16)
-    out[:, 2] |= b[:, 3] >> 2
-    np.left_shift(b[:, 3] & 0x03, 8, out=out[:, 3], dtype=np.uint16)
-    out[:, 3] |= b[:, 4]
+        c[0] <<= 4
+        c[0] |= c[1] >> 4
+        c[1] &= 0x0F
+        c[1] <<= 8
+        c[1] |= c[2]
+        out[:, 0], out[:, 1] = c[0], c[1]
+    else:
+        for i, (keep, shift) in enumerate(((0xFF, 2), (0x3F, 4), (0x0F, 6), (0x03, 8))):
+            c[i] &= keep
+            c[i] <<= shift
+            c[i] |= c[i + 1] >> (8 - shift)
+            out[:, i] = c[i]
     return out.reshape(-1)
 
 

@@ -87,9 +87,9 @@ def companions(path) -> tuple[Path, Path]:
     raise UnusableSource(f"{path}: its image data {p.with_suffix('.mraw').name} is not beside it.")
 
 
-def _shown(value: str) -> str:
-    """A header value fit to quote in a message, or a neutral word."""
-    return f"'{value}'" if re.fullmatch(r"[A-Za-z0-9 _-]{1,24}", value) else "another value"
+def _shown(key: str, value: str) -> str:
+    """`` (key 'value')`` for a message, when the value is a plain word fit to quote, else ``""``."""
+    return f" ({key} '{value}')" if re.fullmatch(r"[A-Za-z][A-Za-z0-9 _-]{0,23}", value) else ""
 
 
 class MrawSource(FrameSource):
@@ -183,10 +183,10 @@ class MrawSource(FrameSource):
     def _interpret(self, fields):
         file_format = fields.get("File Format", "MRaw")
         if file_format.lower() != "mraw":
-            self._fail(f"its header describes {_shown(file_format)} files, not MRaw data")
+            self._fail(f"its header does not describe MRaw data{_shown('File Format', file_format)}")
         colour = fields.get("Color Type", "Mono")
         if colour.lower() not in GREY_TYPES:
-            self._fail(f"colour MRAW recordings are not supported (Color Type {_shown(colour)})")
+            self._fail(f"colour MRAW recordings are not supported{_shown('Color Type', colour)}")
         self.color_bit = self._whole(fields, "Color Bit")
         if self.color_bit not in (8, 12, 16):
             self._fail(f"{self.color_bit}-bit MRAW data is not supported (only 8, 12 or 16)")
@@ -195,7 +195,7 @@ class MrawSource(FrameSource):
             self._fail(f"its header gives {self.bit_depth} real bits in {self.color_bit}-bit pixels")
         side = fields.get("EffectiveBit Side", "Lower").lower()
         if side not in ("lower", "higher"):
-            self._fail(f"its header field 'EffectiveBit Side' is {_shown(side)}, not Lower or Higher")
+            self._fail("its header field 'EffectiveBit Side' is not Lower or Higher")
         self._shift = self.color_bit - self.bit_depth if side == "higher" else 0
         width = self._whole(fields, "Image Width", minimum=1)
         height = self._whole(fields, "Image Height", minimum=1)
