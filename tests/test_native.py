@@ -212,7 +212,9 @@ def test_cihx_with_the_camera_softwares_binary_prefix(tmp_path):
 
 @pytest.mark.parametrize("bit_depth, packing", CINE_DEPTHS)
 def test_cine_reads_as_pims_reads_it(tmp_path, bit_depth, packing):
-    pims_cine = pytest.importorskip("pims.cine")  # pims (soft-matter): its Cine reader
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        pims_cine = pytest.importorskip("pims.cine")  # pims (soft-matter): its Cine reader
     frames = _frames(bits=bit_depth)
     stamps = np.array([0, 1, 2, 3, 5, 6, 8]) / FPS
     path = tmp_path / "rec.cine"
