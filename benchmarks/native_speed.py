@@ -10,7 +10,8 @@ process (so each peak memory figure is its own):
   :func:`thinning.frames.open_source` (memory-mapped reading, the MSB-first
   12-bit unpacking, the read-ahead thread).
 
-Prints frames/s and the child's peak resident memory (VmHWM). The files were
+Prints frames/s, CPU time per frame (both threads) and the child's peak resident
+memory (VmHWM). The files were
 just written, so they are read from the page cache, not from the disk.
 
     python benchmarks/native_speed.py [--frames 20000] [--dir FOLDER]
@@ -68,14 +69,14 @@ def child(mode: str, path: str) -> dict:
     """One measurement in this process: frames, seconds, peak memory."""
     from thinning.frames import open_source
 
-    started = time.perf_counter()
+    started, cpu_started = time.perf_counter(), time.process_time()
     count = 0
     with open_source(path) as source:
         if mode == "unpack":
             for _ in source:
                 count += 1
-    seconds = time.perf_counter() - started
-    return {"mode": mode, "frames": count, "seconds": seconds,
+    seconds, cpu_s = time.perf_counter() - started, time.process_time() - cpu_started
+    return {"mode": mode, "frames": count, "seconds": seconds, "cpu_s": cpu_s,
             "frames_per_s": count / seconds if count else None, "peak_rss_mb": _peak_rss_mb()}
 
 
@@ -112,8 +113,10 @@ def main(argv=None):
                           f"peak memory {r['peak_rss_mb']:.0f} MB")
                 else:
                     print(f"{path.suffix:>6} {mode:>7}: {r['frames_per_s']:8.0f} frames/s "
-                          f"({r['frames']} frames, {size_gb:.2f} GB, in {r['seconds']:.1f} s), "
+                          f"({r['frames']} frames, {size_gb:.2f} GB, in {r['seconds']:.1f} s; "
+                          f"{r['cpu_s'] * 1e3 / r['frames']:.2f} ms of CPU a frame), "
                           f"peak memory {r['peak_rss_mb']:.0f} MB")
+        print(f"load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores (others' work slows this)")
 
 
 if __name__ == "__main__":

@@ -35,9 +35,10 @@ class MappedFile:
 
     def read(self, offset: int, length: int) -> np.ndarray | None:
         """``length`` bytes at ``offset`` as a fresh ``uint8`` array, or None past the end."""
-        if self._mm is None or offset < 0 or length < 0 or offset + length > self.size:
+        mm = self._mm
+        if mm is None or offset < 0 or length < 0 or offset + length > self.size:
             return None
-        view = np.frombuffer(self._mm, np.uint8, count=length, offset=offset)
+        view = np.frombuffer(mm, np.uint8, count=length, offset=offset)
         out = view.copy()
         del view
         return out

@@ -77,6 +77,8 @@ def write_cine(path, frames, *, fps, bit_depth, packing, exposure_s, trigger_fra
     if fps != int(fps) or fps <= 0:
         raise ValueError(f"fps must be a positive whole number of frames/s, not {fps}")
     fps = int(fps)
+    if timestamps_s is None and not hasattr(frames, "__len__"):
+        raise TypeError("frames must be a sized sequence, or timestamps_s give their count")
     count = len(timestamps_s) if timestamps_s is not None else len(frames)
     if count == 0:
         raise ValueError("no frames to write")
