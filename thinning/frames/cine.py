@@ -81,7 +81,7 @@ class CineSource(FrameSource):
     :data:`COLOUR_LUMA` or :data:`COLOUR_BAYER`), ``packing`` (``"8"``,
     ``"16"``, ``"10-packed"``, ``"12-packed"``: bits per stored sample),
     ``first_image_no`` (FirstImageNo: the number of frame 0, the trigger
-    being number 0).
+    being number 0), ``cfa`` (the setup's colour filter array code, 0 grey).
     """
 
     clock = "file"
