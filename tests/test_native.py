@@ -208,6 +208,24 @@ def test_cihx_with_the_camera_softwares_binary_prefix(tmp_path):
         np.testing.assert_array_equal(g, e)
 
 
+def test_other_sources_keep_the_clock_attributes_empty(tmp_path):
+    import cv2
+    import tifffile
+
+    frames = _frames(n=3, bits=8)
+    tif = tmp_path / "stack.tif"
+    tifffile.imwrite(tif, np.stack(frames), photometric="minisblack")
+    avi = tmp_path / "clip.avi"
+    writer = cv2.VideoWriter(str(avi), cv2.CAP_FFMPEG, 0, 25.0, frames[0].shape[::-1], False)
+    for frame in frames:
+        writer.write(frame)
+    writer.release()
+    for path, clock in ((tif, None), (avi, "container")):
+        source = open_source(path)
+        assert source.clock == clock
+        assert source.timestamps_s is None and source.exposure_s is None and source.trigger_frame is None
+
+
 # --- the general-purpose readers read the same files identically ------------------------------
 
 @pytest.mark.parametrize("bit_depth, packing", CINE_DEPTHS)
