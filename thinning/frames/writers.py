@@ -76,6 +76,8 @@ def write_cine(path, frames, *, fps, bit_depth, packing, exposure_s, trigger_fra
     """
     if fps != int(fps) or fps <= 0:
         raise ValueError(f"fps must be a positive whole number of frames/s, not {fps}")
+    if not 0 < exposure_s < 1:
+        raise ValueError(f"exposure_s must lie between 0 and 1 s, not {exposure_s}")
     fps = int(fps)
     if timestamps_s is None and not hasattr(frames, "__len__"):
         raise TypeError("frames must be a sized sequence, or timestamps_s give their count")
@@ -210,6 +212,8 @@ def write_mraw(path, frames, *, fps, bit_depth, shutter_s, start_frame=0, header
     effective_side : {"Lower", "Higher"}
         Where the real bits sit in a wider stored word (EffectiveBit Side).
     """
+    if not (fps > 0 and shutter_s > 0):
+        raise ValueError("fps and shutter_s must be positive")
     if header not in ("cih", "cihx"):
         raise ValueError(f"header must be 'cih' or 'cihx', not {header!r}")
     color_bit = color_bit or (bit_depth if bit_depth in (8, 12, 16) else 16)
