@@ -41,12 +41,32 @@ def _write_raw_avi(path, frames):
     return path
 
 
+def _write_cine(path, frames, bit_depth, packing):
+    from thinning.frames.writers import write_cine
+
+    write_cine(path, frames, fps=10000, bit_depth=bit_depth, packing=packing, exposure_s=5e-5)
+    return path
+
+
+def _write_mraw(path, frames, bit_depth, header):
+    from thinning.frames.writers import write_mraw
+
+    write_mraw(path, frames, fps=10000, bit_depth=bit_depth, shutter_s=5e-5, header=header)
+    return path
+
+
 BACKENDS = {
     "png-folder-8": (lambda p, f: _write_png_folder(p / "frames", f), np.uint8),
     "png-folder-16": (lambda p, f: _write_png_folder(p / "frames", f), np.uint16),
     "tiff-8": (lambda p, f: _write_tiff(p / "stack.tif", f), np.uint8),
     "tiff-16": (lambda p, f: _write_tiff(p / "stack.tif", f), np.uint16),
     "avi-raw": (lambda p, f: _write_raw_avi(p / "clip.avi", f), np.uint8),
+    "cine-8": (lambda p, f: _write_cine(p / "rec.cine", f, 8, "unpacked"), np.uint8),
+    "cine-12-packed": (lambda p, f: _write_cine(p / "rec.cine", f, 12, "packed"), np.uint16),
+    "cine-16": (lambda p, f: _write_cine(p / "rec.cine", f, 16, "unpacked"), np.uint16),
+    "mraw-8-cih": (lambda p, f: _write_mraw(p / "rec.mraw", f, 8, "cih"), np.uint8),
+    "mraw-12-cihx": (lambda p, f: _write_mraw(p / "rec.mraw", f, 12, "cihx").with_suffix(".cihx"), np.uint16),
+    "mraw-16-cih": (lambda p, f: _write_mraw(p / "rec.mraw", f, 16, "cih"), np.uint16),
 }
 
 
@@ -107,6 +127,9 @@ def test_truncated_video_reports_broken_off(tmp_path):
     ("junk.avi", b"not a video at all" * 100, "not a"),
     ("junk.tif", b"II*\x00garbage", "TIFF"),
     ("t.json", b"{}", "json"),
+    ("junk.cine", b"not a camera file" * 100, "not a cine file"),
+    ("alone.mraw", b"\x00" * 100, "no .cih or .cihx header"),
+    ("alone.cih", b"#Camera Information Header\n", "alone.mraw is not beside it"),
 ])
 def test_unusable_sources_say_why(tmp_path, name, content, message):
     path = tmp_path / name

@@ -1,7 +1,9 @@
 """Frame sources: any recording opened as a stream of grey frames in constant memory.
 
 One class per backend (video file through OpenCV's FFmpeg backend, multi-page
-TIFF through tifffile, a folder of images in natural order), one small
+TIFF through tifffile, a folder of images in natural order, and the native
+camera files: Phantom ``.cine`` in :mod:`.cine`, Photron ``.mraw`` with its
+``.cih``/``.cihx`` header in :mod:`.mraw`), one small
 contract (:class:`FrameSource`), and :func:`open_source`, which picks the
 backend by what the path is. Frames are 2-D ``uint8`` or ``uint16`` arrays,
 yielded in order; random access is not offered because some containers
@@ -32,6 +34,8 @@ log = logging.getLogger(__name__)
 VIDEO_SUFFIXES = {".avi", ".mp4", ".mov", ".mkv", ".m4v", ".wmv", ".mpg", ".mpeg", ".webm", ".ogv"}
 TIFF_SUFFIXES = {".tif", ".tiff"}
 IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".pgm", ".ppm"}
+CINE_SUFFIXES = {".cine"}
+MRAW_SUFFIXES = {".mraw", ".cih", ".cihx"}
 #: Frames read ahead of the consumer (decoded in a background thread meanwhile): at most this
 #: many bytes, and at most this many items of ``_frames()`` (single frames, or decoded batches).
 READ_AHEAD_BYTES = 16 << 20
@@ -148,6 +152,13 @@ class FrameSource:
     playback rate), ``shape`` (height, width), ``dtype``, ``bit_depth``.
     After iterating, ``broken_off`` is True when the stream ended before the
     container said it would.
+
+    What the recording says of its clock (None where it says nothing):
+    ``timestamps_s`` (per-frame times in s relative to frame 0, a float
+    array of ``n_frames``), ``exposure_s`` (exposure time, s),
+    ``trigger_frame`` (index of the trigger frame within the record) and
+    ``clock`` (``"file"`` when ``fps`` comes from a native camera header,
+    ``"container"`` when from a video container, None without a rate).
     """
 
     path: str
@@ -156,6 +167,10 @@ class FrameSource:
     shape: tuple[int, int]
     dtype: np.dtype
     bit_depth: int
+    timestamps_s: np.ndarray | None = None
+    exposure_s: float | None = None
+    trigger_frame: int | None = None
+    clock: str | None = None
     #: Frames in one item of ``_frames()`` (a batch decoded by one task), for the read-ahead depth.
     _frames_per_item = 1
 
@@ -237,6 +252,7 @@ class VideoSource(FrameSource):
         self.n_frames = max(count, 1)
         rate = float(cap.get(cv2.CAP_PROP_FPS) or 0.0)
         self.fps = rate if rate > 0 and np.isfinite(rate) else None
+        self.clock = "container" if self.fps else None
         fourcc = int(cap.get(cv2.CAP_PROP_FOURCC) or 0)
         self.codec = "".join(chr((fourcc >> (8 * i)) & 0xFF) for i in range(4)).strip("\x00 ")
         if self.codec.upper() == "MJPG":
@@ -374,7 +390,8 @@ class ImageFolderSource(FrameSource):
 
 
 def open_source(path) -> FrameSource:
-    """Open ``path`` as a recording: a video file, a multi-page TIFF or a folder of images.
+    """Open ``path`` as a recording: a video file, a multi-page TIFF, a folder of images, a
+    Phantom ``.cine``, or a Photron ``.mraw`` with its ``.cih``/``.cihx`` header (either named).
 
     Raises :class:`UnusableSource` with one sentence when nothing can read it.
     """
@@ -392,6 +409,14 @@ def open_source(path) -> FrameSource:
         raise UnusableSource(f"{path}: a .json file is never read as a recording.")
     if suffix in TIFF_SUFFIXES:
         return TiffSource(path)
+    if suffix in CINE_SUFFIXES:  # never handed to OpenCV, whose FFmpeg cine demuxer can abort the process
+        from .cine import CineSource
+
+        return CineSource(path)
+    if suffix in MRAW_SUFFIXES:
+        from .mraw import MrawSource
+
+        return MrawSource(path)
     reasons = []
     for backend in (VideoSource, TiffSource):
         try:
