@@ -8,7 +8,7 @@ import tifffile
 from click.testing import CliRunner
 
 from thinning.cli import cli
-from thinning.manifest import (MANIFEST_COLUMNS, UnusableManifest, check_manifest, read_manifest,
+from thinning.batch.manifest import (MANIFEST_COLUMNS, UnusableManifest, check_manifest, read_manifest,
                                row_options)
 from thinning.units import BadQuantity
 

@@ -58,29 +58,25 @@ def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo
         raise FriendlyError("--specs loads product specifications into a records database; "
                             "give --db URL too.")
     from .batch import run_batch
-    from .manifest import read_manifest
+    from .batch.manifest import read_manifest
 
     n_rows = len(read_manifest(manifest))
-    store = _open_store(db_url, specs_file) if db_url else None
+    records = _open_records(db_url, specs_file) if db_url else None
     try:
         with _Progress(n_rows) as progress:
-            def on_row(row, outcome, folder):
-                if store is not None:
-                    store(row, outcome, folder)
-                progress.advance(row, outcome)
-
             report = run_batch(manifest, out_dir, defaults=defaults, workers=workers,
-                               scheduler=scheduler, redo=redo, on_row=on_row)
+                               scheduler=scheduler, redo=redo, records=records,
+                               on_row=lambda row, outcome, folder: progress.advance(row, outcome))
     finally:
-        if store is not None:
-            store.close()
+        if records is not None:
+            records.close()
     skipped = f" ({report.n_skipped} already up to date)" if report.n_skipped else ""
     click.echo(f"{report.n_rows} rows: {report.n_ok} ok{skipped}, {report.n_failed} failed; "
                f"table in {report.results_csv}")
 
 
 def _check(manifest, defaults):
-    from .manifest import check_manifest, read_manifest
+    from .batch.manifest import check_manifest, read_manifest
 
     problems = check_manifest(manifest, defaults)
     if problems and problems[0].row == 0:
@@ -97,30 +93,13 @@ def _check(manifest, defaults):
     sys.exit(2)
 
 
-class _Store:
-    """Stores each finished row in the records database, in this (the coordinating) process."""
-
-    def __init__(self, records):
-        self.records = records
-
-    def __call__(self, row, outcome, folder):
-        table_row = {"row": row.row, "path": row.path, **row.identity, "status": outcome.status,
-                     "reason": outcome.reason,
-                     "sha256": "" if outcome.result is None else outcome.result.source.sha256}
-        self.records.store_result(table_row, outcome.result, analysed_at=outcome.analysed_at,
-                                  row_dir=folder if outcome.ok else None)
-
-    def close(self):
-        self.records.close()
-
-
-def _open_store(db_url, specs_file):
+def _open_records(db_url, specs_file):
     from .records import open_records
 
     records = open_records(db_url)
     if specs_file:
         records.load_specs(specs_file)
-    return _Store(records)
+    return records
 
 
 class _Progress:

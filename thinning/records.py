@@ -34,7 +34,6 @@ writer at a time, waiting up to a minute) in WAL mode.
 
 from __future__ import annotations
 
-import csv
 import hashlib
 import json
 import logging
@@ -59,7 +58,7 @@ from .errors import ThinningError
 from . import qc
 from .result import Result
 from .values import finite_number as _number
-from .values import row_folder_name
+from .batch.table import read_batch, read_curve
 
 logger = logging.getLogger(__name__)
 
@@ -285,38 +284,6 @@ def result_fingerprint(result: Mapping) -> str:
     """sha256 of the result without its timestamps: equal fingerprints mean an identical result."""
     kept = {k: v for k, v in result.items() if not k.endswith("_at") and k not in ("elapsed_s",)}
     return hashlib.sha256(_json(kept).encode()).hexdigest()
-
-
-def read_curve(row_dir: Path) -> tuple[np.ndarray, np.ndarray] | None:
-    """(time_s, diameter_m) from ``row_dir/diameter.csv`` (NaN where empty), or None if absent."""
-    path = Path(row_dir) / "diameter.csv"
-    if not path.is_file():
-        return None
-    time_s, diameter_m = [], []
-    with path.open(newline="") as handle:
-        reader = csv.DictReader(handle)
-        if not reader.fieldnames or not {"time_s", "diameter_m"} <= set(reader.fieldnames):
-            raise RecordsError(f"{path} has no time_s and diameter_m columns.")
-        for row in reader:
-            time_s.append(_number(row["time_s"]))
-            diameter_m.append(_number(row["diameter_m"]))
-    to_array = lambda xs: np.array([np.nan if x is None else x for x in xs], dtype="<f8")  # noqa: E731
-    return to_array(time_s), to_array(diameter_m)
-
-
-def result_from_results_row(row: Mapping) -> dict:
-    """A result dict rebuilt from one ``results.csv`` row (when ``result.json`` is missing)."""
-    low, high = _number(row.get("relaxation_time_ci95_low_s")), _number(row.get("relaxation_time_ci95_high_s"))
-    warnings = [w for w in _text(row.get("warnings")).split("; ") if w]
-    result = {key: _number(row.get(key)) for key in NUMBER_KEYS}
-    result.update(
-        schema="thinning.result/1", tool_version=_text(row.get("tool_version")) or None,
-        source={"path": _text(row.get("path")), "sha256": _text(row.get("sha256"))},
-        regime=_text(row.get("regime")) or None, quality=_text(row.get("quality")) or None,
-        relaxation_time_ci95_s=[low, high] if low is not None and high is not None else None,
-        warnings=warnings, options={}, regimes=[], quality_reasons=[],
-    )
-    return result
 
 
 @dataclass(frozen=True)
@@ -626,7 +593,8 @@ class Records:
         Idempotent: loading the same folder again changes nothing. Returns
         counts by outcome (see :meth:`store_result`).
         """
-        rows = read_batch(Path(batch_dir))
+        rows = [(self._meta(row.identity), None if row.result is None else row.result.to_json(),
+                 normalise_timestamp(row.analysed_at), row.curve) for row in read_batch(batch_dir)]
 
         def work(conn: Connection) -> dict[str, int]:
             counts = {"inserted": 0, "unchanged": 0, "superseded": 0, "history": 0, "failure": 0}
@@ -764,55 +732,6 @@ def _replicates(rows: Sequence[Mapping], failed: Sequence[Mapping]) -> list[qc.R
             reps.append(qc.Replicate(label=label, status=row["status"], quality=row["quality"],
                                      values={key: row[key] for key in qc.LIMITED_QUANTITIES}))
     return reps
-
-
-def _row_folder(batch_dir: Path, row: Mapping, width: int) -> Path:
-    number = int(_text(row.get("row")))
-    name = _text(row.get("sample")) or Path(_text(row.get("path"))).stem
-    folder = batch_dir / row_folder_name(number, name, width)
-    if folder.is_dir():
-        return folder
-    matches = sorted(batch_dir.glob(f"{number:0{width}d}-*"))
-    return matches[0] if len(matches) == 1 else folder
-
-
-def read_batch(batch_dir: Path) -> list[tuple[dict, dict | None, str, tuple | None]]:
-    """Read a finished batch folder: per row (meta, result, analysed_at, curve)."""
-    table = batch_dir / "results.csv"
-    if not table.is_file():
-        raise RecordsError(f"{batch_dir} has no results.csv; give the folder of a finished batch.")
-    with table.open(newline="", encoding="utf-8") as handle:
-        reader = csv.DictReader(handle)
-        missing = [c for c in ("row", "path", "status", "sha256") if c not in (reader.fieldnames or [])]
-        if missing:
-            raise RecordsError(f"{table} lacks the column {missing[0]!r}; is it a thinning results.csv?")
-        rows = list(reader)
-    try:
-        width = len(str(max((int(_text(r["row"])) for r in rows), default=1)))
-    except ValueError:
-        raise RecordsError(f"{table} has a row number that is not a whole number.") from None
-    loaded = []
-    for row in rows:
-        meta = Records._meta(row)
-        folder = _row_folder(batch_dir, row, width)
-        result, curve = None, None
-        result_path = folder / "result.json"
-        if meta["status"] == "ok":
-            if result_path.is_file():
-                try:
-                    result = Result.from_json(json.loads(result_path.read_text(encoding="utf-8")))
-                except (ValueError, TypeError, KeyError):
-                    raise RecordsError(f"{result_path} is not a result of this tool.") from None
-            else:
-                result = Result.from_json(result_from_results_row(row))
-            result = result.to_json()
-            curve = read_curve(folder)
-        stamp = _text(row.get("analysed_at")) or _text((result or {}).get("analysed_at"))
-        if not stamp:
-            source = result_path if result_path.is_file() else table
-            stamp = datetime.fromtimestamp(source.stat().st_mtime, timezone.utc).isoformat()
-        loaded.append((meta, result, normalise_timestamp(stamp), curve))
-    return loaded
 
 
 def _prepare_sqlite(engine: Engine) -> None:

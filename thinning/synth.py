@@ -49,7 +49,7 @@ log = logging.getLogger(__name__)
 __all__ = ["Optics", "Scene", "Truth", "render_recording", "write_recording", "write_truth",
            "load_truth", "truth_path", "write_benchmark_recording", "benchmark_scene",
            "standard_scenes", "dilute_polymer_plates", "boger_fluid_plates",
-           "newtonian_viscous_plates", "water_like_dripping", "polymer_dripping"]
+           "newtonian_viscous_plates", "water_like_dripping", "polymer_dripping", "FORMATS"]
 
 #: Sub-rows per pixel row used to integrate coverage along the image rows' normal.
 SUB_ROWS = 8

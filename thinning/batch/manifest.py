@@ -23,8 +23,8 @@ import logging
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .errors import ThinningError
-from .units import OPTION_FIELDS, AnalysisOptions, BadQuantity, check_required, options_from_text
+from ..errors import ThinningError
+from ..units import OPTION_FIELDS, AnalysisOptions, BadQuantity, check_required, options_from_text
 
 log = logging.getLogger(__name__)
 
@@ -180,7 +180,7 @@ def check_manifest(path, defaults: dict | None = None) -> list[Problem]:
     from the options or the container) are present. Returns every problem
     found, in row order; an unusable manifest gives a single row-0 problem.
     """
-    from .frames import UnusableSource, open_source
+    from ..frames import UnusableSource, open_source
 
     try:
         rows = read_manifest(path)
