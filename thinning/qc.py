@@ -26,6 +26,7 @@ names are :data:`CHART_RULES`.
 from __future__ import annotations
 
 import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from typing import Iterable, Mapping, Sequence
@@ -385,3 +386,89 @@ def control_chart(lots: Sequence[tuple[object, float]], *,
         points.append(ChartPoint(key, float(value), moving_range, i, centre, sigma, mr_mean, mr_ucl,
                                  tuple(flags)))
     return points
+
+
+# --- lots of a product ----------------------------------------------------------------
+
+@dataclass(frozen=True)
+class LotSummary:
+    """One lot: identity, verdict (with statistics) and its control-chart point (or None)."""
+
+    product: str
+    lot: str
+    made_on: str | None
+    first_analysed_at: str
+    verdict: LotVerdict
+    chart: ChartPoint | None
+
+    @property
+    def chart_flags(self) -> tuple[str, ...]:
+        return self.chart.flags if self.chart is not None else ()
+
+    @property
+    def relaxation_time(self) -> QuantityStats:
+        return self.verdict.stats["relaxation_time_s"]
+
+    def as_row(self) -> dict:
+        """The ``records lots`` row (contract columns)."""
+        lam = self.relaxation_time
+        return {"product": self.product, "lot": self.lot, "made_on": self.made_on,
+                "n_valid": self.verdict.n_valid, "relaxation_time_mean_s": lam.mean,
+                "relaxation_time_sd_s": lam.sd, "relaxation_time_cv": lam.cv,
+                "verdict": self.verdict.verdict, "reasons": "; ".join(self.verdict.reasons),
+                "chart_flags": "; ".join(self.chart_flags)}
+
+
+def natural_key(value: str):
+    return [int(part) if part.isdigit() else part.lower() for part in re.split(r"(\d+)", value or "")]
+
+
+def row_order(row: Mapping):
+    return (natural_key(row["sample"]), natural_key(row["replicate"]), row["sha256"])
+
+
+def production_order(row: Mapping):
+    """made_on first (lots without one last), then first analysis time, then lot id."""
+    return (row["made_on"] is None, row["made_on"] or "", row["first_analysed_at"], natural_key(row["lot"]))
+
+
+def replicate_label(row: Mapping) -> str:
+    """How a replicate is named in sentences: ``sample #replicate``."""
+    return f"{row['sample']} #{row['replicate']}" if row["replicate"] else row["sample"]
+
+
+def replicates_of(rows: Sequence[Mapping], failed: Sequence[Mapping]) -> list[Replicate]:
+    labels = [replicate_label(r) for r in list(rows) + list(failed)]
+    reps = []
+    for row, label in zip(list(rows) + list(failed), labels):
+        if labels.count(label) > 1:
+            label = f"{label} (source {row['sha256'][:8] or 'unknown'})"
+        if "reason" in row:
+            reps.append(Replicate(label=label, status="failed", quality=None, values={},
+                                     reason=row["reason"]))
+        else:
+            reps.append(Replicate(label=label, status=row["status"], quality=row["quality"],
+                                     values={key: row[key] for key in LIMITED_QUANTITIES}))
+    return reps
+
+
+def lot_summaries(lot_rows, measurements, failures, specs) -> list[LotSummary]:
+    """Every lot's verdict and control-chart point, by product then production order (pure).
+
+    ``lot_rows``: mappings with ``product, lot, made_on, first_analysed_at``;
+    ``measurements`` / ``failures``: ``{(product, lot): [row mapping, …]}`` of
+    the current measurements (``sample, replicate, sha256, status, quality`` and
+    the limited quantities) and the open failures (with ``reason``);
+    ``specs``: ``{product: Spec}``. A lot's chart point takes its limits from
+    the product's earlier lots only (:func:`control_chart`).
+    """
+    verdicts = {key: lot_verdict(specs.get(key[0]), replicates_of(measurements[key], failures[key]),
+                                 product=key[0]) for key in measurements}
+    summaries = []
+    for product in sorted({r["product"] for r in lot_rows}):
+        ordered = sorted((r for r in lot_rows if r["product"] == product), key=production_order)
+        charted = [(r["lot"], verdicts[(product, r["lot"])].stats["relaxation_time_s"].mean) for r in ordered]
+        points = {p.key: p for p in control_chart([(k, v) for k, v in charted if v is not None])}
+        summaries += [LotSummary(product, r["lot"], r["made_on"], r["first_analysed_at"],
+                                 verdicts[(product, r["lot"])], points.get(r["lot"])) for r in ordered]
+    return summaries

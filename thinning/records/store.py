@@ -1,36 +1,4 @@
-"""The per-lot records database (SQLAlchemy 2 Core; SQLite file by default, PostgreSQL by URL).
-
-Tables (schema version :data:`SCHEMA_VERSION`, kept in ``schema_version``):
-
-``products``
-    one row per product name; its specification (``<quantity>_min`` /
-    ``_max`` in SI, NULL for an open end, ``<quantity>_limited``,
-    ``replicates``, ``max_cv``) once a specifications file was loaded.
-``lots``
-    (product, lot id) with ``made_on`` (ISO date) and ``first_analysed_at``.
-``samples``
-    (lot, sample, replicate) with the manifest's ``notes``.
-``measurements``
-    one analysed recording: every headline number, the 95 % interval of λ,
-    regime, quality, warnings, the options and the whole ``result.json`` as
-    JSON, the source sha256, tool version, ``analysed_at`` and
-    ``is_current``. A measurement is identified by (product, lot, sample,
-    replicate, source sha256); a partial unique index keeps one current row
-    per identity. Superseded rows keep ``superseded_at`` and
-    ``superseded_by`` and are never deleted.
-``curves``
-    a copy of each measurement's diameter curve (``time_s``,
-    ``diameter_m`` as little-endian float64 bytes, NaN where no filament).
-``failures``
-    rows of a batch that failed (not measurements): the reason, so that the
-    verdict can count the replicate as invalid. A failure counts only while
-    its sample has no current measurement.
-
-Every store runs in one transaction and is retried on a lock, a
-serialization failure or a lost insert race, so concurrent batches lose
-nothing. On SQLite each transaction starts with ``BEGIN IMMEDIATE`` (one
-writer at a time, waiting up to a minute) in WAL mode.
-"""
+"""Storing and reading the records: one transaction a row, retried on locks and lost races."""
 
 from __future__ import annotations
 
@@ -40,29 +8,27 @@ import logging
 import math
 import os
 import random
-import re
 import time
 from dataclasses import dataclass, field
 from datetime import date, datetime, timezone
 from pathlib import Path
-from typing import Callable, Iterable, Mapping, Sequence, TypeVar
+from typing import Callable, Iterable, Mapping, TypeVar
 
 import numpy as np
-from sqlalchemy import (Boolean, Column, Double, ForeignKey, Index, Integer, LargeBinary, MetaData,
-                        String, Table, Text, UniqueConstraint, create_engine, event, func, select,
-                        text, update)
+from sqlalchemy import Table, create_engine, event, func, select, text, update
 from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, OperationalError
 
-from .errors import ThinningError
-from . import qc
-from .result import Result
-from .values import finite_number as _number
-from .batch.table import read_batch, read_curve
+from .. import qc
+from ..errors import ThinningError
+from ..result import Result
+from .schema import (SCHEMA_VERSION, curves, failures, lots, measurements, metadata, products, samples,
+                     schema_version, NUMBER_KEYS)
+from ..values import finite_number as _number
+from ..batch.table import read_batch, read_curve
 
 logger = logging.getLogger(__name__)
 
-SCHEMA_VERSION = 1
 
 #: environment variable naming the default records database URL
 ENV_DB = "THINNING_DB"
@@ -81,119 +47,6 @@ LOT_COLUMNS = (
     "relaxation_time_cv", "verdict", "reasons", "chart_flags",
 )
 
-#: headline numbers copied from result.json into columns of the same name
-NUMBER_KEYS = (
-    "relaxation_time_s", "elastic_modulus_Pa", "shear_viscosity_Pa_s",
-    "extensional_viscosity_max_Pa_s", "extensional_viscosity_terminal_Pa_s", "breakup_time_s",
-    "filament_lifetime_s", "initial_diameter_m", "free_thinning_start_s", "fps_hz", "pixel_size_m",
-)
-
-metadata = MetaData()
-
-schema_version = Table(
-    "schema_version", metadata,
-    Column("version", Integer, primary_key=True, autoincrement=False),
-    Column("applied_at", String(40), nullable=False),
-)
-
-_limit_columns = [col for key in qc.LIMITED_QUANTITIES
-                  for col in (Column(f"{key}_min", Double), Column(f"{key}_max", Double),
-                              Column(f"{key}_limited", Boolean, nullable=False, default=False))]
-
-products = Table(
-    "products", metadata,
-    Column("id", Integer, primary_key=True),
-    Column("name", String(200), nullable=False, unique=True),
-    Column("has_spec", Boolean, nullable=False, default=False),
-    *_limit_columns,
-    Column("replicates", Integer),
-    Column("max_cv", Double),
-    Column("spec_loaded_at", String(40)),
-)
-
-lots = Table(
-    "lots", metadata,
-    Column("id", Integer, primary_key=True),
-    Column("product_id", Integer, ForeignKey("products.id"), nullable=False),
-    Column("lot", String(200), nullable=False),
-    Column("made_on", String(10)),
-    Column("first_analysed_at", String(40), nullable=False),
-    UniqueConstraint("product_id", "lot", name="uq_lots_product_lot"),
-)
-
-samples = Table(
-    "samples", metadata,
-    Column("id", Integer, primary_key=True),
-    Column("lot_id", Integer, ForeignKey("lots.id"), nullable=False),
-    Column("sample", String(200), nullable=False),
-    Column("replicate", String(50), nullable=False),
-    Column("notes", Text),
-    UniqueConstraint("lot_id", "sample", "replicate", name="uq_samples_lot_sample_replicate"),
-)
-
-measurements = Table(
-    "measurements", metadata,
-    Column("id", Integer, primary_key=True),
-    Column("sample_id", Integer, ForeignKey("samples.id"), nullable=False),
-    Column("sha256", String(64), nullable=False),
-    Column("source_path", Text),
-    Column("status", String(20), nullable=False),
-    Column("quality", String(20)),
-    Column("quality_reasons", Text, nullable=False),
-    Column("regime", String(40)),
-    Column("regimes", Text, nullable=False),
-    Column("relaxation_time_s", Double),
-    Column("relaxation_time_ci95_low_s", Double),
-    Column("relaxation_time_ci95_high_s", Double),
-    Column("elastic_modulus_Pa", Double),
-    Column("shear_viscosity_Pa_s", Double),
-    Column("extensional_viscosity_max_Pa_s", Double),
-    Column("extensional_viscosity_terminal_Pa_s", Double),
-    Column("breakup_time_s", Double),
-    Column("filament_lifetime_s", Double),
-    Column("initial_diameter_m", Double),
-    Column("free_thinning_start_s", Double),
-    Column("fit_window_start_s", Double),
-    Column("fit_window_end_s", Double),
-    Column("fps_hz", Double),
-    Column("pixel_size_m", Double),
-    Column("warnings", Text, nullable=False),
-    Column("options", Text, nullable=False),
-    Column("result_json", Text, nullable=False),
-    Column("result_fingerprint", String(64), nullable=False),
-    Column("tool_version", String(60)),
-    Column("analysed_at", String(40), nullable=False),
-    Column("stored_at", String(40), nullable=False),
-    Column("is_current", Boolean, nullable=False),
-    Column("superseded_at", String(40)),
-    Column("superseded_by", Integer, ForeignKey("measurements.id")),
-)
-Index("uq_measurements_current_identity", measurements.c.sample_id, measurements.c.sha256,
-      unique=True, sqlite_where=measurements.c.is_current.is_(True),
-      postgresql_where=measurements.c.is_current.is_(True))
-Index("ix_measurements_sample", measurements.c.sample_id)
-
-curves = Table(
-    "curves", metadata,
-    Column("measurement_id", Integer, ForeignKey("measurements.id"), primary_key=True,
-           autoincrement=False),
-    Column("n_points", Integer, nullable=False),
-    Column("time_s", LargeBinary, nullable=False),
-    Column("diameter_m", LargeBinary, nullable=False),
-)
-
-failures = Table(
-    "failures", metadata,
-    Column("id", Integer, primary_key=True),
-    Column("sample_id", Integer, ForeignKey("samples.id"), nullable=False),
-    Column("sha256", String(64), nullable=False),
-    Column("source_path", Text),
-    Column("reason", Text, nullable=False),
-    Column("tool_version", String(60)),
-    Column("analysed_at", String(40), nullable=False),
-    Column("stored_at", String(40), nullable=False),
-    UniqueConstraint("sample_id", "sha256", name="uq_failures_sample_sha256"),
-)
 
 
 class RecordsError(ThinningError, ValueError):
@@ -256,8 +109,6 @@ def _text(value) -> str:
 
 
 
-def _natural_key(value: str):
-    return [int(part) if part.isdigit() else part.lower() for part in re.split(r"(\d+)", value or "")]
 
 
 def _plain(value):
@@ -286,45 +137,18 @@ def result_fingerprint(result: Mapping) -> str:
     return hashlib.sha256(_json(kept).encode()).hexdigest()
 
 
-@dataclass(frozen=True)
-class LotSummary:
-    """One lot: identity, verdict (with statistics) and its control-chart point (or None)."""
-
-    product: str
-    lot: str
-    made_on: str | None
-    first_analysed_at: str
-    verdict: qc.LotVerdict
-    chart: qc.ChartPoint | None
-
-    @property
-    def chart_flags(self) -> tuple[str, ...]:
-        return self.chart.flags if self.chart is not None else ()
-
-    @property
-    def relaxation_time(self) -> qc.QuantityStats:
-        return self.verdict.stats["relaxation_time_s"]
-
-    def as_row(self) -> dict:
-        """The ``records lots`` row (contract columns)."""
-        lam = self.relaxation_time
-        return {"product": self.product, "lot": self.lot, "made_on": self.made_on,
-                "n_valid": self.verdict.n_valid, "relaxation_time_mean_s": lam.mean,
-                "relaxation_time_sd_s": lam.sd, "relaxation_time_cv": lam.cv,
-                "verdict": self.verdict.verdict, "reasons": "; ".join(self.verdict.reasons),
-                "chart_flags": "; ".join(self.chart_flags)}
 
 
 @dataclass(frozen=True)
 class LotDetail:
     """Everything the lot report and ``records show`` need about one lot."""
 
-    summary: LotSummary
+    summary: qc.LotSummary
     spec: qc.Spec | None
     measurements: list[dict]
     failures: list[dict]
     curves: dict[int, tuple[np.ndarray, np.ndarray]]
-    chart: list[tuple[LotSummary, qc.ChartPoint]]
+    chart: list[tuple[qc.LotSummary, qc.ChartPoint]]
     history: list[dict] = field(default_factory=list)
 
 
@@ -612,7 +436,7 @@ class Records:
                  .where(measurements.c.is_current.is_(current)))
         return query
 
-    def _summaries(self, conn: Connection) -> tuple[list[LotSummary], dict, dict]:
+    def _summaries(self, conn: Connection) -> tuple[list[qc.LotSummary], dict, dict]:
         """Every lot's summary (verdict + chart point), its current measurements and open failures."""
         specs = self._specs(conn)
         lot_rows = conn.execute(select(lots.c.id, products.c.name.label("product"), lots.c.lot, lots.c.made_on,
@@ -629,21 +453,13 @@ class Records:
             .where(~has_current).order_by(failures.c.analysed_at)).mappings()
         for row in failure_rows:  # the latest failure of each sample counts
             open_failures[(row["product"], row["lot"])][row["sample_id"]] = dict(row)
-        failures_by_lot = {key: sorted(v.values(), key=_row_order) for key, v in open_failures.items()}
+        failures_by_lot = {key: sorted(v.values(), key=qc.row_order) for key, v in open_failures.items()}
         for rows in by_lot.values():
-            rows.sort(key=_row_order)
-        verdicts = {key: qc.lot_verdict(specs.get(key[0]), _replicates(by_lot[key], failures_by_lot[key]),
-                                        product=key[0]) for key in by_lot}
-        summaries = []
-        for product in sorted({r["product"] for r in lot_rows}):
-            ordered = sorted((r for r in lot_rows if r["product"] == product), key=_production_order)
-            charted = [(r["lot"], verdicts[(product, r["lot"])].stats["relaxation_time_s"].mean) for r in ordered]
-            points = {p.key: p for p in qc.control_chart([(k, v) for k, v in charted if v is not None])}
-            summaries += [LotSummary(product, r["lot"], r["made_on"], r["first_analysed_at"],
-                                     verdicts[(product, r["lot"])], points.get(r["lot"])) for r in ordered]
+            rows.sort(key=qc.row_order)
+        summaries = qc.lot_summaries(lot_rows, by_lot, failures_by_lot, specs)
         return summaries, by_lot, failures_by_lot
 
-    def lots(self, *, product: str | None = None) -> list[LotSummary]:
+    def lots(self, *, product: str | None = None) -> list[qc.LotSummary]:
         """Every lot (of ``product``), by product then production order, with verdicts."""
         with self.engine.connect() as conn:
             summaries, _, _ = self._summaries(conn)
@@ -693,7 +509,7 @@ class Records:
             if product is not None:
                 query = query.where(products.c.name == product)
             rows = [_measurement_row(r) for r in conn.execute(query).mappings()]
-        rows.sort(key=lambda r: (r["product"], r["lot"], *_row_order(r)))
+        rows.sort(key=lambda r: (r["product"], r["lot"], *qc.row_order(r)))
         return [{col: row[col] for col in EXPORT_COLUMNS} for row in rows]
 
 
@@ -705,33 +521,12 @@ def _measurement_row(row: Mapping) -> dict:
     return out
 
 
-def _row_order(row: Mapping):
-    return (_natural_key(row["sample"]), _natural_key(row["replicate"]), row["sha256"])
 
 
-def _production_order(row: Mapping):
-    """made_on first (lots without one last), then first analysis time, then lot id."""
-    return (row["made_on"] is None, row["made_on"] or "", row["first_analysed_at"], _natural_key(row["lot"]))
 
 
-def replicate_label(row: Mapping) -> str:
-    """How a replicate is named in sentences: ``sample #replicate``."""
-    return f"{row['sample']} #{row['replicate']}" if row["replicate"] else row["sample"]
 
 
-def _replicates(rows: Sequence[Mapping], failed: Sequence[Mapping]) -> list[qc.Replicate]:
-    labels = [replicate_label(r) for r in list(rows) + list(failed)]
-    reps = []
-    for row, label in zip(list(rows) + list(failed), labels):
-        if labels.count(label) > 1:
-            label = f"{label} (source {row['sha256'][:8] or 'unknown'})"
-        if "reason" in row:
-            reps.append(qc.Replicate(label=label, status="failed", quality=None, values={},
-                                     reason=row["reason"]))
-        else:
-            reps.append(qc.Replicate(label=label, status=row["status"], quality=row["quality"],
-                                     values={key: row[key] for key in qc.LIMITED_QUANTITIES}))
-    return reps
 
 
 def _prepare_sqlite(engine: Engine) -> None:
