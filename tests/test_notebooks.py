@@ -69,6 +69,9 @@ def _images(nb) -> int:
 def test_committed_notebooks_are_generated_and_without_outputs():
     for name, text in _generator().notebook_texts().items():
         committed = (NOTEBOOKS / name).read_text(encoding="utf-8")
+        # the notebooks use the public API only: no command line run from them, no private names
+        imports = committed.replace("from thinning.demo import find_sample_videos", "")  # the samples
+        assert "subprocess" not in committed and "from thinning." not in imports, name
         assert committed == text, f"{name} is stale: run python scripts/make_notebooks.py"
         nb = nbformat.reads(committed, as_version=4)
         nbformat.validate(nb)
@@ -89,7 +92,7 @@ def test_one_recording_notebook(tmp_path, monkeypatch):
     assert 1.0 < lam < 20.0
     assert int(found.group(4)) >= 10
     assert "elasto-capillary" in text
-    assert _images(nb) >= 4  # first frame, frame strip, D(t), η_E and strain rate
+    assert _images(nb) >= 2  # D(t), strain rate and η_E in one figure; the frame strip
     written = {p.name for p in (out / "HC-0101-r1").iterdir()}
     assert {"result.json", "diameter.csv", "report.html"} <= written
 

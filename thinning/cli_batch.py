@@ -63,7 +63,7 @@ def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo
     n_rows = len(read_manifest(manifest))
     records = _open_records(db_url, specs_file) if db_url else None
     try:
-        with _Progress(n_rows) as progress:
+        with Progress(n_rows) as progress:
             report = run_batch(manifest, out_dir, defaults=defaults, workers=workers,
                                scheduler=scheduler, redo=redo, records=records,
                                on_row=lambda row, outcome, folder: progress.advance(row, outcome))
@@ -102,7 +102,7 @@ def _open_records(db_url, specs_file):
     return records
 
 
-class _Progress:
+class Progress:
     """A rich progress bar (rate, time left) on a terminal; plain lines otherwise."""
 
     def __init__(self, n_rows):

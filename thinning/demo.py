@@ -10,9 +10,7 @@ from :mod:`thinning.synth`; ``scripts/make_sample_videos.py`` regenerates them.
 
 from __future__ import annotations
 
-import contextlib
 import csv
-import io
 import shutil
 from pathlib import Path
 
@@ -125,7 +123,7 @@ def demo(out_dir, samples, workers):
 
       thinning demo --out thinning-demo
     """
-    from .cli import FriendlyError, cli
+    from .cli import FriendlyError
 
     out = Path(out_dir)
     if out.exists() and any(out.iterdir()) and not (out / MARKER).exists():
@@ -139,37 +137,40 @@ def demo(out_dir, samples, workers):
         click.echo("Sample recordings not found beside the tool; rendering them (about a minute)…")
         sample_dir = write_sample_videos(out / "sample_videos")
     db_url = f"sqlite:///{(out / 'records.db').resolve()}"
+    from .batch import run_batch
+    from .cli_batch import Progress
+    from .records import open_records
+    from .report.lot import write_lot_report
 
-    def run(*args):
-        try:
-            cli.main(args=[str(a) for a in args], prog_name="thinning", standalone_mode=False)
-        except click.ClickException as exc:
-            raise FriendlyError(f"demo step 'thinning {' '.join(map(str, args[:2]))}' failed: "
-                                f"{exc.format_message()}") from None
-
-    batch_args = ["batch", sample_dir / "manifest.csv", "--out", out / "batch", "--db", db_url,
-                  "--specs", sample_dir / "specs.toml"]
-    if workers:
-        batch_args += ["--workers", workers]
-    run(*batch_args)
-    lots_csv = io.StringIO()
-    with contextlib.redirect_stdout(lots_csv):
-        run("records", "lots", "--db", db_url, "--csv")
-    click.echo("\nLot verdicts:")
-    lots = list(csv.DictReader(io.StringIO(lots_csv.getvalue())))
-    for lot in lots:
-        line = f"  {lot['lot']:<10} {lot['verdict']:<7}"
-        if lot["reasons"]:
-            line += f" {lot['reasons'].split('; ')[0]}"
-        if lot["chart_flags"]:
-            line += f" [control chart: {lot['chart_flags']}]"
-        click.echo(line)
-    for lot in lots:
-        run("report", lot["lot"], "--product", lot["product"], "--db", db_url, "--out", out / "reports")
+    with open_records(db_url) as records:
+        records.load_specs(sample_dir / "specs.toml")
+        manifest = sample_dir / "manifest.csv"
+        with Progress(_row_count(manifest)) as progress:
+            report = run_batch(manifest, out / "batch", workers=workers, records=records,
+                               on_row=lambda row, outcome, folder: progress.advance(row, outcome))
+        click.echo(f"{report.n_rows} rows: {report.n_ok} ok, {report.n_failed} failed; "
+                   f"table in {report.results_csv}")
+        lots = records.lots()
+        click.echo("\nLot verdicts:")
+        for lot in lots:
+            line = f"  {lot.lot:<10} {lot.verdict.verdict:<7}"
+            if lot.verdict.reasons:
+                line += f" {lot.verdict.reasons[0]}"
+            if lot.chart_flags:
+                line += f" [control chart: {'; '.join(lot.chart_flags)}]"
+            click.echo(line)
+        for lot in lots:
+            write_lot_report(records, lot.lot, product=lot.product, out_dir=out / "reports")
     click.echo("")
     click.echo(f"Lot reports: {(out / 'reports').resolve()}/<lot>.html")
     click.echo(f"Per-recording results: {(out / 'batch').resolve()}")
     click.echo(f"Records database: {db_url}")
+
+
+def _row_count(manifest) -> int:
+    from .batch.manifest import read_manifest
+
+    return len(read_manifest(manifest))
 
 
 __all__ = ["demo", "write_sample_videos", "find_sample_videos", "LOTS", "PRODUCT"]

@@ -350,3 +350,69 @@ def write_figures(out_dir, result):
         paths[name] = _save_png(figure, out_dir / f"{name}.png")
         figure.clear()
     return paths
+
+
+# --- a lot ------------------------------------------------------------------------------------
+
+def plot_lot_curves(detail, *, ax=None):
+    """The diameter curves of a lot's replicates, log D against t (one line each); returns the Axes.
+
+    ``detail`` a :class:`thinning.records.LotDetail`.
+    """
+    from .qc import replicate_label
+
+    ax = _new_axes(ax)
+    for m in detail.measurements:
+        if m["id"] not in detail.curves:
+            continue
+        t, d = detail.curves[m["id"]]
+        keep = np.isfinite(t) & np.isfinite(d) & (d > 0)
+        if keep.any():
+            ax.semilogy(t[keep] * 1e3, d[keep] * 1e6, lw=1.4, label=replicate_label(m))
+    ax.set_xlabel("time on the recording's clock t (ms)")
+    ax.set_ylabel("minimum neck diameter D (µm)")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(fontsize=8, frameon=False)
+    return ax
+
+
+def plot_control_chart(detail, *, axes=None):
+    """Individuals and moving-range charts of the product's lot mean λ, this lot marked.
+
+    ``detail`` a :class:`thinning.records.LotDetail`; ``axes`` two Axes (the
+    chart of lot means above, the moving ranges below), else a new figure's.
+    Returns the two Axes.
+    """
+    if axes is None:
+        fig = Figure(figsize=(7.0, 4.6), dpi=DPI, layout="constrained")
+        axes = fig.subplots(2, 1, sharex=True, height_ratios=(3, 2))
+    ax_x, ax_mr = axes
+    points = [point for _, point in detail.chart]
+    lots = [summary.lot for summary, _ in detail.chart]
+    x = np.arange(len(points))
+    nan = float("nan")
+
+    def series(name):
+        return np.array([nan if getattr(p, name) is None else getattr(p, name) for p in points]) * 1e3
+
+    value, centre, ucl, lcl = series("value"), series("centre"), series("ucl"), series("lcl")
+    mr, mr_ucl = series("moving_range"), series("mr_ucl")
+    flagged = np.array([bool(p.flags) for p in points], dtype=bool)
+    this = np.array([lot == detail.summary.lot for lot in lots], dtype=bool)
+    ax_x.plot(x, value, "-o", color="#3d5a80", ms=4, lw=1, label="lot mean λ")
+    ax_x.step(x, centre, where="mid", color="#555555", lw=1, label="centre (earlier lots)")
+    ax_x.step(x, ucl, where="mid", color="#b42318", lw=1, ls="--", label="±3 sigma")
+    ax_x.step(x, lcl, where="mid", color="#b42318", lw=1, ls="--")
+    ax_x.plot(x[flagged], value[flagged], "s", color="#b42318", ms=6, label="chart flag")
+    ax_mr.plot(x[1:], mr[1:], "-o", color="#3d5a80", ms=4, lw=1, label="moving range")
+    ax_mr.step(x, mr_ucl, where="mid", color="#b42318", lw=1, ls="--", label="D4 × mean MR")
+    for ax, y in ((ax_x, value), (ax_mr, mr)):
+        ax.plot(x[this], y[this], "o", ms=13, mfc="none", mec="#e07a1f", mew=2.2, label="this lot")
+        ax.grid(True, alpha=0.3)
+        ax.legend(fontsize=7, frameon=False, loc="best", ncol=3)
+    ax_x.set_ylabel("lot mean λ (ms)")
+    ax_mr.set_ylabel("moving range (ms)")
+    ax_mr.set_xticks(x, lots, rotation=45 if len(lots) > 6 else 0, ha="right" if len(lots) > 6 else "center",
+                     fontsize=7)
+    ax_mr.set_xlabel("lot, in production order")
+    return ax_x, ax_mr

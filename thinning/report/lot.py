@@ -101,64 +101,34 @@ def _png(figure) -> str:
 
 
 def curves_figure(detail) -> str | None:
-    """Overlay of the replicates' diameter curves, log D against t; base64 PNG or None."""
+    """The replicates' diameter curves (:func:`thinning.plots.plot_lot_curves`); base64 PNG or None."""
     from matplotlib.figure import Figure
 
-    from ..records import replicate_label
+    from ..plots import plot_lot_curves
 
-    drawn = [(m, detail.curves[m["id"]]) for m in detail.measurements if m["id"] in detail.curves]
-    drawn = [(m, (t, d)) for m, (t, d) in drawn if np.any(np.isfinite(d) & (d > 0))]
-    if not drawn:
+    if not _drawable_curves(detail):
         return None
     figure = Figure(figsize=(7.0, 3.6), layout="constrained")
-    ax = figure.add_subplot()
-    for m, (t, d) in drawn:
-        keep = np.isfinite(t) & np.isfinite(d) & (d > 0)
-        ax.semilogy(t[keep] * 1e3, d[keep] * 1e6, lw=1.4, label=replicate_label(m))
-    ax.set_xlabel("time on the recording's clock t (ms)")
-    ax.set_ylabel("minimum neck diameter D (µm)")
-    ax.grid(True, which="both", alpha=0.3)
-    ax.legend(fontsize=8, frameon=False)
+    plot_lot_curves(detail, ax=figure.add_subplot())
     return _png(figure)
 
 
 def chart_figure(detail) -> str | None:
-    """The product's X and MR charts of lot mean λ with this lot marked; base64 PNG or None."""
+    """The product's control charts (:func:`thinning.plots.plot_control_chart`); base64 PNG or None."""
     from matplotlib.figure import Figure
 
-    points = [point for _, point in detail.chart]
-    if not points:
+    from ..plots import plot_control_chart
+
+    if not detail.chart:
         return None
-    lots = [summary.lot for summary, _ in detail.chart]
-    x = np.arange(len(points))
-    value = np.array([p.value for p in points]) * 1e3
-    nan = float("nan")
-    centre = np.array([nan if p.centre is None else p.centre for p in points]) * 1e3
-    ucl = np.array([nan if p.ucl is None else p.ucl for p in points]) * 1e3
-    lcl = np.array([nan if p.lcl is None else p.lcl for p in points]) * 1e3
-    mr = np.array([nan if p.moving_range is None else p.moving_range for p in points]) * 1e3
-    mr_ucl = np.array([nan if p.mr_ucl is None else p.mr_ucl for p in points]) * 1e3
-    flagged = np.array([bool(p.flags) for p in points])
-    this = np.array([lot == detail.summary.lot for lot in lots])
     figure = Figure(figsize=(7.0, 4.6), layout="constrained")
-    ax_x, ax_mr = figure.subplots(2, 1, sharex=True, height_ratios=(3, 2))
-    ax_x.plot(x, value, "-o", color="#3d5a80", ms=4, lw=1, label="lot mean λ")
-    ax_x.step(x, centre, where="mid", color="#555555", lw=1, label="centre (earlier lots)")
-    ax_x.step(x, ucl, where="mid", color="#b42318", lw=1, ls="--", label="±3 sigma")
-    ax_x.step(x, lcl, where="mid", color="#b42318", lw=1, ls="--")
-    ax_x.plot(x[flagged], value[flagged], "s", color="#b42318", ms=6, label="chart flag")
-    ax_mr.plot(x[1:], mr[1:], "-o", color="#3d5a80", ms=4, lw=1, label="moving range")
-    ax_mr.step(x, mr_ucl, where="mid", color="#b42318", lw=1, ls="--", label="D4 × mean MR")
-    for ax, y in ((ax_x, value), (ax_mr, mr)):
-        ax.plot(x[this], y[this], "o", ms=13, mfc="none", mec="#e07a1f", mew=2.2, label="this lot")
-        ax.grid(True, alpha=0.3)
-        ax.legend(fontsize=7, frameon=False, loc="best", ncol=3)
-    ax_x.set_ylabel("lot mean λ (ms)")
-    ax_mr.set_ylabel("moving range (ms)")
-    ax_mr.set_xticks(x, lots, rotation=45 if len(lots) > 6 else 0, ha="right" if len(lots) > 6 else "center",
-                     fontsize=7)
-    ax_mr.set_xlabel("lot, in production order")
+    plot_control_chart(detail, axes=figure.subplots(2, 1, sharex=True, height_ratios=(3, 2)))
     return _png(figure)
+
+
+def _drawable_curves(detail):
+    drawn = [m for m in detail.measurements if m["id"] in detail.curves]
+    return [m for m in drawn if np.any(np.isfinite(detail.curves[m["id"]][1]) & (detail.curves[m["id"]][1] > 0))]
 
 
 def _replicate_rows(detail) -> list[dict]:
