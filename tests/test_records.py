@@ -385,3 +385,22 @@ def test_specs_update_in_place(db_url, tmp_path):
     assert specs["ink-A"].relaxation_time_s == (0.009, 0.011) and specs["ink-A"].replicates == 2
     assert np.isnan(specs["ink-A"].filament_lifetime_s[0]) and specs["ink-A"].filament_lifetime_s[1] == 0.3
     assert np.isnan(specs["ink-B"].relaxation_time_s[1]) and specs["ink-B"].extensional_viscosity_max_Pa_s is None
+
+
+def test_show_says_why_a_replicate_is_not_valid_with_the_codes(db_url, tmp_path):
+    rows = lot_rows("ink-A", "L1", [0.010, 0.011])
+    rows[1]["result"] = fake_result(relaxation_time_s=0.011, sha256=source_hash("ink-A", "L1", 2),
+                                    quality="doubtful", warnings=["Only 6 frames lie in the window."])
+    write_batch(tmp_path / "b", rows)
+    assert run(["load", str(tmp_path / "b")], db_url).exit_code == 0
+    shown = run(["show", "L1"], db_url)
+    assert shown.exit_code == 0, shown.output
+    assert "- replicate L1-s #2 is not valid: quality doubtful (few-frames-in-window)" in shown.output
+    with rec.open_records(db_url) as store:
+        (lot,) = store.lots()
+    assert "replicate L1-s #2 is not valid: quality doubtful (few-frames-in-window)" in lot.verdict.reasons
+    exported = run(["export", "--out", str(tmp_path / "all.csv")], db_url)
+    assert exported.exit_code == 0
+    with open(tmp_path / "all.csv", newline="") as handle:
+        codes = [r["warning_codes"] for r in csv.DictReader(handle)]
+    assert codes == ["", "few-frames-in-window"]

@@ -146,8 +146,6 @@ def lots_command(db_url, product, as_csv):
 @click.option("--history", is_flag=True, help="Also list superseded measurements (kept as history).")
 def show_command(lot, db_url, product, as_csv, history):
     """One lot's measurements, verdict and reasons."""
-    import json
-
     from rich.markup import escape
     from rich.table import Table
 
@@ -179,12 +177,14 @@ def show_command(lot, db_url, product, as_csv, history):
                    "warnings", "analysed at (UTC)", "tool", "sha256"):
         table.add_column(header, overflow="fold", no_wrap=header in ("regime", "analysed at (UTC)", "sha256"))
     valid = dict(zip((m["id"] for m in detail.measurements), verdict.valid))
+    why = dict(zip((m["id"] for m in detail.measurements), verdict.invalid_reasons))
     for m in detail.measurements:
         interval = ("—" if m["relaxation_time_ci95_low_s"] is None else
                     f"{_ms(m['relaxation_time_ci95_low_s'])}–{_ms(m['relaxation_time_ci95_high_s'])}")
         table.add_row(escape(m["sample"]), escape(m["replicate"]), _ms(m["relaxation_time_s"]), interval,
-                      m["quality"] or "—", m["regime"] or "—", "yes" if valid[m["id"]] else "no",
-                      str(len(json.loads(m["warnings"]))), _when(m["analysed_at"]), m["tool_version"] or "—",
+                      m["quality"] or "—", m["regime"] or "—",
+                      "yes" if valid[m["id"]] else f"no: {escape(why[m['id']] or '')}",
+                      escape(m["warning_codes"]) or "—", _when(m["analysed_at"]), m["tool_version"] or "—",
                       m["sha256"][:12])
     for f in detail.failures:
         table.add_row(escape(f["sample"]), escape(f["replicate"]), "—", "—", "failed", "—", "no", "—",

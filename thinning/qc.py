@@ -154,7 +154,8 @@ class Replicate:
 
     ``label`` names it in sentences (e.g. ``"S1 #2"``); ``reason`` is the
     failure sentence of a failed row; ``values`` holds the quantities in SI
-    (None where the analysis gave none).
+    (None where the analysis gave none); ``doubtful_codes`` the codes of the
+    findings that made its record doubtful.
     """
 
     label: str
@@ -162,6 +163,7 @@ class Replicate:
     quality: str | None
     values: Mapping[str, float | None]
     reason: str | None = None
+    doubtful_codes: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -189,6 +191,8 @@ class LotVerdict:
     n_valid: int
     valid: tuple[bool, ...]
     stats: Mapping[str, QuantityStats] = field(default_factory=dict)
+    #: per replicate, why it is not valid (None for a valid one)
+    invalid_reasons: tuple[str | None, ...] = ()
 
 
 def quantity_stats(values: Sequence[float]) -> QuantityStats:
@@ -220,7 +224,8 @@ def _invalid_because(rep: Replicate, limited: Iterable[str]) -> str | None:
     if rep.status != "ok":
         return f"failed ({rep.reason})" if rep.reason else "failed"
     if rep.quality != "good":
-        return f"quality {rep.quality or 'unknown'}"
+        why = f" ({', '.join(rep.doubtful_codes)})" if rep.doubtful_codes else ""
+        return f"quality {rep.quality or 'unknown'}{why}"
     missing = [LIMITED_QUANTITIES[k][0] for k in limited if rep.values.get(k) is None]
     if missing:
         return "no " + " and no ".join(missing)
@@ -275,7 +280,8 @@ def lot_verdict(spec: Spec | None, replicates: Sequence[Replicate], *, product: 
             reviews.append(f"replicate {rep.label} is not valid: {why}")
     verdict = "fail" if fails else ("review" if reviews else "pass")
     return LotVerdict(verdict=verdict, reasons=tuple(_clean(r) for r in fails + reviews),
-                      n_replicates=len(replicates), n_valid=len(good), valid=valid, stats=lot_stats)
+                      n_replicates=len(replicates), n_valid=len(good), valid=valid, stats=lot_stats,
+                      invalid_reasons=tuple(invalid))
 
 
 @dataclass(frozen=True)
@@ -445,10 +451,11 @@ def replicates_of(rows: Sequence[Mapping], failed: Sequence[Mapping]) -> list[Re
             label = f"{label} (source {row['sha256'][:8] or 'unknown'})"
         if "reason" in row:
             reps.append(Replicate(label=label, status="failed", quality=None, values={},
-                                     reason=row["reason"]))
+                                  reason=row["reason"]))
         else:
             reps.append(Replicate(label=label, status=row["status"], quality=row["quality"],
-                                     values={key: row[key] for key in LIMITED_QUANTITIES}))
+                                  values={key: row[key] for key in LIMITED_QUANTITIES},
+                                  doubtful_codes=tuple(row.get("doubtful_codes") or ())))
     return reps
 
 

@@ -517,7 +517,9 @@ def _measurement_row(row: Mapping) -> dict:
     """A stored measurement as a dict, with ``warning_codes`` (its findings' codes, one per
     warning, joined by ``; ``) read from the stored ``result.json``."""
     out = dict(row)
-    out["warning_codes"] = "; ".join(Result.from_json(json.loads(row["result_json"])).warning_codes)
+    result = Result.from_json(json.loads(row["result_json"]))
+    out["warning_codes"] = "; ".join(result.warning_codes)
+    out["doubtful_codes"] = tuple(dict.fromkeys(f.code.value for f in result.findings if f.doubtful))
     return out
 
 

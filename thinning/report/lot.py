@@ -134,9 +134,9 @@ def _drawable_curves(detail):
 def _replicate_rows(detail) -> list[dict]:
     from ..records import replicate_label
 
-    valid = detail.summary.verdict.valid
+    verdict = detail.summary.verdict
     rows = []
-    for m, is_valid in zip(detail.measurements, valid):
+    for m, is_valid, why in zip(detail.measurements, verdict.valid, verdict.invalid_reasons):
         low, high = m["relaxation_time_ci95_low_s"], m["relaxation_time_ci95_high_s"]
         rows.append({
             "label": replicate_label(m), "sample": m["sample"], "replicate": m["replicate"] or MISSING,
@@ -145,8 +145,10 @@ def _replicate_rows(detail) -> list[dict]:
             "quality": m["quality"] or MISSING, "regime": m["regime"] or MISSING,
             "lifetime": fmt(m["filament_lifetime_s"], "s"),
             "eta_e": fmt(m["extensional_viscosity_max_Pa_s"], "Pa·s"),
-            "valid": "yes" if is_valid else "no", "is_valid": is_valid,
-            "warnings": json.loads(m["warnings"]), "sha256": m["sha256"], "analysed_at": m["analysed_at"],
+            "valid": "yes" if is_valid else f"no: {why}", "is_valid": is_valid,
+            "warnings": list(zip(m["warning_codes"].split("; "), json.loads(m["warnings"])))
+            if m["warning_codes"] else [("", w) for w in json.loads(m["warnings"])],
+            "sha256": m["sha256"], "analysed_at": m["analysed_at"],
             "tool_version": m["tool_version"] or MISSING, "notes": m["notes"] or "",
             "source_path": m["source_path"] or MISSING,
         })
@@ -154,7 +156,7 @@ def _replicate_rows(detail) -> list[dict]:
         rows.append({"label": replicate_label(f), "sample": f["sample"], "replicate": f["replicate"] or MISSING,
                      "lam": MISSING, "ci": MISSING, "quality": "failed", "regime": MISSING,
                      "lifetime": MISSING, "eta_e": MISSING, "valid": "no", "is_valid": False,
-                     "warnings": [f["reason"]], "sha256": f["sha256"] or MISSING,
+                     "warnings": [("failed", f["reason"])], "sha256": f["sha256"] or MISSING,
                      "analysed_at": f["analysed_at"], "tool_version": f["tool_version"] or MISSING,
                      "notes": f["notes"] or "", "source_path": f["source_path"] or MISSING})
     return rows
@@ -191,7 +193,7 @@ def lot_report_html(detail, *, generated_at: str | None = None) -> str:
                                      undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
     summary = detail.summary
     replicates = _replicate_rows(detail)
-    warnings = [(row["label"], w) for row in replicates for w in row["warnings"]]
+    warnings = [(row["label"], code, w) for row in replicates for code, w in row["warnings"]]
     tool_versions = sorted({row["tool_version"] for row in replicates if row["tool_version"] != MISSING})
     context = {
         "product": summary.product, "lot": summary.lot, "made_on": summary.made_on or MISSING,

@@ -253,7 +253,8 @@ def render_recording_report(result, figures, *, name=None, details=None):
         "headline": _headline(result),
         "regimes": _regimes(result),
         "figures": _embed(figures or {}),
-        "warnings": list(result.warnings),
+        "warnings": [{"code": code, "message": message}
+                     for code, message in zip(result.warning_codes, result.warnings)],
         "calibration": _calibration(result),
         "provenance": _provenance(result),
         "cautions": CAUTIONS,
