@@ -33,7 +33,8 @@ ANALYSIS_OPTION_HELP = {
     "reference_width": "Instead of --pixel-size: true width of the plates (or the nozzle's outer "
                        "diameter) seen in the frame, e.g. '3mm'; the tool measures it in pixels.",
     "surface_tension": "Surface tension of the liquid, e.g. '35mN/m' (required).",
-    "density": "Density, e.g. '998kg/m^3' (optional: inertial time, Ohnesorge and Bond numbers).",
+    "density": "Density, e.g. '998kg/m^3' (optional: Rayleigh time, Ohnesorge, Deborah and Bond "
+               "numbers).",
     "solvent_viscosity": "Solvent viscosity, e.g. '1.2mPa*s' (optional: regime checks).",
     "zero_shear_viscosity": "Zero-shear viscosity, e.g. '5mPa*s' (optional: Ohnesorge number and "
                             "Trouton ratio; falls back to the solvent viscosity).",
@@ -146,8 +147,9 @@ def analyse(source, out_dir, **values):
 
     Example:
 
-      thinning analyse bridge.avi --out results/bridge --fps 10kHz
-      --pixel-size 8um --surface-tension 38mN/m
+    \b
+      thinning analyse bridge.avi --out results/bridge \\
+          --fps 10kHz --pixel-size 8um --surface-tension 38mN/m
     """
     from .analysis import analyse_to
 

@@ -102,16 +102,31 @@ _VERDICT_STYLE = {"pass": "bold green", "review": "bold yellow", "fail": "bold r
 def records():
     """Per-lot records: lots with verdicts, measurements, export, specifications.
 
-    Every command takes --db URL (see each command's --help for the default).
+    Every command takes --db URL; each command's --help prints the default database.
+
+    Examples:
+
+    \b
+      thinning records load-specs specs.toml
+      thinning records load results/2026-10
+      thinning records lots --product harbour-cyan
+      thinning records show HC-0107
+      thinning records export --out all.csv
     """
 
 
 @records.command("lots")
 @db_option
-@product_option
+@click.option("--product", default=None, metavar="NAME", help="Only the lots of this product.")
 @csv_option
 def lots_command(db_url, product, as_csv):
-    """One line per lot: mean relaxation time, verdict, reasons and control-chart flags."""
+    """One line per lot: mean relaxation time, verdict, reasons and control-chart flags.
+
+    Example:
+
+    \b
+      thinning records lots --product harbour-cyan --csv > lots.csv
+    """
     from .records import LOT_COLUMNS
 
     with _open(db_url) as store:
@@ -145,7 +160,13 @@ def lots_command(db_url, product, as_csv):
 @csv_option
 @click.option("--history", is_flag=True, help="Also list superseded measurements (kept as history).")
 def show_command(lot, db_url, product, as_csv, history):
-    """One lot's measurements, verdict and reasons."""
+    """One lot's measurements, verdict and reasons.
+
+    Example:
+
+    \b
+      thinning records show HC-0107 --product harbour-cyan --history
+    """
     from rich.markup import escape
     from rich.table import Table
 
@@ -207,7 +228,13 @@ def show_command(lot, db_url, product, as_csv, history):
               help="CSV file to write: one row per current measurement.")
 @click.option("--product", default=None, metavar="NAME", help="Only this product's measurements.")
 def export_command(db_url, out_path, product):
-    """Every current measurement to a CSV file (superseded ones are left out)."""
+    """Every current measurement to a CSV file (superseded ones are left out).
+
+    Example:
+
+    \b
+      thinning records export --out all.csv --product harbour-cyan
+    """
     from .records import EXPORT_COLUMNS
 
     with _open(db_url) as store:
@@ -224,7 +251,13 @@ def export_command(db_url, out_path, product):
 @click.argument("specs_file", type=click.Path())
 @db_option
 def load_specs_command(specs_file, db_url):
-    """Load or update product specifications from a TOML file."""
+    """Load or update product specifications from a TOML file.
+
+    Example:
+
+    \b
+      thinning records load-specs specs.toml --db sqlite:///records.db
+    """
     with _open(db_url) as store:
         specs = store.load_specs(specs_file)
     click.echo(f"loaded the specifications of {len(specs)} product{'s' if len(specs) != 1 else ''}: "
@@ -235,7 +268,13 @@ def load_specs_command(specs_file, db_url):
 @click.argument("batch_dir", type=click.Path())
 @db_option
 def load_command(batch_dir, db_url):
-    """Store a finished batch folder (its results.csv and row folders) in one transaction."""
+    """Store a finished batch folder (its results.csv and row folders) in one transaction.
+
+    Example:
+
+    \b
+      thinning records load results/2026-10 --db sqlite:///records.db
+    """
     with _open(db_url) as store:
         counts = store.load_batch(batch_dir)
     click.echo(f"{batch_dir}: {counts['inserted']} new, {counts['superseded']} replaced (earlier kept as "
@@ -250,7 +289,13 @@ def load_command(batch_dir, db_url):
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
               help="Folder for LOT.html (created if needed).")
 def report(lot, db_url, product, out_dir):
-    """Write the self-contained HTML report of one lot: verdict, curves, numbers, control chart."""
+    """Write the self-contained HTML report of one lot: verdict, curves, numbers, control chart.
+
+    Example:
+
+    \b
+      thinning report HC-0107 --product harbour-cyan --out reports
+    """
     from .report.lot import write_lot_report
 
     with _open(db_url) as store:
