@@ -159,7 +159,7 @@ DEFAULTS = {"surface_tension": "35mN/m", "pixel_size": "10um"}
 
 
 def test_names():
-    # interface.md: row zero-padded to the width of the largest row number; unsafe chars → "_"
+    # docs/contract.md: row zero-padded to the width of the largest row number; unsafe chars → "_"
     assert safe_name("Lot 7/ä+b.c_d-e") == "Lot_7___b.c_d-e"
     assert row_folder_name(3, "S 1", 3) == "003-S_1"
     assert row_folder_name(12, "x", 2) == "12-x"

@@ -28,7 +28,7 @@ CONTRACT_KEYS = {
 
 
 def blurred(true_m, pixel):
-    """What an edge finder reports: thin threads (< 3 px) come out too thin (physics.md §8)."""
+    """What an edge finder reports: thin threads (< 3 px) come out too thin (docs/physics.md §8)."""
     small = true_m < 3 * pixel
     return np.where(small, true_m * (0.6 + 0.4 * true_m / (3 * pixel)), true_m)
 
@@ -140,7 +140,7 @@ def test_newtonian_matrix_gives_regime_and_viscosity_without_relaxation_time():
             # Papageorgiou (1995): D = 0.1418 σ/η (t_b − t) gives η back within 5 %
             assert c.shear_viscosity_Pa_s == pytest.approx(eta, rel=0.05), k
         else:
-            # Eggers & Villermaux (2008), from memory (physics.md §3.1): exponent 2/3
+            # Eggers & Villermaux (2008), from memory (docs/physics.md §3.1): exponent 2/3
             assert c.fits["inertio-capillary"].values["exponent"] == pytest.approx(2 / 3, abs=0.05)
         assert any(f.code == "no-elastic-regime" for f in c.findings)
 
@@ -186,7 +186,7 @@ def test_interval_on_the_filament_model_covers_its_window_value():
 
 def test_water_bridge_breaks_within_a_few_milliseconds():
     # common practice: a millimetre water bridge pinches off within a few milliseconds
-    # (physics.md §7: 2.2–3.7 ms from the inertio-capillary time)
+    # (docs/physics.md §7: 2.2–3.7 ms from the inertio-capillary time)
     c = run(Fluid(0.072, 1e-3, 1000.0), 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, seed=5)
     assert 1e-3 < c.filament_lifetime_s < 6e-3
     assert c.regime == "inertio-capillary"

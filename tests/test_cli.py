@@ -1,4 +1,4 @@
-"""The command-line contract of `thinning analyse` (shared/design/interface.md)."""
+"""The command-line contract of `thinning analyse` (docs/contract.md)."""
 
 import json
 import math

@@ -1,6 +1,6 @@
 """The Dask path: a real scheduler and worker as separate processes on 127.0.0.1.
 
-Setup per shared/reference/platform-notes.md: bind 127.0.0.1, port 0,
+Setup that works on this kind of machine: bind 127.0.0.1, port 0,
 dashboards on 127.0.0.1:0, ``--scheduler-file`` for the address.
 """
 

@@ -68,7 +68,7 @@ def contour_edges(frame, levels_fraction=SHADOW):
 def test_edges_agree_with_scikit_image_half_intensity_contour(blur, neck):
     # Outside reference: scikit-image's skimage.measure.find_contours (marching squares with
     # linear interpolation) at the half-intensity level of the normalised frame. For threads
-    # wider than ~3 blur sigmas the half-intensity width equals the true width (physics.md §8),
+    # wider than ~3 blur sigmas the half-intensity width equals the true width (docs/physics.md §8),
     # so both methods must give the same edges there.
     frame = render(neck=neck, blur=blur)
     layout = find_layout(frame)
@@ -124,7 +124,7 @@ def test_plates_wider_than_the_view_on_one_side(view, horizontal):
 
 @pytest.mark.parametrize("neck,blur", [(3.0, 2.0), (4.0, 1.5), (6.0, 0.5)])
 def test_thin_blurred_thread_keeps_its_width(neck, blur):
-    # a 50 % threshold loses ~40 % of a 1.5-sigma thread (physics.md §8 table); the
+    # a 50 % threshold loses ~40 % of a 1.5-sigma thread (docs/physics.md §8 table); the
     # integrated deficit does not
     frame = render(neck=neck, blur=blur)
     profile = locate_edges(frame, find_layout(frame))

@@ -72,7 +72,7 @@ def test_viscocapillary_fit_uses_papageorgiou():
 
 
 def test_inertiocapillary_fit_recovers_the_prefactor_and_the_two_thirds_exponent():
-    # Eggers & Villermaux (2008), from memory (physics.md §3.1): R = 0.717 (σ/ρ)^(1/3) (t_c − t)^(2/3)
+    # Eggers & Villermaux (2008), from memory (docs/physics.md §3.1): R = 0.717 (σ/ρ)^(1/3) (t_c − t)^(2/3)
     rng = np.random.default_rng(4)
     rho, t_c = 1000.0, 3e-3
     t = np.arange(0, 2.9e-3, 2e-5)
@@ -90,7 +90,7 @@ def test_inertiocapillary_fit_recovers_the_prefactor_and_the_two_thirds_exponent
 def test_inertiocapillary_fit_on_the_water_model():
     # The 0-D model's inviscid limit: k ρ Ṙ² = (2X − 1) σ/R with k = (3/2)² (2X − 1)/X_IC³ gives
     # R = X_IC (σ/ρ)^(1/3) τ^(2/3) with the inviscid similarity prefactor X_IC = 0.717
-    # (Eggers & Villermaux 2008, from memory in physics.md §3.1). Exponent 2/3: Eggers (1997).
+    # (Eggers & Villermaux 2008, from memory in docs/physics.md §3.1). Exponent 2/3: Eggers (1997).
     hist = laws.filament_model(laws.Fluid(0.072, 1e-3, 1000.0), 1e-3, duration=1.0)
     t = np.arange(0.0, hist.breakup_time_s, 2e-5)
     d = hist.diameter_at(t)

@@ -22,7 +22,7 @@ def write_stack(path, rng, n_frames=4, shape=(16, 24)):
 
 
 def test_columns_are_the_contracts():
-    # shared/design/interface.md, `thinning batch`: path, identity columns, every analyse option
+    # docs/contract.md, `thinning batch`: path, identity columns, every analyse option
     assert set(MANIFEST_COLUMNS) == {
         "path", "sample", "lot", "product", "replicate", "made_on", "notes", "fps", "pixel_size",
         "reference_width", "surface_tension", "density", "solvent_viscosity", "zero_shear_viscosity",

@@ -186,7 +186,7 @@ def test_headline_curve_comes_from_the_elasto_capillary_law(elastic):
     expected = laws.elasto_capillary_diameter(t, initial_diameter=D0, elastic_modulus=40.0,
                                               surface_tension=SIGMA, relaxation_time=0.005)
     np.testing.assert_allclose(d, expected, rtol=1e-12)
-    # the slope of ln D is −1/(3λ) (Anna & McKinley 2001, via physics.md)
+    # the slope of ln D is −1/(3λ) (Anna & McKinley 2001, via docs/physics.md)
     slope = np.polyfit(t, np.log(d), 1)[0]
     assert slope == pytest.approx(-1.0 / (3.0 * 0.005), rel=1e-9)
 
@@ -223,7 +223,7 @@ def test_strain_rate_plateau_is_two_thirds_over_lambda(elastic):
     ax = plots.plot_strain_rate(_elastic_result(elastic))
     plateau = next(c for c in ax.collections if c.get_label() == r"$2/(3\lambda)$")
     segment = plateau.get_segments()[0]
-    # ε̇ = 2/(3λ) in the elasto-capillary regime (Anna & McKinley 2001, via physics.md)
+    # ε̇ = 2/(3λ) in the elasto-capillary regime (Anna & McKinley 2001, via docs/physics.md)
     assert segment[0][1] == pytest.approx(2.0 / (3.0 * 0.005))
     assert segment[0][0] == pytest.approx(5.0) and segment[1][0] == pytest.approx(60.0)  # ms
     assert ax.get_ylabel() == r"strain rate $\dot\varepsilon$ (1/s)"

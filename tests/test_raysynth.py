@@ -19,7 +19,7 @@ from thinning.frames import open_source
 def cylinder_deflection(b, n):
     """Deflection of the once-refracted (p = 1) ray through a cylinder at impact b/R (rad):
     θ = 2·(asin b − asin(b/n)) (van de Hulst, Light Scattering by Small Particles, 1957, the
-    p = 1 ray of geometric optics — from memory for the section; physics.md §8.1)."""
+    p = 1 ray of geometric optics — from memory for the section; docs/physics.md §8.1)."""
     return 2.0 * (np.arcsin(b) - np.arcsin(b / n))
 
 
@@ -182,7 +182,7 @@ def test_total_internal_reflection_carries_no_light():
     assert np.all((path.transmittance[through] > 0) & (path.transmittance[through] <= 1))
 
 
-# --- the bright central band (physics.md §8.1) -----------------------------------------------
+# --- the bright central band (docs/physics.md §8.1) -----------------------------------------------
 
 def _half_level(q, t):
     """First b/R where the transmission falls below half its value on the axis."""
@@ -195,7 +195,7 @@ def _half_level(q, t):
 def test_bright_band_of_a_collimated_thread(n, na, beta_deg):
     """Light gets through where |θ(b)| < α + β. Half the pupil sees the backlight where the
     central pupil ray's deflection reaches α: a tilted ray of angle φ passes at b·cos φ, so
-    θ(b* cos α) = α; the last light leaves where θ(b) = α + β (physics.md §8.1)."""
+    θ(b* cos α) = α; the last light leaves where θ(b) = α + β (docs/physics.md §8.1)."""
     alpha, beta = math.asin(na), math.radians(beta_deg)
     table = raysynth.transmission_table(n, na, beta_deg)
     q, t = table.q, table.transmission[0, 0]
@@ -211,7 +211,7 @@ def test_bright_band_of_a_collimated_thread(n, na, beta_deg):
 
 
 def test_physics_sheet_band_width_for_water_at_na_01():
-    """physics.md §8.1: 'for n = 1.33, collimated light and NA = 0.1, the bright band reaches
+    """docs/physics.md §8.1: 'for n = 1.33, collimated light and NA = 0.1, the bright band reaches
     b*/R ≈ 0.20' — checked by the tracer."""
     table = raysynth.transmission_table(1.33, 0.1, 0.2)
     assert _half_level(table.q, table.transmission[0, 0]) == pytest.approx(0.20, abs=0.005)

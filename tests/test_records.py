@@ -20,7 +20,7 @@ from thinning import records as rec
 from thinning.cli_records import records as records_cli
 from thinning.result import Result
 
-# columns exactly as written in interface.md ("thinning records …")
+# columns exactly as written in docs/contract.md ("thinning records …")
 CONTRACT_EXPORT = ["product", "lot", "sample", "replicate", "status", "quality", "regime", "relaxation_time_s",
                    "relaxation_time_ci95_low_s", "relaxation_time_ci95_high_s", "shear_viscosity_Pa_s",
                    "extensional_viscosity_max_Pa_s", "breakup_time_s", "filament_lifetime_s", "sha256",

@@ -46,7 +46,7 @@ def test_exponential_stretch_is_elasto_capillary_with_its_lambda():
 
 
 def test_linear_stretch_after_the_elastic_one_is_finite_extensibility_never_visco_capillary():
-    # physics.md §3.4: the terminal stretch is linear in time too
+    # docs/physics.md §3.4: the terminal stretch is linear in time too
     rng = np.random.default_rng(2)
     t, d, t_switch = ec_then("linear", rng)
     regs = locate_regimes(t, d, resolution_floor_m=FLOOR)

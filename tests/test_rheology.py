@@ -26,7 +26,7 @@ def test_strain_rate_matches_scipy_savgol_derivative():
 
 
 def test_curves_on_an_exponential_follow_the_elastic_relations():
-    # ε̇ = 2/(3λ) (Bazilevsky et al. 1990 via Sousa et al. 2017); η_E = 3λσ/D (physics.md §4,
+    # ε̇ = 2/(3λ) (Bazilevsky et al. 1990 via Sousa et al. 2017); η_E = 3λσ/D (docs/physics.md §4,
     # derived from the exponential); Hencky strain 2 ln(D0/D)
     rng = np.random.default_rng(1)
     lam = 2e-3
@@ -45,7 +45,7 @@ def test_curves_on_an_exponential_follow_the_elastic_relations():
 
 
 def test_naive_trouton_ratio_of_a_newtonian_thread_is_7():
-    # physics.md §3.2 (derived from Papageorgiou 1995): with X = 1 a Newtonian visco-capillary
+    # docs/physics.md §3.2 (derived from Papageorgiou 1995): with X = 1 a Newtonian visco-capillary
     # thread shows η_E = η/0.1418 = 7.05 η
     eta = 0.5
     t = np.arange(0, 0.05, 1e-4)
@@ -76,15 +76,17 @@ def test_undefined_frames_are_nan_and_order_is_kept():
 
 
 def test_dimensionless_groups_for_a_water_bridge():
-    # physics.md §2 worked numbers (own calculation there): water, R0 = 0.5 mm: t_R = 1.32 ms,
+    # docs/physics.md §2 worked numbers (own calculation there): water, R0 = 0.5 mm: t_R = 1.32 ms,
     # Oh = 0.0053; Bo = ρ g R0²/σ
     g = dimensionless_groups(initial_diameter=1e-3, surface_tension=0.072, density=1000.0,
                              viscosity=1e-3, relaxation_time=1e-3)
     assert g["rayleigh_time_s"] == pytest.approx(1.32e-3, rel=0.01)
     assert g["ohnesorge_number"] == pytest.approx(0.0053, rel=0.02)
-    assert g["bond_number"] == pytest.approx(1000 * 9.80665 * 0.5e-3 ** 2 / 0.072)
+    # worked by hand: Bo = 1000 · 9.80665 · (0.5e-3)² / 0.072 = 0.03405
+    assert g["bond_number"] == pytest.approx(0.03405, rel=1e-3)
     assert g["deborah_number"] == pytest.approx(1e-3 / 1.32e-3, rel=0.01)
-    # Ec = De/Oh (physics.md §2)
+    # Ec = λσ/(η R0) = 1e-3 · 0.072 / (1e-3 · 0.5e-3) = 144 by hand, and equals De/Oh (docs/physics.md §2)
+    assert g["elasto_capillary_number"] == pytest.approx(144.0, rel=1e-9)
     assert g["elasto_capillary_number"] == pytest.approx(g["deborah_number"] / g["ohnesorge_number"])
 
 

@@ -36,7 +36,7 @@ def read_video(path):
 
 def half_intensity_width(row, background, shadow):
     """Width (px) between the two 50 % crossings of a dark band, linear interpolation
-    (common practice; unbiased for a symmetric PSF and a wide object, physics.md §8)."""
+    (common practice; unbiased for a symmetric PSF and a wide object, docs/physics.md §8)."""
     level = 0.5 * (background + shadow)
     dark = np.flatnonzero(row < level)
     lo, hi = dark[0], dark[-1]

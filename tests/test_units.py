@@ -9,7 +9,7 @@ from thinning.units import (AnalysisOptions, BadQuantity, check_required, option
 
 
 @pytest.mark.parametrize("name, text, expected", [
-    # the contract's own examples (shared/design/interface.md, Conventions)
+    # the contract's own examples (docs/contract.md, Conventions)
     ("pixel_size", "4.2um", 4.2e-6),
     ("pixel_size", "4.2 µm/px", 4.2e-6),
     ("surface_tension", "35mN/m", 0.035),
@@ -62,3 +62,11 @@ def test_options_and_required():
         check_required(AnalysisOptions(fps_hz=1e3, surface_tension_N_m=0.04))
     with pytest.raises(BadQuantity, match="geometry"):
         options_from_text({"geometry": "cup"})
+
+
+def test_every_option_has_one_field_of_the_analysis_options():
+    from dataclasses import fields
+
+    from thinning.units import OPTION_FIELDS, AnalysisOptions
+
+    assert set(OPTION_FIELDS.values()) == {f.name for f in fields(AnalysisOptions)}

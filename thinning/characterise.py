@@ -19,13 +19,13 @@ from .checks import Code, Finding, Severity
 from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_extensibility,
                    fit_inertiocapillary, fit_viscocapillary)
 from .series import check_series
+from .units import GEOMETRIES
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
 
-GEOMETRIES = ("plates", "dripping")
 UNDETERMINED = "undetermined"
-#: Resolution floor in pixels (physics.md §8: widths below ~3 blur sizes are biased).
+#: Resolution floor in pixels (docs/physics.md §8: widths below ~3 blur sizes are biased).
 FLOOR_PIXELS = 3.0
-#: Fewer frames than this in the headline window make the number doubtful (interface.md).
+#: Fewer frames than this in the headline window make the number doubtful (docs/contract.md).
 MIN_WINDOW_FRAMES = 10
 #: Bond number above which gravity may sag the bridge (Warwaruk et al. 2025: Bo > 0.5).
 SAGGING_BOND_NUMBER = 0.5
@@ -77,7 +77,7 @@ class Characterisation:
         return self.groups.get("bond_number")
 
     def result_fields(self) -> dict:
-        """The rheology keys of ``result.json`` (interface.md), plus extras; JSON-ready, no NaN."""
+        """The rheology keys of ``result.json`` (docs/contract.md), plus extras; JSON-ready, no NaN."""
         def num(v):
             if v is None:
                 return None
@@ -214,7 +214,7 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     data when None. ``breakup_time_s`` None: estimated from the record (None
     when the filament never broke). ``seed`` seeds the bootstrap.
     ``geometry`` ("plates" or "dripping") is checked and recorded: the
-    elasto-capillary prefactor is the same for both (D0 = 2R0, physics.md
+    elasto-capillary prefactor is the same for both (D0 = 2R0, docs/physics.md
     §3.3), so the numbers are computed alike.
     """
     t, d = _check_inputs(time_s, diameter_m, surface_tension=surface_tension,

@@ -1,4 +1,4 @@
-"""The ``thinning`` command: parse, call, print, exit (contract: shared/design/interface.md).
+"""The ``thinning`` command: parse, call, print, exit (contract: docs/contract.md).
 
 Exit status: 0 done, 2 bad usage or unusable input (one sentence, no
 traceback), 1 internal error. Heavy modules are imported inside commands so
@@ -16,7 +16,7 @@ import click
 
 from . import __version__
 from .errors import ThinningError
-from .units import QUANTITIES, BadQuantity, GEOMETRIES, options_from_text
+from .units import OPTION_FIELDS, BadQuantity, GEOMETRIES, options_from_text
 
 #: subcommands living in their own modules: name → "module:attribute"
 _LAZY_COMMANDS = {
@@ -75,7 +75,7 @@ def analysis_options(func):
     return func
 
 
-OPTION_NAMES = tuple(QUANTITIES) + ("geometry", "roi")
+OPTION_NAMES = tuple(OPTION_FIELDS)
 
 
 def parse_analysis_options(values: dict):

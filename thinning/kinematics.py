@@ -164,7 +164,7 @@ def local_exponents(time_s, slopes: LocalSlopes, *, min_half_width=3, max_half_w
     """Local power-law exponent n(t) and its standard error, free of the singular time.
 
     For D ∝ (t_c − t)^n the inverse strain rate q = 1/ε̇ = (t_c − t)/(2n) is a
-    line in t (physics.md §3.5), so n = −1/(2 dq/dt). dq/dt comes from sliding
+    line in t (docs/physics.md §3.5), so n = −1/(2 dq/dt). dq/dt comes from sliding
     weighted line fits of q over windows ``span_factor`` times those of the ln D
     fits. An elasto-capillary stretch has dq/dt = 0 (n infinite).
     """

@@ -4,7 +4,7 @@ One place for the physics: the synthetic recordings (:mod:`thinning.synth`)
 integrate :func:`filament_model` numerically; the fits (:mod:`thinning.fits`)
 use the closed-form laws below. Tests check one against the other.
 
-Sources (see ``shared/reference/physics.md``):
+Sources (see ``docs/physics.md``):
 
 - inertio-capillary: R = X_IC (σ/ρ)^(1/3) (t_c − t)^(2/3), X_IC ≈ 0.717
   (Eggers 1997; value quoted by Eggers & Villermaux 2008);
@@ -26,7 +26,7 @@ from scipy.integrate import solve_ivp
 PAPAGEORGIOU_COEFFICIENT = 0.0709
 #: Axial force factor X of the Newtonian similarity solution (McKinley & Tripathi 2000).
 NEWTONIAN_FORCE_FACTOR = 0.7127
-#: Inviscid inertio-capillary prefactor X_IC (Eggers & Villermaux 2008, from memory in physics.md).
+#: Inviscid inertio-capillary prefactor X_IC (Eggers & Villermaux 2008, from memory; docs/physics.md §3.1).
 INERTIO_CAPILLARY_PREFACTOR = 0.717
 #: Standard gravity, m/s².
 GRAVITY = 9.80665

@@ -1,6 +1,6 @@
 """Product specifications, lot verdicts and control charts (pure: no files, no database).
 
-The rules are those of the contract (``interface.md``, "Verdicts"):
+The rules are those of the contract (``docs/contract.md``, "Verdicts"):
 
 * A replicate is one manifest row. It is **valid** when its status is ``ok``,
   its quality ``good`` and every quantity the product's specification limits

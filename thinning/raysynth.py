@@ -3,7 +3,7 @@
 A second renderer, physically different from :mod:`thinning.synth`, so that
 accuracy claims never rest on one way of drawing a filament. The liquid is not
 an absorber: it is a transparent axisymmetric body of refractive index n whose
-image is found by tracing light through it (physics.md §8.1).
+image is found by tracing light through it (docs/physics.md §8.1).
 
 Geometry. Per frame the liquid is a radius profile R(z) along the filament axis
 whose minimum is exactly the 0-D model's D(t)/2
@@ -77,6 +77,7 @@ import numpy as np
 
 from thinning import laws
 from thinning.synth_io import FORMATS, Truth, check_format, truth_path, write_frames, write_truth
+from thinning.units import GEOMETRIES
 
 __all__ = ["RayOptics", "RayScene", "RayRenderer", "TransmissionTable", "render_recording",
            "write_recording", "random_case", "transmission_table", "trace_cone", "refract",
@@ -85,7 +86,6 @@ __all__ = ["RayOptics", "RayScene", "RayRenderer", "TransmissionTable", "render_
 
 #: Name of this renderer in the truth's ``optics`` record.
 RENDERER = "raysynth"
-GEOMETRIES = ("plates", "dripping")
 ORIENTATIONS = ("vertical", "horizontal")
 FAMILIES = ("regular", "artefacts", "refraction", "newtonian-still")
 #: Frames kept after breakup when the record length is chosen automatically.

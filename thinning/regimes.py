@@ -3,7 +3,7 @@
 Everything here works on plain arrays (time in s on the recording's clock,
 diameter in m, NaN where no thread was measured) and never touches files.
 
-The criteria (physics.md §3.5, §4, §5.1):
+The criteria (docs/physics.md §3.5, §4, §5.1):
 
 1. Only frames after the start of free thinning, with a finite diameter above
    the resolution floor (default 3 pixels) and not flagged as outliers, are
@@ -34,12 +34,12 @@ The criteria (physics.md §3.5, §4, §5.1):
    the strain rate rises clearly above 2/(3λ) (local λ below the stretch's by
    more than 5 % plus 2 standard errors), from the first to the last such
    frame: ln D bends down. A linear stretch after an elasto-capillary one is
-   never called visco-capillary (physics.md §3.4).
+   never called visco-capillary (docs/physics.md §3.4).
 5. Before an elasto-capillary stretch, or when there is none, a stretch is
    visco-capillary when D follows a power law of (t_c − t) with exponent
    1 ± 0.2, inertio-capillary with exponent 2/3 ± 0.1. The local exponent
    comes without knowing t_c from the inverse strain rate, which for
-   D ∝ (t_c − t)^n is a line in t of slope −1/(2n) (physics.md §3.5); such a
+   D ∝ (t_c − t)^n is a line in t of slope −1/(2n) (docs/physics.md §3.5); such a
    stretch needs at least 6 frames and a 1.5-fold fall of D.
 """
 

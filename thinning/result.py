@@ -15,16 +15,15 @@ pixels and the per-frame table, which :func:`read_result` takes from
 from __future__ import annotations
 
 import json
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-import numpy as np
 import pandas as pd
 
 from .checks import Code, Finding, Severity, quality_of, warning_sentences
 from .units import AnalysisOptions, Calibration
+from .values import json_plain
 
 if TYPE_CHECKING:  # imported where needed: the characterisation stage loads scipy
     from .characterise import Characterisation
@@ -200,24 +199,6 @@ def _findings_of(data: dict):
         severity = Severity.DOUBTFUL if (message in reasons and code.doubtful != "no") \
             or code.doubtful == "yes" else Severity.NOTE
         yield Finding(code, severity, message)
-
-
-def json_plain(value):
-    """Plain Python for JSON: numpy scalars unwrapped, NaN/inf → None, tuples → lists."""
-    if isinstance(value, dict):
-        return {str(k): json_plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [json_plain(v) for v in value]
-    if isinstance(value, (np.bool_, bool)):
-        return bool(value)
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        value = float(value)
-        return value if math.isfinite(value) else None
-    if isinstance(value, np.ndarray):
-        return json_plain(value.tolist())
-    return value
 
 
 def read_result(folder) -> Result:

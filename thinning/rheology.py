@@ -1,6 +1,6 @@
 """Strain rate, Hencky strain, apparent extensional viscosity and dimensionless groups.
 
-Kinematics of a slender thinning cylinder (McKinley 2005; physics.md §4):
+Kinematics of a slender thinning cylinder (McKinley 2005; docs/physics.md §4):
 ε̇ = −2 d ln D/dt, ε = 2 ln(D0/D), and the apparent extensional viscosity in
 the X = 1 convention, η_E = σ/(−dD/dt). Derivatives come from sliding
 weighted line fits of ln D (:func:`thinning.kinematics.local_log_slopes`), never
@@ -89,7 +89,7 @@ def dimensionless_groups(*, initial_diameter, surface_tension, density=None, vis
 
     ``viscosity`` is the zero-shear viscosity η0 (Pa·s), ``density`` ρ
     (kg/m³), ``relaxation_time`` λ (s). Also the Rayleigh and visco-capillary
-    times (s). Definitions: physics.md §2 (McKinley 2005; Rodd et al. 2005).
+    times (s). Definitions: docs/physics.md §2 (McKinley 2005; Rodd et al. 2005).
     """
     r0 = 0.5 * float(initial_diameter)
     sigma = float(surface_tension)

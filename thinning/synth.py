@@ -41,6 +41,7 @@ import numpy as np
 from scipy.ndimage import minimum_filter1d
 
 from thinning import laws
+from thinning.units import GEOMETRIES
 from thinning.synth_io import (FORMATS, Truth, check_format, load_truth, truth_path, write_frames,
                                write_truth)
 
@@ -64,7 +65,6 @@ STREAK_MIN_WIDTH_PX = 15.0
 
 BLUR_KINDS = ("gaussian", "disk", "lorentzian")
 ORIENTATIONS = ("vertical", "horizontal")
-GEOMETRIES = ("plates", "dripping")
 
 
 # --- parameters ---------------------------------------------------------------------------

@@ -13,11 +13,12 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+
+from .values import json_plain
 
 __all__ = ["FORMATS", "Truth", "truth_path", "write_truth", "load_truth", "check_format",
            "write_frames"]
@@ -79,26 +80,9 @@ class Truth:
         """Plain JSON-ready dict (NaN → None)."""
         out = {"schema": "thinning.synth-truth/1"}
         for f in dataclasses.fields(self):
-            out[f.name] = _plain(getattr(self, f.name))
+            out[f.name] = json_plain(getattr(self, f.name))
         out["n_frames"] = self.n_frames
         return out
-
-
-def _plain(value):
-    if isinstance(value, np.ndarray):
-        return [_plain(v) for v in value.tolist()]
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, (np.floating, float)):
-        v = float(value)
-        return v if math.isfinite(v) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, np.bool_):
-        return bool(value)
-    return value
 
 
 # --- writers -------------------------------------------------------------------------------

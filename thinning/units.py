@@ -11,7 +11,7 @@ from __future__ import annotations
 import functools
 import math
 import re
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass
 
 from .errors import ThinningError
 
@@ -153,7 +153,6 @@ OPTION_FIELDS = {
     "geometry": "geometry",
     "roi": "roi_px",
 }
-assert set(OPTION_FIELDS.values()) == {f.name for f in fields(AnalysisOptions)}
 
 
 def parse_option(name, text):

@@ -1,9 +1,43 @@
-"""Small helpers shared by the writers and readers of results: numbers read back, file names."""
+"""Small helpers shared by the writers and readers of results: plain JSON values, numbers read
+back, file names, UTC time stamps."""
 
 from __future__ import annotations
 
 import math
 import re
+from collections.abc import Mapping
+from datetime import datetime, timezone
+from pathlib import PurePath
+
+import numpy as np
+
+#: The one form of every time stamp the tool writes: ISO 8601, UTC, to the second.
+UTC_FORMAT = "%Y-%m-%dT%H:%M:%SZ"
+
+
+def utc_text(moment: datetime | None = None) -> str:
+    """``moment`` (default: now) as ISO 8601 UTC text to the second, e.g. ``2026-12-02T16:39:29Z``;
+    a moment without a time zone is taken as UTC."""
+    moment = datetime.now(timezone.utc) if moment is None else moment
+    if moment.tzinfo is None:
+        moment = moment.replace(tzinfo=timezone.utc)
+    return moment.astimezone(timezone.utc).strftime(UTC_FORMAT)
+
+
+def json_plain(value):
+    """Plain Python for JSON: mappings and sequences copied, numpy scalars and arrays unwrapped,
+    NaN and infinities as None, paths as text."""
+    if isinstance(value, Mapping):
+        return {str(k): json_plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return [json_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, PurePath):
+        return str(value)
+    return value
 
 
 def finite_number(value) -> float | None:

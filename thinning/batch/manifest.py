@@ -1,6 +1,6 @@
 """Batch manifests: one CSV row per recording, with its sample identity and options.
 
-Columns (contract, ``interface.md`` › ``thinning batch``): ``path`` (required;
+Columns (contract, ``docs/contract.md`` › ``thinning batch``): ``path`` (required;
 relative to the manifest's folder), ``sample``, ``lot``, ``product``,
 ``replicate``, ``made_on``, ``notes``, and every ``analyse`` option with
 underscores (``fps``, ``pixel_size``, …, ``geometry``, ``roi``). A cell takes

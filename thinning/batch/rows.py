@@ -11,7 +11,6 @@ again unless ``redo``.
 from __future__ import annotations
 
 import contextlib
-import datetime as _dt
 import importlib
 import json
 import logging
@@ -25,6 +24,7 @@ from .. import __version__
 from ..errors import ThinningError
 from ..result import Result
 from ..units import AnalysisOptions
+from ..values import utc_text
 
 log = logging.getLogger(__name__)
 
@@ -40,11 +40,6 @@ ROW_FILE = "row.json"
 
 #: Suffix of the temporary sibling folders a row is written through.
 TEMP_SUFFIX = ".thinning-tmp"
-
-
-def utc_now() -> str:
-    """The current UTC time, ISO 8601 to the second with a ``Z``."""
-    return _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 @dataclass(frozen=True)
@@ -108,7 +103,7 @@ def run_row(task: RowTask) -> RowOutcome:
         if result is None:
             shutil.rmtree(temp)
             temp.mkdir()
-        return _publish(temp, folder, task, RowOutcome(task.row, status, reason, result, utc_now()))
+        return _publish(temp, folder, task, RowOutcome(task.row, status, reason, result, utc_text()))
 
 
 def _analyser(spec: str):
@@ -176,7 +171,7 @@ def write_failed_folder(task: RowTask, reason: str) -> RowOutcome:
     temp = _temp_sibling(folder, "new")
     temp.mkdir(parents=True)
     with _cleared(temp):
-        return _publish(temp, folder, task, RowOutcome(task.row, "failed", reason, None, utc_now()))
+        return _publish(temp, folder, task, RowOutcome(task.row, "failed", reason, None, utc_text()))
 
 
 def _publish(temp: Path, folder: Path, task: RowTask, outcome: RowOutcome) -> RowOutcome:

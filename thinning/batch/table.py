@@ -22,7 +22,7 @@ import numpy as np
 from .. import __version__, atomic
 from ..errors import ThinningError
 from ..result import Result
-from ..values import finite_number, row_folder_name
+from ..values import finite_number, row_folder_name, utc_text
 from .manifest import ManifestRow
 from .rows import RowOutcome
 
@@ -226,6 +226,6 @@ def read_batch(batch_dir) -> list[FinishedRow]:
         stamp = _text(row.get("analysed_at"))
         if not stamp:
             source = result_path if result_path.is_file() else table
-            stamp = datetime.fromtimestamp(source.stat().st_mtime, timezone.utc).isoformat()
+            stamp = utc_text(datetime.fromtimestamp(source.stat().st_mtime, timezone.utc))
         loaded.append(FinishedRow(identity, result, stamp, curve))
     return loaded

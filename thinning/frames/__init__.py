@@ -228,7 +228,7 @@ class VideoSource(FrameSource):
     MJPG files are read as compressed packets and decoded in a small thread
     pool (OpenCV releases the GIL), :data:`DECODE_BATCH` packets per task,
     the fastest route measured on this kind of machine
-    (``shared/reference/platform-notes.md``, ``benchmarks/speed.py``).
+    (``benchmarks/speed.py``).
     """
 
     def __init__(self, path, *, decode_threads=None):

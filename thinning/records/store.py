@@ -10,7 +10,7 @@ import os
 import random
 import time
 from dataclasses import dataclass, field
-from datetime import date, datetime, timezone
+from datetime import date, datetime
 from pathlib import Path
 from typing import Callable, Iterable, Mapping, TypeVar
 
@@ -25,6 +25,7 @@ from ..result import Result
 from .schema import (SCHEMA_VERSION, curves, failures, lots, measurements, metadata, products, samples,
                      schema_version, NUMBER_KEYS)
 from ..values import finite_number as _number
+from ..values import json_plain, utc_text
 from ..batch.table import read_batch, read_curve
 
 logger = logging.getLogger(__name__)
@@ -77,19 +78,14 @@ def default_db_url() -> str:
     return os.environ.get(ENV_DB) or f"sqlite:///{default_db_path()}"
 
 
-def _utc_now() -> str:
-    return datetime.now(timezone.utc).isoformat()
-
-
 def normalise_timestamp(value: str) -> str:
-    """An ISO 8601 time → UTC ISO text (a time without zone is taken as UTC)."""
+    """An ISO 8601 time → the tool's one UTC form (:func:`thinning.values.utc_text`; a time without
+    a zone is taken as UTC)."""
     try:
         moment = datetime.fromisoformat(str(value).strip().replace("Z", "+00:00"))
     except ValueError:
         raise RecordsError(f"{value!r} is not an ISO 8601 time such as 2026-03-01T12:00:00+00:00.") from None
-    if moment.tzinfo is None:
-        moment = moment.replace(tzinfo=timezone.utc)
-    return moment.astimezone(timezone.utc).isoformat()
+    return utc_text(moment)
 
 
 def _made_on(value) -> str | None:
@@ -111,24 +107,9 @@ def _text(value) -> str:
 
 
 
-def _plain(value):
-    """JSON-ready copy: NaN/inf → None, tuples → lists, numpy scalars and arrays → Python."""
-    if isinstance(value, Mapping):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple, np.ndarray)):
-        return [_plain(v) for v in value]
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, Path):
-        return str(value)
-    return value
-
-
 def _json(value) -> str:
     """Canonical JSON (sorted keys, no NaN): the same text for an in-memory result and its file."""
-    return json.dumps(_plain(value), sort_keys=True, allow_nan=False, separators=(",", ":"))
+    return json.dumps(json_plain(value), sort_keys=True, allow_nan=False, separators=(",", ":"))
 
 
 def result_fingerprint(result: Mapping) -> str:
@@ -205,7 +186,7 @@ class Records:
             metadata.create_all(conn)
             found = conn.execute(select(func.max(schema_version.c.version))).scalar()
             if found is None:
-                conn.execute(schema_version.insert().values(version=SCHEMA_VERSION, applied_at=_utc_now()))
+                conn.execute(schema_version.insert().values(version=SCHEMA_VERSION, applied_at=utc_text()))
             elif found > SCHEMA_VERSION:
                 raise RecordsError(f"the records database has schema version {found}, newer than this "
                                    f"thinning understands ({SCHEMA_VERSION}); upgrade thinning.")
@@ -227,7 +208,7 @@ class Records:
         specs = list(specs)
 
         def work(conn: Connection) -> None:
-            now = _utc_now()
+            now = utc_text()
             for spec in specs:
                 values = {"has_spec": True, "replicates": spec.replicates, "max_cv": spec.max_cv,
                           "spec_loaded_at": now}
@@ -311,7 +292,7 @@ class Records:
                curve: tuple[np.ndarray, np.ndarray] | None) -> str:
         """Store one row inside ``conn``'s transaction; returns what happened."""
         sample_id = self._sample_id(conn, meta, analysed_at)
-        now = _utc_now()
+        now = utc_text()
         if meta["status"] != "ok":
             sha = meta["sha256"] or _text(((result or {}).get("source") or {}).get("sha256"))
             values = {"reason": meta["reason"] or "failed without a reason", "analysed_at": analysed_at,

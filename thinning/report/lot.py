@@ -15,13 +15,13 @@ import base64
 import io
 import json
 import math
-from datetime import datetime, timezone
 from pathlib import Path
 
 import jinja2
 import numpy as np
 
 from .. import __version__, atomic, qc
+from ..values import utc_text
 
 TEMPLATE_DIR = Path(__file__).parent / "templates"
 
@@ -216,7 +216,7 @@ def lot_report_html(detail, *, generated_at: str | None = None) -> str:
                      "options": h["options"]} for h in detail.history],
         "cautions": CAUTIONS, "sources": SOURCES, "version": __version__,
         "measurement_versions": ", ".join(tool_versions) or MISSING,
-        "generated_at": generated_at or datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "generated_at": generated_at or utc_text(),
     }
     return environment.get_template("lot.html").render(**context)
 
