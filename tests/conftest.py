@@ -27,3 +27,10 @@ def beaded_recording(request):
                                         pixel_size_m=25e-6, beads=True)
     frames, _ = synth.render_recording(scene, synth.Optics(**request.param), seed=3)
     return list(frames)
+
+
+def pytest_collection_modifyitems(items):
+    """Tests that start a service (PostgreSQL, Chromium) are slow: the fast subset leaves them out."""
+    for item in items:
+        if "postgresql" in item.name or item.get_closest_marker("chromium") or item.get_closest_marker("postgres"):
+            item.add_marker(pytest.mark.slow)

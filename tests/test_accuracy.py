@@ -17,6 +17,8 @@ from thinning import synth
 from thinning.frames import open_source
 from thinning.measure import measure_recording
 
+pytestmark = pytest.mark.slow  # renders or runs whole recordings, batches or services
+
 PLATES = dict(fps_hz=2500.0, frame_size_px=(200, 160), pixel_size_m=25e-6)
 DRIP = dict(fps_hz=25000.0, frame_size_px=(240, 200), pixel_size_m=8e-6)
 

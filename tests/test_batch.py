@@ -25,6 +25,8 @@ from thinning.batch import (RESULT_COLUMNS, TABLE_COLUMNS, TEMP_SUFFIX, row_fold
 from thinning.cli import cli
 from thinning.result import Result
 
+pytestmark = pytest.mark.slow  # renders or runs whole recordings, batches or services
+
 FAKE = "test_batch:fake_analyse"
 CALLS_ENV = "THINNING_TEST_CALLS"      # file the fake appends one line per analysis to
 MARKS_ENV = "THINNING_TEST_MARKS"      # folder for the fake's crash-once markers

@@ -15,7 +15,7 @@ import json
 import numpy as np
 import pytest
 
-from thinning.characterise import characterise
+from thinning.characterisation import characterise
 from thinning.checks import Severity
 from thinning.laws import Fluid, filament_model
 
@@ -109,6 +109,7 @@ def window_value(fluid, d0, c):
     return -1.0 / (3.0 * np.polyfit(tt, np.log(hist.diameter_at(tt)), 1)[0])
 
 
+@pytest.mark.slow
 def test_relaxation_time_over_the_polymer_matrix():
     # Truth: the fluid's λ. With L² = 10³ the model never thins at a constant rate (the chains
     # are near full length before the start-up overshoot has died away: its local λ runs from
@@ -145,6 +146,7 @@ def test_newtonian_matrix_gives_regime_and_viscosity_without_relaxation_time():
         assert any(f.code == "no-elastic-regime" for f in c.findings)
 
 
+@pytest.mark.slow
 def test_interval_covers_the_true_relaxation_time_about_95_percent():
     # truth: the λ of the closed-form elasto-capillary law the series follows exactly
     hits, n = 0, 0
@@ -161,6 +163,7 @@ def test_interval_covers_the_true_relaxation_time_about_95_percent():
     assert 0.88 <= hits / n <= 0.99, hits / n
 
 
+@pytest.mark.slow
 def test_interval_on_the_filament_model_covers_its_window_value():
     # Truth: the relaxation time the noise-free model shows in the window the analysis chose,
     # λ_w = −1/(3 s) from its ln D slope there. The Oldroyd-B model's own local value sits

@@ -19,7 +19,7 @@ from test_batch import (DEFAULTS, FAKE, SYNTHETIC_DEFAULTS, read_table, write_st
                         write_synthetic_set)
 from thinning.batch import SchedulerUnreachable, run_batch
 
-pytestmark = pytest.mark.dask
+pytestmark = [pytest.mark.dask, pytest.mark.slow]
 
 #: Columns that may differ between two runs of the same batch.
 TIMESTAMPS = ("analysed_at",)

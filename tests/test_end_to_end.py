@@ -14,6 +14,8 @@ from thinning import laws, synth
 from thinning.analysis import analyse
 from thinning.units import AnalysisOptions
 
+pytestmark = pytest.mark.slow  # renders or runs whole recordings, batches or services
+
 
 def _fluid(lam, *, eta_s=1e-3, g=2.0, l2=None, sigma=0.06, rho=1000.0):
     return laws.Fluid(surface_tension=sigma, solvent_viscosity=eta_s, density=rho,

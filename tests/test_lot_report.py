@@ -12,6 +12,8 @@ from thinning import records as rec
 from thinning.cli_records import report as report_cli
 from thinning.report.lot import lot_report_html, report_filename, write_lot_report
 
+pytestmark = pytest.mark.slow  # renders or runs whole recordings, batches or services
+
 SPECS = '[[product]]\nname = "ink-A"\nrelaxation_time_s = [0.008, 0.012]\nreplicates = 3\nmax_cv = 0.10\n'
 HOSTILE_SAMPLE = '<script>alert("x")</script>'
 HOSTILE_NOTE = '<img src=x onerror="alert(1)"> & more'
@@ -66,7 +68,7 @@ def _external_references(html):
 
 
 def test_the_report_states_the_verdict_first_and_escapes_user_text(store, tmp_path):
-    path = write_lot_report(store, "A/B 7", out_dir=tmp_path / "out", generated_at="2026-02-02T00:00:00+00:00")
+    path = write_lot_report(store, "A/B 7", out_dir=tmp_path / "out", generated_at="2026-02-02T00:00:00Z")
     assert path == tmp_path / "out" / "A_B_7.html"
     html = path.read_text(encoding="utf-8")
     verdict_at = html.index('id="verdict"')

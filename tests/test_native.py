@@ -381,7 +381,8 @@ def test_header_naming_a_missing_mraw(tmp_path, header):
     (lambda t: t.replace("#Camera Information Header", "# notes"), "does not start with"),
     (lambda t: t.replace("Color Bit : 12", "Color Bit : 10"), "10-bit MRAW data is not supported"),
     (lambda t: t.replace("Color Type : Mono", "Color Type : Color"), "colour MRAW .* \\(Color Type 'Color'\\)"),
-    (lambda t: t.replace("File Format : MRaw", "File Format : TIFF"), "not describe MRaw data \\(File Format 'TIFF'\\)"),
+    (lambda t: t.replace("File Format : MRaw", "File Format : TIFF"),
+     "not describe MRaw data \\(File Format 'TIFF'\\)"),
     (lambda t: t.replace("Image Width : 8", "Image Width : eight"), "'Image Width' is not a whole number"),
     (lambda t: t.replace("Image Width : 8", "Image Width : 0"), "'Image Width' is 0"),
     (lambda t: t.replace("Image Width : 8", "Image Width : 7").replace("Image Height : 6", "Image Height : 5"),
@@ -479,6 +480,7 @@ chunks = st.one_of(st.binary(min_size=1, max_size=8),
                    st.sampled_from(INTERESTING).map(lambda v: struct.pack("<H", v & 0xFFFF)))
 
 
+@pytest.mark.slow
 @settings(max_examples=2000, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(base=st.sampled_from(["packed12", "plain8", "plain16", "random"]),
@@ -514,6 +516,7 @@ values = st.one_of(st.integers(-(1 << 40), 1 << 40).map(str), st.text(max_size=1
                                     "Raw", "8", "10", "12", "16", "24", "3", "5", "7", "1/800000"]))
 
 
+@pytest.mark.slow
 @settings(max_examples=2000, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(header=st.sampled_from(["cih", "cihx"]),

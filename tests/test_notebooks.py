@@ -13,7 +13,10 @@ import shutil
 from pathlib import Path
 
 import nbformat
+import pytest
 from nbclient import NotebookClient
+
+pytestmark = pytest.mark.slow  # runs both notebooks in a kernel
 
 ROOT = Path(__file__).resolve().parent.parent
 NOTEBOOKS = ROOT / "notebooks"

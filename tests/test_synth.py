@@ -196,6 +196,7 @@ def test_truth_json_has_no_nan():
     assert data["geometry"] == "dripping"
 
 
+@pytest.mark.slow
 def test_writing_streams_in_constant_memory(tmp_path):
     def peak(n_frames):
         scene = small_scene(n_frames=n_frames, frame_size_px=(96, 80))

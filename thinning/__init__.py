@@ -55,7 +55,7 @@ _PUBLIC = {
     "fit_viscocapillary": "thinning.fits",
     "fit_inertiocapillary": "thinning.fits",
     "fit_finite_extensibility": "thinning.fits",
-    "characterise": "thinning.characterise",
+    "characterise": "thinning.characterisation",
     "analyse": "thinning.analysis",
     "write_outputs": "thinning.analysis",
     "analyse_to": "thinning.analysis",

@@ -31,7 +31,7 @@ log = logging.getLogger(__name__)
 #: Without --fps, a container rate below this (1/s) is used with a warning (likely a playback rate).
 PLAYBACK_RATE_LIMIT_HZ = 500.0
 #: Modules of the stages after the measurement, imported in the background while it runs.
-LATER_STAGES = ("thinning.characterise", "thinning.plots", "thinning.report.recording")
+LATER_STAGES = ("thinning.characterisation", "thinning.plots", "thinning.report.recording")
 DIAMETER_COLUMNS = ["frame", "time_s", "diameter_m", "neck_position_m", "strain_rate_1_s",
                     "hencky_strain", "apparent_extensional_viscosity_Pa_s"]
 
@@ -117,7 +117,7 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
                                  width_px=int(recording.shape[1]), height_px=int(recording.shape[0]),
                                  bit_depth=int(recording.bit_depth))
 
-    from .characterise import characterise
+    from .characterisation import characterise
 
     pixel_size_m = _pixel_size(options, series)
     calibration = Calibration(fps_hz=fps_hz, pixel_size_m=pixel_size_m)

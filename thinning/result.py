@@ -26,7 +26,7 @@ from .units import AnalysisOptions, Calibration
 from .values import json_plain
 
 if TYPE_CHECKING:  # imported where needed: the characterisation stage loads scipy
-    from .characterise import Characterisation
+    from .characterisation import Characterisation
 
 RESULT_SCHEMA = "thinning.result/1"
 
@@ -146,7 +146,7 @@ class Result:
     @classmethod
     def from_json(cls, data: dict, *, table: pd.DataFrame | None = None) -> "Result":
         """The result held by a ``result.json`` dict (missing keys read as None)."""
-        from .characterise import Characterisation
+        from .characterisation import Characterisation
 
         if not isinstance(data, dict):
             raise TypeError("a result.json holds one JSON object")

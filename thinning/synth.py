@@ -367,7 +367,7 @@ def _timeline(scene: Scene, hist, n_frames: int, *, times=None) -> _Timeline:
                      a_lower=a_lower, a_neck=a_neck, half_thread=half_thread,
                      tip_retraction=tip, bead_radius=bead, lower_end_radius=lower_radius,
                      pendant_length=pendant_length,
-                     pendant_radius=min(1.4 * rp, 0.42 * scene.frame_size_px[1]), 
+                     pendant_radius=min(1.4 * rp, 0.42 * scene.frame_size_px[1]),
                      r_start=max(r_fat, r0),
                      plate_radius=rp, style=style, breakup_time_s=t_b,
                      free_thinning_start_s=t_ft)

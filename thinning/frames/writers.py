@@ -270,7 +270,7 @@ Color Bit : {color_bit}
 File Format : MRaw
 EffectiveBit Depth : {depth}
 EffectiveBit Side : {side}
-Comment Text : 
+Comment Text :
 Shutter Type2(nsec) : {ns}
 """
 
