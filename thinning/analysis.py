@@ -60,14 +60,34 @@ def resolve_frame_rate(options: AnalysisOptions, container_fps):
 
 
 def analyse(source, options: AnalysisOptions, *, progress=None) -> Result:
-    """Analyse one recording; return its :class:`~thinning.result.Result` (nothing is written).
+    """Analyse one recording; nothing is written.
 
-    ``source`` a recording path (see :func:`thinning.frames.open_source`);
-    ``options`` the analysis options in SI; ``progress`` an optional callable
-    ``progress(frames_done, n_frames)``. Raises :class:`UnusableInput` (one
-    sentence) for a recording or options it cannot use. Linear algebra runs on
-    one thread: the fits are small, and an idle BLAS thread pool spins on
-    cores that the decoders (or other workers) need.
+    Parameters
+    ----------
+    source : str or path
+        A recording: video file, multi-page TIFF, image folder or native camera
+        file (see :func:`thinning.frames.open_source`).
+    options : AnalysisOptions
+        The analysis options in SI (:func:`thinning.units.options_from_text`
+        reads them from text with units).
+    progress : callable, optional
+        ``progress(frames_done, n_frames)``, called every 256 frames.
+
+    Returns
+    -------
+    Result
+        The frozen result: neck series, per-frame SI table, regimes, fits,
+        rheology numbers and findings.
+
+    Raises
+    ------
+    UnusableInput
+        One sentence, for a recording or options that cannot be analysed.
+
+    Notes
+    -----
+    Linear algebra runs on one thread: the fits are small, and an idle BLAS
+    thread pool spins on cores that the decoders (or other workers) need.
     """
     from threadpoolctl import threadpool_limits
 
@@ -76,7 +96,19 @@ def analyse(source, options: AnalysisOptions, *, progress=None) -> Result:
 
 
 def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> Result:
-    """:func:`analyse`, then :func:`write_outputs` into ``out_dir``: the ``thinning analyse`` job."""
+    """Analyse one recording and write its files: the ``thinning analyse`` job.
+
+    Parameters
+    ----------
+    source, options, progress
+        As for :func:`analyse`.
+    out_dir : str or path
+        The output folder (created if needed); see :func:`write_outputs`.
+
+    Returns
+    -------
+    Result
+    """
     result = analyse(source, options, progress=progress)
     write_outputs(result, out_dir)
     return result
@@ -175,10 +207,20 @@ def diameter_csv_text(table: pd.DataFrame) -> str:
 
 
 def write_outputs(result: Result, out_dir) -> Path:
-    """Write every file of one analysed recording into ``out_dir`` (created if needed).
+    """Write every file of one analysed recording.
 
-    ``diameter.csv``, the figures, ``report.html`` and, last, ``result.json``;
-    each replaced atomically. Returns the folder.
+    Parameters
+    ----------
+    result : Result
+        A fresh result of :func:`analyse` (with its per-frame table and neck series).
+    out_dir : str or path
+        The folder, created if needed. ``diameter.csv``, the figures,
+        ``report.html`` and, last, ``result.json`` are each replaced atomically.
+
+    Returns
+    -------
+    pathlib.Path
+        The folder.
     """
     from .plots import write_figures
     from .report.recording import write_recording_report

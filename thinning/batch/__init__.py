@@ -83,20 +83,43 @@ def _clean_leftovers(out: Path):
 def run_batch(manifest, out_dir, *, defaults: dict | None = None, workers: int | None = None,
               scheduler: str | None = None, redo: bool = False, on_row=None, records=None,
               analyser: str = DEFAULT_ANALYSER, connect_timeout_s: float = 20.0) -> BatchReport:
-    """Analyse every row of ``manifest`` into ``out_dir``; write ``results.csv`` as rows finish.
+    """Analyse every row of a manifest into a folder; ``results.csv`` is rewritten as rows finish.
 
-    ``defaults``: option texts from the command line (``{"fps": "10kHz", …}``)
-    for empty cells. ``workers``: local processes (default ``os.cpu_count()``);
-    ``scheduler``: a Dask scheduler address instead. ``records``: an open
-    :class:`~thinning.records.Records`; each finished row is stored in it as it
-    finishes (its own transaction, so an interrupted batch keeps what was
-    stored). ``on_row(manifest_row,
-    outcome, folder)`` is called in this process as each row finishes, in finishing
-    order. ``analyser``: ``"module:function"`` with the signature of
-    :func:`thinning.analysis.analyse` (the default), imported in the workers.
-    ``connect_timeout_s``: how long to wait for the Dask scheduler.
-    Raises :class:`~thinning.manifest.UnusableManifest`, :class:`BatchBusy`,
-    :class:`SchedulerUnreachable`.
+    Parameters
+    ----------
+    manifest : str or path
+        The manifest CSV (see :mod:`thinning.batch.manifest`).
+    out_dir : str or path
+        The batch folder: one ``<row>-<name>/`` folder per row and ``results.csv``.
+    defaults : dict, optional
+        Option texts for empty cells, as on the command line (``{"fps": "10kHz", …}``).
+    workers : int, optional
+        Local worker processes (default: the number of cores).
+    scheduler : str, optional
+        A Dask scheduler address (``tcp://host:port``) to run on instead.
+    redo : bool
+        Analyse every row again, even those up to date.
+    on_row : callable, optional
+        ``on_row(manifest_row, outcome, folder)``, called in this process as each
+        row finishes, in finishing order.
+    records : Records, optional
+        An open records database; each finished row is stored in it as it
+        finishes (its own transaction, so an interrupted batch keeps what was stored).
+    analyser : str
+        ``"module:function"`` with the signature of :func:`thinning.analysis.analyse_to`
+        (the default), imported in the workers.
+    connect_timeout_s : float
+        How long to wait for the Dask scheduler (s).
+
+    Returns
+    -------
+    BatchReport
+        The results table and the counts.
+
+    Raises
+    ------
+    UnusableManifest, BatchBusy, SchedulerUnreachable
+        One sentence each.
     """
     rows = read_manifest(manifest)
     out = Path(out_dir).resolve()

@@ -145,11 +145,30 @@ def measure_recording(frames: Iterable[np.ndarray], *, geometry="plates", roi=No
                       n_frames=None) -> NeckSeries:
     """Measure the neck in every frame of a stream (one pass, constant memory).
 
-    ``frames`` is iterated once; ``geometry`` ``"plates"`` or ``"dripping"``;
-    ``roi`` optional ``(x0, y0, x1, y1)``; ``n_frames`` the expected count
-    (for spreading the snapshots; taken from ``len(frames)`` when possible).
-    Raises :class:`thinning.measure.layout.NoFilament` when no frame shows a filament.
+    Parameters
+    ----------
+    frames : iterable of 2-D uint8 or uint16 arrays
+        The frames in order, iterated once (a :class:`~thinning.frames.FrameSource`).
+    geometry : {"plates", "dripping"}
+    roi : tuple of int, optional
+        ``(x0, y0, x1, y1)`` in full-frame pixels; found automatically otherwise.
+    n_frames : int, optional
+        The expected count, for spreading the picture strip (taken from
+        ``len(frames)`` when possible).
 
+    Returns
+    -------
+    NeckSeries
+        The neck of every frame in pixels, the layout, the start of free
+        thinning, the breakup frame and the findings.
+
+    Raises
+    ------
+    NoFilament
+        When no frame shows a filament.
+
+    Notes
+    -----
     The few small least-squares fits of the light field run on one BLAS
     thread: an idle BLAS thread pool spins, taking the cores from the
     decoders (about 5 % of the CPU time of a streamed recording).

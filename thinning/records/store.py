@@ -530,10 +530,24 @@ def _prepare_sqlite(engine: Engine) -> None:
 
 
 def open_records(url: str | None = None) -> Records:
-    """Open (creating if needed) the records database at a SQLAlchemy URL.
+    """Open the records database, creating it (and an SQLite file's folder) if needed.
 
-    ``None`` means :func:`default_db_url`. The folder of an SQLite file is
-    created. Raises :class:`RecordsError` for an unusable URL or database.
+    Parameters
+    ----------
+    url : str, optional
+        Any SQLAlchemy URL (``sqlite:///records.db``,
+        ``postgresql+psycopg://user:pw@host:port/db``); None means
+        :func:`default_db_url`.
+
+    Returns
+    -------
+    Records
+        Close it with ``close()`` or use it in a ``with`` block.
+
+    Raises
+    ------
+    RecordsError
+        For an unusable URL or database.
     """
     url = url or default_db_url()
     try:
