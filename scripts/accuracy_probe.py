@@ -90,8 +90,8 @@ def optics_tags(renderer: str, optics: dict) -> str:
         if optics["background_level"] >= 0.93:
             tags.append("clipping")
         return " ".join(tags)
-    tags = [f"NA {optics['numerical_aperture']:.3f} airy {optics['airy_radius_px']:.1f}px "
-            f"β {optics['illumination_half_angle_deg']:.1f}°"]
+    tags = [(f"NA {optics['numerical_aperture']:.3f} airy {optics['airy_radius_px']:.1f}px "
+             f"β {optics['illumination_half_angle_deg']:.1f}°")]
     if optics["defocus_m"]:
         tags.append("defocus")
     if optics["exposure_fraction"]:
@@ -336,7 +336,9 @@ def summarise(cases: list[dict]) -> dict:
                     "median_abs_frames": _median(abs(v) for v in brk),
                     "worst_frames": max(brk, key=abs, default=None),
                     "subpixel_within_3_frames": sum(abs(v) <= TARGETS["breakup_frames"] for v in vanish),
-                    "subpixel_median_abs_frames": _median(abs(v) for v in vanish)},
+                    "subpixel_median_abs_frames": _median(abs(v) for v in vanish),
+                    "by_liquid": {kind: _breakups([c for c in parting if c["liquid"] == kind])
+                                  for kind in TRUE_REGIME if any(c["liquid"] == kind for c in parting)}},
         "free_start": {"median_abs_frames": _median(abs(v) for v in start),
                        "worst_frames": max(start, key=abs, default=None)},
         "quality": dict(Counter(c.get("quality", c["status"]) for c in cases)),
@@ -344,6 +346,13 @@ def summarise(cases: list[dict]) -> dict:
         "wall_s": {"median": _median(c.get("wall_s") for c in cases),
                    "total": float(sum(c.get("wall_s", 0.0) for c in cases))},
     }
+
+
+def _breakups(parting: list[dict]) -> dict:
+    errors = [c["breakup"]["error_frames"] for c in parting if c["breakup"]["error_frames"] is not None]
+    return {"parts": len(parting),
+            "within_3_frames": sum(abs(v) <= TARGETS["breakup_frames"] for v in errors),
+            "median_frames": _median(errors)}
 
 
 def probe(renderers, families, seeds, *, jobs: int = 1, keep=None, timeout_s: float = 900.0,
@@ -418,8 +427,8 @@ def summary_text(s: dict) -> str:
     t = TARGETS
     status = ", ".join(f"{k} {v}" for k, v in sorted(s["status"].items()))
     lines = [f"== {s['renderer']} / {s['family']}: {s['n']} recordings ({status}) ==",
-             "true D (px)      n    median±   median|e|  p95|e|   target |median±| ≤ "
-             f"{t['band_median_signed_px']}"]
+             ("true D (px)      n    median±   median|e|  p95|e|   target |median±| ≤ "
+              f"{t['band_median_signed_px']}")]
     for b in s["bands"]:
         lo, hi = b["band_px"]
         name = f"{lo:g}–{hi:g}" if hi is not None else f"{lo:g}+"
@@ -428,7 +437,8 @@ def summary_text(s: dict) -> str:
                      f"{_num(b['median_abs'], '.4f'):>8s}  {_num(b['p95_abs'], '.4f'):>7s}   {_mark(ok)}")
     mm, mp = s["median_of_median_abs_px"], s["median_of_p95_px"]
     worst = s["worst_median_abs"]
-    lines.append(f"per recording: median of median |e| {_num(mm)} px (target ≤ {t['median_of_median_abs_px']}: "
+    lines.append(f"per recording: median of median |e| {_num(mm)} px "
+                 f"(target ≤ {t['median_of_median_abs_px']}: "
                  f"{_mark(None if mm is None else mm <= t['median_of_median_abs_px'])}); median of p95 "
                  f"{_num(mp)} px (target ≤ {t['median_of_p95_px']}: "
                  f"{_mark(None if mp is None else mp <= t['median_of_p95_px'])}); worst median |e| "
@@ -438,7 +448,8 @@ def summary_text(s: dict) -> str:
     if lam["elastic"]:
         lw = lam["worst"]
         lines.append(
-            f"λ: {lam['elastic']} elastic, {lam['measured']} with λ; median |err| {_pct(lam['median_abs'], '')}"
+            f"λ: {lam['elastic']} elastic, {lam['measured']} with λ; "
+            f"median |err| {_pct(lam['median_abs'], '')}"
             f" (target ≤ {100 * t['lambda_median_abs']:g} %: "
             f"{_mark(None if lam['median_abs'] is None else lam['median_abs'] <= t['lambda_median_abs'])}); "
             f"worst {'—' if lw is None else _pct(lw['rel_error']) + ' (seed ' + str(lw['seed']) + ')'}; "
@@ -460,7 +471,10 @@ def summary_text(s: dict) -> str:
                  f"{_num(b['median_abs_frames'], '.2f')} frames, worst {_num(b['worst_frames'], '+.1f')}; "
                  f"against the first frame with true D < 1 px: within 3 frames "
                  f"{b['subpixel_within_3_frames']}/{b['parts']}, median |err| "
-                 f"{_num(b['subpixel_median_abs_frames'], '.2f')} frames")
+                 f"{_num(b['subpixel_median_abs_frames'], '.2f')} frames; by liquid: "
+                 + ", ".join(f"{k} {v['within_3_frames']}/{v['parts']} "
+                             f"(median {_num(v['median_frames'], '+.1f')})"
+                             for k, v in b["by_liquid"].items()))
     fs = s["free_start"]
     lines.append(f"free-thinning start: median |err| {_num(fs['median_abs_frames'], '.2f')} frames, "
                  f"worst {_num(fs['worst_frames'], '+.1f')}")
