@@ -105,6 +105,15 @@ def optics_tags(renderer: str, optics: dict) -> str:
     return " ".join(tags)
 
 
+def optics_class(renderer: str, optics: dict) -> str:
+    """The optics group a case falls in: blur kind (synth) or backlight width (raysynth)."""
+    if renderer == "synth":
+        return f"{optics['blur_kind']} blur"
+    beta = optics["illumination_half_angle_deg"]
+    return "collimated β ≤ 1°" if beta <= 1.0 else "intermediate β 1–10°" if beta <= 10.0 \
+        else "diffuse β > 10°"
+
+
 def _stats(errors: np.ndarray) -> dict:
     if errors.size == 0:
         return {"n": 0, "median_signed": None, "median_abs": None, "p95_abs": None}
@@ -191,7 +200,8 @@ def run_case(renderer: str, family: str, seed: int, workdir) -> dict:
                 d0_px=truth["initial_diameter_m"] / truth["pixel_size_m"],
                 ohnesorge_d0=ohnesorge(truth, truth["initial_diameter_m"]),
                 ohnesorge_floor=ohnesorge(truth, MIN_TRUE_PX * truth["pixel_size_m"]),
-                optics=optics_tags(renderer, truth["optics"]), path=str(path),
+                optics=optics_tags(renderer, truth["optics"]),
+                optics_class=optics_class(renderer, truth["optics"]), path=str(path),
                 render_s=rendered - start)
     fluid = truth["fluid"]
     options = AnalysisOptions(fps_hz=truth["fps_hz"], pixel_size_m=truth["pixel_size_m"],
@@ -307,11 +317,15 @@ def summarise(cases: list[dict]) -> dict:
     start = [c["free_start"]["error_frames"] for c in ok]
     wrong = Counter(f"{c['regime']['truth']} → {c['regime']['measured']}" for c in ok
                     if not c["regime"]["right"])
-    formats = {}
-    for fmt in sorted({c["format"] for c in measured}):
-        group = [c["diameter"] for c in measured if c["format"] == fmt]
-        formats[fmt] = {"n": len(group), "median_of_median_abs_px": _median(d["median_abs"] for d in group),
-                        "median_of_p95_px": _median(d["p95_abs"] for d in group)}
+    def by(key):
+        groups = {}
+        for value in sorted({c[key] for c in measured}):
+            group = [c["diameter"] for c in measured if c[key] == value]
+            groups[value] = {"n": len(group),
+                             "median_of_median_abs_px": _median(d["median_abs"] for d in group),
+                             "median_of_p95_px": _median(d["p95_abs"] for d in group),
+                             "median_signed_px": _median(d["median_signed"] for d in group)}
+        return groups
     return {
         "n": len(cases), "status": dict(Counter(c["status"] for c in cases)), "bands": bands,
         "median_of_median_abs_px": _median(c["diameter"]["median_abs"] for c in measured),
@@ -342,7 +356,7 @@ def summarise(cases: list[dict]) -> dict:
         "free_start": {"median_abs_frames": _median(abs(v) for v in start),
                        "worst_frames": max(start, key=abs, default=None)},
         "quality": dict(Counter(c.get("quality", c["status"]) for c in cases)),
-        "formats": formats,
+        "formats": by("format"), "optics": by("optics_class"), "liquids": by("liquid"),
         "wall_s": {"median": _median(c.get("wall_s") for c in cases),
                    "total": float(sum(c.get("wall_s", 0.0) for c in cases))},
     }
@@ -479,9 +493,10 @@ def summary_text(s: dict) -> str:
     lines.append(f"free-thinning start: median |err| {_num(fs['median_abs_frames'], '.2f')} frames, "
                  f"worst {_num(fs['worst_frames'], '+.1f')}")
     lines.append("quality: " + ", ".join(f"{k} {v}" for k, v in sorted(s["quality"].items())))
-    lines.append("by format: " + "; ".join(
-        f"{k} n={v['n']} med|e| {_num(v['median_of_median_abs_px'])} p95 {_num(v['median_of_p95_px'])}"
-        for k, v in s["formats"].items()))
+    for key, name in (("formats", "format"), ("optics", "optics"), ("liquids", "liquid")):
+        lines.append(f"by {name} (median per recording): " + "; ".join(
+            f"{k} n={v['n']} |e| {_num(v['median_of_median_abs_px'])} p95 {_num(v['median_of_p95_px'])} "
+            f"± {_num(v['median_signed_px'], '+.3f')}" for k, v in s[key].items()))
     lines.append(f"wall: median {_num(s['wall_s']['median'], '.1f')} s a case, "
                  f"total {s['wall_s']['total']:.0f} s")
     return "\n".join(lines)
