@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import tifffile
 
-from thinning import laws, synth
+from thinning import laws, raysynth, synth
 
 CLEAN = synth.Optics(blur_sigma_px=1.0, uneven_light=0.0, flicker=0.0, shot_noise=False,
                      read_noise=0.0, dust_specks=0, jitter_px=0.0, lens_streak=False, bit_depth=16)
@@ -297,3 +297,43 @@ def test_benchmark_recording_is_a_long_elastic_mjpg(tmp_path):
     # the elastic filament breaks near the end of the record, after thinning slowly
     assert truth.relaxation_time_s is not None
     assert 0.9 * 150 / truth.fps_hz < truth.breakup_time_s < 150 / truth.fps_hz
+
+
+@pytest.mark.parametrize("family", raysynth.FAMILIES)
+def test_random_cases_are_valid_and_deterministic(family):
+    seen = set()
+    for seed in range(8):
+        scene, optics = synth.random_case(seed, family=family)
+        assert (scene, optics) == synth.random_case(seed, family=family)
+        fluid = scene.fluid
+        assert 2e-6 <= scene.pixel_size_m <= 20e-6 and 0.5e-3 <= scene.plate_diameter_m <= 6e-3
+        assert max(scene.frame_size_px) <= 512 and 0.5 <= optics.blur_sigma_px <= 2.0
+        assert 0.020 <= fluid.surface_tension <= 0.075 and 800 <= fluid.density <= 1300
+        hist, n = synth._model(scene)
+        assert 100 <= n <= 600
+        t_breakup = scene.pre_roll_s + scene.stretch_duration_s + hist.breakup_time_s
+        assert n - (int(t_breakup * scene.fps_hz) + 1) == synth.FRAMES_AFTER_BREAKUP
+        if fluid.polymer_modulus > 0:
+            window = raysynth.elastic_window_s(hist, fluid.relaxation_time)
+            assert window * scene.fps_hz >= 15
+            assert fluid.polymer_viscosity <= synth.MAX_POLYMER_TO_SOLVENT * fluid.solvent_viscosity
+        seen.add((scene.geometry, optics.orientation))
+        artefacts = [optics.dust_specks >= 10, optics.streak_strength >= 0.7, optics.motion_blur_px > 0,
+                     optics.blur_kind == "lorentzian", optics.background_level >= 0.93]
+        if family == "artefacts":
+            assert 1 <= sum(artefacts) <= 2
+        elif family != "refraction":
+            assert not any(artefacts)
+        if family == "newtonian-still":
+            assert fluid.polymer_modulus == 0 and scene.geometry == "plates"
+            assert scene.pre_roll_s == scene.stretch_duration_s == 0.0
+        if family == "refraction":
+            assert scene.initial_diameter_m / scene.pixel_size_m >= 80
+            assert optics.lens_streak and optics.streak_strength >= 0.6
+    assert len({s[0] for s in seen}) == (1 if family == "newtonian-still" else 2)
+    assert len({s[1] for s in seen}) == 2
+
+
+def test_random_case_refuses_an_unknown_family():
+    with pytest.raises(ValueError, match="family"):
+        synth.random_case(0, family="no-such-family")

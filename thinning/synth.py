@@ -50,7 +50,8 @@ log = logging.getLogger(__name__)
 __all__ = ["Optics", "Scene", "Truth", "render_recording", "write_recording", "write_truth",
            "load_truth", "truth_path", "write_benchmark_recording", "benchmark_scene",
            "standard_scenes", "dilute_polymer_plates", "boger_fluid_plates",
-           "newtonian_viscous_plates", "water_like_dripping", "polymer_dripping", "FORMATS"]
+           "newtonian_viscous_plates", "water_like_dripping", "polymer_dripping", "random_case",
+           "ARTEFACTS", "FORMATS"]
 
 #: Sub-rows per pixel row used to integrate coverage along the image rows' normal.
 SUB_ROWS = 8
@@ -890,3 +891,141 @@ def write_benchmark_recording(path, n_frames: int = 20000, seed: int = 0,
     across the short side (``"vertical"``) or, turned, along the long one (``"horizontal"``)."""
     return write_recording(benchmark_scene(n_frames), Optics(orientation=orientation), path,
                            fmt="avi-mjpg", seed=seed)
+
+
+# --- random cases for probes and coverage tests ----------------------------------------------
+
+#: The artefacts the "artefacts" family draws one or two of.
+ARTEFACTS = ("dust", "streak", "motion-across", "motion-along", "halo", "clipping")
+#: Largest η_p/η_s drawn: beyond about 100 the 0-D model stalls near breakup (too stiff).
+MAX_POLYMER_TO_SOLVENT = 50.0
+
+
+def _log_uniform(rng, lo, hi):
+    return float(math.exp(rng.uniform(math.log(lo), math.log(hi))))
+
+
+def _draw_fluid(rng, kind: str, d0: float):
+    """A fluid of ``kind`` ("elastic", "viscous", "inertial") for initial diameter d0, or None."""
+    sigma, rho = rng.uniform(0.020, 0.075), rng.uniform(800.0, 1300.0)
+    if kind == "elastic":
+        eta, lam = _log_uniform(rng, 1e-3, 10.0), _log_uniform(rng, 3e-4, 1.0)
+        g = _log_uniform(rng, 0.5, 100.0)
+        if (g * lam > MAX_POLYMER_TO_SOLVENT * eta or g * d0 / (4.0 * sigma) > 0.5
+                or laws.elasto_capillary_number(lam, d0 / 2, surface_tension=sigma,
+                                                viscosity=eta + g * lam) < 1.0):
+            return None
+        ext = _log_uniform(rng, 1e3, 1e5) if rng.random() < 0.6 else None
+        return laws.Fluid(surface_tension=sigma, solvent_viscosity=eta, density=rho,
+                          polymer_modulus=g, relaxation_time=lam, extensibility=ext)
+    eta = _log_uniform(rng, 0.05, 10.0) if kind == "viscous" else _log_uniform(rng, 1e-3, 0.02)
+    oh = laws.ohnesorge_number(d0 / 2, surface_tension=sigma, density=rho, viscosity=eta)
+    if (kind == "viscous" and oh < 0.5) or (kind == "inertial" and oh > 0.2):
+        return None
+    return laws.Fluid(surface_tension=sigma, solvent_viscosity=eta, density=rho)
+
+
+def _draw_scene(rng, family: str):
+    """A scene of ``family`` with its frame rate set from the model, or None (draw again)."""
+    from thinning.raysynth import elastic_window_s
+
+    still = family == "newtonian-still"
+    kind = str(rng.choice(["viscous", "inertial"])) if still or rng.random() >= 0.6 else "elastic"
+    dripping = not still and rng.random() < (0.2 if family == "refraction" else 0.3)
+    n_axis, n_across = int(rng.integers(160, 513)), int(rng.integers(128, 385))
+    px = _log_uniform(rng, 2e-6, 20e-6)
+    plate = rng.uniform(0.3, 0.75) * n_across * px
+    gap = rng.uniform(0.55, 0.84) * n_axis * px
+    if not 0.5e-3 <= plate <= 6e-3 or not 0.8 <= gap / (plate / 2) <= 8.0:
+        return None
+    wide = family == "refraction"
+    d0 = plate * (rng.uniform(0.3, 0.6) if dripping else rng.uniform(0.3, 0.45) if wide
+                  else rng.uniform(0.15, 0.4))
+    if wide and d0 / px < 80:
+        return None
+    fluid = _draw_fluid(rng, kind, d0)
+    if fluid is None:
+        return None
+    base = Scene(fluid=fluid, geometry="dripping" if dripping else "plates", plate_diameter_m=plate,
+                 initial_diameter_m=d0, gap_m=gap, pixel_size_m=px, fps_hz=1000.0,
+                 frame_size_px=(n_axis, n_across),
+                 sagging=rng.uniform(-0.15, 0.15) if rng.random() < 0.4 else 0.0,
+                 beads=kind == "elastic" and rng.random() < 0.15)
+    hist, _ = _model(base)
+    life = hist.breakup_time_s
+    if life is None:
+        return None
+    changes = {}
+    if not still and (dripping or rng.random() < 0.6):
+        changes["stretch_duration_s"] = rng.uniform(0.05, 0.2) * life
+        if dripping or rng.random() < 0.5:
+            changes["pre_roll_s"] = rng.uniform(0.02, 0.08) * life
+    t_end = changes.get("stretch_duration_s", 0.0) + changes.get("pre_roll_s", 0.0) + life
+    fps = (int(rng.integers(120, 500)) - FRAMES_AFTER_BREAKUP) / t_end
+    if kind == "elastic":
+        window = elastic_window_s(hist, fluid.relaxation_time)
+        if window <= 0.0:
+            return None
+        fps = max(fps, 16.0 / window)
+    if math.floor(t_end * fps) + 1 + FRAMES_AFTER_BREAKUP > 600:
+        return None
+    return dataclasses.replace(base, fps_hz=float(fps), **changes)
+
+
+def _draw_optics(rng, family: str) -> Optics:
+    background = rng.uniform(0.6, 0.9)
+    o = dict(blur_sigma_px=rng.uniform(0.5, 2.0), blur_kind=str(rng.choice(["gaussian", "disk"])),
+             background_level=background, shadow_level=rng.uniform(0.02, 0.15),
+             uneven_light=rng.uniform(0.0, 0.3), flicker=rng.uniform(0.0, 0.04),
+             read_noise=rng.uniform(0.001, 0.008), full_well=_log_uniform(rng, 5e3, 4e4),
+             dust_specks=int(rng.integers(0, 4)), jitter_px=rng.uniform(0.0, 0.3),
+             tilt_deg=rng.uniform(-3.0, 3.0) if rng.random() < 0.5 else 0.0,
+             streak_strength=rng.uniform(0.0, 0.45), orientation=str(rng.choice(ORIENTATIONS)),
+             bit_depth=int(rng.choice([8, 8, 8, 12, 16])))
+    if family == "refraction":
+        o["streak_strength"] = rng.uniform(0.6, 0.95)
+    if family == "artefacts":
+        for name in rng.choice(ARTEFACTS, size=int(rng.integers(1, 3)), replace=False):
+            if name == "dust":
+                o["dust_specks"] = int(rng.integers(10, 41))
+            elif name == "streak":
+                o["streak_strength"] = rng.uniform(0.7, 0.95)
+            elif name == "motion-across":
+                o.update(motion_blur_px=rng.uniform(1.0, 3.0), motion_blur_axis="across")
+            elif name == "motion-along":
+                o.update(motion_blur_px=rng.uniform(1.0, 4.0), motion_blur_axis="axial")
+            elif name == "halo":
+                o["blur_kind"] = "lorentzian"
+            else:                       # the backlight at or just under full scale: noise clips
+                o["background_level"] = rng.uniform(0.93, 1.0)
+    return Optics(**o)
+
+
+def random_case(seed: int, *, family: str = "regular") -> tuple[Scene, Optics]:
+    """A (scene, optics) drawn across this renderer's ranges for ``family`` (deterministic per seed).
+
+    The family names are :data:`thinning.raysynth.FAMILIES`. Common ranges:
+    pixel 2–20 µm; plate / nozzle 0.5–6 mm (30–75 % of the frame's width);
+    frames ≤ 512 × 512; σ 20–75 mN/m; ρ 800–1300 kg/m³; records of about
+    110–600 frames ending 10 frames after breakup, elastic windows ≥ 16 frames;
+    Gaussian or disk blur σ 0.5–2 px; shot and read noise; 8/12/16 bits.
+
+    - ``"regular"``: elastic (60 %; η_p/η_s ≤ 50; beads in 15 %) and Newtonian (viscous
+      Oh > 0.5, inertial Oh < 0.2) liquids, plates (step stretch or still) and
+      dripping, both orientations, tilt (±3° in half), sagging, uneven light,
+      flicker, jitter, a weak lens streak;
+    - ``"artefacts"``: as regular, plus one or two of :data:`ARTEFACTS`;
+    - ``"refraction"``: wide threads (D0 ≥ 80 px) with a strong lens streak;
+    - ``"newtonian-still"``: viscous or inertial Newtonian liquids between still
+      plates, free thinning from frame 0.
+    """
+    from thinning.raysynth import FAMILIES
+
+    if family not in FAMILIES:
+        raise ValueError(f"family must be one of {FAMILIES}, not {family!r}")
+    rng = np.random.default_rng([int(seed), FAMILIES.index(family), 7])
+    for _ in range(500):
+        scene = _draw_scene(rng, family)
+        if scene is not None:
+            return scene, _draw_optics(rng, family)
+    raise RuntimeError(f"no {family} case drawn for seed {seed}")
