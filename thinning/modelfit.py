@@ -1,0 +1,1159 @@
+"""Whole-curve fit of the 0-D filament model to a neck-diameter series D(t).
+
+The model is the one of :func:`thinning.laws.filament_model` (SI units)::
+
+    (2X − 1) σ/R − G f (A_zz − A_rr) = 3 η_s ε̇ + k ρ Ṙ²,    ε̇ = −2 Ṙ/R
+    dA_zz/dt = 2 ε̇ A_zz − f (A_zz − 1)/λ,   dA_rr/dt = −ε̇ A_rr − f (A_rr − 1)/λ
+    f = 1/(1 − (A_zz + 2 A_rr)/L²)   (FENE-P; f = 1, L² → ∞: Oldroyd-B)
+
+started at rest-relaxed dumbbells (A_zz = A_rr = 1) from the diameter D0 at
+the free-thinning start t0. The published limits it blends: the elastic
+stretch thins at ε̇ = 2/(3λ) and the finite-extensibility end at a constant
+speed set by η_E,∞ ≈ 2 η_p L² (Entov & Hinch 1997, J. Non-Newtonian Fluid
+Mech. 72:31; Anna & McKinley 2001, J. Rheol. 45:115; Wagner, Bourouiba &
+McKinley 2015, J. Non-Newtonian Fluid Mech. 218 — from memory, as in
+``shared/reference/physics.md``), Papageorgiou's (1995) viscous and the
+inviscid inertio-capillary (Eggers 1997) pinch-off.
+
+Integration
+    The neck is followed in x = ln(D0/D) rather than in time, with the net
+    stress S = 3 η_s ε̇ + k ρ Ṙ² (as ln S) and A_rr as state: S > 0 always,
+    and A_zz follows from the stress algebraically. In x the system is stiff
+    (the stress settles on the capillary pressure at a rate ~ the
+    elasto-capillary number), so it is integrated with the L-stable,
+    stiffly accurate Rosenbrock method RODAS4 (Hairer & Wanner 1996, *Solving
+    Ordinary Differential Equations II*, §IV.7; coefficients of their RODAS4
+    set) with one step-size sequence shared by a batch of parameter sets, all
+    advanced together in numpy. Times at data points come from Hermite
+    interpolation of x(t). Newtonian liquids (G = 0) have a closed form.
+
+Fit
+    Free: ln λ, ln G, 1/L² (unless fixed), ln η_s (unless given) and t0 (the
+    time shift is exact, no integration). Each round integrates a quadratic
+    design (1 + 2p + p(p−1)/2 parameter sets) around the current centre and
+    interpolates the trajectory t_k(θ), ln ẋ_k(θ) at the x-nodes by a
+    quadratic in θ; least squares on that surrogate give the next centre.
+    Three to five rounds converge; the last surrogate carries the profile
+    likelihood.
+
+Intervals
+    Residuals are whitened for AR(1) noise (coefficient estimated from the
+    residuals) and scaled by the residual variance; the 95 % interval of λ
+    (and η_s) is the profile-likelihood set Δχ²/s² ≤ t²(0.975, n − p).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from . import laws
+
+#: 2X − 1 with the Newtonian axial-force factor X (McKinley & Tripathi 2000), as in laws.
+_CAPILLARY = 2.0 * laws.NEWTONIAN_FORCE_FACTOR - 1.0
+#: k of k ρ Ṙ², making the inviscid limit R = X_IC (σ/ρ)^(1/3) τ^(2/3) (laws.filament_model).
+_INERTIA = 1.5 ** 2 * _CAPILLARY / laws.INERTIO_CAPILLARY_PREFACTOR ** 3
+
+# --- RODAS4 (Hairer & Wanner 1996, §IV.7): y' = F(x, y) ------------------------------
+# (I/(hγ) − J) k_i = F(x + c_i h, y + Σ a_ij k_j) + Σ (C_ij/h) k_j + d_i h ∂F/∂x
+_GAMMA = 0.25
+_A = np.zeros((6, 6))
+_A[1, 0] = 1.544
+_A[2, :2] = (0.9466785280815826, 0.2557011698983284)
+_A[3, :3] = (3.314825187068521, 2.896124015972201, 0.9986419139977817)
+_A[4, :4] = (1.221224509226641, 6.019134481288629, 12.53708332932087, -0.6878860361058950)
+_A[5, :4] = _A[4, :4]
+_A[5, 4] = 1.0
+_C = np.zeros((6, 6))
+_C[1, 0] = -5.6688
+_C[2, :2] = (-2.430093356833875, -0.2063599157091915)
+_C[3, :3] = (-0.1073529058151375, -9.594562251023355, -20.47028614809616)
+_C[4, :4] = (7.496443313967647, -10.24680431464352, -33.99990352819905, 11.70890893206160)
+_C[5, :5] = (8.083246795921522, -7.981132988064893, -31.52159432874371, 16.31930543123136,
+             -6.058818238834054)
+_M = np.r_[_A[4, :4], 1.0, 1.0]          # y_new = y + Σ m_i k_i (stiffly accurate)
+_CX = np.array([0.0, 0.386, 0.21, 0.63, 1.0, 1.0])
+_DX = np.array([0.25, -0.1043, 0.1035, -0.0362, 0.0, 0.0])
+_FD = 1e-7                               # finite-difference step of the Jacobian
+
+
+# --- the polymer model in x = ln(D0/D) -----------------------------------------------
+
+class _Batch:
+    """Parameter sets of a batch of trajectories (arrays of one length) and the rates."""
+
+    def __init__(self, relaxation_time, modulus, inv_l2, solvent_viscosity, *, density,
+                 surface_tension, d0):
+        lam, g, u, eta = np.broadcast_arrays(*(np.atleast_1d(np.asarray(v, dtype=float))
+                                               for v in (relaxation_time, modulus, inv_l2,
+                                                         solvent_viscosity)))
+        self.size = lam.size
+        self.inv_lam = 1.0 / lam
+        self.g = g
+        self.inv_g = 1.0 / g
+        self.u = u
+        self.u3 = 3.0 * u
+        self.b = 6.0 * eta
+        self.b2 = self.b ** 2
+        self.inertial = bool(density) and density > 0
+        r0 = d0 / 2.0
+        self.p0 = _CAPILLARY * surface_tension / r0          # capillary pressure at x = 0
+        self.kr4 = 4.0 * _INERTIA * (density or 0.0) * r0 ** 2  # 4 k ρ R0²
+
+    def speed(self, s, a4):
+        """ẋ = −Ṙ/R (1/s) for net stress e^s (Pa); a4 = 4 k ρ R² (kg/m)."""
+        big_s = np.exp(s)
+        if self.inertial:
+            return 2.0 * big_s / (self.b + np.sqrt(self.b2 + a4 * big_s))
+        return big_s / self.b
+
+    def rates(self, p, a4, s, arr):
+        """d(ln S)/dx, dA_rr/dx and dt/dx at capillary pressure p (Pa)."""
+        big_s = np.exp(s)
+        tau = p - big_s                                     # polymer stress G f (A_zz − A_rr)
+        ut = self.u * tau
+        f = (1.0 + ut * self.inv_g) / (1.0 - self.u3 * arr)
+        azz = arr + tau * self.inv_g / f
+        if self.inertial:
+            xd = 2.0 * big_s / (self.b + np.sqrt(self.b2 + a4 * big_s))
+        else:
+            xd = big_s / self.b
+        w = f * self.inv_lam / xd
+        dzz = 4.0 * azz - w * (azz - 1.0)
+        drr = -2.0 * arr - w * (arr - 1.0)
+        ds = p - f * ((self.g + ut) * dzz + (2.0 * ut - self.g) * drr)
+        return ds / big_s, drr, 1.0 / xd
+
+
+def _rodas_step(m: _Batch, x, h, y):
+    """One RODAS4 step of the batch from x over h (both scalars); y is (3, B): ln S, A_rr, t."""
+    n = m.size
+    ex = math.exp(x)
+    exe = math.exp(x + _FD)
+    p = m.p0 * ex
+    a4 = m.kr4 / (ex * ex)
+    pp = np.array([[p], [p], [p], [m.p0 * exe]])
+    aa = np.array([[a4], [a4], [a4], [m.kr4 / (exe * exe)]])
+    s4 = np.empty((4, n))
+    s4[:] = y[0]
+    s4[1] += _FD
+    r4 = np.empty((4, n))
+    r4[:] = y[1]
+    r4[2] += _FD
+    fs, fr, ft = m.rates(pp, aa, s4, r4)
+    f0 = np.stack([fs[0], fr[0], ft[0]])
+    jac = (np.stack([fs, fr, ft])[:, 1:] - f0[:, None]) * (1.0 / _FD)   # (rate, [s, A_rr, x], B)
+    q = 1.0 / (h * _GAMMA)
+    m00 = q - jac[0, 0]
+    m01 = jac[0, 1]
+    m10 = jac[1, 0]
+    m11 = q - jac[1, 1]
+    idet = 1.0 / (m00 * m11 - m01 * m10)
+    js0 = jac[2, 0] / q
+    js1 = jac[2, 1] / q
+    fx = jac[:, 2] * h
+    k = np.empty((6, 3, n))
+    k2 = k.reshape(6, 3 * n)
+    ch = _C / h
+    for i in range(6):
+        if i == 0:
+            rhs = f0 + _DX[0] * fx
+        else:
+            yi = y + (_A[i, :i] @ k2[:i]).reshape(3, n)
+            exi = math.exp(x + _CX[i] * h)
+            rhs = np.stack(m.rates(m.p0 * exi, m.kr4 / (exi * exi), yi[0], yi[1]))
+            rhs += (ch[i, :i] @ k2[:i]).reshape(3, n)
+            if _DX[i]:
+                rhs += _DX[i] * fx
+        k0 = (m11 * rhs[0] + m01 * rhs[1]) * idet
+        k1 = (m00 * rhs[1] + m10 * rhs[0]) * idet
+        k[i, 0] = k0
+        k[i, 1] = k1
+        k[i, 2] = rhs[2] / q + js0 * k0 + js1 * k1
+    return y + (_M @ k2).reshape(3, n), k[5]
+
+
+@dataclass(frozen=True)
+class _Paths:
+    """Trajectories on a shared grid of x = ln(D0/D): times t (s) and ẋ (1/s) at the nodes."""
+
+    x: np.ndarray      # (N,)
+    t: np.ndarray      # (B, N)
+    xdot: np.ndarray   # (B, N)
+    ok: np.ndarray     # (B,) integration succeeded
+
+
+def _polymer_paths(m: _Batch, x_end, *, tol=1e-4, control_all=False, h_max=0.5,
+                   max_steps=600) -> _Paths:
+    """Integrate every member from x = 0 to ``x_end`` with one shared adaptive step sequence.
+
+    The step is set by the first member and, at a tenth of the accuracy, by
+    the others (``control_all``: all alike), from the RMS of the embedded
+    error in ln S, A_rr and ẋ·t (time in units of the local thinning time).
+    Members whose state turns non-finite are marked failed and drop out.
+    """
+    n = m.size
+    y = np.empty((3, n))
+    y[0] = math.log(m.p0)
+    y[1] = 1.0
+    y[2] = 0.0
+    ok = np.ones(n, dtype=bool)
+    xs = [0.0]
+    ts = [y[2].copy()]
+    xds = [m.speed(y[0], m.kr4)]
+    x, h = 0.0, 0.02
+    with np.errstate(all="ignore"):
+        for _ in range(max_steps):
+            if x >= x_end - 1e-12 or not (ok.any() if control_all else ok[0]):
+                break
+            h = min(h, x_end - x)
+            y_new, e = _rodas_step(m, x, h, y)
+            xd = m.speed(y_new[0], m.kr4 * math.exp(-2.0 * (x + h)))
+            err = np.sqrt((e[0] ** 2 + e[1] ** 2 + (e[2] * xd) ** 2) / 3.0) / tol
+            bad = ~np.isfinite(err) | ~np.isfinite(y_new).all(axis=0) | ~(xd > 0)
+            if ((bad & ok).any() if control_all else bad[0]) and h > 1e-4:
+                h *= 0.25                   # retry smaller before giving up
+                continue
+            ok &= ~bad
+            if not control_all:
+                err[1:] *= 0.1
+            worst = float(np.max(err[ok])) if ok.any() else 0.0
+            if worst <= 1.0:
+                x += h
+                y = np.where(ok, y_new, y)
+                xs.append(x)
+                ts.append(np.where(ok, y_new[2], np.nan))
+                xds.append(np.where(ok, xd, np.nan))
+            h = min(h * min(4.0, max(0.2, 0.9 * max(worst, 1e-10) ** -0.25)), h_max)
+    if x < x_end - 1e-12:
+        ok[:] = False
+    return _Paths(x=np.array(xs), t=np.array(ts).T, xdot=np.array(xds).T, ok=ok)
+
+
+# --- a trajectory at the data times ----------------------------------------------------
+
+def _locate(grid_t, tau):
+    """Index k with grid_t[k] ≤ τ < grid_t[k+1] (clipped) per row of grid_t (K, N), tau (K, n).
+
+    One search over the rows laid end to end (each row shifted past the last).
+    """
+    k_rows, n_nodes = grid_t.shape
+    lo = min(float(grid_t.min()), float(tau.min()))
+    width = max(float(grid_t.max()), float(tau.max())) - lo + 1.0
+    shift = (np.arange(k_rows) * 2.0 * width)[:, None]
+    flat = (grid_t - lo + shift).ravel()
+    k = np.searchsorted(flat, (tau - lo + shift).ravel(), side="right").reshape(tau.shape)
+    k -= (np.arange(k_rows) * n_nodes)[:, None] + 1
+    return np.clip(k, 0, n_nodes - 2)
+
+
+def _path_diameter(tau, x, t, xdot, d0, dt=None, dv=None):
+    """D (m), dD/dτ (m/s) and optionally dD/dθ at times τ (s) after t0 along trajectories.
+
+    Rows of ``t`` and ``xdot`` (K, N) are node times and ẋ at the nodes ``x``
+    (N,); τ is (K, n) or (n,). Cubic Hermite interpolation of x(τ); D0
+    before τ = 0; beyond the last node x continues at the last slope. With
+    ``dt``, ``dv`` (K, m, N), the node times' and slopes' derivatives in m
+    parameters, also returns dD/dθ (K, n, m).
+    """
+    t = np.maximum.accumulate(t, axis=1)
+    tau = np.broadcast_to(tau, (t.shape[0], np.shape(tau)[-1]))
+    k = _locate(t, tau)
+    t0 = np.take_along_axis(t, k, 1)
+    t1 = np.take_along_axis(t, k + 1, 1)
+    v0 = np.take_along_axis(xdot, k, 1)
+    v1 = np.take_along_axis(xdot, k + 1, 1)
+    x0 = x[k]
+    x1 = x[k + 1]
+    dlt = np.maximum(t1 - t0, 1e-300)
+    s = np.clip((tau - t0) / dlt, 0.0, 1.0)
+    s2 = s * s
+    s3 = s2 * s
+    h10 = s3 - 2 * s2 + s
+    h11 = s3 - s2
+    slopes = h10 * v0 + h11 * v1
+    xi = (2 * s3 - 3 * s2 + 1) * x0 + (3 * s2 - 2 * s3) * x1 + dlt * slopes
+    vi = ((6 * s2 - 6 * s) * (x0 - x1) / dlt + (3 * s2 - 4 * s + 1) * v0
+          + (3 * s2 - 2 * s) * v1)
+    t_last = t[:, -1:]
+    v_last = xdot[:, -1:]
+    beyond = tau > t_last
+    xi = np.where(beyond, x[-1] + v_last * (tau - t_last), xi)
+    vi = np.where(beyond, v_last, vi)
+    before = tau <= 0
+    xi = np.where(before, 0.0, xi)
+    vi = np.where(before, 0.0, vi)
+    d = d0 * np.exp(-xi)
+    if dt is None:
+        return d, -d * vi
+    # ∂x/∂(t_k, t_k+1, v_k, v_k+1) of the Hermite form, then the chain rule
+    inside = ~beyond & ~before
+    a_t0 = np.where(inside, vi * (s - 1.0) - slopes, 0.0)
+    a_t1 = np.where(inside, slopes - vi * s, 0.0)
+    a_v0 = np.where(inside, h10 * dlt, 0.0)
+    a_v1 = np.where(inside, h11 * dlt, 0.0)
+    b_t = np.where(beyond, -v_last, 0.0)
+    b_v = np.where(beyond, tau - t_last, 0.0)
+    kk = np.broadcast_to(k[:, None, :], (k.shape[0], dt.shape[1], k.shape[1]))
+    dx = (a_t0[:, None] * np.take_along_axis(dt, kk, 2)
+          + a_t1[:, None] * np.take_along_axis(dt, kk + 1, 2)
+          + a_v0[:, None] * np.take_along_axis(dv, kk, 2)
+          + a_v1[:, None] * np.take_along_axis(dv, kk + 1, 2)
+          + b_t[:, None] * dt[:, :, -1:] + b_v[:, None] * dv[:, :, -1:])
+    return d, -d * vi, np.moveaxis(-d[:, None] * dx, 1, 2)
+
+
+# --- the Newtonian closed form ---------------------------------------------------------
+
+def _newtonian_time(r, r0, eta, density, surface_tension):
+    """Time (s) for a Newtonian neck to thin from radius r0 to r (m).
+
+    From 6 η ẋ + k ρ R² ẋ² = (2X − 1) σ/R: dt/dR = −(b + w)/(2cσ),
+    w = (b² + 4kρcσR)^(1/2), b = 6η, integrated in closed form and written
+    without cancellation: t = (R0 − R)[b + (2/3)(w0² + w0 w + w²)/(w0 + w)]/(2cσ).
+    """
+    c_s = _CAPILLARY * surface_tension
+    b = 6.0 * eta
+    kk = 4.0 * _INERTIA * (density or 0.0) * c_s
+    w0 = np.sqrt(b * b + kk * r0)
+    w = np.sqrt(b * b + kk * r)
+    return (r0 - r) * (b + (2.0 / 3.0) * (w0 * w0 + w0 * w + w * w) / (w0 + w)) / (2.0 * c_s)
+
+
+def _newtonian_diameter(tau, d0, eta, density, surface_tension):
+    """D (m) and dD/dτ (m/s) of a Newtonian neck τ (s) after it starts thinning from D0.
+
+    Rows of ``eta`` (K, 1) against times ``tau`` (K, n) or (n,). Zero after
+    breakup. The closed form t(R) is tabulated on a grid dense in ln R and
+    inverted by interpolation, then polished by two Newton steps.
+    """
+    r0 = d0 / 2.0
+    c_s = _CAPILLARY * surface_tension
+    eta = np.asarray(eta, dtype=float).reshape(-1, 1)
+    b = 6.0 * eta
+    kk = 4.0 * _INERTIA * (density or 0.0) * c_s
+    tau = np.broadcast_to(np.maximum(tau, 0.0), (eta.shape[0], np.shape(tau)[-1]))
+    grid = r0 * np.exp(-np.linspace(0.0, 12.0, 241))
+    t_grid = _newtonian_time(grid[None, :], r0, eta, density, surface_tension)
+    t_break = _newtonian_time(0.0, r0, eta, density, surface_tension)
+    log_r = np.empty(tau.shape)
+    for k in range(tau.shape[0]):
+        log_r[k] = np.interp(tau[k], t_grid[k], np.log(grid))
+    r = np.exp(log_r)
+    for _ in range(2):
+        g = _newtonian_time(r, r0, eta, density, surface_tension) - tau
+        r = np.clip(r + g * 2.0 * c_s / (b + np.sqrt(b * b + kk * r)), 0.0, r0)
+    broken = tau >= t_break
+    r = np.where(broken, 0.0, r)
+    speed = np.where(broken | (tau <= 0), 0.0, 2.0 * c_s / (b + np.sqrt(b * b + kk * r)))
+    return 2.0 * r, -2.0 * speed
+
+
+# --- quadratic surrogates of the trajectory ------------------------------------------------
+
+def _design(p, one_sided):
+    """Offsets z (M, p) of a quadratic design: centre, two axial points each, one per pair.
+
+    Axial points are at ±1, or at +1, +2 where the coordinate sits on a bound
+    (``one_sided``); pairs at (+1, +1). M = 1 + 2p + p(p − 1)/2.
+    """
+    rows = [np.zeros(p)]
+    for i in range(p):
+        for v in ((1.0, 2.0) if one_sided[i] else (-1.0, 1.0)):
+            z = np.zeros(p)
+            z[i] = v
+            rows.append(z)
+    for i in range(p):
+        for j in range(i + 1, p):
+            z = np.zeros(p)
+            z[i] = z[j] = 1.0
+            rows.append(z)
+    return np.array(rows)
+
+
+def _basis(z):
+    """Quadratic basis [1, z_i, z_i², z_i z_j (i < j)] of offsets z (K, p)."""
+    p = z.shape[1]
+    cols = [np.ones(z.shape[0])] + [z[:, i] for i in range(p)] + [z[:, i] ** 2 for i in range(p)]
+    cols += [z[:, i] * z[:, j] for i in range(p) for j in range(i + 1, p)]
+    return np.stack(cols, axis=1)
+
+
+def _basis_gradient(z):
+    """d basis/dz_j (K, p, M) of :func:`_basis`."""
+    k, p = z.shape
+    m = 1 + 2 * p + p * (p - 1) // 2
+    g = np.zeros((k, p, m))
+    col = 1 + 2 * p
+    for i in range(p):
+        g[:, i, 1 + i] = 1.0
+        g[:, i, 1 + p + i] = 2.0 * z[:, i]
+        for j in range(i + 1, p):
+            g[:, i, col] = z[:, j]
+            g[:, j, col] = z[:, i]
+            col += 1
+    return g
+
+
+@dataclass(frozen=True)
+class _Surrogate:
+    """t_k(θ) and ln ẋ_k(θ) at the x-nodes, quadratic in θ about ``centre`` (scale ``delta``)."""
+
+    x: np.ndarray
+    centre: np.ndarray
+    delta: np.ndarray
+    coef_t: np.ndarray     # (M, N)
+    coef_v: np.ndarray     # (M, N)
+
+    def paths(self, theta):
+        """Node times (K, N) and ẋ (K, N) for parameter rows θ (K, p)."""
+        phi = _basis((np.atleast_2d(theta) - self.centre) / self.delta)
+        return phi @ self.coef_t, np.exp(phi @ self.coef_v)
+
+    def gradients(self, theta):
+        """Node times, ẋ and their θ-derivatives (K, p, N) for parameter rows θ (K, p)."""
+        z = (np.atleast_2d(theta) - self.centre) / self.delta
+        phi = _basis(z)
+        grad = _basis_gradient(z) / self.delta[None, :, None]
+        t = phi @ self.coef_t
+        v = np.exp(phi @ self.coef_v)
+        return t, v, grad @ self.coef_t, v[:, None, :] * (grad @ self.coef_v)
+
+
+# --- batched, bounded Levenberg–Marquardt ---------------------------------------------------
+
+def _levenberg_marquardt(resid_jac, p0, lower, upper, free, *, max_iter=60, rtol=1e-9, atol=0.0):
+    """Minimise Σ r² for each row of ``p0`` (K, q) within [lower, upper] (q,) or (K, q).
+
+    ``resid_jac(p)`` returns residuals (K, n) and Jacobians (K, n, q) for
+    parameter rows p; coordinates where ``free`` (K, q) is False stay put. A
+    row stops when the step predicted by its linearisation would lower χ² by
+    less than max(``rtol``·χ², ``atol``). Returns (p, χ², residuals, J at p).
+    """
+    p = np.array(p0, dtype=float)
+    lower = np.broadcast_to(lower, p.shape)
+    upper = np.broadcast_to(upper, p.shape)
+    free = np.broadcast_to(free, p.shape)
+    r, jac = resid_jac(p)
+    chi2 = np.sum(r * r, axis=1)
+    chi2 = np.where(np.isfinite(chi2), chi2, np.inf)
+    mu = np.full(p.shape[0], 1e-3)
+    done = ~np.isfinite(chi2)
+    eye = np.eye(p.shape[1])
+    for _ in range(max_iter):
+        jf = np.where(free[:, None, :], jac, 0.0)
+        jtj = np.einsum("kni,knj->kij", jf, jf)
+        grad = np.einsum("kni,kn->ki", jf, r)
+        scale = np.where(free, np.maximum(np.einsum("kii->ki", jtj), 1e-30), 1.0)
+        a = jtj + (mu[:, None] * scale)[:, :, None] * eye + (~free)[:, :, None] * eye
+        step = -np.linalg.solve(a, grad[..., None])[..., 0]
+        step = np.where(free & np.isfinite(step), step, 0.0)
+        step = np.clip(p + step, lower, upper) - p
+        pred = -(2.0 * np.einsum("ki,ki->k", grad, step)
+                 + np.einsum("ki,kij,kj->k", step, jtj, step))
+        done |= pred <= np.maximum(rtol * chi2, atol)
+        if done.all():
+            break
+        trial = np.where(done[:, None], p, p + step)
+        r_t, jac_t = resid_jac(trial)
+        chi2_t = np.sum(r_t * r_t, axis=1)
+        chi2_t = np.where(np.isfinite(chi2_t), chi2_t, np.inf)
+        better = (chi2_t < chi2) & ~done
+        p = np.where(better[:, None], trial, p)
+        r = np.where(better[:, None], r_t, r)
+        jac = np.where(better[:, None, None], jac_t, jac)
+        chi2 = np.where(better, chi2_t, chi2)
+        mu = np.where(better, np.maximum(mu / 5.0, 1e-9), mu * 8.0)
+        done |= mu >= 1e10
+    return p, chi2, r, jac
+
+
+# --- data, noise and whitening -------------------------------------------------------------
+
+#: Fewest usable frames a fit accepts.
+MIN_POINTS = 8
+
+
+@dataclass(frozen=True)
+class _Data:
+    t: np.ndarray        # frame times (s), increasing
+    d: np.ndarray        # diameters (m)
+    gap: np.ndarray      # frames between consecutive points (≥ 1), length n − 1
+    d0: float            # diameter at the free-thinning start (m)
+    t_start: float       # the given free-thinning start (s)
+    noise: float         # diameter noise (m)
+    density: float | None
+    surface_tension: float
+
+
+def _select(time_s, diameter_m, *, t_start_s, resolution_floor_m, noise_m, density,
+            surface_tension):
+    """The frames of free thinning above the floor, or the reason there are too few."""
+    t = np.asarray(time_s, dtype=float)
+    d = np.asarray(diameter_m, dtype=float)
+    if t.shape != d.shape or t.ndim != 1:
+        raise ValueError("time_s and diameter_m must be 1-D arrays of the same length")
+    order = np.argsort(t, kind="stable")
+    t, d = t[order], d[order]
+    after = np.isfinite(t) & (t >= t_start_s - 1e-9 * max(abs(t_start_s), 1e-30))
+    t, d = t[after], d[after]
+    below = np.flatnonzero(np.isfinite(d) & (d < resolution_floor_m))
+    if below.size:
+        t, d = t[:below[0]], d[:below[0]]
+    usable = np.isfinite(d) & (d > 0)
+    if not usable.any():
+        return "no finite diameter above the resolution floor after the free-thinning start"
+    frame = np.arange(t.size)[usable]
+    t, d = t[usable], d[usable]
+    if t.size < MIN_POINTS:
+        return (f"only {t.size} usable frames between the free-thinning start and the "
+                f"resolution floor (need {MIN_POINTS})")
+    # D at the start: the first frames' line extrapolated back to t_start (a fast first
+    # thinning moves the first frame well below D0), never below their median
+    a = np.polyfit(t[:4] - t[0], d[:4], 1)
+    d0 = float(np.median(d[:3]))
+    d0 = min(max(d0, a[1] + a[0] * (t_start_s - t[0])), 1.5 * d0)
+    if not np.log(d0 / d.min()) > 0.2:
+        return "the diameter does not fall (less than 20 % from start to end)"
+    if noise_m is not None and noise_m > 0:
+        noise = float(noise_m)
+    else:  # residual of the 3-point mean has variance 1.5 σ²
+        second = d[1:-1] - 0.5 * (d[:-2] + d[2:])
+        noise = 1.4826 * float(np.median(np.abs(second - np.median(second)))) / math.sqrt(1.5)
+        noise = max(noise, 1e-6 * float(np.median(d)))
+    return _Data(t=t, d=d, gap=np.diff(frame).astype(float), d0=d0, t_start=float(t_start_s),
+                 noise=noise, density=density if density else None,
+                 surface_tension=float(surface_tension))
+
+
+def _whiten(v, phi, gap, axis=-1):
+    """Prais–Winsten transform of residual-like arrays for AR(1) noise of coefficient φ per frame.
+
+    e_0 = v_0, e_i = (v_i − a_i v_(i−1))/(1 − a_i²)^(1/2) with a_i = φ^gap_i, so
+    that white noise of the marginal variance stays at that variance.
+    """
+    if phi <= 0:
+        return v
+    v = np.moveaxis(v, axis, -1)
+    a = phi ** gap
+    out = np.empty_like(v)
+    out[..., 0] = v[..., 0]
+    out[..., 1:] = (v[..., 1:] - a * v[..., :-1]) / np.sqrt(1.0 - a * a)
+    return np.moveaxis(out, -1, axis)
+
+
+def _ar1(resid, gap, n_params):
+    """AR(1) coefficient per frame from fit residuals (bias-corrected lag-1 autocorrelation).
+
+    Kendall's correction (1 + 3ρ)/n plus n_params/n for the fitted parameters;
+    clipped to [0, 0.95] (an anti-correlated estimate is read as white noise).
+    """
+    n = resid.size
+    pairs = gap == 1
+    den = float(np.sum(resid * resid))
+    if n < 8 or den <= 0 or pairs.sum() < 4:
+        return 0.0
+    rho = float(np.sum(resid[1:][pairs] * resid[:-1][pairs])) / den * n / pairs.sum()
+    rho += (1.0 + 3.0 * rho + n_params) / n
+    return float(np.clip(rho, 0.0, 0.95))
+
+
+# --- the Newtonian fit -------------------------------------------------------------------------
+
+_LOG_ETA = (math.log(1e-5), math.log(1e4))
+
+
+def _newtonian_residuals(data, phi, free_eta, eta_fixed):
+    """Residual/Jacobian function over rows p = [ln η, t0] for the Newtonian closed form."""
+    def resid_jac(p):
+        eta = np.exp(p[:, 0]) if free_eta else np.full(p.shape[0], eta_fixed)
+        h = 1e-6
+        etas = np.concatenate([eta, eta * math.exp(h)])[:, None]
+        tau = data.t[None, :] - np.concatenate([p[:, 1], p[:, 1]])[:, None]
+        d, dd = _newtonian_diameter(tau, data.d0, etas, data.density, data.surface_tension)
+        k = p.shape[0]
+        r = (data.d - d[:k]) / data.noise
+        jac = np.empty(r.shape + (2,))
+        jac[..., 0] = -(d[k:] - d[:k]) / h / data.noise
+        jac[..., 1] = dd[:k] / data.noise
+        return _whiten(r, phi, data.gap), _whiten(jac, phi, data.gap, axis=1)
+    return resid_jac
+
+
+def _t0_bounds(data):
+    span = data.t[-1] - data.t[0]
+    return data.t[0] - 0.5 * span, data.t[0] + 0.05 * span
+
+
+def _newtonian_guess(data):
+    """(η, t0) from the mean thinning speed over the record (Papageorgiou's coefficient)."""
+    speed = (data.d[0] - data.d[-1]) / max(data.t[-1] - data.t[0], 1e-300)
+    eta = 2.0 * laws.PAPAGEORGIOU_COEFFICIENT * data.surface_tension / max(speed, 1e-300)
+    return float(np.clip(eta, 1e-5, 1e4)), float(data.t[0])
+
+
+@dataclass(frozen=True)
+class _Outcome:
+    """A fitted model before it becomes a :class:`ModelFit` (internal)."""
+
+    kind: str                     # "newtonian" | "viscoelastic"
+    values: dict
+    chi2_white: float
+    chi2_plain: float
+    n_free: int
+    scale2: float
+    phi: float
+    intervals: dict
+    curve_state: tuple
+
+
+def _fit_newtonian(data, *, solvent_viscosity):
+    """Least squares of the Newtonian closed form; profile-likelihood interval of η."""
+    free = solvent_viscosity is None
+    eta0, t00 = _newtonian_guess(data)
+    if not free:
+        eta0 = float(solvent_viscosity)
+    lo = np.array([_LOG_ETA[0], _t0_bounds(data)[0]])
+    hi = np.array([_LOG_ETA[1], _t0_bounds(data)[1]])
+    mask = np.array([[free, True]])
+    # a few starting viscosities, kept in one batch; the best wins
+    starts = np.array([[math.log(eta0) + dv, t00] for dv in ((-1.5, 0.0, 1.5) if free else (0.0,))])
+    starts[:, 0] = np.clip(starts[:, 0], lo[0], hi[0])
+    phi = 0.0
+    for _ in range(3):
+        fun = _newtonian_residuals(data, phi, free, eta0)
+        p, chi2, r, jac = _levenberg_marquardt(fun, starts, lo, hi, mask)
+        best = int(np.argmin(chi2))
+        starts = p[best:best + 1]
+        plain = _newtonian_residuals(data, 0.0, free, eta0)(starts)[0][0]
+        new_phi = _ar1(plain, data.gap, 1 + free)
+        if abs(new_phi - phi) < 0.02:
+            phi = new_phi
+            break
+        phi = new_phi
+    fun = _newtonian_residuals(data, phi, free, eta0)
+    p, chi2, r, jac = _levenberg_marquardt(fun, starts, lo, hi, mask)
+    n_free = 1 + int(free)
+    dof = max(data.t.size - n_free, 1)
+    scale2 = float(chi2[0]) / dof
+    intervals = {}
+    if free:
+        ends = _profile_intervals(fun, p[0], lo, hi, mask[0], [0], jac[0], chi2[0], scale2, dof)
+        intervals["eta"] = tuple(float(v) for v in np.exp(ends[0]))
+    eta = math.exp(p[0, 0]) if free else eta0
+    plain = _newtonian_residuals(data, 0.0, free, eta0)(p)[0][0]
+    return _Outcome(kind="newtonian", values={"eta": eta, "t0": float(p[0, 1]), "G": 0.0,
+                                              "lam": math.nan, "L2": None},
+                    chi2_white=float(chi2[0]), chi2_plain=float(np.sum(plain ** 2)),
+                    n_free=n_free, scale2=scale2, phi=phi, intervals=intervals,
+                    curve_state=("newtonian", data.d0, float(p[0, 1]), eta, data.density,
+                                 data.surface_tension))
+
+
+# --- profile likelihood ------------------------------------------------------------------------
+
+def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, scale2, dof, *,
+                       steps=(0.8, 1.1, 1.6)):
+    """95 % profile-likelihood intervals of the coordinates ``indices`` of ``p_hat``.
+
+    The set {Δχ²/s² ≤ t²(0.975, dof)}: for each coordinate the profile (the
+    other free coordinates re-optimised) is evaluated at multiples of its
+    Wald half-width on each side, all coordinates in one batch, and the
+    signed root √(Δχ²/s²) — close to linear in the coordinate — is
+    interpolated to ±t. A side the profile does not carry past t (within
+    1.6 Wald half-widths or the bounds) is NaN. Returns {index: (low, high)}.
+    """
+    t_crit = float(stats.t.ppf(0.975, dof))
+    free_pos = np.flatnonzero(free)
+    jf = jac[:, free]
+    cov = np.linalg.pinv(jf.T @ jf) * scale2
+    offsets = np.array([-s for s in steps[::-1]] + list(steps))
+    rows, masks, which = [], [], []
+    for index in indices:
+        pos = int(np.flatnonzero(free_pos == index)[0])
+        var = cov[pos, pos]
+        if not var > 0:
+            continue
+        half = t_crit * math.sqrt(var)
+        r = np.repeat(p_hat[None, :], offsets.size, axis=0)
+        r[:, free_pos] += (offsets * half)[:, None] * (cov[:, pos] / var)[None, :]  # Wald line
+        r[:, index] = p_hat[index] + offsets * half
+        rows.append(np.clip(r, lower, upper))
+        m = np.repeat(free[None, :], offsets.size, axis=0)
+        m[:, index] = False
+        masks.append(m)
+        which.append(index)
+    out = {index: (math.nan, math.nan) for index in indices}
+    if not rows:
+        return out
+    rows = np.concatenate(rows)
+    _, chi2, _, _ = _levenberg_marquardt(fun, rows, lower, upper, np.concatenate(masks),
+                                         atol=1e-3 * scale2)
+    for j, index in enumerate(which):
+        sl = slice(j * offsets.size, (j + 1) * offsets.size)
+        off = rows[sl, index] - p_hat[index]
+        root = np.sqrt(np.maximum(chi2[sl] - chi2_min, 0.0) / scale2)
+        ends = []
+        for side in (-1, 1):
+            sel = np.sign(off) == side
+            o = np.r_[0.0, np.abs(off[sel])]
+            q = np.r_[0.0, root[sel]]
+            order = np.argsort(o)
+            o, q = o[order], np.maximum.accumulate(q[order])
+            ends.append(p_hat[index] + side * float(np.interp(t_crit, q, o))
+                        if q[-1] >= t_crit else math.nan)
+        out[index] = (ends[0], ends[1])
+    return out
+
+
+# --- the viscoelastic fit --------------------------------------------------------------------
+
+#: Bounds of θ = (ln λ, ln G, 1/L², ln η_s): λ in s, G in Pa, η_s in Pa·s.
+_LOWER = np.array([math.log(1e-7), math.log(1e-3), 0.0, _LOG_ETA[0]])
+_UPPER = np.array([math.log(1e3), math.log(1e6), 0.05, _LOG_ETA[1]])
+_DELTA_MIN = np.array([1e-4, 1e-4, 1e-9, 1e-4])
+_DELTA_MAX = np.array([0.3, 1.0, 0.01, 1.0])
+_MAX_ROUNDS = 7
+
+
+def _batch(theta, data):
+    """A :class:`_Batch` from full parameter rows θ (K, 4)."""
+    return _Batch(np.exp(theta[:, 0]), np.exp(theta[:, 1]), theta[:, 2], np.exp(theta[:, 3]),
+                  density=data.density, surface_tension=data.surface_tension, d0=data.d0)
+
+
+def _x_end(data):
+    return math.log(data.d0 / float(data.d.min())) + 0.3
+
+
+def _local_slopes(t, y, lo, hi):
+    """Least-squares slope of y(t) over the index windows [lo_i, hi_i]."""
+    tc = t - t.mean()
+    c = [np.r_[0.0, np.cumsum(v)] for v in (np.ones(t.size), tc, tc * tc, y, tc * y)]
+    s0, s1, s2, sy, sty = (v[hi + 1] - v[lo] for v in c)
+    return (s0 * sty - s1 * sy) / np.maximum(s0 * s2 - s1 * s1, 1e-300)
+
+
+def _elastic_window(data, *, span=0.1, tolerance=0.15):
+    """(first, last) frame of the longest stretch of near-constant d ln D/dt.
+
+    Local slopes over windows of ±``span`` in ln D (at least ±2 frames); a
+    stretch is the run of frames whose slope is within ``tolerance`` of a
+    candidate's; the longest in ln D fallen times its share of the frames wins.
+    """
+    y = np.log(data.d)
+    n = y.size
+    ym = -np.minimum.accumulate(y)            # increasing
+    idx = np.arange(n)
+    lo = np.minimum(np.searchsorted(ym, ym - span, side="left"), idx - 2).clip(0, n - 1)
+    hi = np.maximum(np.searchsorted(ym, ym + span, side="right") - 1, idx + 2).clip(0, n - 1)
+    slope = _local_slopes(data.t, y, lo, hi)
+    cand = np.flatnonzero(slope < 0)
+    if cand.size == 0:
+        return 0, n - 1
+    cand = cand[np.linspace(0, cand.size - 1, min(cand.size, 200)).astype(int)]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        close = np.abs(slope[None, :] / slope[cand, None] - 1.0) < tolerance
+    left = np.where(~close & (idx[None, :] < cand[:, None]), idx[None, :], -1).max(axis=1) + 1
+    right = np.where(~close & (idx[None, :] > cand[:, None]), idx[None, :], n).min(axis=1) - 1
+    score = (ym[right] - ym[left]) * np.sqrt((right - left + 1) / n)
+    best = int(np.argmax(score))
+    return int(left[best]), int(right[best])
+
+
+def _polymer_candidates(data, start, eta_guess, eta_fixed, u_fixed):
+    """Starting parameter rows θ (K, 4) from the elastic stretch (or ``start``) and the ends."""
+    c_s = _CAPILLARY * data.surface_tension
+    r0 = data.d0 / 2.0
+    first, last = _elastic_window(data)
+    y = np.log(data.d)
+    lam_data = None
+    if last - first >= 3:
+        a = np.polyfit(data.t[first:last + 1], y[first:last + 1], 1)
+        if a[0] < 0:
+            lam_data = -1.0 / (3.0 * a[0])
+    lam0 = start.get("relaxation_time_s") if start else None
+    lam0 = float(lam0) if lam0 and lam0 > 0 else lam_data
+    if lam0 is None:
+        lam0 = (data.t[-1] - data.t[0]) / (3.0 * math.log(data.d0 / data.d.min()))
+    if start and start.get("window_s") is not None and start.get("diameter_at_window_start_m"):
+        t_w, d_w = float(start["window_s"][0]), float(start["diameter_at_window_start_m"])
+    else:
+        t_w, d_w = float(data.t[first]), float(data.d[first])
+    etas = ([eta_fixed] if eta_fixed is not None
+            else [eta_guess * f for f in (0.7, 0.2, 0.05, 0.01)])
+    tail = slice(min(last + 1, data.t.size - 4), None)
+    tail_speed = -np.polyfit(data.t[tail], data.d[tail], 1)[0] if data.t[tail].size >= 4 else 0.0
+    rows = []
+    for f_lam in (0.75, 1.0, 1.4):
+        lam = lam0 * f_lam
+        d_ec0 = d_w * math.exp((t_w - data.t_start) / (3.0 * lam))
+        g_amp = c_s / r0 * min(d_ec0 / data.d0, 1.0) ** 3
+        for g in (0.25 * g_amp, g_amp, 4.0 * g_amp):
+            for eta in etas:
+                us = [u_fixed] if u_fixed is not None else [0.0]
+                if u_fixed is None and tail_speed > 0:
+                    # the tail read as the terminal regime: (2X − 1)σ/(−dD/dt) = 2 G λ L² + 3 η_s
+                    l2 = (c_s / tail_speed - 3.0 * eta) / (2.0 * g * lam)
+                    if 20.0 < l2 < 1e6:
+                        us.append(1.0 / l2)
+                for u in us:
+                    rows.append([math.log(lam), math.log(g), u, math.log(eta)])
+    return np.clip(np.array(rows), _LOWER, _UPPER)
+
+
+def _paths_t0_residuals(paths, data, phi):
+    """Residual/Jacobian over t0 alone (rows p (K, 1)), one exact trajectory per row."""
+    def resid_jac(p):
+        tau = data.t[None, :] - p[:, :1]
+        d, dd = _path_diameter(tau, paths.x, paths.t, paths.xdot, data.d0)
+        r = (data.d - d) / data.noise
+        return _whiten(r, phi, data.gap), _whiten((dd / data.noise)[..., None], phi, data.gap, 1)
+    return resid_jac
+
+
+def _best_t0(paths, data, phi):
+    """Best t0 per trajectory: a coarse scan (on at most 150 frames), then least squares."""
+    lo, hi = _t0_bounds(data)
+    grid = np.linspace(lo, hi, 25)
+    k = paths.t.shape[0]
+    sub = np.unique(np.linspace(0, data.t.size - 1, min(data.t.size, 150)).astype(int))
+    tau = data.t[sub][None, None, :] - grid[None, :, None]
+    d, _ = _path_diameter(tau.reshape(1, -1)[np.zeros(k, int)], paths.x, paths.t, paths.xdot,
+                          data.d0)
+    chi2 = np.sum(((data.d[sub] - d.reshape(k, grid.size, sub.size)) / data.noise) ** 2, axis=2)
+    chi2 = np.where(np.isfinite(chi2), chi2, np.inf)
+    t0 = grid[np.argmin(chi2, axis=1)][:, None]
+    t0, chi2, _, _ = _levenberg_marquardt(_paths_t0_residuals(paths, data, phi), t0, lo, hi,
+                                         np.ones((k, 1), dtype=bool), rtol=1e-6)
+    return t0[:, 0], chi2
+
+
+def _surrogate_residuals(surr, data, phi):
+    """Residual/Jacobian over rows p = [θ_free, t0] along the surrogate trajectories."""
+    nf = surr.centre.size
+
+    def resid_jac(p):
+        t, v, dt, dv = surr.gradients(p[:, :nf])
+        d, dd, dth = _path_diameter(data.t[None, :] - p[:, nf:], surr.x, t, v, data.d0, dt, dv)
+        r = (data.d - d) / data.noise
+        jac = np.concatenate([-dth, dd[..., None]], axis=2) / data.noise
+        return _whiten(r, phi, data.gap), _whiten(jac, phi, data.gap, axis=1)
+    return resid_jac
+
+
+def _round(data, centre, delta, free_idx):
+    """Integrate the quadratic design about ``centre`` and return its surrogate (or None)."""
+    p = len(free_idx)
+    for _ in range(3):
+        one_sided = centre[free_idx] - delta[free_idx] < _LOWER[free_idx]
+        z = _design(p, one_sided)
+        theta = np.repeat(centre[None, :], z.shape[0], axis=0)
+        theta[:, free_idx] += z * delta[free_idx]
+        theta = np.clip(theta, _LOWER, _UPPER)
+        z = (theta[:, free_idx] - centre[free_idx]) / delta[free_idx]
+        paths = _polymer_paths(_batch(theta, data), _x_end(data))
+        if paths.ok.all():
+            break
+        if not paths.ok[0]:
+            return None
+        delta = np.where(np.isin(np.arange(4), free_idx), delta / 3.0, delta)
+    else:
+        return None
+    phi_mat = _basis(z)
+    coef = np.linalg.solve(phi_mat, np.concatenate([paths.t, np.log(paths.xdot)], axis=1))
+    n_nodes = paths.x.size
+    return _Surrogate(x=paths.x, centre=centre[free_idx].copy(), delta=delta[free_idx].copy(),
+                      coef_t=coef[:, :n_nodes], coef_v=coef[:, n_nodes:])
+
+
+def _settle(data, centre, t0c, delta, free_idx, *, phi, rounds, surrogate=None):
+    """Rounds of design → surrogate → least squares until the centre is the optimum.
+
+    Each round minimises χ² on the surrogate within ±2δ of its centre; it has
+    settled when the optimum lies inside that region and lowers χ² by less
+    than 0.1 residual variances, after at least one round with δ = 2·SE
+    (``surrogate``, if given, is such a round already made). Returns
+    (surrogate, centre, t0, δ, settled) or the reason of a failure.
+    """
+    nf = len(free_idx)
+    dof = max(data.t.size - nf - 1, 1)
+    t_lo, t_hi = _t0_bounds(data)
+    mask = np.ones((1, nf + 1), dtype=bool)
+    surr = last = surrogate
+    for rnd in range(rounds):
+        if surr is None:
+            surr = _round(data, centre, delta, free_idx)
+            if surr is None:
+                return "the 0-D model could not be integrated near the fitted values"
+            proven = rnd > 0
+        else:
+            proven = True
+        lo = np.r_[np.maximum(_LOWER[free_idx], surr.centre - 2.0 * surr.delta), t_lo]
+        hi = np.r_[np.minimum(_UPPER[free_idx], surr.centre + 2.0 * surr.delta), t_hi]
+        p_c = np.r_[centre[free_idx], t0c][None, :]
+        fun = _surrogate_residuals(surr, data, phi)
+        p_opt, chi2, _, jac = _levenberg_marquardt(fun, p_c, lo, hi, mask)
+        chi2_c = float(np.sum(fun(p_c)[0] ** 2))
+        scale2 = float(chi2[0]) / dof
+        gain = (chi2_c - float(chi2[0])) / scale2
+        se = np.sqrt(np.maximum(np.diag(np.linalg.pinv(jac[0].T @ jac[0]))[:nf] * scale2, 0.0))
+        step = p_opt[0, :nf] - surr.centre
+        inside = np.all((np.abs(step) < 1.9 * surr.delta) | (p_opt[0, :nf] <= lo[:nf])
+                        | (p_opt[0, :nf] >= hi[:nf]))
+        centre = centre.copy()
+        centre[free_idx] = p_opt[0, :nf]
+        t0c = float(p_opt[0, nf])
+        if proven and inside and gain < 0.1:
+            return surr, centre, t0c, delta, True
+        delta = delta.copy()
+        delta[free_idx] = np.clip(np.maximum(2.0 * se, 0.5 * np.abs(step)),
+                                  _DELTA_MIN[free_idx], _DELTA_MAX[free_idx])
+        last, surr = surr, None
+    return last, centre, t0c, delta, False
+
+
+def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_guess):
+    """Rounds of quadratic surrogates of the 0-D model, then the profile likelihood of λ."""
+    eta_fixed = None if solvent_viscosity is None else float(solvent_viscosity)
+    if extensibility == "fit":
+        u_fixed = None
+    elif extensibility is None or extensibility == "oldroyd-b":
+        u_fixed = 0.0
+    else:
+        u_fixed = 1.0 / float(extensibility)
+    free_idx = [0, 1] + ([2] if u_fixed is None else []) + ([3] if eta_fixed is None else [])
+    nf = len(free_idx)
+    cands = _polymer_candidates(data, start, eta_guess, eta_fixed, u_fixed)
+    paths = _polymer_paths(_batch(cands, data), _x_end(data), tol=1e-3, control_all=True)
+    if not paths.ok.any():
+        return "the 0-D model could not be integrated at the starting values"
+    t0s, chi2s = _best_t0(paths, data, 0.0)
+    chi2s = np.where(paths.ok, chi2s, np.inf)
+    best = int(np.argmin(chi2s))
+    centre = cands[best].copy()
+    t0c = float(t0s[best])
+    a_end = _CAPILLARY * data.surface_tension / (data.d.min() / 2.0) / math.exp(centre[1])
+    delta = np.array([0.1, 0.4, max(0.3 * centre[2], 0.3 / a_end), 0.5])
+    delta = np.clip(delta, _DELTA_MIN, _DELTA_MAX)
+    dof = max(data.t.size - nf - 1, 1)
+    state = _settle(data, centre, t0c, delta, free_idx, phi=0.0, rounds=_MAX_ROUNDS)
+    if isinstance(state, str):
+        return state
+    surr, centre, t0c, delta, settled = state
+    # correlated noise: whiten with the AR(1) coefficient of the residuals and settle again
+    plain = _surrogate_residuals(surr, data, 0.0)(np.r_[centre[free_idx], t0c][None, :])[0][0]
+    phi = _ar1(plain, data.gap, nf + 1)
+    if phi > 0 and settled:
+        state = _settle(data, centre, t0c, delta, free_idx, phi=phi, rounds=3, surrogate=surr)
+        if isinstance(state, str):
+            return state
+        surr, centre, t0c, delta, settled = state
+    t_lo, t_hi = _t0_bounds(data)
+    fun = _surrogate_residuals(surr, data, phi)
+    p_hat = np.r_[centre[free_idx], t0c]
+    lo = np.r_[np.maximum(_LOWER[free_idx], surr.centre - 3.0 * surr.delta), t_lo]
+    hi = np.r_[np.minimum(_UPPER[free_idx], surr.centre + 3.0 * surr.delta), t_hi]
+    r_hat, jac_hat = fun(p_hat[None, :])
+    chi2_min = float(np.sum(r_hat ** 2))
+    scale2 = chi2_min / dof
+    free = np.ones(nf + 1, dtype=bool)
+    which = [0] + ([free_idx.index(3)] if eta_fixed is None else [])
+    ends = _profile_intervals(fun, p_hat, lo, hi, free, which, jac_hat[0], chi2_min, scale2, dof)
+    intervals = {"lam": tuple(float(v) for v in np.exp(ends[0]))}
+    if eta_fixed is None:
+        intervals["eta"] = tuple(float(v) for v in np.exp(ends[which[1]]))
+    cov = np.linalg.pinv(jac_hat[0].T @ jac_hat[0]) * scale2
+    values = {"lam": math.exp(centre[0]), "G": math.exp(centre[1]),
+              "eta": math.exp(centre[3]), "t0": t0c, "L2": None}
+    if u_fixed is not None:
+        values["L2"] = None if u_fixed == 0 else 1.0 / u_fixed
+    else:
+        j = free_idx.index(2)
+        se_u = math.sqrt(max(cov[j, j], 0.0))
+        if centre[2] > 2.0 * se_u and centre[2] > 0:
+            values["L2"] = 1.0 / centre[2]
+    t_path, v_path = surr.paths(p_hat[None, :nf])
+    plain = _surrogate_residuals(surr, data, 0.0)(p_hat[None, :])[0][0]
+    return _Outcome(kind="viscoelastic", values=values, chi2_white=chi2_min,
+                    chi2_plain=float(np.sum(plain ** 2)), n_free=nf + 1, scale2=scale2, phi=phi,
+                    intervals=intervals,
+                    curve_state=("viscoelastic", data.d0, t0c, surr.x, t_path[0], v_path[0],
+                                 settled))
+
+
+# --- the result ----------------------------------------------------------------------------------
+
+def _plain(v):
+    if v is None:
+        return None
+    v = float(v)
+    return v if math.isfinite(v) else None
+
+
+@dataclass(frozen=True)
+class ModelFit:
+    """The whole-curve fit of the 0-D filament model (SI units).
+
+    ``model`` is ``"viscoelastic"`` (λ, G, L², η_s fitted) or ``"newtonian"``
+    (G = 0; η_s only). Intervals are 95 % profile-likelihood intervals (NaN
+    where a side is not bounded); ``solvent_viscosity_fixed`` says η_s was
+    given rather than fitted. ``finite_extensibility_L2`` is None for
+    Oldroyd-B or when the data cannot tell L² from infinity.
+    ``noise_correlation`` is the AR(1) coefficient per frame the residuals
+    were whitened with. ``success`` False: no usable fit, ``message`` says why.
+    """
+
+    model: str = ""
+    relaxation_time_s: float = math.nan
+    relaxation_time_ci95_s: tuple = (math.nan, math.nan)
+    elastic_modulus_Pa: float = math.nan
+    finite_extensibility_L2: float | None = None
+    solvent_viscosity_Pa_s: float = math.nan
+    solvent_viscosity_ci95_Pa_s: tuple = (math.nan, math.nan)
+    solvent_viscosity_fixed: bool = False
+    t_start_s: float = math.nan
+    reduced_chi2: float = math.nan
+    n_points: int = 0
+    noise_correlation: float = math.nan
+    success: bool = False
+    message: str = ""
+    _state: tuple = field(default=(), repr=False, compare=False)
+
+    def __bool__(self) -> bool:
+        return self.success
+
+    def curve(self, t):
+        """The fitted D(t) (m) at recording times ``t`` (s); NaN for a failed fit."""
+        t = np.asarray(t, dtype=float)
+        if not self._state:
+            return np.full(t.shape, np.nan)
+        kind, d0, t0 = self._state[:3]
+        tau = np.atleast_1d(t - t0).ravel()
+        if kind == "newtonian":
+            eta, density, sigma = self._state[3:]
+            d, _ = _newtonian_diameter(tau[None, :], d0, np.array([[eta]]), density, sigma)
+        else:
+            x, t_nodes, v_nodes = self._state[3:6]
+            d, _ = _path_diameter(tau, x, t_nodes[None, :], v_nodes[None, :], d0)
+        return d[0].reshape(t.shape)
+
+    def to_dict(self) -> dict:
+        """The ``model_fit`` object of ``result.json``: plain Python, None for NaN."""
+        return {
+            "relaxation_time_s": _plain(self.relaxation_time_s),
+            "relaxation_time_ci95_s": [_plain(v) for v in self.relaxation_time_ci95_s],
+            "elastic_modulus_Pa": _plain(self.elastic_modulus_Pa),
+            "finite_extensibility_L2": _plain(self.finite_extensibility_L2),
+            "solvent_viscosity_Pa_s": _plain(self.solvent_viscosity_Pa_s),
+            "t_start_s": _plain(self.t_start_s),
+            "reduced_chi2": _plain(self.reduced_chi2),
+        }
+
+
+def _failed(message, n_points=0) -> ModelFit:
+    return ModelFit(success=False, message=message, n_points=n_points)
+
+
+def _as_result(o: _Outcome, data: _Data, eta_fixed: bool) -> ModelFit:
+    n = data.t.size
+    v = o.values
+    message = ""
+    success = True
+    if o.kind == "viscoelastic" and not o.curve_state[6]:
+        success = False
+        message = f"the fit did not settle within {_MAX_ROUNDS} rounds"
+    return ModelFit(
+        model=o.kind,
+        relaxation_time_s=v["lam"],
+        relaxation_time_ci95_s=o.intervals.get("lam", (math.nan, math.nan)),
+        elastic_modulus_Pa=v["G"],
+        finite_extensibility_L2=v["L2"],
+        solvent_viscosity_Pa_s=v["eta"],
+        solvent_viscosity_ci95_Pa_s=o.intervals.get("eta", (math.nan, math.nan)),
+        solvent_viscosity_fixed=eta_fixed,
+        t_start_s=v["t0"],
+        reduced_chi2=o.chi2_plain / max(n - o.n_free, 1),
+        n_points=n,
+        noise_correlation=o.phi,
+        success=success,
+        message=message,
+        _state=o.curve_state[:6],
+    )
+
+
+#: Evidence (Δχ² over the residual variance) the elastic model needs to win over the Newtonian one.
+ELASTIC_EVIDENCE = 30.0
+
+
+def fit_filament_model(time_s, diameter_m, *, surface_tension, t_start_s, resolution_floor_m,
+                       noise_m, density=None, solvent_viscosity=None, start=None, seed,
+                       extensibility="fit", model="auto") -> ModelFit:
+    """Fit the 0-D filament model to D(t) from the free-thinning start down to the floor.
+
+    Parameters
+    ----------
+    time_s, diameter_m : array_like
+        The series (s, m); NaN where no thread. Frames before ``t_start_s``,
+        from the first one below ``resolution_floor_m`` (m) on, and NaN are
+        left out.
+    surface_tension : float
+        σ, N/m.
+    t_start_s : float
+        Start of free thinning on the recording's clock (s); the model's own
+        start t0 is fitted near it (reported as ``t_start_s``).
+    resolution_floor_m, noise_m : float
+        Smallest trustworthy diameter and the diameter noise (m); ``noise_m``
+        None estimates it from the data (it only scales ``reduced_chi2``:
+        intervals use the residual variance).
+    density : float, optional
+        ρ (kg/m³): adds the inertial resistance k ρ Ṙ²; None leaves it out.
+    solvent_viscosity : float, optional
+        η_s (Pa·s) held fixed; None fits it.
+    start : dict, optional
+        Local-slope starting values: ``relaxation_time_s``, and
+        ``window_s`` (t_first, t_last) with ``diameter_at_window_start_m``.
+        Without it the elastic stretch is found from the local slopes of ln D.
+    seed : int
+        Accepted for the common signature of the fits; this fit draws no
+        random numbers, so equal input gives equal output.
+    extensibility : "fit", None, "oldroyd-b" or float
+        Fit L², use Oldroyd-B (L² → ∞), or hold L² at the given value.
+    model : "auto", "viscoelastic" or "newtonian"
+        "auto" fits both and keeps the elastic model when it improves χ² by
+        more than ``ELASTIC_EVIDENCE`` residual variances (inflated for
+        correlated noise).
+
+    Returns
+    -------
+    ModelFit
+        Falsy with the reason in ``message`` when no fit can be made.
+    """
+    del seed  # deterministic: see the docstring
+    if model not in ("auto", "viscoelastic", "newtonian"):
+        raise ValueError(f"model must be 'auto', 'viscoelastic' or 'newtonian', not {model!r}")
+    data = _select(time_s, diameter_m, t_start_s=t_start_s, resolution_floor_m=resolution_floor_m,
+                   noise_m=noise_m, density=density, surface_tension=surface_tension)
+    if isinstance(data, str):
+        return _failed(data)
+    eta_fixed = solvent_viscosity is not None
+    with np.errstate(all="ignore"):
+        newt = _fit_newtonian(data, solvent_viscosity=solvent_viscosity)
+        if model == "newtonian":
+            return _as_result(newt, data, eta_fixed)
+        visc = _fit_viscoelastic(data, solvent_viscosity=solvent_viscosity,
+                                 extensibility=extensibility, start=start,
+                                 eta_guess=newt.values["eta"])
+    if isinstance(visc, str):
+        return _failed(visc, data.t.size) if model == "viscoelastic" else _as_result(newt, data,
+                                                                                     eta_fixed)
+    if model == "auto":
+        dof = max(data.t.size - visc.n_free, 1)
+        inflation = (1.0 + visc.phi) / (1.0 - visc.phi)
+        gain = (newt.chi2_plain - visc.chi2_plain) / max(visc.chi2_plain / dof, 1e-300)
+        if gain < ELASTIC_EVIDENCE * inflation:
+            return _as_result(newt, data, eta_fixed)
+    return _as_result(visc, data, eta_fixed)
