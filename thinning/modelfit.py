@@ -44,6 +44,7 @@ Intervals
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 
@@ -85,11 +86,11 @@ _FD = 1e-7                               # finite-difference step of the Jacobia
 class _Batch:
     """Parameter sets of a batch of trajectories (arrays of one length) and the rates."""
 
-    def __init__(self, relaxation_time, modulus, inv_l2, solvent_viscosity, *, density,
-                 surface_tension, d0):
-        lam, g, u, eta = np.broadcast_arrays(*(np.atleast_1d(np.asarray(v, dtype=float))
-                                               for v in (relaxation_time, modulus, inv_l2,
-                                                         solvent_viscosity)))
+    def __init__(self, relaxation_time, modulus, inv_l2, solvent_viscosity, d0, *, density,
+                 surface_tension):
+        lam, g, u, eta, d0 = np.broadcast_arrays(*(np.atleast_1d(np.asarray(v, dtype=float))
+                                                   for v in (relaxation_time, modulus, inv_l2,
+                                                             solvent_viscosity, d0)))
         self.size = lam.size
         self.inv_lam = 1.0 / lam
         self.g = g
@@ -135,8 +136,8 @@ def _rodas_step(m: _Batch, x, h, y):
     exe = math.exp(x + _FD)
     p = m.p0 * ex
     a4 = m.kr4 / (ex * ex)
-    pp = np.array([[p], [p], [p], [m.p0 * exe]])
-    aa = np.array([[a4], [a4], [a4], [m.kr4 / (exe * exe)]])
+    pp = np.stack([p, p, p, m.p0 * exe])
+    aa = np.stack([a4, a4, a4, m.kr4 / (exe * exe)])
     s4 = np.empty((4, n))
     s4[:] = y[0]
     s4[1] += _FD
@@ -186,24 +187,28 @@ class _Paths:
     ok: np.ndarray     # (B,) integration succeeded
 
 
-def _polymer_paths(m: _Batch, x_end, *, tol=1e-4, control_all=False, h_max=0.5,
-                   max_steps=600) -> _Paths:
+def _polymer_paths(m: _Batch, x_end, *, tol=1e-4, control_all=False, h_max=0.5, h_min=1e-5,
+                   max_steps=400) -> _Paths:
     """Integrate every member from x = 0 to ``x_end`` with one shared adaptive step sequence.
 
     The step is set by the first member and, at a tenth of the accuracy, by
     the others (``control_all``: all alike), from the RMS of the embedded
-    error in ln S, A_rr and ẋ·t (time in units of the local thinning time).
-    Members whose state turns non-finite are marked failed and drop out.
+    error in A_rr and ẋ·t (time in units of the local thinning time); ln S,
+    the stiff component, only matters through them. Members whose state turns
+    non-finite, or that would need a step below ``h_min``, are marked failed
+    and drop out; so does the batch when the first member fails (unless
+    ``control_all``) or the steps run out.
     """
     n = m.size
     y = np.empty((3, n))
-    y[0] = math.log(m.p0)
+    y[0] = np.log(m.p0)
     y[1] = 1.0
     y[2] = 0.0
     ok = np.ones(n, dtype=bool)
     xs = [0.0]
     ts = [y[2].copy()]
     xds = [m.speed(y[0], m.kr4)]
+    weight = np.ones(n) if control_all else np.r_[1.0, np.full(n - 1, 0.1)]
     x, h = 0.0, 0.02
     with np.errstate(all="ignore"):
         for _ in range(max_steps):
@@ -212,22 +217,21 @@ def _polymer_paths(m: _Batch, x_end, *, tol=1e-4, control_all=False, h_max=0.5,
             h = min(h, x_end - x)
             y_new, e = _rodas_step(m, x, h, y)
             xd = m.speed(y_new[0], m.kr4 * math.exp(-2.0 * (x + h)))
-            err = np.sqrt((e[0] ** 2 + e[1] ** 2 + (e[2] * xd) ** 2) / 3.0) / tol
-            bad = ~np.isfinite(err) | ~np.isfinite(y_new).all(axis=0) | ~(xd > 0)
-            if (bad & ok).any() and h > 1e-4:
-                h *= 0.25                   # retry smaller before giving up
-                continue
-            ok &= ~bad
-            if not control_all:
-                err[1:] *= 0.1
+            err = weight * np.sqrt((e[1] ** 2 + (e[2] * xd) ** 2) / 2.0) / tol
+            err = np.where(np.isfinite(err) & np.isfinite(y_new).all(axis=0) & (xd > 0), err,
+                           np.inf)
             worst = float(np.max(err[ok])) if ok.any() else 0.0
+            if worst > 1.0 and h <= h_min:
+                ok &= err <= 1.0                # these members cannot be followed: drop them
+                worst = float(np.max(err[ok])) if ok.any() else 0.0
             if worst <= 1.0:
                 x += h
                 y = np.where(ok, y_new, y)
                 xs.append(x)
                 ts.append(np.where(ok, y_new[2], np.nan))
                 xds.append(np.where(ok, xd, np.nan))
-            h = min(h * min(4.0, max(0.2, 0.9 * max(worst, 1e-10) ** -0.25)), h_max)
+            fac = 0.9 * max(worst, 1e-10) ** -0.25 if math.isfinite(worst) else 0.25
+            h = max(min(h * min(4.0, max(0.2, fac)), h_max), h_min)
     if x < x_end - 1e-12:
         ok[:] = False
     return _Paths(x=np.array(xs), t=np.array(ts).T, xdot=np.array(xds).T, ok=ok)
@@ -359,22 +363,27 @@ def _newtonian_diameter(tau, d0, eta, density, surface_tension):
 
 # --- quadratic surrogates of the trajectory ------------------------------------------------
 
-def _design(p, one_sided):
+def _design(signs):
     """Offsets z (M, p) of a quadratic design: centre, two axial points each, one per pair.
 
-    Axial points are at ±1, or at +1, +2 where the coordinate sits on a bound
-    (``one_sided``); pairs at (+1, +1). M = 1 + 2p + p(p − 1)/2.
+    ``signs`` (p,) is +1 where a coordinate may go either way (axial points at
+    ±1, pairs at +1), +2 where it must stay above the centre (axial +1, +2)
+    and −2 where below (axial −1, −2; pairs at −1). M = 1 + 2p + p(p − 1)/2.
     """
+    p = len(signs)
+    axial = {1: (-1.0, 1.0), 2: (1.0, 2.0), -2: (-1.0, -2.0)}
+    cross = {1: 1.0, 2: 1.0, -2: -1.0}
     rows = [np.zeros(p)]
     for i in range(p):
-        for v in ((1.0, 2.0) if one_sided[i] else (-1.0, 1.0)):
+        for v in axial[signs[i]]:
             z = np.zeros(p)
             z[i] = v
             rows.append(z)
     for i in range(p):
         for j in range(i + 1, p):
             z = np.zeros(p)
-            z[i] = z[j] = 1.0
+            z[i] = cross[signs[i]]
+            z[j] = cross[signs[j]]
             rows.append(z)
     return np.array(rows)
 
@@ -522,11 +531,10 @@ def _select(time_s, diameter_m, *, t_start_s, resolution_floor_m, noise_m, densi
     if t.size < MIN_POINTS:
         return (f"only {t.size} usable frames between the free-thinning start and the "
                 f"resolution floor (need {MIN_POINTS})")
-    # D at the start: the first frames' line extrapolated back to t_start (a fast first
-    # thinning moves the first frame well below D0), never below their median
-    a = np.polyfit(t[:4] - t[0], d[:4], 1)
-    d0 = float(np.median(d[:3]))
-    d0 = min(max(d0, a[1] + a[0] * (t_start_s - t[0])), 1.5 * d0)
+    # D at the start: the first frame, moved back to t_start along the first two frames'
+    # slope (by half the first frame at most)
+    slope = (d[0] - d[1]) / max(t[1] - t[0], 1e-300)
+    d0 = float(d[0] + min(max(slope * (t[0] - t_start_s), 0.0), 0.5 * d[0]))
     if not np.log(d0 / d.min()) > 0.2:
         return "the diameter does not fall (less than 20 % from start to end)"
     if noise_m is not None and noise_m > 0:
@@ -621,30 +629,39 @@ class _Outcome:
     curve_state: tuple
 
 
+def _newtonian_bounds(data, free):
+    lo = np.array([_LOG_ETA[0], _t0_bounds(data)[0]])
+    hi = np.array([_LOG_ETA[1], _t0_bounds(data)[1]])
+    return lo, hi, np.array([[free, True]])
+
+
+def _newtonian_least_squares(data, solvent_viscosity, phi, rows=False):
+    """(η, t0) of the Newtonian closed form by least squares from three starting viscosities."""
+    free = solvent_viscosity is None
+    eta0, t00 = _newtonian_guess(data)
+    if not free:
+        eta0 = float(solvent_viscosity)
+    lo, hi, mask = _newtonian_bounds(data, free)
+    starts = np.array([[math.log(eta0) + dv, t00] for dv in ((-1.5, 0.0, 1.5) if free else (0.0,))])
+    starts[:, 0] = np.clip(starts[:, 0], lo[0], hi[0])
+    p, chi2, _, _ = _levenberg_marquardt(_newtonian_residuals(data, phi, free, eta0), starts, lo,
+                                         hi, mask)
+    best = p[int(np.argmin(chi2))]
+    if rows:
+        return best[None, :]
+    return (math.exp(best[0]) if free else eta0), float(best[1])
+
+
 def _fit_newtonian(data, *, solvent_viscosity):
     """Least squares of the Newtonian closed form; profile-likelihood interval of η."""
     free = solvent_viscosity is None
     eta0, t00 = _newtonian_guess(data)
     if not free:
         eta0 = float(solvent_viscosity)
-    lo = np.array([_LOG_ETA[0], _t0_bounds(data)[0]])
-    hi = np.array([_LOG_ETA[1], _t0_bounds(data)[1]])
-    mask = np.array([[free, True]])
-    # a few starting viscosities, kept in one batch; the best wins
-    starts = np.array([[math.log(eta0) + dv, t00] for dv in ((-1.5, 0.0, 1.5) if free else (0.0,))])
-    starts[:, 0] = np.clip(starts[:, 0], lo[0], hi[0])
-    phi = 0.0
-    for _ in range(3):
-        fun = _newtonian_residuals(data, phi, free, eta0)
-        p, chi2, r, jac = _levenberg_marquardt(fun, starts, lo, hi, mask)
-        best = int(np.argmin(chi2))
-        starts = p[best:best + 1]
-        plain = _newtonian_residuals(data, 0.0, free, eta0)(starts)[0][0]
-        new_phi = _ar1(plain, data.gap, 1 + free)
-        if abs(new_phi - phi) < 0.02:
-            phi = new_phi
-            break
-        phi = new_phi
+    lo, hi, mask = _newtonian_bounds(data, free)
+    starts = _newtonian_least_squares(data, solvent_viscosity, 0.0, rows=True)
+    plain = _newtonian_residuals(data, 0.0, free, eta0)(starts)[0][0]
+    phi = _ar1(plain, data.gap, 1 + free)
     fun = _newtonian_residuals(data, phi, free, eta0)
     p, chi2, r, jac = _levenberg_marquardt(fun, starts, lo, hi, mask)
     n_free = 1 + int(free)
@@ -721,23 +738,48 @@ def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, s
 
 
 # --- the viscoelastic fit --------------------------------------------------------------------
+#
+# θ = (ln λ, ln G, w, ln η_s, ln D0): λ in s, G in Pa, η_s in Pa·s, D0 in m and
+# w = 1/(G L²) in 1/Pa, so that the end of the record (which sets G L², through
+# η_E,∞ ≈ 2 G λ L²) pins w when the early transient (which alone sets G) is not seen,
+# and w = 0 is Oldroyd-B.
 
-#: Bounds of θ = (ln λ, ln G, 1/L², ln η_s): λ in s, G in Pa, η_s in Pa·s.
-_LOWER = np.array([math.log(1e-7), math.log(1e-3), 0.0, _LOG_ETA[0]])
-_UPPER = np.array([math.log(1e3), math.log(1e6), 0.05, _LOG_ETA[1]])
-_DELTA_MIN = np.array([1e-4, 1e-4, 1e-9, 1e-4])
-_DELTA_MAX = np.array([0.3, 1.0, 0.01, 1.0])
-_MAX_ROUNDS = 7
+_LAM, _G, _W, _ETA, _D0 = range(5)
+_DELTA_MIN = np.array([1e-4, 1e-4, 1e-12, 1e-4, 1e-5])
+_DELTA_MAX = np.array([0.2, 0.3, 1.0, 0.5, 0.1])
+_MAX_ROUNDS = 8
+#: FENE-P needs 3 A_rr / L² < 1; L² is kept above 20.
+_INV_L2_MAX = 0.05
 
 
-def _batch(theta, data):
-    """A :class:`_Batch` from full parameter rows θ (K, 4)."""
-    return _Batch(np.exp(theta[:, 0]), np.exp(theta[:, 1]), theta[:, 2], np.exp(theta[:, 3]),
-                  density=data.density, surface_tension=data.surface_tension, d0=data.d0)
+@dataclass(frozen=True)
+class _Space:
+    """Which θ coordinates are fitted, their bounds, a fixed 1/L² when L² is given, and the
+    weak priors that keep directions the record cannot resolve from drifting.
+
+    ``prior_mean``/``prior_sd`` have six entries: θ and t0 (s); an infinite SD is no prior.
+    """
+
+    free: list
+    lower: np.ndarray
+    upper: np.ndarray
+    inv_l2: float | None      # fixed 1/L² (0: Oldroyd-B), or None when w is fitted
+    prior_mean: np.ndarray
+    prior_sd: np.ndarray
 
 
-def _x_end(data):
-    return math.log(data.d0 / float(data.d.min())) + 0.3
+def _batch(theta, data, space):
+    """A :class:`_Batch` from parameter rows θ (K, 5)."""
+    g = np.exp(theta[:, _G])
+    u = (np.minimum(theta[:, _W] * g, _INV_L2_MAX) if space.inv_l2 is None
+         else np.full(g.shape, space.inv_l2))
+    return _Batch(np.exp(theta[:, _LAM]), g, u, np.exp(theta[:, _ETA]), np.exp(theta[:, _D0]),
+                  density=data.density, surface_tension=data.surface_tension)
+
+
+def _x_end(data, theta):
+    """The x = ln(D0/D) every row of θ must reach to pass the smallest diameter."""
+    return float(np.max(theta[:, _D0])) - math.log(float(data.d.min())) + 0.3
 
 
 def _local_slopes(t, y, lo, hi):
@@ -775,8 +817,14 @@ def _elastic_window(data, *, span=0.1, tolerance=0.15):
     return int(left[best]), int(right[best])
 
 
-def _polymer_candidates(data, start, eta_guess, eta_fixed, u_fixed):
-    """Starting parameter rows θ (K, 4) from the elastic stretch (or ``start``) and the ends."""
+def _polymer_candidates(data, start, eta_guess, space):
+    """Starting rows θ (K, 5) around the elastic stretch (or ``start``) and the record's end.
+
+    λ from the slope of ln D over the elastic stretch; G from its intercept
+    at the start (the dumbbells stretch affinely, G (D0/D)^4 = (2X − 1)σ/R,
+    until the stress takes over); w from the last frames read as the terminal
+    regime, (2X − 1)σ/(−dD/dt) = 2 G λ L² + 3 η_s; a spread of each.
+    """
     c_s = _CAPILLARY * data.surface_tension
     r0 = data.d0 / 2.0
     first, last = _elastic_window(data)
@@ -794,215 +842,271 @@ def _polymer_candidates(data, start, eta_guess, eta_fixed, u_fixed):
         t_w, d_w = float(start["window_s"][0]), float(start["diameter_at_window_start_m"])
     else:
         t_w, d_w = float(data.t[first]), float(data.d[first])
-    etas = ([eta_fixed] if eta_fixed is not None
-            else [eta_guess * f for f in (0.3, 0.03)])
+    eta_free = _ETA in space.free
+    if eta_free and first >= 4:
+        # the thinning before the elastic stretch is Newtonian-like at η_0 = η_s + η_p
+        pre = dataclasses.replace(data, t=data.t[:first + 1], d=data.d[:first + 1],
+                                  gap=data.gap[:first])
+        eta_guess = _newtonian_least_squares(pre, None, 0.0)[0]
+    etas = [eta_guess * f for f in (0.5, 0.1, 0.02)] if eta_free else [eta_guess]
     tail = slice(min(last + 1, data.t.size - 4), None)
     tail_speed = -np.polyfit(data.t[tail], data.d[tail], 1)[0] if data.t[tail].size >= 4 else 0.0
     rows = []
-    for f_lam in (0.8, 1.0, 1.3):
+    for f_lam in (1.0,):
         lam = lam0 * f_lam
         d_ec0 = d_w * math.exp((t_w - data.t_start) / (3.0 * lam))
         g_amp = c_s / r0 * min(d_ec0 / data.d0, 1.0) ** 3
         for g in (0.3 * g_amp, g_amp, 3.0 * g_amp):
             for eta in etas:
-                us = [u_fixed] if u_fixed is not None else [0.0]
-                if u_fixed is None and tail_speed > 0:
-                    # the tail read as the terminal regime: (2X − 1)σ/(−dD/dt) = 2 G λ L² + 3 η_s
-                    l2 = (c_s / tail_speed - 3.0 * eta) / (2.0 * g * lam)
-                    if 20.0 < l2 < 1e6:
-                        us.append(1.0 / l2)
-                for u in us:
-                    rows.append([math.log(lam), math.log(g), u, math.log(eta)])
-    return np.clip(np.array(rows), _LOWER, _UPPER)
+                ws = [0.0]
+                if space.inv_l2 is None and tail_speed > 0:
+                    e_inf = c_s / tail_speed - 3.0 * eta
+                    if e_inf > 0:
+                        ws.append(2.0 * lam / e_inf)
+                for w in ws:
+                    rows.append([math.log(lam), math.log(g), w, math.log(eta),
+                                 math.log(data.d0)])
+    return np.clip(np.array(rows), space.lower, space.upper)
 
 
-def _paths_t0_residuals(paths, data, phi):
+def _paths_t0_residuals(paths, d0, data, phi):
     """Residual/Jacobian over t0 alone (rows p (K, 1)), one exact trajectory per row."""
     def resid_jac(p):
         tau = data.t[None, :] - p[:, :1]
-        d, dd = _path_diameter(tau, paths.x, paths.t, paths.xdot, data.d0)
+        d, dd = _path_diameter(tau, paths.x, paths.t, paths.xdot, d0)
         r = (data.d - d) / data.noise
         return _whiten(r, phi, data.gap), _whiten((dd / data.noise)[..., None], phi, data.gap, 1)
     return resid_jac
 
 
-def _best_t0(paths, data, phi):
+def _best_t0(paths, d0, data):
     """Best t0 per trajectory: a coarse scan (on at most 60 frames), then least squares."""
     lo, hi = _t0_bounds(data)
     grid = np.linspace(lo, hi, 16)
     k = paths.t.shape[0]
     sub = np.unique(np.linspace(0, data.t.size - 1, min(data.t.size, 60)).astype(int))
-    tau = data.t[sub][None, None, :] - grid[None, :, None]
-    d, _ = _path_diameter(tau.reshape(1, -1)[np.zeros(k, int)], paths.x, paths.t, paths.xdot,
-                          data.d0)
+    tau = (data.t[sub][None, :] - grid[:, None]).ravel()
+    d, _ = _path_diameter(tau, paths.x, paths.t, paths.xdot, d0)
     chi2 = np.sum(((data.d[sub] - d.reshape(k, grid.size, sub.size)) / data.noise) ** 2, axis=2)
     chi2 = np.where(np.isfinite(chi2), chi2, np.inf)
     t0 = grid[np.argmin(chi2, axis=1)][:, None]
-    t0, chi2, _, _ = _levenberg_marquardt(_paths_t0_residuals(paths, data, phi), t0, lo, hi,
+    t0, chi2, _, _ = _levenberg_marquardt(_paths_t0_residuals(paths, d0, data, 0.0), t0, lo, hi,
                                          np.ones((k, 1), dtype=bool), rtol=1e-6)
     return t0[:, 0], chi2
 
 
-def _surrogate_residuals(surr, data, phi):
-    """Residual/Jacobian over rows p = [θ_free, t0] along the surrogate trajectories."""
-    nf = surr.centre.size
+def _surrogate_residuals(surr, data, phi, space, fixed, priors=True):
+    """Residual/Jacobian over rows p = [θ_free, t0] along the surrogate trajectories.
+
+    ``fixed`` is the full θ whose non-free coordinates hold. With ``priors``
+    the weak priors of ``space`` follow the data residuals.
+    """
+    nf = len(space.free)
+    d0_col = space.free.index(_D0) if _D0 in space.free else None
 
     def resid_jac(p):
         t, v, dt, dv = surr.gradients(p[:, :nf])
-        d, dd, dth = _path_diameter(data.t[None, :] - p[:, nf:], surr.x, t, v, data.d0, dt, dv)
+        d0 = (np.exp(p[:, d0_col]) if d0_col is not None
+              else np.full(p.shape[0], math.exp(fixed[_D0])))[:, None]
+        d, dd, dth = _path_diameter(data.t[None, :] - p[:, nf:], surr.x, t, v, d0, dt, dv)
+        if d0_col is not None:
+            dth[:, :, d0_col] += d          # D = D0 e^(−x): the direct part of ∂D/∂ln D0
         r = (data.d - d) / data.noise
         jac = np.concatenate([-dth, dd[..., None]], axis=2) / data.noise
-        return _whiten(r, phi, data.gap), _whiten(jac, phi, data.gap, axis=1)
+        r = _whiten(r, phi, data.gap)
+        jac = _whiten(jac, phi, data.gap, axis=1)
+        if not priors:
+            return r, jac
+        # weak priors: extra residuals (p − μ)/s on the coordinates that have one
+        r_p = (p[:, cols] - mean) / sd
+        j_p = np.zeros((p.shape[0], len(cols), nf + 1))
+        j_p[:, np.arange(len(cols)), cols] = 1.0 / sd
+        return np.concatenate([r, r_p], axis=1), np.concatenate([jac, j_p], axis=1)
+
+    cols = [j for j, k in enumerate(space.free + [None])
+            if np.isfinite(space.prior_sd[k if k is not None else 5])]
+    keys = [k if k is not None else 5 for k in space.free + [None]]
+    mean = np.array([space.prior_mean[keys[j]] for j in cols])
+    sd = np.array([space.prior_sd[keys[j]] for j in cols])
     return resid_jac
 
 
-def _round(data, centre, delta, free_idx, tol=1e-4):
-    """Integrate the quadratic design about ``centre`` and return its surrogate (or None)."""
-    p = len(free_idx)
+def _round(data, centre, delta, space, tol):
+    """Integrate the quadratic design about ``centre`` and return its surrogate (or None).
+
+    Members that cannot be integrated shrink the design threefold (twice at most).
+    """
+    free = space.free
+    p = len(free)
     for _ in range(3):
-        one_sided = centre[free_idx] - delta[free_idx] < _LOWER[free_idx]
-        z = _design(p, one_sided)
+        room_lo = (centre[free] - space.lower[free]) / delta[free]
+        room_hi = (space.upper[free] - centre[free]) / delta[free]
+        signs = np.where((room_lo >= 1) & (room_hi >= 1), 1, np.where(room_hi >= 2, 2, -2))
+        # a coordinate hemmed in on both sides gets a design that fits
+        tight = (signs == -2) & (room_lo < 2)
+        delta = delta.copy()
+        delta[np.array(free)[tight]] *= np.maximum(room_lo, room_hi)[tight] / 2.0
+        z = _design(signs)
         theta = np.repeat(centre[None, :], z.shape[0], axis=0)
-        theta[:, free_idx] += z * delta[free_idx]
-        theta = np.clip(theta, _LOWER, _UPPER)
-        z = (theta[:, free_idx] - centre[free_idx]) / delta[free_idx]
-        paths = _polymer_paths(_batch(theta, data), _x_end(data), tol=tol)
+        theta[:, free] += z * delta[free]
+        paths = _polymer_paths(_batch(theta, data, space), _x_end(data, theta), tol=tol)
         if paths.ok.all():
             break
         if not paths.ok[0]:
             return None
-        delta = np.where(np.isin(np.arange(4), free_idx), delta / 3.0, delta)
+        delta = delta.copy()
+        delta[free] /= 3.0
     else:
         return None
-    phi_mat = _basis(z)
-    coef = np.linalg.solve(phi_mat, np.concatenate([paths.t, np.log(paths.xdot)], axis=1))
+    coef = np.linalg.solve(_basis(z), np.concatenate([paths.t, np.log(paths.xdot)], axis=1))
     n_nodes = paths.x.size
-    return _Surrogate(x=paths.x, centre=centre[free_idx].copy(), delta=delta[free_idx].copy(),
+    return _Surrogate(x=paths.x, centre=centre[free].copy(), delta=delta[free].copy(),
                       coef_t=coef[:, :n_nodes], coef_v=coef[:, n_nodes:])
 
 
-def _settle(data, centre, t0c, delta, free_idx, *, phi, rounds, surrogate=None):
+def _settle(data, centre, t0c, delta, space, *, phi, rounds, surrogate=None):
     """Rounds of design → surrogate → least squares until the centre is the optimum.
 
     Each round minimises χ² on the surrogate within ±2δ of its centre. While
-    that lowers χ² by more than five residual variances the rounds are
-    integrated coarsely (tolerance 1e-3); the fit has settled when a round at
-    full accuracy (1e-4) with δ = 2·SE from the round before (``surrogate``,
-    if given, is one) finds its optimum inside that region, less than half a
-    residual variance below its centre. Returns (surrogate, centre, t0, δ,
+    that lowers χ² by more than 50 residual variances the rounds are
+    integrated coarsely (ten times the full tolerance, at most 1e-3); the fit
+    has settled when a round at full accuracy (3 % of the noise relative to
+    D0, within [3e-6, 3e-5]), with δ from the round before (``surrogate``,
+    if given, is one), finds its optimum less than one residual variance
+    below its centre, and inside that region or with λ and η_s still. The next δ spans 2·SE, and the whole
+    last step when the region cut it (so a long valley is followed with a
+    region that doubles each round). Returns (surrogate, centre, t0, δ,
     settled) or the reason of a failure.
     """
-    nf = len(free_idx)
+    free = space.free
+    nf = len(free)
     dof = max(data.t.size - nf - 1, 1)
     t_lo, t_hi = _t0_bounds(data)
     mask = np.ones((1, nf + 1), dtype=bool)
+    # the model is integrated well inside the noise: 10 % of it at the widest diameter
+    tol_fine = float(np.clip(0.03 * data.noise / data.d0, 3e-6, 3e-5))
+    tol_coarse = min(10.0 * tol_fine, 1e-3)
     surr = last = surrogate
     proven = surrogate is not None
     coarse = surrogate is None
     for _ in range(rounds):
         if surr is None:
-            surr = _round(data, centre, delta, free_idx, tol=1e-3 if coarse else 1e-4)
+            surr = _round(data, centre, delta, space, tol=tol_coarse if coarse else tol_fine)
             if surr is None:
                 return "the 0-D model could not be integrated near the fitted values"
-        lo = np.r_[np.maximum(_LOWER[free_idx], surr.centre - 2.0 * surr.delta), t_lo]
-        hi = np.r_[np.minimum(_UPPER[free_idx], surr.centre + 2.0 * surr.delta), t_hi]
-        p_c = np.r_[centre[free_idx], t0c][None, :]
-        fun = _surrogate_residuals(surr, data, phi)
+        lo = np.r_[np.maximum(space.lower[free], surr.centre - 2.0 * surr.delta), t_lo]
+        hi = np.r_[np.minimum(space.upper[free], surr.centre + 2.0 * surr.delta), t_hi]
+        p_c = np.r_[centre[free], t0c][None, :]
+        fun = _surrogate_residuals(surr, data, phi, space, centre)
         p_opt, chi2, _, jac = _levenberg_marquardt(fun, p_c, lo, hi, mask, rtol=1e-7)
         chi2_c = float(np.sum(fun(p_c)[0] ** 2))
         scale2 = float(chi2[0]) / dof
         gain = (chi2_c - float(chi2[0])) / scale2
         se = np.sqrt(np.maximum(np.diag(np.linalg.pinv(jac[0].T @ jac[0]))[:nf] * scale2, 0.0))
         step = p_opt[0, :nf] - surr.centre
-        inside = np.all((np.abs(step) < 1.9 * surr.delta) | (p_opt[0, :nf] <= _LOWER[free_idx])
-                        | (p_opt[0, :nf] >= _UPPER[free_idx]))
+        inside = np.all((np.abs(step) < 1.9 * surr.delta) | (p_opt[0, :nf] <= space.lower[free])
+                        | (p_opt[0, :nf] >= space.upper[free]))
         centre = centre.copy()
-        centre[free_idx] = p_opt[0, :nf]
+        centre[free] = p_opt[0, :nf]
         t0c = float(p_opt[0, nf])
         import os
         if os.environ.get("MF_DEBUG"):
-            print("  settle gain %.3g scale2 %.3g coarse %s inside %s" % (gain, scale2, coarse, inside), "centre", np.round(centre, 4), "se", np.round(se, 4))
-        if proven and not coarse and inside and gain < 1.0:
+            print("  settle gain %.3g scale2 %.3g coarse %s inside %s" % (gain, scale2, coarse, inside), "centre", np.round(centre, 4), "se", np.round(se, 4), "delta", np.round(surr.delta, 4), 'steps', surr.x.size)
+        # λ and η_s have stopped moving, even if a direction the record leaves flat still
+        # drifts (χ² hardly changes along it)
+        key = [free.index(k) for k in (_LAM, _ETA) if k in free]
+        steady = np.all(np.abs(step[key]) < 0.3 * se[key])
+        if proven and not coarse and gain < 1.0 and (inside or steady):
             return surr, centre, t0c, delta, True
         proven = True
-        coarse = coarse and gain > 5.0
-        # the next design spans 2·SE, and the whole last step when it was cut by the region
-        # (so a long valley is followed with a region that doubles each round)
+        coarse = coarse and gain > 50.0
         reach = np.abs(step) if not inside else 0.5 * np.abs(step)
         delta = delta.copy()
-        delta[free_idx] = np.clip(np.maximum(2.0 * se, reach), _DELTA_MIN[free_idx],
-                                  _DELTA_MAX[free_idx])
+        delta[free] = np.clip(np.maximum(2.0 * se, reach), _DELTA_MIN[free], _DELTA_MAX[free])
         last, surr = surr, None
     return last, centre, t0c, delta, False
 
 
 def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_guess):
     """Rounds of quadratic surrogates of the 0-D model, then the profile likelihood of λ."""
-    eta_fixed = None if solvent_viscosity is None else float(solvent_viscosity)
     if extensibility == "fit":
-        u_fixed = None
+        inv_l2 = None
     elif extensibility is None or extensibility == "oldroyd-b":
-        u_fixed = 0.0
+        inv_l2 = 0.0
     else:
-        u_fixed = 1.0 / float(extensibility)
-    free_idx = [0, 1] + ([2] if u_fixed is None else []) + ([3] if eta_fixed is None else [])
-    nf = len(free_idx)
-    cands = _polymer_candidates(data, start, eta_guess, eta_fixed, u_fixed)
-    paths = _polymer_paths(_batch(cands, data), _x_end(data), tol=1e-2, control_all=True, h_max=1.0)
+        inv_l2 = 1.0 / float(extensibility)
+    free = [_LAM, _G] + ([_W] if inv_l2 is None else []) + (
+        [_ETA] if solvent_viscosity is None else []) + [_D0]
+    d_first = float(data.d[0])
+    lower = np.array([math.log(1e-7), math.log(1e-3), 0.0, _LOG_ETA[0], math.log(0.9 * d_first)])
+    upper = np.array([math.log(1e3), math.log(1e6), 1.0, _LOG_ETA[1], math.log(5.0 * d_first)])
+    eta0 = eta_guess if solvent_viscosity is None else float(solvent_viscosity)
+    frame = float(np.median(np.diff(data.t) / data.gap))
+    inf = math.inf
+    space = _Space(free=free, lower=lower, upper=upper, inv_l2=inv_l2,
+                   prior_mean=np.array([0.0, 0.0, 0.0, math.log(eta0), math.log(data.d0),
+                                        data.t_start]),
+                   prior_sd=np.array([inf, inf, inf, 3.0, 0.5, max(frame, 1e-300)]))
+    cands = _polymer_candidates(data, start, eta0, space)
+    paths = _polymer_paths(_batch(cands, data, space), _x_end(data, cands), tol=1e-2,
+                           control_all=True, h_max=1.0)
     if not paths.ok.any():
         return "the 0-D model could not be integrated at the starting values"
-    t0s, chi2s = _best_t0(paths, data, 0.0)
-    chi2s = np.where(paths.ok, chi2s, np.inf)
-    best = int(np.argmin(chi2s))
+    t0s, chi2s = _best_t0(paths, np.exp(cands[:, _D0])[:, None], data)
+    best = int(np.argmin(np.where(paths.ok, chi2s, np.inf)))
     centre = cands[best].copy()
+    space.prior_mean[_G] = centre[_G]       # G: weakly about the best start (e² either way)
+    space.prior_sd[_G] = 2.0
     t0c = float(t0s[best])
-    a_end = _CAPILLARY * data.surface_tension / (data.d.min() / 2.0) / math.exp(centre[1])
-    delta = np.array([0.1, 0.4, max(0.3 * centre[2], 0.3 / a_end), 0.5])
-    delta = np.clip(delta, _DELTA_MIN, _DELTA_MAX)
-    dof = max(data.t.size - nf - 1, 1)
-    state = _settle(data, centre, t0c, delta, free_idx, phi=0.0, rounds=_MAX_ROUNDS)
+    a_end = _CAPILLARY * data.surface_tension / (data.d.min() / 2.0) / math.exp(centre[_G])
+    delta = np.clip(np.array([0.1, 0.4, max(0.3 * centre[_W], 0.3 / (a_end * math.exp(centre[_G]))),
+                              0.5, 0.1]), _DELTA_MIN, _DELTA_MAX)
+    state = _settle(data, centre, t0c, delta, space, phi=0.0, rounds=_MAX_ROUNDS)
     if isinstance(state, str):
         return state
     surr, centre, t0c, delta, settled = state
+    nf = len(free)
     # correlated noise: whiten with the AR(1) coefficient of the residuals and settle again
-    plain = _surrogate_residuals(surr, data, 0.0)(np.r_[centre[free_idx], t0c][None, :])[0][0]
+    p_hat = np.r_[centre[free], t0c]
+    plain = _surrogate_residuals(surr, data, 0.0, space, centre, False)(p_hat[None, :])[0][0]
     phi = _ar1(plain, data.gap, nf + 1)
     if phi > 0 and settled:
-        state = _settle(data, centre, t0c, delta, free_idx, phi=phi, rounds=3, surrogate=surr)
+        state = _settle(data, centre, t0c, delta, space, phi=phi, rounds=3, surrogate=surr)
         if isinstance(state, str):
             return state
         surr, centre, t0c, delta, settled = state
+        p_hat = np.r_[centre[free], t0c]
     t_lo, t_hi = _t0_bounds(data)
-    fun = _surrogate_residuals(surr, data, phi)
-    p_hat = np.r_[centre[free_idx], t0c]
-    lo = np.r_[np.maximum(_LOWER[free_idx], surr.centre - 3.0 * surr.delta), t_lo]
-    hi = np.r_[np.minimum(_UPPER[free_idx], surr.centre + 3.0 * surr.delta), t_hi]
+    dof = max(data.t.size - nf - 1, 1)
+    fun = _surrogate_residuals(surr, data, phi, space, centre)
+    lo = np.r_[np.maximum(lower[free], surr.centre - 3.0 * surr.delta), t_lo]
+    hi = np.r_[np.minimum(upper[free], surr.centre + 3.0 * surr.delta), t_hi]
     r_hat, jac_hat = fun(p_hat[None, :])
     chi2_min = float(np.sum(r_hat ** 2))
     scale2 = chi2_min / dof
-    free = np.ones(nf + 1, dtype=bool)
-    which = [0] + ([free_idx.index(3)] if eta_fixed is None else [])
-    ends = _profile_intervals(fun, p_hat, lo, hi, free, which, jac_hat[0], chi2_min, scale2, dof)
-    intervals = {"lam": tuple(float(v) for v in np.exp(ends[0]))}
-    if eta_fixed is None:
+    which = [free.index(_LAM)] + ([free.index(_ETA)] if _ETA in free else [])
+    ends = _profile_intervals(fun, p_hat, lo, hi, np.ones(nf + 1, dtype=bool), which,
+                              jac_hat[0], chi2_min, scale2, dof)
+    intervals = {"lam": tuple(float(v) for v in np.exp(ends[which[0]]))}
+    if _ETA in free:
         intervals["eta"] = tuple(float(v) for v in np.exp(ends[which[1]]))
-    cov = np.linalg.pinv(jac_hat[0].T @ jac_hat[0]) * scale2
-    values = {"lam": math.exp(centre[0]), "G": math.exp(centre[1]),
-              "eta": math.exp(centre[3]), "t0": t0c, "L2": None}
-    if u_fixed is not None:
-        values["L2"] = None if u_fixed == 0 else 1.0 / u_fixed
+    g = math.exp(centre[_G])
+    values = {"lam": math.exp(centre[_LAM]), "G": g, "eta": math.exp(centre[_ETA]), "t0": t0c,
+              "L2": None}
+    if inv_l2 is not None:
+        values["L2"] = None if inv_l2 == 0 else 1.0 / inv_l2
     else:
-        j = free_idx.index(2)
-        se_u = math.sqrt(max(cov[j, j], 0.0))
-        if centre[2] > 2.0 * se_u and centre[2] > 0:
-            values["L2"] = 1.0 / centre[2]
+        cov = np.linalg.pinv(jac_hat[0].T @ jac_hat[0]) * scale2
+        j = free.index(_W)
+        if centre[_W] > 2.0 * math.sqrt(max(cov[j, j], 0.0)):
+            values["L2"] = 1.0 / (centre[_W] * g)
     t_path, v_path = surr.paths(p_hat[None, :nf])
-    plain = _surrogate_residuals(surr, data, 0.0)(p_hat[None, :])[0][0]
+    plain = _surrogate_residuals(surr, data, 0.0, space, centre, False)(p_hat[None, :])[0][0]
     return _Outcome(kind="viscoelastic", values=values, chi2_white=chi2_min,
                     chi2_plain=float(np.sum(plain ** 2)), n_free=nf + 1, scale2=scale2, phi=phi,
                     intervals=intervals,
-                    curve_state=("viscoelastic", data.d0, t0c, surr.x, t_path[0], v_path[0],
-                                 settled))
+                    curve_state=("viscoelastic", math.exp(centre[_D0]), t0c, surr.x, t_path[0],
+                                 v_path[0], settled))
 
 
 # --- the result ----------------------------------------------------------------------------------
