@@ -187,43 +187,53 @@ class _Paths:
     ok: np.ndarray     # (B,) integration succeeded
 
 
-def _polymer_paths(m: _Batch, x_end, *, tol=1e-4, control_all=False, h_max=0.5, h_min=1e-5,
-                   max_steps=400) -> _Paths:
-    """Integrate every member from x = 0 to ``x_end`` with one shared adaptive step sequence.
+def _polymer_paths(m: _Batch, x_end, *, tol=1e-4, weight=None, start=None, grid=None,
+                   h_max=0.5, h_min=1e-5, max_steps=400) -> _Paths:
+    """Integrate every member from x = 0 to ``x_end`` with one shared step sequence.
 
-    The step is set by the first member and, at a tenth of the accuracy, by
-    the others (``control_all``: all alike), from the RMS of the embedded
-    error in A_rr and ẋ·t (time in units of the local thinning time); ln S,
-    the stiff component, only matters through them. Members whose state turns
-    non-finite, or that would need a step below ``h_min``, are marked failed
-    and drop out; so does the batch when the first member fails (unless
-    ``control_all``) or the steps run out.
+    Adaptive: the step keeps the RMS of the embedded error in A_rr and ẋ·t
+    (time in units of the local thinning time) below ``tol``/``weight`` for
+    every member (weights: 1, the default, for members whose accuracy
+    matters, 0.1 for finite-difference neighbours, which only need to
+    follow); ln S, the stiff component, matters only through them. With
+    ``grid`` (the nodes of an earlier run) the steps are those, so the result
+    is a smooth function of the parameters. ``start`` (ln S, A_rr) per member
+    replaces the relaxed start S = (2X − 1)σ/R0, A_rr = 1. Members whose state
+    turns non-finite, or that would need a step below ``h_min``, are marked
+    failed; the integration stops when every weight-1 member has failed, and
+    all fail if the steps run out before ``x_end`` (the grid's end, with one).
     """
     n = m.size
+    weight = np.ones(n) if weight is None else np.asarray(weight, dtype=float)
+    control = weight >= 1.0
     y = np.empty((3, n))
-    y[0] = np.log(m.p0)
-    y[1] = 1.0
+    y[0], y[1] = (np.log(m.p0), 1.0) if start is None else start
     y[2] = 0.0
     ok = np.ones(n, dtype=bool)
     xs = [0.0]
     ts = [y[2].copy()]
     xds = [m.speed(y[0], m.kr4)]
-    weight = np.ones(n) if control_all else np.r_[1.0, np.full(n - 1, 0.1)]
+    if grid is not None:
+        x_end, max_steps = float(grid[-1]), grid.size - 1
     x, h = 0.0, 0.02
     with np.errstate(all="ignore"):
-        for _ in range(max_steps):
-            if x >= x_end - 1e-12 or not (ok.any() if control_all else ok[0]):
+        for i in range(max_steps):
+            if x >= x_end - 1e-12 or not (ok & control).any():
                 break
-            h = min(h, x_end - x)
+            h = grid[i + 1] - grid[i] if grid is not None else min(h, x_end - x)
             y_new, e = _rodas_step(m, x, h, y)
             xd = m.speed(y_new[0], m.kr4 * math.exp(-2.0 * (x + h)))
             err = weight * np.sqrt((e[1] ** 2 + (e[2] * xd) ** 2) / 2.0) / tol
             err = np.where(np.isfinite(err) & np.isfinite(y_new).all(axis=0) & (xd > 0), err,
                            np.inf)
-            worst = float(np.max(err[ok])) if ok.any() else 0.0
-            if worst > 1.0 and h <= h_min:
-                ok &= err <= 1.0                # these members cannot be followed: drop them
+            if grid is not None:
+                ok &= np.isfinite(err)
+                worst = 0.0
+            else:
                 worst = float(np.max(err[ok])) if ok.any() else 0.0
+                if worst > 1.0 and h <= h_min:
+                    ok &= err <= 1.0            # these members cannot be followed: drop them
+                    worst = float(np.max(err[ok])) if ok.any() else 0.0
             if worst <= 1.0:
                 x += h
                 y = np.where(ok, y_new, y)
@@ -254,20 +264,18 @@ def _locate(grid_t, tau):
     return np.clip(k, 0, n_nodes - 2)
 
 
-def _path_diameter(tau, x, t, xdot, d0, dt=None, dv=None):
-    """D (m), dD/dτ (m/s) and optionally dD/dθ at times τ (s) after t0 along trajectories.
+def _path_diameter(tau, x, t, xdot, d0):
+    """D (m) and dD/dτ (m/s) at times τ (s) after t0 along trajectories.
 
     Rows of ``t`` and ``xdot`` (K, N) are node times and ẋ at the nodes ``x``
-    (N,); τ is (K, n) or (n,). Cubic Hermite interpolation of x(τ); D0
-    before τ = 0; beyond the last node x continues at the last slope. With
-    ``dt``, ``dv`` (K, m, N), the node times' and slopes' derivatives in m
-    parameters, also returns dD/dθ (K, n, m).
+    (N,); τ is (K, n) or (n,), ``d0`` a scalar or (K, 1). Cubic Hermite
+    interpolation of x(τ); D0 before τ = 0; beyond the last node x continues
+    at the last slope.
     """
     t = np.maximum.accumulate(t, axis=1)
     tau = np.broadcast_to(tau, (t.shape[0], np.shape(tau)[-1]))
     k = _locate(t, tau)
-    n_nodes = t.shape[1]
-    flat = k + (np.arange(t.shape[0]) * n_nodes)[:, None]
+    flat = k + (np.arange(t.shape[0]) * t.shape[1])[:, None]
     t_flat = t.ravel()
     v_flat = xdot.ravel()
     t0 = t_flat[flat]
@@ -280,10 +288,8 @@ def _path_diameter(tau, x, t, xdot, d0, dt=None, dv=None):
     s = np.clip((tau - t0) / dlt, 0.0, 1.0)
     s2 = s * s
     s3 = s2 * s
-    h10 = s3 - 2 * s2 + s
-    h11 = s3 - s2
-    slopes = h10 * v0 + h11 * v1
-    xi = (2 * s3 - 3 * s2 + 1) * x0 + (3 * s2 - 2 * s3) * x1 + dlt * slopes
+    xi = ((2 * s3 - 3 * s2 + 1) * x0 + (3 * s2 - 2 * s3) * x1
+          + dlt * ((s3 - 2 * s2 + s) * v0 + (s3 - s2) * v1))
     vi = ((6 * s2 - 6 * s) * (x0 - x1) / dlt + (3 * s2 - 4 * s + 1) * v0
           + (3 * s2 - 2 * s) * v1)
     t_last = t[:, -1:]
@@ -295,24 +301,7 @@ def _path_diameter(tau, x, t, xdot, d0, dt=None, dv=None):
     xi = np.where(before, 0.0, xi)
     vi = np.where(before, 0.0, vi)
     d = d0 * np.exp(-xi)
-    if dt is None:
-        return d, -d * vi
-    # ∂x/∂(t_k, t_k+1, v_k, v_k+1) of the Hermite form, then the chain rule
-    inside = ~beyond & ~before
-    a_t0 = np.where(inside, vi * (s - 1.0) - slopes, 0.0)
-    a_t1 = np.where(inside, slopes - vi * s, 0.0)
-    a_v0 = np.where(inside, h10 * dlt, 0.0)
-    a_v1 = np.where(inside, h11 * dlt, 0.0)
-    b_t = np.where(beyond, -v_last, 0.0)
-    b_v = np.where(beyond, tau - t_last, 0.0)
-    m = dt.shape[1]
-    kk = (k[:, None, :] + (np.arange(k.shape[0] * m) * n_nodes).reshape(k.shape[0], m, 1))
-    dt_flat = dt.ravel()
-    dv_flat = dv.ravel()
-    dx = (a_t0[:, None] * dt_flat[kk] + a_t1[:, None] * dt_flat[kk + 1]
-          + a_v0[:, None] * dv_flat[kk] + a_v1[:, None] * dv_flat[kk + 1]
-          + b_t[:, None] * dt[:, :, -1:] + b_v[:, None] * dv[:, :, -1:])
-    return d, -d * vi, np.moveaxis(-d[:, None] * dx, 1, 2)
+    return d, -d * vi
 
 
 # --- the Newtonian closed form ---------------------------------------------------------
@@ -361,91 +350,19 @@ def _newtonian_diameter(tau, d0, eta, density, surface_tension):
     return 2.0 * r, -2.0 * speed
 
 
-# --- quadratic surrogates of the trajectory ------------------------------------------------
-
-def _design(signs):
-    """Offsets z (M, p) of a quadratic design: centre, two axial points each, one per pair.
-
-    ``signs`` (p,) is +1 where a coordinate may go either way (axial points at
-    ±1, pairs at +1), +2 where it must stay above the centre (axial +1, +2)
-    and −2 where below (axial −1, −2; pairs at −1). M = 1 + 2p + p(p − 1)/2.
-    """
-    p = len(signs)
-    axial = {1: (-1.0, 1.0), 2: (1.0, 2.0), -2: (-1.0, -2.0)}
-    cross = {1: 1.0, 2: 1.0, -2: -1.0}
-    rows = [np.zeros(p)]
-    for i in range(p):
-        for v in axial[signs[i]]:
-            z = np.zeros(p)
-            z[i] = v
-            rows.append(z)
-    for i in range(p):
-        for j in range(i + 1, p):
-            z = np.zeros(p)
-            z[i] = cross[signs[i]]
-            z[j] = cross[signs[j]]
-            rows.append(z)
-    return np.array(rows)
-
-
-def _basis(z):
-    """Quadratic basis [1, z_i, z_i², z_i z_j (i < j)] of offsets z (K, p)."""
-    p = z.shape[1]
-    cols = [np.ones(z.shape[0])] + [z[:, i] for i in range(p)] + [z[:, i] ** 2 for i in range(p)]
-    cols += [z[:, i] * z[:, j] for i in range(p) for j in range(i + 1, p)]
-    return np.stack(cols, axis=1)
-
-
-def _basis_gradient(z):
-    """d basis/dz_j (K, p, M) of :func:`_basis`."""
-    k, p = z.shape
-    m = 1 + 2 * p + p * (p - 1) // 2
-    g = np.zeros((k, p, m))
-    col = 1 + 2 * p
-    for i in range(p):
-        g[:, i, 1 + i] = 1.0
-        g[:, i, 1 + p + i] = 2.0 * z[:, i]
-        for j in range(i + 1, p):
-            g[:, i, col] = z[:, j]
-            g[:, j, col] = z[:, i]
-            col += 1
-    return g
-
-
-@dataclass(frozen=True)
-class _Surrogate:
-    """t_k(θ) and ln ẋ_k(θ) at the x-nodes, quadratic in θ about ``centre`` (scale ``delta``)."""
-
-    x: np.ndarray
-    centre: np.ndarray
-    delta: np.ndarray
-    coef_t: np.ndarray     # (M, N)
-    coef_v: np.ndarray     # (M, N)
-
-    def paths(self, theta):
-        """Node times (K, N) and ẋ (K, N) for parameter rows θ (K, p)."""
-        phi = _basis((np.atleast_2d(theta) - self.centre) / self.delta)
-        return phi @ self.coef_t, np.exp(phi @ self.coef_v)
-
-    def gradients(self, theta):
-        """Node times, ẋ and their θ-derivatives (K, p, N) for parameter rows θ (K, p)."""
-        z = (np.atleast_2d(theta) - self.centre) / self.delta
-        phi = _basis(z)
-        grad = _basis_gradient(z) / self.delta[None, :, None]
-        t = phi @ self.coef_t
-        v = np.exp(phi @ self.coef_v)
-        return t, v, grad @ self.coef_t, v[:, None, :] * (grad @ self.coef_v)
-
-
 # --- batched, bounded Levenberg–Marquardt ---------------------------------------------------
 
-def _levenberg_marquardt(resid_jac, p0, lower, upper, free, *, max_iter=60, rtol=1e-9, atol=0.0):
+def _levenberg_marquardt(resid_jac, p0, lower, upper, free, *, max_iter=60, rtol=1e-9, atol=0.0,
+                         mu=1e-4, max_step=None):
     """Minimise Σ r² for each row of ``p0`` (K, q) within [lower, upper] (q,) or (K, q).
 
     ``resid_jac(p)`` returns residuals (K, n) and Jacobians (K, n, q) for
-    parameter rows p; coordinates where ``free`` (K, q) is False stay put. A
-    row stops when the step predicted by its linearisation would lower χ² by
-    less than max(``rtol``·χ², ``atol``). Returns (p, χ², residuals, J at p).
+    parameter rows p; coordinates where ``free`` (K, q) is False stay put; a
+    step is shortened (as a whole) so that no coordinate moves by more than
+    ``max_step`` (q,), which keeps nearly flat directions from sending the
+    linearisation far out. A row stops when the step predicted by its
+    linearisation would lower χ² by less than max(``rtol``·χ², ``atol``).
+    Returns (p, χ², residuals, J at p).
     """
     p = np.array(p0, dtype=float)
     lower = np.broadcast_to(lower, p.shape)
@@ -454,7 +371,7 @@ def _levenberg_marquardt(resid_jac, p0, lower, upper, free, *, max_iter=60, rtol
     r, jac = resid_jac(p)
     chi2 = np.sum(r * r, axis=1)
     chi2 = np.where(np.isfinite(chi2), chi2, np.inf)
-    mu = np.full(p.shape[0], 1e-3)
+    mu = np.full(p.shape[0], float(mu))
     done = ~np.isfinite(chi2)
     eye = np.eye(p.shape[1])
     for _ in range(max_iter):
@@ -469,6 +386,9 @@ def _levenberg_marquardt(resid_jac, p0, lower, upper, free, *, max_iter=60, rtol
         a = jtj + (mu[:, None] * scale)[:, :, None] * eye + (~use)[:, :, None] * eye
         raw = -np.linalg.solve(a, grad[..., None])[..., 0]
         raw = np.where(use & np.isfinite(raw), raw, 0.0)
+        if max_step is not None:
+            raw *= np.minimum(1.0, np.min(max_step / np.maximum(np.abs(raw), 1e-300), axis=1,
+                                          keepdims=True))
         step = np.clip(p + raw, lower, upper) - p
         clipped = np.any(np.abs(step - raw) > 1e-12 * (1.0 + np.abs(raw)), axis=1)
         pred = -(2.0 * np.einsum("ki,ki->k", grad, step)
@@ -486,7 +406,7 @@ def _levenberg_marquardt(resid_jac, p0, lower, upper, free, *, max_iter=60, rtol
         r = np.where(better[:, None], r_t, r)
         jac = np.where(better[:, None, None], jac_t, jac)
         chi2 = np.where(better, chi2_t, chi2)
-        mu = np.where(better, np.maximum(mu / 5.0, 1e-9), mu * 8.0)
+        mu = np.where(better, np.maximum(mu / 10.0, 1e-9), mu * 8.0)
         done |= mu >= 1e10
     return p, chi2, r, jac
 
@@ -683,56 +603,77 @@ def _fit_newtonian(data, *, solvent_viscosity):
 
 # --- profile likelihood ------------------------------------------------------------------------
 
-def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, scale2, dof, *,
-                       steps=(0.8, 1.1, 1.6)):
-    """95 % profile-likelihood intervals of the coordinates ``indices`` of ``p_hat``.
+def _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper):
+    """Rows one Wald half-width (t·SE) either side of ``p_hat`` in each coordinate of ``indices``.
 
-    The set {Δχ²/s² ≤ t²(0.975, dof)}: for each coordinate the profile (the
-    other free coordinates re-optimised) is evaluated at multiples of its
-    Wald half-width on each side, all coordinates in one batch, and the
-    signed root √(Δχ²/s²) — close to linear in the coordinate — is
-    interpolated to ±t. A side the profile does not carry past t (within
-    1.6 Wald half-widths or the bounds) is NaN. Returns {index: (low, high)}.
+    Only that coordinate moves: along the Wald line the poorly determined
+    ones (G, D0 when the transient is not seen) would be sent far out on a
+    linearisation that does not hold there. Two rows per index.
     """
     t_crit = float(stats.t.ppf(0.975, dof))
-    free_pos = np.flatnonzero(free)
-    jf = jac[:, free]
-    cov = np.linalg.pinv(jf.T @ jf) * scale2
-    offsets = np.array([-s for s in steps[::-1]] + list(steps))
-    rows, masks, which = [], [], []
+    cov = np.linalg.pinv(jac.T @ jac) * scale2
+    rows = []
     for index in indices:
-        pos = int(np.flatnonzero(free_pos == index)[0])
-        var = cov[pos, pos]
-        if not var > 0:
-            continue
-        half = t_crit * math.sqrt(var)
-        r = np.repeat(p_hat[None, :], offsets.size, axis=0)
-        r[:, free_pos] += (offsets * half)[:, None] * (cov[:, pos] / var)[None, :]  # Wald line
-        r[:, index] = p_hat[index] + offsets * half
-        rows.append(np.clip(r, lower, upper))
-        m = np.repeat(free[None, :], offsets.size, axis=0)
-        m[:, index] = False
-        masks.append(m)
-        which.append(index)
+        for side in (-1.0, 1.0):
+            row = p_hat.copy()
+            row[index] += side * t_crit * math.sqrt(max(cov[index, index], 1e-300))
+            rows.append(row)
+    return np.clip(np.array(rows), lower, upper)
+
+
+def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, scale2, dof, *,
+                       max_step=None):
+    """95 % profile-likelihood intervals of the coordinates ``indices`` of ``p_hat``.
+
+    The set {Δχ²/s² ≤ t²(0.975, dof)}. The profile (the other free
+    coordinates re-optimised) is evaluated one Wald half-width either side,
+    all coordinates in one batch; the signed root √(Δχ²/s²), close to linear
+    in the coordinate, is extrapolated to ±t, and where that lands more than
+    a quarter away from the first point the profile is evaluated there too
+    and the root interpolated. A side whose profile stays flat is NaN.
+    ``max_step`` bounds the re-optimisation's steps (see
+    :func:`_levenberg_marquardt`). Returns {index: (low, high)}.
+    """
+    t_crit = float(stats.t.ppf(0.975, dof))
     out = {index: (math.nan, math.nan) for index in indices}
-    if not rows:
-        return out
-    rows = np.concatenate(rows)
-    _, chi2, _, _ = _levenberg_marquardt(fun, rows, lower, upper, np.concatenate(masks),
-                                         atol=1e-3 * scale2)
-    for j, index in enumerate(which):
-        sl = slice(j * offsets.size, (j + 1) * offsets.size)
-        off = rows[sl, index] - p_hat[index]
-        root = np.sqrt(np.maximum(chi2[sl] - chi2_min, 0.0) / scale2)
+    mask_row = np.repeat(free[None, :], 2 * len(indices), axis=0)
+    for j, index in enumerate(indices):
+        mask_row[2 * j:2 * j + 2, index] = False
+    rows = _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper)
+    _, chi2, _, _ = _levenberg_marquardt(fun, rows, lower, upper, mask_row, max_iter=6,
+                                         rtol=1e-8, atol=0.01 * scale2, max_step=max_step)
+    idx = np.repeat(indices, 2)
+    off1 = np.abs(rows[np.arange(rows.shape[0]), idx] - p_hat[idx])
+    root1 = np.sqrt(np.maximum(chi2 - chi2_min, 0.0) / scale2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        reach = off1 * t_crit / root1           # linear extrapolation of the root to t
+    again = np.isfinite(reach) & (np.abs(reach / off1 - 1.0) > 0.25)
+    reach2, root2 = reach.copy(), np.full(reach.shape, t_crit)
+    if again.any():
+        rows2 = rows.copy()
+        side = np.sign(rows[np.arange(rows.shape[0]), idx] - p_hat[idx])
+        rows2[np.arange(rows.shape[0]), idx] = p_hat[idx] + side * np.where(again, reach, off1)
+        rows2 = np.clip(rows2, lower, upper)
+        _, chi2b, _, _ = _levenberg_marquardt(fun, rows2[again], lower, upper, mask_row[again],
+                                              max_iter=3, rtol=1e-8, atol=0.01 * scale2,
+                                              max_step=max_step)
+        reach2[again] = np.abs(rows2[again, idx[again]] - p_hat[idx[again]])
+        root2[again] = np.sqrt(np.maximum(chi2b - chi2_min, 0.0) / scale2)
+    for j, index in enumerate(indices):
         ends = []
-        for side in (-1, 1):
-            sel = np.sign(off) == side
-            o = np.r_[0.0, np.abs(off[sel])]
-            q = np.r_[0.0, root[sel]]
+        for k, side in zip((2 * j, 2 * j + 1), (-1.0, 1.0)):
+            o = np.array([0.0, off1[k], reach2[k]])
+            q = np.array([0.0, root1[k], root2[k]])
             order = np.argsort(o)
             o, q = o[order], np.maximum.accumulate(q[order])
-            ends.append(p_hat[index] + side * float(np.interp(t_crit, q, o))
-                        if q[-1] >= t_crit else math.nan)
+            if not np.isfinite(o).all() or q[-1] <= 0:
+                ends.append(math.nan)
+            elif q[-1] >= t_crit:
+                ends.append(p_hat[index] + side * float(np.interp(t_crit, q, o)))
+            else:   # beyond the last point: continue its slope
+                slope = (q[-1] - q[-2]) / max(o[-1] - o[-2], 1e-300)
+                ends.append(p_hat[index] + side * (o[-1] + (t_crit - q[-1]) / slope)
+                            if slope > 0 else math.nan)
         out[index] = (ends[0], ends[1])
     return out
 
@@ -745,9 +686,10 @@ def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, s
 # and w = 0 is Oldroyd-B.
 
 _LAM, _G, _W, _ETA, _D0 = range(5)
-_DELTA_MIN = np.array([1e-4, 1e-4, 1e-12, 1e-4, 1e-5])
-_DELTA_MAX = np.array([0.2, 0.3, 1.0, 0.5, 0.1])
-_MAX_ROUNDS = 8
+#: Largest move of θ in one least-squares step (w in units of the space's ``w_scale``).
+_MAX_STEP = np.array([0.3, 0.7, 2.0, 0.7, 0.1])
+#: Finite-difference steps of θ (w in units of the space's ``w_scale``).
+_STEP = np.array([1e-4, 1e-4, 1e-3, 1e-4, 1e-5])
 #: FENE-P needs 3 A_rr / L² < 1; L² is kept above 20.
 _INV_L2_MAX = 0.05
 
@@ -758,6 +700,7 @@ class _Space:
     weak priors that keep directions the record cannot resolve from drifting.
 
     ``prior_mean``/``prior_sd`` have six entries: θ and t0 (s); an infinite SD is no prior.
+    ``w_scale`` (1/Pa) is the w at which finite extensibility starts to show at the floor.
     """
 
     free: list
@@ -766,6 +709,7 @@ class _Space:
     inv_l2: float | None      # fixed 1/L² (0: Oldroyd-B), or None when w is fitted
     prior_mean: np.ndarray
     prior_sd: np.ndarray
+    w_scale: float
 
 
 def _batch(theta, data, space):
@@ -780,6 +724,68 @@ def _batch(theta, data, space):
 def _x_end(data, theta):
     """The x = ln(D0/D) every row of θ must reach to pass the smallest diameter."""
     return float(np.max(theta[:, _D0])) - math.log(float(data.d.min())) + 0.3
+
+
+def _on_manifold(theta, data):
+    """(ln S, A_rr) of a thread already in the elasto-capillary balance at D0 = e^θ_D0.
+
+    There ε̇ = 2/(3λ): S = 3 η_s ε̇ + k ρ R² (ε̇/2)², and A_rr has relaxed to its
+    steady f/(f + 2/3) ≈ 0.6.
+    """
+    rate = 1.0 / (3.0 * np.exp(theta[:, _LAM]))
+    r0 = np.exp(theta[:, _D0]) / 2.0
+    s = 6.0 * np.exp(theta[:, _ETA]) * rate + _INERTIA * (data.density or 0.0) * (r0 * rate) ** 2
+    return np.log(s), np.full(theta.shape[0], 0.6)
+
+
+def _model_residuals(data, space, fixed, phi, *, tol, grid=None, on_manifold=False, priors=True):
+    """Residual/Jacobian function over rows p = [θ_free, t0] of the 0-D model.
+
+    Each row is integrated with one finite-difference neighbour per free
+    coordinate, all in one batch (shared steps, so the differences are
+    smooth); t0 enters exactly, as a shift. ``fixed`` is the full θ whose
+    other coordinates hold; ``grid`` freezes the integration steps. A row whose trajectory fails has infinite
+    residuals. With ``priors`` the weak priors follow the data residuals.
+    """
+    free = space.free
+    nf = len(free)
+    h = _STEP[free] * np.where(np.array(free) == _W, space.w_scale, 1.0)
+    eye = np.eye(5)[free]
+    keys = free + [5]
+    cols = [j for j, key in enumerate(keys) if np.isfinite(space.prior_sd[key])]
+    mean = space.prior_mean[[keys[j] for j in cols]]
+    sd = space.prior_sd[[keys[j] for j in cols]]
+
+    def resid_jac(p):
+        k = p.shape[0]
+        theta = np.repeat(fixed[None, :], k, axis=0)
+        theta[:, free] = p[:, :nf]
+        members = np.concatenate([theta] + [theta + h[j] * eye[j] for j in range(nf)])
+        weight = np.r_[np.ones(k), np.full(k * nf, 0.1)]
+        paths = _polymer_paths(_batch(members, data, space), _x_end(data, members), tol=tol,
+                               weight=weight, grid=grid,
+                               start=_on_manifold(members, data) if on_manifold else None)
+        tau = data.t[None, :] - np.tile(p[:, nf], nf + 1)[:, None]
+        d, dd = _path_diameter(tau, paths.x, paths.t, paths.xdot,
+                               np.exp(members[:, _D0])[:, None])
+        d = d.reshape(nf + 1, k, -1)
+        r = (data.d - d[0]) / data.noise
+        jac = np.empty(r.shape + (nf + 1,))
+        for j in range(nf):
+            jac[..., j] = -(d[j + 1] - d[0]) / (h[j] * data.noise)
+        jac[..., nf] = dd[:k] / data.noise
+        bad = ~paths.ok.reshape(nf + 1, k).all(axis=0) | ~np.isfinite(r).all(axis=1)
+        r[bad] = np.inf
+        jac[bad] = 0.0
+        r = _whiten(r, phi, data.gap)
+        jac = _whiten(jac, phi, data.gap, axis=1)
+        if not priors or not cols:
+            return r, jac
+        r_p = (p[:, cols] - mean) / sd
+        j_p = np.zeros((k, len(cols), nf + 1))
+        j_p[:, np.arange(len(cols)), cols] = 1.0 / sd
+        return np.concatenate([r, r_p], axis=1), np.concatenate([jac, j_p], axis=1)
+    return resid_jac
 
 
 def _local_slopes(t, y, lo, hi):
@@ -817,65 +823,11 @@ def _elastic_window(data, *, span=0.1, tolerance=0.15):
     return int(left[best]), int(right[best])
 
 
-def _polymer_candidates(data, start, eta_guess, space):
-    """Starting rows θ (K, 5) around the elastic stretch (or ``start``) and the record's end.
-
-    λ from the slope of ln D over the elastic stretch; G from its intercept
-    at the start (the dumbbells stretch affinely, G (D0/D)^4 = (2X − 1)σ/R,
-    until the stress takes over); w from the last frames read as the terminal
-    regime, (2X − 1)σ/(−dD/dt) = 2 G λ L² + 3 η_s; a spread of each.
-    """
-    c_s = _CAPILLARY * data.surface_tension
-    r0 = data.d0 / 2.0
-    first, last = _elastic_window(data)
-    y = np.log(data.d)
-    lam_data = None
-    if last - first >= 3:
-        a = np.polyfit(data.t[first:last + 1], y[first:last + 1], 1)
-        if a[0] < 0:
-            lam_data = -1.0 / (3.0 * a[0])
-    lam0 = start.get("relaxation_time_s") if start else None
-    lam0 = float(lam0) if lam0 and lam0 > 0 else lam_data
-    if lam0 is None:
-        lam0 = (data.t[-1] - data.t[0]) / (3.0 * math.log(data.d0 / data.d.min()))
-    if start and start.get("window_s") is not None and start.get("diameter_at_window_start_m"):
-        t_w, d_w = float(start["window_s"][0]), float(start["diameter_at_window_start_m"])
-    else:
-        t_w, d_w = float(data.t[first]), float(data.d[first])
-    eta_free = _ETA in space.free
-    if eta_free and first >= 4:
-        # the thinning before the elastic stretch is Newtonian-like at η_0 = η_s + η_p
-        pre = dataclasses.replace(data, t=data.t[:first + 1], d=data.d[:first + 1],
-                                  gap=data.gap[:first])
-        eta_guess = _newtonian_least_squares(pre, None, 0.0)[0]
-    etas = [eta_guess * f for f in (0.5, 0.1, 0.02)] if eta_free else [eta_guess]
-    tail = slice(min(last + 1, data.t.size - 4), None)
-    tail_speed = -np.polyfit(data.t[tail], data.d[tail], 1)[0] if data.t[tail].size >= 4 else 0.0
-    rows = []
-    for f_lam in (1.0,):
-        lam = lam0 * f_lam
-        d_ec0 = d_w * math.exp((t_w - data.t_start) / (3.0 * lam))
-        g_amp = c_s / r0 * min(d_ec0 / data.d0, 1.0) ** 3
-        for g in (0.3 * g_amp, g_amp, 3.0 * g_amp):
-            for eta in etas:
-                ws = [0.0]
-                if space.inv_l2 is None and tail_speed > 0:
-                    e_inf = c_s / tail_speed - 3.0 * eta
-                    if e_inf > 0:
-                        ws.append(2.0 * lam / e_inf)
-                for w in ws:
-                    rows.append([math.log(lam), math.log(g), w, math.log(eta),
-                                 math.log(data.d0)])
-    return np.clip(np.array(rows), space.lower, space.upper)
-
-
-def _paths_t0_residuals(paths, d0, data, phi):
+def _paths_t0_residuals(paths, d0, data):
     """Residual/Jacobian over t0 alone (rows p (K, 1)), one exact trajectory per row."""
     def resid_jac(p):
-        tau = data.t[None, :] - p[:, :1]
-        d, dd = _path_diameter(tau, paths.x, paths.t, paths.xdot, d0)
-        r = (data.d - d) / data.noise
-        return _whiten(r, phi, data.gap), _whiten((dd / data.noise)[..., None], phi, data.gap, 1)
+        d, dd = _path_diameter(data.t[None, :] - p[:, :1], paths.x, paths.t, paths.xdot, d0)
+        return (data.d - d) / data.noise, (dd / data.noise)[..., None]
     return resid_jac
 
 
@@ -890,145 +842,78 @@ def _best_t0(paths, d0, data):
     chi2 = np.sum(((data.d[sub] - d.reshape(k, grid.size, sub.size)) / data.noise) ** 2, axis=2)
     chi2 = np.where(np.isfinite(chi2), chi2, np.inf)
     t0 = grid[np.argmin(chi2, axis=1)][:, None]
-    t0, chi2, _, _ = _levenberg_marquardt(_paths_t0_residuals(paths, d0, data, 0.0), t0, lo, hi,
+    t0, chi2, _, _ = _levenberg_marquardt(_paths_t0_residuals(paths, d0, data), t0, lo, hi,
                                          np.ones((k, 1), dtype=bool), rtol=1e-6)
-    return t0[:, 0], chi2
+    return t0[:, 0], np.where(paths.ok, chi2, np.inf)
 
 
-def _surrogate_residuals(surr, data, phi, space, fixed, priors=True):
-    """Residual/Jacobian over rows p = [θ_free, t0] along the surrogate trajectories.
+def _elastic_start(data, start, space, g_guess, eta_guess):
+    """λ and w from the elastic stretch alone: the model started on the elastic balance.
 
-    ``fixed`` is the full θ whose non-free coordinates hold. With ``priors``
-    the weak priors of ``space`` follow the data residuals.
+    The frames from the start of the longest near-exponential stretch (or of
+    ``start["window_s"]``) on are fitted with the thread already in the
+    elasto-capillary balance at their first diameter; λ, w (unless L² is
+    given) and that first frame's time are free, G and η_s stay at their
+    guesses (they hardly matter there). Returns (λ, w, first frame) or None.
     """
-    nf = len(space.free)
-    d0_col = space.free.index(_D0) if _D0 in space.free else None
-
-    def resid_jac(p):
-        t, v, dt, dv = surr.gradients(p[:, :nf])
-        d0 = (np.exp(p[:, d0_col]) if d0_col is not None
-              else np.full(p.shape[0], math.exp(fixed[_D0])))[:, None]
-        d, dd, dth = _path_diameter(data.t[None, :] - p[:, nf:], surr.x, t, v, d0, dt, dv)
-        if d0_col is not None:
-            dth[:, :, d0_col] += d          # D = D0 e^(−x): the direct part of ∂D/∂ln D0
-        r = (data.d - d) / data.noise
-        jac = np.concatenate([-dth, dd[..., None]], axis=2) / data.noise
-        r = _whiten(r, phi, data.gap)
-        jac = _whiten(jac, phi, data.gap, axis=1)
-        if not priors:
-            return r, jac
-        # weak priors: extra residuals (p − μ)/s on the coordinates that have one
-        r_p = (p[:, cols] - mean) / sd
-        j_p = np.zeros((p.shape[0], len(cols), nf + 1))
-        j_p[:, np.arange(len(cols)), cols] = 1.0 / sd
-        return np.concatenate([r, r_p], axis=1), np.concatenate([jac, j_p], axis=1)
-
-    cols = [j for j, k in enumerate(space.free + [None])
-            if np.isfinite(space.prior_sd[k if k is not None else 5])]
-    keys = [k if k is not None else 5 for k in space.free + [None]]
-    mean = np.array([space.prior_mean[keys[j]] for j in cols])
-    sd = np.array([space.prior_sd[keys[j]] for j in cols])
-    return resid_jac
-
-
-def _round(data, centre, delta, space, tol):
-    """Integrate the quadratic design about ``centre`` and return its surrogate (or None).
-
-    Members that cannot be integrated shrink the design threefold (twice at most).
-    """
-    free = space.free
-    p = len(free)
-    for _ in range(3):
-        room_lo = (centre[free] - space.lower[free]) / delta[free]
-        room_hi = (space.upper[free] - centre[free]) / delta[free]
-        signs = np.where((room_lo >= 1) & (room_hi >= 1), 1, np.where(room_hi >= 2, 2, -2))
-        # a coordinate hemmed in on both sides gets a design that fits
-        tight = (signs == -2) & (room_lo < 2)
-        delta = delta.copy()
-        delta[np.array(free)[tight]] *= np.maximum(room_lo, room_hi)[tight] / 2.0
-        z = _design(signs)
-        theta = np.repeat(centre[None, :], z.shape[0], axis=0)
-        theta[:, free] += z * delta[free]
-        paths = _polymer_paths(_batch(theta, data, space), _x_end(data, theta), tol=tol)
-        if paths.ok.all():
-            break
-        if not paths.ok[0]:
-            return None
-        delta = delta.copy()
-        delta[free] /= 3.0
-    else:
+    first, last = _elastic_window(data)
+    if start and start.get("window_s") is not None:
+        first = int(np.clip(np.searchsorted(data.t, float(start["window_s"][0])), 0,
+                            data.t.size - MIN_POINTS))
+    lam0 = start.get("relaxation_time_s") if start else None
+    if not (lam0 and lam0 > 0):
+        sl = slice(first, max(last, first + 3) + 1)
+        slope = np.polyfit(data.t[sl], np.log(data.d[sl]), 1)[0]
+        lam0 = -1.0 / (3.0 * slope) if slope < 0 else (data.t[-1] - data.t[0]) / 3.0
+    sub = dataclasses.replace(data, t=data.t[first:], d=data.d[first:], gap=data.gap[first:])
+    if sub.t.size < MIN_POINTS:
         return None
-    coef = np.linalg.solve(_basis(z), np.concatenate([paths.t, np.log(paths.xdot)], axis=1))
-    n_nodes = paths.x.size
-    return _Surrogate(x=paths.x, centre=centre[free].copy(), delta=delta[free].copy(),
-                      coef_t=coef[:, :n_nodes], coef_v=coef[:, n_nodes:])
-
-
-def _settle(data, centre, t0c, delta, space, *, phi, rounds, surrogate=None):
-    """Rounds of design → surrogate → least squares until the centre is the optimum.
-
-    Each round minimises χ² on the surrogate within ±2δ of its centre. While
-    that lowers χ² by more than 50 residual variances the rounds are
-    integrated coarsely (ten times the full tolerance, at most 1e-3); the fit
-    has settled when a round at full accuracy (3 % of the noise relative to
-    D0, within [3e-6, 3e-5]), with δ from the round before (``surrogate``,
-    if given, is one), finds its optimum less than one residual variance
-    below its centre, and inside that region or with λ and η_s still. The next δ spans 2·SE, and the whole
-    last step when the region cut it (so a long valley is followed with a
-    region that doubles each round). Returns (surrogate, centre, t0, δ,
-    settled) or the reason of a failure.
-    """
-    free = space.free
-    nf = len(free)
-    dof = max(data.t.size - nf - 1, 1)
-    t_lo, t_hi = _t0_bounds(data)
-    mask = np.ones((1, nf + 1), dtype=bool)
-    # the model is integrated well inside the noise: 10 % of it at the widest diameter
-    tol_fine = float(np.clip(0.03 * data.noise / data.d0, 3e-6, 3e-5))
-    tol_coarse = min(10.0 * tol_fine, 1e-3)
-    surr = last = surrogate
-    proven = surrogate is not None
-    coarse = surrogate is None
-    for _ in range(rounds):
-        if surr is None:
-            surr = _round(data, centre, delta, space, tol=tol_coarse if coarse else tol_fine)
-            if surr is None:
-                return "the 0-D model could not be integrated near the fitted values"
-        lo = np.r_[np.maximum(space.lower[free], surr.centre - 2.0 * surr.delta), t_lo]
-        hi = np.r_[np.minimum(space.upper[free], surr.centre + 2.0 * surr.delta), t_hi]
-        p_c = np.r_[centre[free], t0c][None, :]
-        fun = _surrogate_residuals(surr, data, phi, space, centre)
-        p_opt, chi2, _, jac = _levenberg_marquardt(fun, p_c, lo, hi, mask, rtol=1e-7)
-        chi2_c = float(np.sum(fun(p_c)[0] ** 2))
-        scale2 = float(chi2[0]) / dof
-        gain = (chi2_c - float(chi2[0])) / scale2
-        se = np.sqrt(np.maximum(np.diag(np.linalg.pinv(jac[0].T @ jac[0]))[:nf] * scale2, 0.0))
-        step = p_opt[0, :nf] - surr.centre
-        inside = np.all((np.abs(step) < 1.9 * surr.delta) | (p_opt[0, :nf] <= space.lower[free])
-                        | (p_opt[0, :nf] >= space.upper[free]))
-        centre = centre.copy()
-        centre[free] = p_opt[0, :nf]
-        t0c = float(p_opt[0, nf])
-        import os
-        if os.environ.get("MF_DEBUG"):
-            print("  settle gain %.3g scale2 %.3g coarse %s inside %s" % (gain, scale2, coarse, inside), "centre", np.round(centre, 4), "se", np.round(se, 4), "delta", np.round(surr.delta, 4), 'steps', surr.x.size)
-        # λ and η_s have stopped moving, even if a direction the record leaves flat still
-        # drifts (χ² hardly changes along it)
-        key = [free.index(k) for k in (_LAM, _ETA) if k in free]
-        steady = np.all(np.abs(step[key]) < 0.3 * se[key])
-        if proven and not coarse and gain < 1.0 and (inside or steady):
-            return surr, centre, t0c, delta, True
-        proven = True
-        coarse = coarse and gain > 50.0
-        reach = np.abs(step) if not inside else 0.5 * np.abs(step)
-        delta = delta.copy()
-        delta[free] = np.clip(np.maximum(2.0 * se, reach), _DELTA_MIN[free], _DELTA_MAX[free])
-        last, surr = surr, None
-    return last, centre, t0c, delta, False
+    c_s = _CAPILLARY * data.surface_tension
+    tail = slice(max(sub.t.size - max(4, sub.t.size // 8), 0), None)
+    speed = -np.polyfit(sub.t[tail], sub.d[tail], 1)[0]
+    ws = [0.0]
+    if space.inv_l2 is None and speed > 0 and c_s / speed > 3.0 * eta_guess:
+        ws.append(2.0 * float(lam0) / (c_s / speed - 3.0 * eta_guess))  # 1/(G L²) from η_E,∞
+    # η_s sets the solvent's share 3 η_s ε̇ of the stress along the stretch: fitted too
+    # (from the start given, when it is free), weakly held to it
+    eta_free = _ETA in space.free
+    free = [_LAM] + ([_W] if space.inv_l2 is None else []) + ([_ETA] if eta_free else [])
+    prior_mean = np.zeros(6)
+    prior_mean[_ETA] = math.log(eta_guess)
+    prior_sd = np.full(6, math.inf)
+    prior_sd[_ETA] = 2.0 if eta_free else math.inf
+    sub_space = dataclasses.replace(space, free=free, prior_mean=prior_mean, prior_sd=prior_sd)
+    fixed = np.array([math.log(lam0), math.log(g_guess), 0.0, math.log(eta_guess),
+                      math.log(sub.d[0])])
+    rows = np.array([[math.log(lam0)] + ([w] if space.inv_l2 is None else [])
+                     + ([math.log(eta_guess)] if eta_free else []) + [sub.t[0]]
+                     for w in (ws if space.inv_l2 is None else [0.0])])
+    lo = np.r_[space.lower[free], sub.t[0] - (sub.t[-1] - sub.t[0])]
+    hi = np.r_[space.upper[free], sub.t[0] + 3.0 * (sub.t[1] - sub.t[0])]
+    fun = _model_residuals(sub, sub_space, fixed, 0.0, tol=1e-4, on_manifold=True)
+    p, chi2, _, _ = _levenberg_marquardt(fun, rows, lo, hi, np.ones(rows.shape, dtype=bool),
+                                         max_iter=15, rtol=1e-5)
+    if not np.isfinite(chi2).any():
+        return None
+    best = p[int(np.argmin(chi2))]
+    w = best[free.index(_W)] if space.inv_l2 is None else 0.0
+    eta = math.exp(best[free.index(_ETA)]) if eta_free else eta_guess
+    return math.exp(best[0]), w, eta, first
 
 
 def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_guess):
-    """Rounds of quadratic surrogates of the 0-D model, then the profile likelihood of λ."""
+    """Least squares of the 0-D model over the whole record; profile likelihood of λ (and η_s).
+
+    Starting values: λ and w from the elastic stretch (:func:`_elastic_start`);
+    G from where that stretch, extrapolated back, meets the start (affine
+    stretching, G (D0/D)^4 = (2X − 1)σ/R); η_s from the thinning before it
+    (Newtonian-like at η_s + η_p); a spread of G and η_s is integrated in one
+    batch and the best start goes to a batched Levenberg–Marquardt on the
+    exact model (finite-difference Jacobian, one integration per iteration),
+    with weak priors on ln G (±2), ln D0 (±0.5), ln η_s (±3) and t0 (± one
+    frame about ``t_start_s``) that only matter along directions the record
+    leaves flat. Then the residuals' AR(1) coefficient whitens a last refit.
+    """
     if extensibility == "fit":
         inv_l2 = None
     elif extensibility is None or extensibility == "oldroyd-b":
@@ -1036,77 +921,109 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
     else:
         inv_l2 = 1.0 / float(extensibility)
     free = [_LAM, _G] + ([_W] if inv_l2 is None else []) + (
-        [_ETA] if solvent_viscosity is None else []) + [_D0]
+        [_ETA] if solvent_viscosity is None else [])
+    nf = len(free)
     d_first = float(data.d[0])
+    c_s = _CAPILLARY * data.surface_tension
+    r0 = data.d0 / 2.0
+    w_scale = float(data.d.min()) / (2.0 * c_s)
     lower = np.array([math.log(1e-7), math.log(1e-3), 0.0, _LOG_ETA[0], math.log(0.9 * d_first)])
     upper = np.array([math.log(1e3), math.log(1e6), 1.0, _LOG_ETA[1], math.log(5.0 * d_first)])
     eta0 = eta_guess if solvent_viscosity is None else float(solvent_viscosity)
+    first, _ = _elastic_window(data)
+    if solvent_viscosity is None and first >= 4:
+        # the thinning before the elastic stretch is Newtonian-like at η_0 = η_s + η_p
+        pre = dataclasses.replace(data, t=data.t[:first + 1], d=data.d[:first + 1],
+                                  gap=data.gap[:first])
+        eta0 = _newtonian_least_squares(pre, None, 0.0)[0]
     frame = float(np.median(np.diff(data.t) / data.gap))
     inf = math.inf
+    # w at which L² is reached at the smallest diameter, where A_zz ≈ (2X − 1)σ/(G R)
     space = _Space(free=free, lower=lower, upper=upper, inv_l2=inv_l2,
-                   prior_mean=np.array([0.0, 0.0, 0.0, math.log(eta0), math.log(data.d0),
-                                        data.t_start]),
-                   prior_sd=np.array([inf, inf, inf, 3.0, 0.5, max(frame, 1e-300)]))
-    cands = _polymer_candidates(data, start, eta0, space)
-    paths = _polymer_paths(_batch(cands, data, space), _x_end(data, cands), tol=1e-2,
-                           control_all=True, h_max=1.0)
-    if not paths.ok.any():
-        return "the 0-D model could not be integrated at the starting values"
+                   prior_mean=np.zeros(6), prior_sd=np.full(6, inf), w_scale=w_scale)
+    g_amp = c_s / r0 * (float(data.d[first]) / data.d0) ** 3   # refined once λ is known
+    eta_fracs = (1.0, 0.3, 0.1, 0.03, 0.01) if solvent_viscosity is None else (1.0,)
+    found = _elastic_start(data, start, space, g_amp, eta0 * 0.3)
+    if found is None:
+        return "too few frames in the elastic stretch to start the fit"
+    lam1, w1, eta1, first = found
+    d_w, t_w = float(data.d[first]), float(data.t[first])
+    d_ec0 = d_w * math.exp((t_w - data.t_start) / (3.0 * lam1))
+    g_amp = c_s / r0 * min(d_ec0 / data.d0, 1.0) ** 3
+    etas = [eta0 * fe for fe in eta_fracs] + ([eta1] if solvent_viscosity is None else [])
+    cands = np.array([[math.log(lam1), math.log(g), w1, math.log(eta), math.log(data.d0)]
+                      for g in (0.3 * g_amp, g_amp, 3.0 * g_amp) for eta in etas])
+    cands = np.clip(cands, lower, upper)
+    paths = _polymer_paths(_batch(cands, data, space), _x_end(data, cands), tol=1e-2, h_max=1.0)
     t0s, chi2s = _best_t0(paths, np.exp(cands[:, _D0])[:, None], data)
-    best = int(np.argmin(np.where(paths.ok, chi2s, np.inf)))
-    centre = cands[best].copy()
-    space.prior_mean[_G] = centre[_G]       # G: weakly about the best start (e² either way)
-    space.prior_sd[_G] = 2.0
-    t0c = float(t0s[best])
-    a_end = _CAPILLARY * data.surface_tension / (data.d.min() / 2.0) / math.exp(centre[_G])
-    delta = np.clip(np.array([0.1, 0.4, max(0.3 * centre[_W], 0.3 / (a_end * math.exp(centre[_G]))),
-                              0.5, 0.1]), _DELTA_MIN, _DELTA_MAX)
-    state = _settle(data, centre, t0c, delta, space, phi=0.0, rounds=_MAX_ROUNDS)
-    if isinstance(state, str):
-        return state
-    surr, centre, t0c, delta, settled = state
-    nf = len(free)
-    # correlated noise: whiten with the AR(1) coefficient of the residuals and settle again
-    p_hat = np.r_[centre[free], t0c]
-    plain = _surrogate_residuals(surr, data, 0.0, space, centre, False)(p_hat[None, :])[0][0]
-    phi = _ar1(plain, data.gap, nf + 1)
-    if phi > 0 and settled:
-        state = _settle(data, centre, t0c, delta, space, phi=phi, rounds=3, surrogate=surr)
-        if isinstance(state, str):
-            return state
-        surr, centre, t0c, delta, settled = state
-        p_hat = np.r_[centre[free], t0c]
+    if not np.isfinite(chi2s).any():
+        return "the 0-D model could not be integrated at the starting values"
+    best = int(np.argmin(chi2s))
+    centre = cands[best]
+    space = dataclasses.replace(
+        space, prior_mean=np.array([0.0, centre[_G], 0.0, math.log(eta0), math.log(data.d0),
+                                    data.t_start]),
+        prior_sd=np.array([inf, 2.0, inf, 3.0, 0.1, max(frame, 1e-300)]))
     t_lo, t_hi = _t0_bounds(data)
+    lo = np.r_[lower[free], t_lo]
+    hi = np.r_[upper[free], t_hi]
+    mask = np.ones((1, nf + 1), dtype=bool)
+    tol = float(np.clip(0.03 * data.noise / data.d0, 3e-6, 3e-5))
+    max_step = np.r_[_MAX_STEP[free] * np.where(np.array(free) == _W, w_scale, 1.0), 3.0 * frame]
+    p = np.r_[centre[free], t0s[best]][None, :]
+    # Levenberg–Marquardt on the model itself: first with adaptive steps (χ² then carries a
+    # little noise of the integration, so this only brings the fit close) ...
+    fun = _model_residuals(data, space, centre, 0.0, tol=tol)
+    p, chi2, _, jac = _levenberg_marquardt(fun, p, lo, hi, mask, max_iter=10, rtol=1e-5,
+                                           atol=0.5, max_step=max_step)
+    if not np.isfinite(chi2[0]):
+        return "the 0-D model could not be integrated near the fitted values"
+    theta = centre.copy()
+    theta[free] = p[0, :nf]
     dof = max(data.t.size - nf - 1, 1)
-    fun = _surrogate_residuals(surr, data, phi, space, centre)
-    lo = np.r_[np.maximum(lower[free], surr.centre - 3.0 * surr.delta), t_lo]
-    hi = np.r_[np.minimum(upper[free], surr.centre + 3.0 * surr.delta), t_hi]
-    r_hat, jac_hat = fun(p_hat[None, :])
-    chi2_min = float(np.sum(r_hat ** 2))
-    scale2 = chi2_min / dof
     which = [free.index(_LAM)] + ([free.index(_ETA)] if _ETA in free else [])
-    ends = _profile_intervals(fun, p_hat, lo, hi, np.ones(nf + 1, dtype=bool), which,
-                              jac_hat[0], chi2_min, scale2, dof)
+    plain = _model_residuals(data, space, theta, 0.0, tol=tol, priors=False)(p)[0][0]
+    phi = _ar1(plain, data.gap, nf + 1)   # correlated noise: whiten with its AR(1) coefficient
+    scale2 = max(float(np.sum(_whiten(plain, phi, data.gap) ** 2)) / dof, 1e-12)
+    # ... then on steps frozen on a grid fine for the optimum and the profile's reach, where
+    # χ² is a smooth function of the parameters: polish (whitened), then profile
+    reach = _profile_starts(p[0], jac[0], scale2, dof, which[:1], lo, hi)
+    span = np.repeat(theta[None, :], reach.shape[0] + 1, axis=0)
+    span[1:, free] = reach[:, :nf]
+    grid = _polymer_paths(_batch(span, data, space), _x_end(data, span), tol=tol / 2.0).x
+    fun = _model_residuals(data, space, theta, phi, tol=tol, grid=grid)
+    p, chi2, _, jac = _levenberg_marquardt(fun, p, lo, hi, mask, max_iter=4, rtol=1e-8,
+                                           atol=0.02 * scale2, max_step=max_step)
+    theta[free] = p[0, :nf]
+    if not np.isfinite(chi2[0]):
+        return "the 0-D model could not be integrated near the fitted values"
+    plain = _model_residuals(data, space, theta, 0.0, tol=tol, grid=grid, priors=False)(p)[0][0]
+    p_hat = p[0]
+    r_hat, jac_hat = fun(p)
+    chi2_min = float(chi2[0])
+    scale2 = float(np.sum(r_hat[0, :data.t.size] ** 2)) / dof
+    ends = _profile_intervals(fun, p_hat, lo, hi, np.ones(nf + 1, dtype=bool), which[:1],
+                              jac_hat[0], chi2_min, scale2, dof, max_step=max_step)
     intervals = {"lam": tuple(float(v) for v in np.exp(ends[which[0]]))}
-    if _ETA in free:
-        intervals["eta"] = tuple(float(v) for v in np.exp(ends[which[1]]))
-    g = math.exp(centre[_G])
-    values = {"lam": math.exp(centre[_LAM]), "G": g, "eta": math.exp(centre[_ETA]), "t0": t0c,
-              "L2": None}
+    cov = np.linalg.pinv(jac_hat[0].T @ jac_hat[0]) * scale2
+    if _ETA in free:   # η_s only sets the transient here: a Wald interval in ln η_s
+        half = float(stats.t.ppf(0.975, dof)) * math.sqrt(max(cov[which[1], which[1]], 0.0))
+        intervals["eta"] = (math.exp(theta[_ETA] - half), math.exp(theta[_ETA] + half))
+    g = math.exp(theta[_G])
+    values = {"lam": math.exp(theta[_LAM]), "G": g, "eta": math.exp(theta[_ETA]),
+              "t0": float(p_hat[nf]), "L2": None}
     if inv_l2 is not None:
         values["L2"] = None if inv_l2 == 0 else 1.0 / inv_l2
     else:
-        cov = np.linalg.pinv(jac_hat[0].T @ jac_hat[0]) * scale2
         j = free.index(_W)
-        if centre[_W] > 2.0 * math.sqrt(max(cov[j, j], 0.0)):
-            values["L2"] = 1.0 / (centre[_W] * g)
-    t_path, v_path = surr.paths(p_hat[None, :nf])
-    plain = _surrogate_residuals(surr, data, 0.0, space, centre, False)(p_hat[None, :])[0][0]
+        if theta[_W] > 2.0 * math.sqrt(max(cov[j, j], 0.0)):
+            values["L2"] = 1.0 / (theta[_W] * g)
+    final = _polymer_paths(_batch(theta[None, :], data, space), 0.0, grid=grid)
     return _Outcome(kind="viscoelastic", values=values, chi2_white=chi2_min,
                     chi2_plain=float(np.sum(plain ** 2)), n_free=nf + 1, scale2=scale2, phi=phi,
                     intervals=intervals,
-                    curve_state=("viscoelastic", math.exp(centre[_D0]), t0c, surr.x, t_path[0],
-                                 v_path[0], settled))
+                    curve_state=("viscoelastic", math.exp(theta[_D0]), float(p_hat[nf]), final.x,
+                                 final.t[0], final.xdot[0], True))
 
 
 # --- the result ----------------------------------------------------------------------------------
@@ -1189,7 +1106,7 @@ def _as_result(o: _Outcome, data: _Data, eta_fixed: bool) -> ModelFit:
     success = True
     if o.kind == "viscoelastic" and not o.curve_state[6]:
         success = False
-        message = f"the fit did not settle within {_MAX_ROUNDS} rounds"
+        message = "the fit did not settle: the optimum kept moving across three local surrogates"
     return ModelFit(
         model=o.kind,
         relaxation_time_s=v["lam"],
@@ -1211,6 +1128,19 @@ def _as_result(o: _Outcome, data: _Data, eta_fixed: bool) -> ModelFit:
 
 #: Evidence (Δχ² over the residual variance) the elastic model needs to win over the Newtonian one.
 ELASTIC_EVIDENCE = 30.0
+
+
+def _plainly_newtonian(data, newt):
+    """True when the Newtonian fit leaves nothing for elasticity to explain.
+
+    Its residuals are at the noise (reduced χ² ≤ 2, with the correlation
+    allowed for) and no stretch of the record thins near-exponentially over
+    more than 0.5 in ln D: the elastic fit, which could not win, is skipped.
+    """
+    dof = max(data.t.size - newt.n_free, 1)
+    first, last = _elastic_window(data)
+    span = math.log(data.d[first] / data.d[last])
+    return newt.chi2_plain / dof <= 2.0 * (1.0 + newt.phi) / (1.0 - newt.phi) and span < 0.5
 
 
 def fit_filament_model(time_s, diameter_m, *, surface_tension, t_start_s, resolution_floor_m,
@@ -1266,7 +1196,7 @@ def fit_filament_model(time_s, diameter_m, *, surface_tension, t_start_s, resolu
     eta_fixed = solvent_viscosity is not None
     with np.errstate(all="ignore"):
         newt = _fit_newtonian(data, solvent_viscosity=solvent_viscosity)
-        if model == "newtonian":
+        if model == "newtonian" or (model == "auto" and _plainly_newtonian(data, newt)):
             return _as_result(newt, data, eta_fixed)
         visc = _fit_viscoelastic(data, solvent_viscosity=solvent_viscosity,
                                  extensibility=extensibility, start=start,
