@@ -603,21 +603,25 @@ def _fit_newtonian(data, *, solvent_viscosity):
 
 # --- profile likelihood ------------------------------------------------------------------------
 
-def _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper):
+def _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper, max_step=None):
     """Rows one Wald half-width (t·SE) either side of ``p_hat`` in each coordinate of ``indices``.
 
-    Only that coordinate moves: along the Wald line the poorly determined
-    ones (G, D0 when the transient is not seen) would be sent far out on a
-    linearisation that does not hold there. Two rows per index.
+    The other coordinates follow the Wald regression line (their conditional
+    optimum under the quadratic approximation), each by at most half its
+    ``max_step``: along poorly determined directions (G, η_s when the
+    transient is not seen) the linearisation does not hold that far. Two
+    rows per index.
     """
     t_crit = float(stats.t.ppf(0.975, dof))
     cov = np.linalg.pinv(jac.T @ jac) * scale2
+    cap = np.full(p_hat.size, np.inf) if max_step is None else 0.5 * np.asarray(max_step)
     rows = []
     for index in indices:
+        sd = math.sqrt(max(cov[index, index], 1e-300))
         for side in (-1.0, 1.0):
-            row = p_hat.copy()
-            row[index] += side * t_crit * math.sqrt(max(cov[index, index], 1e-300))
-            rows.append(row)
+            move = np.clip(side * t_crit * cov[:, index] / sd, -cap, cap)
+            move[index] = side * t_crit * sd
+            rows.append(p_hat + move)
     return np.clip(np.array(rows), lower, upper)
 
 
@@ -639,7 +643,7 @@ def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, s
     mask_row = np.repeat(free[None, :], 2 * len(indices), axis=0)
     for j, index in enumerate(indices):
         mask_row[2 * j:2 * j + 2, index] = False
-    rows = _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper)
+    rows = _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper, max_step)
     _, chi2, _, _ = _levenberg_marquardt(fun, rows, lower, upper, mask_row, max_iter=6,
                                          rtol=1e-8, atol=0.01 * scale2, max_step=max_step)
     idx = np.repeat(indices, 2)
@@ -987,7 +991,7 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
     scale2 = max(float(np.sum(_whiten(plain, phi, data.gap) ** 2)) / dof, 1e-12)
     # ... then on steps frozen on a grid fine for the optimum and the profile's reach, where
     # χ² is a smooth function of the parameters: polish (whitened), then profile
-    reach = _profile_starts(p[0], jac[0], scale2, dof, which[:1], lo, hi)
+    reach = _profile_starts(p[0], jac[0], scale2, dof, which[:1], lo, hi, max_step)
     span = np.repeat(theta[None, :], reach.shape[0] + 1, axis=0)
     span[1:, free] = reach[:, :nf]
     grid = _polymer_paths(_batch(span, data, space), _x_end(data, span), tol=tol / 2.0).x
