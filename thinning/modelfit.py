@@ -603,14 +603,15 @@ def _fit_newtonian(data, *, solvent_viscosity):
 
 # --- profile likelihood ------------------------------------------------------------------------
 
-def _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper, max_step=None):
-    """Rows one Wald half-width (t·SE) either side of ``p_hat`` in each coordinate of ``indices``.
+def _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper, max_step=None,
+                    reach=(1.0,)):
+    """Rows at ``reach`` Wald half-widths (t·SE) either side of ``p_hat`` in each index.
 
     The other coordinates follow the Wald regression line (their conditional
     optimum under the quadratic approximation), each by at most half its
     ``max_step``: along poorly determined directions (G, η_s when the
-    transient is not seen) the linearisation does not hold that far. Two
-    rows per index.
+    transient is not seen) the linearisation does not hold that far. Rows
+    run over indices, then sides (−, +), then ``reach``.
     """
     t_crit = float(stats.t.ppf(0.975, dof))
     cov = np.linalg.pinv(jac.T @ jac) * scale2
@@ -619,10 +620,15 @@ def _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper, max_step=Non
     for index in indices:
         sd = math.sqrt(max(cov[index, index], 1e-300))
         for side in (-1.0, 1.0):
-            move = np.clip(side * t_crit * cov[:, index] / sd, -cap, cap)
-            move[index] = side * t_crit * sd
-            rows.append(p_hat + move)
+            for k in reach:
+                move = np.clip(side * k * t_crit * cov[:, index] / sd, -cap, cap)
+                move[index] = side * k * t_crit * sd
+                rows.append(p_hat + move)
     return np.clip(np.array(rows), lower, upper)
+
+
+#: Where the profile is evaluated, in Wald half-widths either side.
+_PROFILE_REACH = (0.8, 1.4)
 
 
 def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, scale2, dof, *,
@@ -630,47 +636,31 @@ def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, s
     """95 % profile-likelihood intervals of the coordinates ``indices`` of ``p_hat``.
 
     The set {Δχ²/s² ≤ t²(0.975, dof)}. The profile (the other free
-    coordinates re-optimised) is evaluated one Wald half-width either side,
-    all coordinates in one batch; the signed root √(Δχ²/s²), close to linear
-    in the coordinate, is extrapolated to ±t, and where that lands more than
-    a quarter away from the first point the profile is evaluated there too
-    and the root interpolated. A side whose profile stays flat is NaN.
+    coordinates re-optimised) is evaluated at 0.8 and 1.4 Wald half-widths
+    either side, all in one batch; the signed root √(Δχ²/s²), close to linear
+    in the coordinate, is interpolated to ±t (extrapolated along its last
+    segment when it stays below). A side whose profile stays flat is NaN.
     ``max_step`` bounds the re-optimisation's steps (see
     :func:`_levenberg_marquardt`). Returns {index: (low, high)}.
     """
     t_crit = float(stats.t.ppf(0.975, dof))
-    out = {index: (math.nan, math.nan) for index in indices}
-    mask_row = np.repeat(free[None, :], 2 * len(indices), axis=0)
-    for j, index in enumerate(indices):
-        mask_row[2 * j:2 * j + 2, index] = False
-    rows = _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper, max_step)
-    _, chi2, _, _ = _levenberg_marquardt(fun, rows, lower, upper, mask_row, max_iter=6,
-                                         rtol=1e-8, atol=0.01 * scale2, max_step=max_step)
-    idx = np.repeat(indices, 2)
-    off1 = np.abs(rows[np.arange(rows.shape[0]), idx] - p_hat[idx])
-    root1 = np.sqrt(np.maximum(chi2 - chi2_min, 0.0) / scale2)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        reach = off1 * t_crit / root1           # linear extrapolation of the root to t
-    again = np.isfinite(reach) & (np.abs(reach / off1 - 1.0) > 0.25)
-    reach2, root2 = reach.copy(), np.full(reach.shape, t_crit)
-    if again.any():
-        rows2 = rows.copy()
-        side = np.sign(rows[np.arange(rows.shape[0]), idx] - p_hat[idx])
-        rows2[np.arange(rows.shape[0]), idx] = p_hat[idx] + side * np.where(again, reach, off1)
-        rows2 = np.clip(rows2, lower, upper)
-        _, chi2b, _, _ = _levenberg_marquardt(fun, rows2[again], lower, upper, mask_row[again],
-                                              max_iter=3, rtol=1e-8, atol=0.01 * scale2,
-                                              max_step=max_step)
-        reach2[again] = np.abs(rows2[again, idx[again]] - p_hat[idx[again]])
-        root2[again] = np.sqrt(np.maximum(chi2b - chi2_min, 0.0) / scale2)
+    nr = len(_PROFILE_REACH)
+    rows = _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper, max_step,
+                           _PROFILE_REACH)
+    idx = np.repeat(indices, 2 * nr)
+    mask = np.repeat(free[None, :], rows.shape[0], axis=0)
+    mask[np.arange(rows.shape[0]), idx] = False
+    _, chi2, _, _ = _levenberg_marquardt(fun, rows, lower, upper, mask, max_iter=6, rtol=1e-8,
+                                         atol=0.01 * scale2, max_step=max_step)
+    off = np.abs(rows[np.arange(rows.shape[0]), idx] - p_hat[idx]).reshape(len(indices), 2, nr)
+    root = np.sqrt(np.maximum(chi2 - chi2_min, 0.0) / scale2).reshape(len(indices), 2, nr)
+    out = {}
     for j, index in enumerate(indices):
         ends = []
-        for k, side in zip((2 * j, 2 * j + 1), (-1.0, 1.0)):
-            o = np.array([0.0, off1[k], reach2[k]])
-            q = np.array([0.0, root1[k], root2[k]])
-            order = np.argsort(o)
-            o, q = o[order], np.maximum.accumulate(q[order])
-            if not np.isfinite(o).all() or q[-1] <= 0:
+        for k, side in enumerate((-1.0, 1.0)):
+            o = np.r_[0.0, off[j, k]]
+            q = np.maximum.accumulate(np.r_[0.0, root[j, k]])
+            if not (np.isfinite(o).all() and np.isfinite(q).all()) or q[-1] <= 0:
                 ends.append(math.nan)
             elif q[-1] >= t_crit:
                 ends.append(p_hat[index] + side * float(np.interp(t_crit, q, o)))
@@ -896,7 +886,7 @@ def _elastic_start(data, start, space, g_guess, eta_guess):
     hi = np.r_[space.upper[free], sub.t[0] + 3.0 * (sub.t[1] - sub.t[0])]
     fun = _model_residuals(sub, sub_space, fixed, 0.0, tol=1e-4, on_manifold=True)
     p, chi2, _, _ = _levenberg_marquardt(fun, rows, lo, hi, np.ones(rows.shape, dtype=bool),
-                                         max_iter=15, rtol=1e-5)
+                                         max_iter=6, rtol=1e-5, atol=0.5)
     if not np.isfinite(chi2).any():
         return None
     best = p[int(np.argmin(chi2))]
@@ -962,23 +952,38 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
     t0s, chi2s = _best_t0(paths, np.exp(cands[:, _D0])[:, None], data)
     if not np.isfinite(chi2s).any():
         return "the 0-D model could not be integrated at the starting values"
-    best = int(np.argmin(chi2s))
-    centre = cands[best]
+    order = np.argsort(chi2s)[:3]
+    if not np.isfinite(chi2s[order[0]]):
+        return "the 0-D model could not be integrated at the starting values"
+    # the three best starts: their transient (G, η_s, t0) refined with λ, w held
     space = dataclasses.replace(
-        space, prior_mean=np.array([0.0, centre[_G], 0.0, math.log(eta0), math.log(data.d0),
-                                    data.t_start]),
-        prior_sd=np.array([inf, 2.0, inf, 3.0, 0.1, max(frame, 1e-300)]))
+        space, prior_mean=np.array([0.0, cands[order[0], _G], 0.0, math.log(eta0),
+                                    math.log(data.d0), data.t_start]),
+        prior_sd=np.array([inf, 2.0, inf, 3.0, 0.5, max(frame, 1e-300)]))
     t_lo, t_hi = _t0_bounds(data)
     lo = np.r_[lower[free], t_lo]
     hi = np.r_[upper[free], t_hi]
-    mask = np.ones((1, nf + 1), dtype=bool)
     tol = float(np.clip(0.03 * data.noise / data.d0, 3e-6, 3e-5))
     max_step = np.r_[_MAX_STEP[free] * np.where(np.array(free) == _W, w_scale, 1.0), 3.0 * frame]
-    p = np.r_[centre[free], t0s[best]][None, :]
+    rows = np.c_[cands[order][:, free], t0s[order]]
+    transient = np.array([k in (_G, _ETA) for k in free] + [True])
+    p3, chi3, _, _ = _levenberg_marquardt(
+        _model_residuals(data, space, cands[order[0]], 0.0, tol=10.0 * tol), rows, lo, hi,
+        np.repeat(transient[None, :], rows.shape[0], axis=0), max_iter=5, rtol=1e-4, atol=1.0,
+        max_step=max_step)
+    if not np.isfinite(chi3).any():
+        return "the 0-D model could not be integrated at the starting values"
+    best = int(np.argmin(chi3))
+    centre = cands[order[best]].copy()
+    centre[free] = p3[best, :nf]
+    space = dataclasses.replace(space, prior_mean=np.r_[space.prior_mean[:_G], centre[_G],
+                                                        space.prior_mean[_G + 1:]])
+    mask = np.ones((1, nf + 1), dtype=bool)
+    p = np.r_[centre[free], p3[best, nf]][None, :]
     # Levenberg–Marquardt on the model itself: first with adaptive steps (χ² then carries a
     # little noise of the integration, so this only brings the fit close) ...
     fun = _model_residuals(data, space, centre, 0.0, tol=tol)
-    p, chi2, _, jac = _levenberg_marquardt(fun, p, lo, hi, mask, max_iter=10, rtol=1e-5,
+    p, chi2, r, jac = _levenberg_marquardt(fun, p, lo, hi, mask, max_iter=10, rtol=1e-5,
                                            atol=0.5, max_step=max_step)
     if not np.isfinite(chi2[0]):
         return "the 0-D model could not be integrated near the fitted values"
@@ -986,24 +991,23 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
     theta[free] = p[0, :nf]
     dof = max(data.t.size - nf - 1, 1)
     which = [free.index(_LAM)] + ([free.index(_ETA)] if _ETA in free else [])
-    plain = _model_residuals(data, space, theta, 0.0, tol=tol, priors=False)(p)[0][0]
+    plain = r[0, :data.t.size]            # φ = 0 so far: the data part is unwhitened
     phi = _ar1(plain, data.gap, nf + 1)   # correlated noise: whiten with its AR(1) coefficient
     scale2 = max(float(np.sum(_whiten(plain, phi, data.gap) ** 2)) / dof, 1e-12)
     # ... then on steps frozen on a grid fine for the optimum and the profile's reach, where
     # χ² is a smooth function of the parameters: polish (whitened), then profile
-    reach = _profile_starts(p[0], jac[0], scale2, dof, which[:1], lo, hi, max_step)
+    reach = _profile_starts(p[0], jac[0], scale2, dof, which[:1], lo, hi, max_step,
+                            _PROFILE_REACH)
     span = np.repeat(theta[None, :], reach.shape[0] + 1, axis=0)
     span[1:, free] = reach[:, :nf]
     grid = _polymer_paths(_batch(span, data, space), _x_end(data, span), tol=tol / 2.0).x
     fun = _model_residuals(data, space, theta, phi, tol=tol, grid=grid)
-    p, chi2, _, jac = _levenberg_marquardt(fun, p, lo, hi, mask, max_iter=4, rtol=1e-8,
-                                           atol=0.02 * scale2, max_step=max_step)
+    p, chi2, r_hat, jac_hat = _levenberg_marquardt(fun, p, lo, hi, mask, max_iter=4, rtol=1e-8,
+                                                   atol=0.02 * scale2, max_step=max_step)
     theta[free] = p[0, :nf]
     if not np.isfinite(chi2[0]):
         return "the 0-D model could not be integrated near the fitted values"
-    plain = _model_residuals(data, space, theta, 0.0, tol=tol, grid=grid, priors=False)(p)[0][0]
     p_hat = p[0]
-    r_hat, jac_hat = fun(p)
     chi2_min = float(chi2[0])
     scale2 = float(np.sum(r_hat[0, :data.t.size] ** 2)) / dof
     ends = _profile_intervals(fun, p_hat, lo, hi, np.ones(nf + 1, dtype=bool), which[:1],
@@ -1023,6 +1027,9 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
         if theta[_W] > 2.0 * math.sqrt(max(cov[j, j], 0.0)):
             values["L2"] = 1.0 / (theta[_W] * g)
     final = _polymer_paths(_batch(theta[None, :], data, space), 0.0, grid=grid)
+    d_fit, _ = _path_diameter(data.t - p_hat[nf], final.x, final.t, final.xdot,
+                              math.exp(theta[_D0]))
+    plain = (data.d - d_fit[0]) / data.noise
     return _Outcome(kind="viscoelastic", values=values, chi2_white=chi2_min,
                     chi2_plain=float(np.sum(plain ** 2)), n_free=nf + 1, scale2=scale2, phi=phi,
                     intervals=intervals,
