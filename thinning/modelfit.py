@@ -915,7 +915,7 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
     else:
         inv_l2 = 1.0 / float(extensibility)
     free = [_LAM, _G] + ([_W] if inv_l2 is None else []) + (
-        [_ETA] if solvent_viscosity is None else [])
+        [_ETA] if solvent_viscosity is None else []) + [_D0]
     nf = len(free)
     d_first = float(data.d[0])
     c_s = _CAPILLARY * data.surface_tension
