@@ -28,18 +28,28 @@ Integration
     interpolation of x(t). Newtonian liquids (G = 0) have a closed form.
 
 Fit
-    Free: ln λ, ln G, 1/L² (unless fixed), ln η_s (unless given) and t0 (the
-    time shift is exact, no integration). Each round integrates a quadratic
-    design (1 + 2p + p(p−1)/2 parameter sets) around the current centre and
-    interpolates the trajectory t_k(θ), ln ẋ_k(θ) at the x-nodes by a
-    quadratic in θ; least squares on that surrogate give the next centre.
-    Three to five rounds converge; the last surrogate carries the profile
-    likelihood.
+    Free: ln λ, ln G, w = 1/(G L²) (unless L² is given or Oldroyd-B is
+    asked for), ln η_s (unless given), ln D0 and t0 (a time shift, exact).
+    Starting values come from the longest near-exponential stretch (λ, and w
+    from the record's end, by a fit of the model started on the elastic
+    balance), then a spread of transients (G, η_s) integrated in one batch;
+    the three best are refined, the best goes to a batched Levenberg–Marquardt
+    on the model itself (finite-difference Jacobian from neighbours
+    integrated with the same steps; one integration per iteration), polished
+    on frozen steps. Weak priors on ln G (±2), ln η_s (±3), ln D0 (±0.5) and
+    t0 (± one frame about the given start) only act along directions the
+    record leaves flat (G and D0 when the early transient is not seen).
 
 Intervals
     Residuals are whitened for AR(1) noise (coefficient estimated from the
     residuals) and scaled by the residual variance; the 95 % interval of λ
-    (and η_s) is the profile-likelihood set Δχ²/s² ≤ t²(0.975, n − p).
+    is the profile-likelihood set Δχ²/s² ≤ t²(0.975, n − p) (on frozen
+    steps, so χ² is smooth); η_s gets the profile interval in the Newtonian
+    fit and a Wald interval (in ln η_s) in the elastic one.
+
+Limits (see the module's tests): the transient makes the likelihood rugged
+and, when it is not resolved, flat in G and D0; a fit can settle in a wrong
+basin, which then shows as a reduced χ² well above 1 — or, rarely, not.
 """
 
 from __future__ import annotations
@@ -419,6 +429,8 @@ MIN_POINTS = 8
 
 @dataclass(frozen=True)
 class _Data:
+    """The frames a fit uses and what it knows of them (SI units)."""
+
     t: np.ndarray        # frame times (s), increasing
     d: np.ndarray        # diameters (m)
     gap: np.ndarray      # frames between consecutive points (≥ 1), length n − 1
@@ -575,15 +587,13 @@ def _newtonian_least_squares(data, solvent_viscosity, phi, rows=False):
 def _fit_newtonian(data, *, solvent_viscosity):
     """Least squares of the Newtonian closed form; profile-likelihood interval of η."""
     free = solvent_viscosity is None
-    eta0, t00 = _newtonian_guess(data)
-    if not free:
-        eta0 = float(solvent_viscosity)
+    eta0 = float(solvent_viscosity) if not free else 0.0   # only used when η is fixed
     lo, hi, mask = _newtonian_bounds(data, free)
     starts = _newtonian_least_squares(data, solvent_viscosity, 0.0, rows=True)
     plain = _newtonian_residuals(data, 0.0, free, eta0)(starts)[0][0]
     phi = _ar1(plain, data.gap, 1 + free)
     fun = _newtonian_residuals(data, phi, free, eta0)
-    p, chi2, r, jac = _levenberg_marquardt(fun, starts, lo, hi, mask)
+    p, chi2, _, jac = _levenberg_marquardt(fun, starts, lo, hi, mask)
     n_free = 1 + int(free)
     dof = max(data.t.size - n_free, 1)
     scale2 = float(chi2[0]) / dof
@@ -738,8 +748,9 @@ def _model_residuals(data, space, fixed, phi, *, tol, grid=None, on_manifold=Fal
     Each row is integrated with one finite-difference neighbour per free
     coordinate, all in one batch (shared steps, so the differences are
     smooth); t0 enters exactly, as a shift. ``fixed`` is the full θ whose
-    other coordinates hold; ``grid`` freezes the integration steps. A row whose trajectory fails has infinite
-    residuals. With ``priors`` the weak priors follow the data residuals.
+    other coordinates hold; ``grid`` freezes the integration steps. A row
+    whose trajectory fails has infinite residuals. With ``priors`` the weak
+    priors follow the data residuals.
     """
     free = space.free
     nf = len(free)
@@ -846,9 +857,10 @@ def _elastic_start(data, start, space, g_guess, eta_guess):
 
     The frames from the start of the longest near-exponential stretch (or of
     ``start["window_s"]``) on are fitted with the thread already in the
-    elasto-capillary balance at their first diameter; λ, w (unless L² is
-    given) and that first frame's time are free, G and η_s stay at their
-    guesses (they hardly matter there). Returns (λ, w, first frame) or None.
+    elasto-capillary balance at their first diameter (:func:`_on_manifold`);
+    λ, w (unless L² is given), η_s (unless given; weakly held to its guess)
+    and that first frame's time are free, G stays at its guess (it hardly
+    matters there). Returns (λ, w, η_s, first frame) or None.
     """
     first, last = _elastic_window(data)
     if start and start.get("window_s") is not None:
@@ -898,15 +910,18 @@ def _elastic_start(data, start, space, g_guess, eta_guess):
 def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_guess):
     """Least squares of the 0-D model over the whole record; profile likelihood of λ (and η_s).
 
-    Starting values: λ and w from the elastic stretch (:func:`_elastic_start`);
-    G from where that stretch, extrapolated back, meets the start (affine
-    stretching, G (D0/D)^4 = (2X − 1)σ/R); η_s from the thinning before it
-    (Newtonian-like at η_s + η_p); a spread of G and η_s is integrated in one
-    batch and the best start goes to a batched Levenberg–Marquardt on the
-    exact model (finite-difference Jacobian, one integration per iteration),
-    with weak priors on ln G (±2), ln D0 (±0.5), ln η_s (±3) and t0 (± one
-    frame about ``t_start_s``) that only matter along directions the record
-    leaves flat. Then the residuals' AR(1) coefficient whitens a last refit.
+    Starting values: λ, w and η_s from the elastic stretch
+    (:func:`_elastic_start`); G from where that stretch, extrapolated back,
+    meets the start (affine stretching, G (D0/D)^4 = (2X − 1)σ/R); η_s also
+    from the thinning before it (Newtonian-like at η_s + η_p). A spread of G
+    (×0.3, 1, 3) and η_s (×1 … 0.01) is integrated in one batch; the three
+    best have their transient (G, η_s, t0) refined with λ and w held, and the
+    best goes to a Levenberg–Marquardt on the model itself (finite-difference
+    Jacobian, one integration per iteration), with weak priors on ln G (±2),
+    ln D0 (±0.5), ln η_s (±3) and t0 (± one frame about ``t_start_s``) that
+    only matter along directions the record leaves flat. The residuals'
+    AR(1) coefficient then whitens a polish on frozen steps, where the
+    profile of λ is taken.
     """
     if extensibility == "fit":
         inv_l2 = None
@@ -950,8 +965,6 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
     cands = np.clip(cands, lower, upper)
     paths = _polymer_paths(_batch(cands, data, space), _x_end(data, cands), tol=1e-2, h_max=1.0)
     t0s, chi2s = _best_t0(paths, np.exp(cands[:, _D0])[:, None], data)
-    if not np.isfinite(chi2s).any():
-        return "the 0-D model could not be integrated at the starting values"
     order = np.argsort(chi2s)[:3]
     if not np.isfinite(chi2s[order[0]]):
         return "the 0-D model could not be integrated at the starting values"
@@ -1034,7 +1047,7 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
                     chi2_plain=float(np.sum(plain ** 2)), n_free=nf + 1, scale2=scale2, phi=phi,
                     intervals=intervals,
                     curve_state=("viscoelastic", math.exp(theta[_D0]), float(p_hat[nf]), final.x,
-                                 final.t[0], final.xdot[0], True))
+                                 final.t[0], final.xdot[0]))
 
 
 # --- the result ----------------------------------------------------------------------------------
@@ -1051,9 +1064,11 @@ class ModelFit:
     """The whole-curve fit of the 0-D filament model (SI units).
 
     ``model`` is ``"viscoelastic"`` (λ, G, L², η_s fitted) or ``"newtonian"``
-    (G = 0; η_s only). Intervals are 95 % profile-likelihood intervals (NaN
-    where a side is not bounded); ``solvent_viscosity_fixed`` says η_s was
-    given rather than fitted. ``finite_extensibility_L2`` is None for
+    (G = 0; η_s only). The interval of λ, and of η_s in a Newtonian fit, is
+    the 95 % profile-likelihood interval (NaN where a side stays open, with
+    a note in ``message``); η_s of an elastic fit has a Wald interval in
+    ln η_s. ``solvent_viscosity_fixed`` says η_s was given rather than fitted
+    (its interval is then NaN). ``finite_extensibility_L2`` is None for
     Oldroyd-B or when the data cannot tell L² from infinity.
     ``noise_correlation`` is the AR(1) coefficient per frame the residuals
     were whitened with. ``success`` False: no usable fit, ``message`` says why.
@@ -1113,11 +1128,11 @@ def _failed(message, n_points=0) -> ModelFit:
 def _as_result(o: _Outcome, data: _Data, eta_fixed: bool) -> ModelFit:
     n = data.t.size
     v = o.values
-    message = ""
-    success = True
-    if o.kind == "viscoelastic" and not o.curve_state[6]:
-        success = False
-        message = "the fit did not settle: the optimum kept moving across three local surrogates"
+    key = "lam" if o.kind == "viscoelastic" else "eta"
+    ends = o.intervals.get(key, (0.0, 0.0))
+    message = ("" if np.isfinite(ends).all() else
+               f"the profile of {'λ' if key == 'lam' else 'η_s'} stays below the 95 % level on "
+               "one side within reach: that end of the interval is open (NaN)")
     return ModelFit(
         model=o.kind,
         relaxation_time_s=v["lam"],
@@ -1131,9 +1146,9 @@ def _as_result(o: _Outcome, data: _Data, eta_fixed: bool) -> ModelFit:
         reduced_chi2=o.chi2_plain / max(n - o.n_free, 1),
         n_points=n,
         noise_correlation=o.phi,
-        success=success,
+        success=True,
         message=message,
-        _state=o.curve_state[:6],
+        _state=o.curve_state,
     )
 
 
