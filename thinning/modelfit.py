@@ -647,7 +647,8 @@ def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, s
 
     The set {Δχ²/s² ≤ t²(0.975, dof)}. The profile (the other free
     coordinates re-optimised) is evaluated at 0.8 and 1.4 Wald half-widths
-    either side, all in one batch; the signed root √(Δχ²/s²), close to linear
+    either side, all in one batch, each started on the Wald line or, where
+    that is worse, with the coordinate moved alone; the signed root √(Δχ²/s²), close to linear
     in the coordinate, is interpolated to ±t (extrapolated along its last
     segment when it stays below). A side whose profile stays flat is NaN.
     ``max_step`` bounds the re-optimisation's steps (see
@@ -658,6 +659,14 @@ def _profile_intervals(fun, p_hat, lower, upper, free, indices, jac, chi2_min, s
     rows = _profile_starts(p_hat, jac, scale2, dof, indices, lower, upper, max_step,
                            _PROFILE_REACH)
     idx = np.repeat(indices, 2 * nr)
+    # where the Wald line leads somewhere worse than moving the coordinate alone, start there
+    alone = np.repeat(p_hat[None, :], rows.shape[0], axis=0)
+    alone[np.arange(rows.shape[0]), idx] = rows[np.arange(rows.shape[0]), idx]
+    r_both, _ = fun(np.r_[rows, alone])
+    chi2_both = np.sum(r_both * r_both, axis=1)
+    chi2_both = np.where(np.isfinite(chi2_both), chi2_both, np.inf)
+    worse = chi2_both[:rows.shape[0]] > chi2_both[rows.shape[0]:]
+    rows[worse] = alone[worse]
     mask = np.repeat(free[None, :], rows.shape[0], axis=0)
     mask[np.arange(rows.shape[0]), idx] = False
     _, chi2, _, _ = _levenberg_marquardt(fun, rows, lower, upper, mask, max_iter=6, rtol=1e-8,
