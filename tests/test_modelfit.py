@@ -79,9 +79,9 @@ def _elastic_case(rng):
         fps = n_elastic / (t[local[-1]] - t[local[0]])
         if not 25 < t[-1] * fps < 3000:
             continue
-        return dict(fluid=fluid, hist=hist, d0=d0, px=px, floor=floor, fps=fps,
-                    noise=10 ** rng.uniform(math.log10(0.05), math.log10(0.5)),
-                    ar=0.5 if rng.random() < 0.3 else 0.0, n_elastic=n_elastic)
+        return {"fluid": fluid, "hist": hist, "d0": d0, "px": px, "floor": floor, "fps": fps,
+                "noise": 10 ** rng.uniform(math.log10(0.05), math.log10(0.5)),
+                "ar": 0.5 if rng.random() < 0.3 else 0.0, "n_elastic": n_elastic}
 
 
 def _newtonian_case(rng):
@@ -95,9 +95,9 @@ def _newtonian_case(rng):
     hist = _history(fluid, d0, 3 * px)
     t_floor = hist.time_s[np.flatnonzero(hist.diameter_m < 3 * px)[0]]
     fps = 10 ** rng.uniform(math.log10(50), math.log10(300)) / t_floor
-    return dict(fluid=fluid, hist=hist, d0=d0, px=px, floor=3 * px, fps=fps,
-                noise=10 ** rng.uniform(math.log10(0.05), math.log10(0.5)),
-                ar=0.5 if rng.random() < 0.3 else 0.0)
+    return {"fluid": fluid, "hist": hist, "d0": d0, "px": px, "floor": 3 * px, "fps": fps,
+            "noise": 10 ** rng.uniform(math.log10(0.05), math.log10(0.5)),
+            "ar": 0.5 if rng.random() < 0.3 else 0.0}
 
 
 def _fit(case, t, d, **kw):
@@ -209,7 +209,7 @@ def test_newtonian_closed_form_has_the_published_limits():
     # coefficient; 0.1418 = (2X − 1)/3 with X = 0.7127). Inviscid: R = 0.717 (σ/ρ)^(1/3) τ^(2/3)
     # with τ to breakup (Eggers & Villermaux 2008, from memory, physics.md §3.1).
     sigma, d0 = 0.05, 1e-3
-    t = np.linspace(0.0, 0.1, 50)      # breakup at D0/(0.1418 σ/η) = 0.14 s
+    t = np.linspace(1e-3, 0.1, 50)     # breakup at D0/(0.1418 σ/η) = 0.14 s
     d, dd = mf._newtonian_diameter(t, d0, np.array([[1.0]]), None, sigma)
     np.testing.assert_allclose(-dd[0], 2 * laws.PAPAGEORGIOU_COEFFICIENT * sigma / 1.0, rtol=1e-9)
     rho = 1000.0
@@ -223,8 +223,8 @@ def test_newtonian_closed_form_has_the_published_limits():
 
 def _dilute_case():
     fluid = laws.Fluid(0.062, 1e-3, 1000.0, 2.0, 5e-3, 2e4)
-    return dict(fluid=fluid, d0=0.8e-3, px=12e-6, floor=36e-6, fps=1e4, noise=0.2, ar=0.0,
-                hist=_history(fluid, 0.8e-3, 36e-6))
+    return {"fluid": fluid, "d0": 0.8e-3, "px": 12e-6, "floor": 36e-6, "fps": 1e4, "noise": 0.2,
+            "ar": 0.0, "hist": _history(fluid, 0.8e-3, 36e-6)}
 
 
 def test_fit_recovers_a_dilute_solution_and_its_curve():
@@ -290,7 +290,7 @@ def test_start_values_from_a_local_slope_fit_are_used():
 def test_newtonian_record_gets_its_viscosity_from_the_whole_curve():
     # glycerol-like, viscous and inertial: model "auto" keeps the Newtonian fit (G = 0)
     fluid = laws.Fluid(0.063, 1.0, 1260.0)
-    case = dict(fluid=fluid, d0=1.2e-3, px=15e-6, floor=45e-6, noise=0.2)
+    case = {"fluid": fluid, "d0": 1.2e-3, "px": 15e-6, "floor": 45e-6, "noise": 0.2}
     hist = _history(fluid, 1.2e-3, 45e-6)
     t, d = _record(hist, fps=2000, px=15e-6, noise_px=0.2, ar=0.0, rng=np.random.default_rng(7))
     f = _fit(case, t, d)
@@ -341,10 +341,10 @@ def elastic_table():
         f = _fit(case, t, d)
         lam = case["fluid"].relaxation_time
         lo, hi = f.relaxation_time_ci95_s if f.model == "viscoelastic" else (math.nan, math.nan)
-        rows.append(dict(seed=seed, truth=lam, err=f.relaxation_time_s / lam - 1
-                         if f.model == "viscoelastic" else math.inf,
-                         half=(hi - lo) / 2 / lam, covered=bool(lo <= lam <= hi), n=f.n_points,
-                         noise=case["noise"], ar=case["ar"]))
+        err = f.relaxation_time_s / lam - 1 if f.model == "viscoelastic" else math.inf
+        rows.append({"seed": seed, "truth": lam, "err": err, "half": (hi - lo) / 2 / lam,
+                     "covered": bool(lo <= lam <= hi), "n": f.n_points, "noise": case["noise"],
+                     "ar": case["ar"]})
     return rows, _table("relaxation time λ, whole-curve fit", rows)
 
 
@@ -359,9 +359,9 @@ def newtonian_table():
         f = _fit(case, t, d, model="newtonian")
         eta = case["fluid"].solvent_viscosity
         lo, hi = f.solvent_viscosity_ci95_Pa_s
-        rows.append(dict(seed=seed, truth=eta, err=f.solvent_viscosity_Pa_s / eta - 1,
-                         half=(hi - lo) / 2 / eta, covered=bool(lo <= eta <= hi), n=f.n_points,
-                         noise=case["noise"], ar=case["ar"]))
+        rows.append({"seed": seed, "truth": eta, "err": f.solvent_viscosity_Pa_s / eta - 1,
+                     "half": (hi - lo) / 2 / eta, "covered": bool(lo <= eta <= hi),
+                     "n": f.n_points, "noise": case["noise"], "ar": case["ar"]})
     return rows, _table("viscosity η, Newtonian whole-curve fit", rows)
 
 
@@ -372,28 +372,29 @@ def test_relaxation_time_median_error_is_within_one_percent(elastic_table):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="measured: 75 % coverage, λ off by up to ~40 % where the "
-                   "fit settles in a wrong basin of the transient (see the printed table)")
+@pytest.mark.xfail(strict=True, reason="measured on these 60 series: 78 % coverage and 49 within "
+                   "3 %; the worst (−40 %, +23 %) settle in another basin of the transient, most "
+                   "with wide intervals (see the printed table)")
 def test_relaxation_time_coverage_and_worst_error_meet_the_brief(elastic_table):
-    rows, (_, worst, coverage, _) = elastic_table
+    _, (_, worst, coverage, _) = elastic_table
     assert 0.90 <= coverage <= 0.98 and worst <= 0.03    # the brief's targets
 
 
 @pytest.mark.slow
 def test_relaxation_time_intervals_cover_most_series(elastic_table):
-    # the level reached today, so that it cannot slip unnoticed
+    # the level reached today (78 %), so that it cannot slip unnoticed
     _, (_, _, coverage, _) = elastic_table
-    assert coverage >= 0.70
+    assert coverage >= 0.75
 
 
 def test_newtonian_viscosity_recovery(newtonian_table):
-    rows, (median, worst, coverage, half) = newtonian_table
+    _, (median, worst, coverage, _) = newtonian_table
     assert median <= 0.01                                # the brief's target
     assert 0.90 <= coverage <= 0.98                      # the brief's target
-    assert worst <= 0.06          # the weakly viscous, inertial records (η barely enters) are worst
+    assert worst <= 0.03                                 # the brief's target
 
 
-@pytest.mark.xfail(strict=True, reason="median half-width / median |error| is 3.5: the series mix "
+@pytest.mark.xfail(strict=True, reason="median half-width / median |error| is 3.7: the series mix "
                    "precisions over two decades, and with calibrated intervals that ratio is "
                    "≈ 1.96/0.674 = 2.9 for equal precisions and grows with their spread")
 def test_newtonian_interval_width_meets_the_brief(newtonian_table):
