@@ -95,12 +95,14 @@ static int64_t last_dark_u16(const uint16_t *row, const uint16_t *t, int64_t w)
     return -1;
 }
 
-/* First and last column of the dark run holding the row's darkest pixel (darkness: larger is
- * darker, first maximum wins). Runs closer than BRIDGE_PX, or separated by a gap narrower
- * than a quarter of the narrower run beside it, are one run. When the darkest pixel lies in a
- * gap, the whole extent lo..hi is kept. */
+/* First and last column of the dark run holding the row's darkest pixel (darkness = -I / light
+ * field: larger is darker, first maximum wins). Runs closer than BRIDGE_PX, separated by a gap
+ * narrower than a quarter of the narrower run beside it, or by a gap whose mean deficit
+ * 1 + darkness / gain is at least `dim` (the bright lens band of a refracting thread, which
+ * still loses light, unlike the background beside a speck) are one run. When the darkest
+ * pixel lies in a gap, the whole extent lo..hi is kept. */
 static void main_run(const unsigned char *mask, const float *darkness, int64_t lo, int64_t hi,
-                     int64_t *out_lo, int64_t *out_hi)
+                     double gain, double dim, int64_t *out_lo, int64_t *out_hi)
 {
     int64_t darkest = lo;
     for (int64_t c = lo + 1; c <= hi; c++)
@@ -115,7 +117,10 @@ static void main_run(const unsigned char *mask, const float *darkness, int64_t l
         int64_t gap = start - run_stop - 1;
         int64_t narrower = run_stop - run_start + 1 < stop - start + 1 ? run_stop - run_start + 1
                                                                        : stop - start + 1;
-        if (gap <= BRIDGE_PX || gap <= 0.25 * narrower) {
+        double gap_deficit = 0.0;
+        for (int64_t g = run_stop + 1; g < start; g++) gap_deficit += 1.0 + darkness[g] / gain;
+        gap_deficit /= (double)(gap > 0 ? gap : 1);
+        if (gap <= BRIDGE_PX || gap <= 0.25 * narrower || gap_deficit >= dim) {
             run_stop = stop;
         } else {
             if (run_start <= darkest && darkest <= run_stop) {
@@ -249,6 +254,7 @@ int scan_rows_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nb, in
                        const PIXEL *thresholds, const int64_t *map_of_frame,                    \
                        const float *inv_light, const double *gains,                             \
                        double saturation, double scale, int64_t margin, int64_t core,           \
+                       double dim,                                                              \
                        unsigned char *has, double *peak, double *centre, double *core_n,        \
                        double *cut, unsigned char *truncated, double *rim_ratio, double *light) \
 {                                                                                               \
@@ -287,7 +293,7 @@ int scan_rows_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nb, in
                         mask[c] = row[c] < t[c];                                                \
                         darkness[c] = -((float)row[c] * inv[c]);                                \
                     }                                                                           \
-                    main_run(mask, darkness, left, right, &left, &right);                       \
+                    main_run(mask, darkness, left, right, gain, dim, &left, &right);            \
                     break;                                                                      \
                 }                                                                               \
             }                                                                                   \

@@ -38,7 +38,7 @@ def _load():
         gains.argtypes = [p, i, i, i, i, p, i, p, i, d, p, p]
         gains.restype = ctypes.c_int
         scan = getattr(lib, f"scan_rows_{suffix}")
-        scan.argtypes = [p, i, i, i, i, p, p, p, p, d, d, i, i, p, p, p, p, p, p, p, p]
+        scan.argtypes = [p, i, i, i, i, p, p, p, p, d, d, i, i, d, p, p, p, p, p, p, p, p]
         scan.restype = ctypes.c_int
     lib.necks.argtypes = [i, i] + [p] * 7 + [d, p, p, i, d, d, d, d, d, d, i, i] + [p] * 10
     lib.necks.restype = ctypes.c_int
@@ -108,7 +108,7 @@ def frame_gains(bands: Bands, gain_rows, margin_light, k, saturation):
 
 
 def scan_rows(bands: Bands, thresholds, map_of_frame, inv_light, gains, saturation, scale, margin,
-              core):
+              core, dim):
     """Row measurements of a block of bands (see :func:`thinning.measure.rows.measure_block`).
 
     ``bands`` the bands of the frames (axis along the rows), such as views
@@ -118,7 +118,9 @@ def scan_rows(bands: Bands, thresholds, map_of_frame, inv_light, gains, saturati
     ``inv_light`` 1 / light field (float32); ``gains`` from
     :func:`frame_gains` (pixels at ``saturation`` carry no deficit);
     ``scale`` = 1 / (1 − shadow fraction);
-    ``margin``/``core`` the zone reach outside and inside an edge (px).
+    ``margin``/``core`` the zone reach outside and inside an edge (px); ``dim`` the
+    smallest mean deficit (fraction of the light) of a gap joining two dark runs of a row
+    (the lens band of a refracting thread).
     Returns a dict of arrays (frame, row): has, peak, centre, core_n,
     cut_width, truncated, rim_ratio, light.
     """
@@ -134,7 +136,7 @@ def scan_rows(bands: Bands, thresholds, map_of_frame, inv_light, gains, saturati
            "rim_ratio": np.full((nb, n), np.nan), "light": np.ones((nb, n))}
     _check(getattr(_lib, f"scan_rows_{_suffix(dtype)}")(
         bands.pointers, bands.stride, nb, n, w, thresholds.ctypes.data, index.ctypes.data, inv.ctypes.data,
-        gains.ctypes.data, saturation, scale, margin, core,
+        gains.ctypes.data, saturation, scale, margin, core, dim,
         *(out[key].ctypes.data for key in ("has", "peak", "centre", "core_n", "cut_width",
                                            "truncated", "rim_ratio", "light"))))
     out["has"] = out["has"].view(bool)

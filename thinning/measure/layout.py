@@ -47,7 +47,11 @@ class Layout:
     the filament direction (lateral shift per axial pixel) from the straight
     sides of the end bodies (or the centre line); ``clipped_background`` the
     fraction of the background of the region at the sensor's maximum; ``light`` the static
-    light field of the band (:class:`~thinning.measure.light.LightField`).
+    light field of the band (:class:`~thinning.measure.light.LightField`);
+    ``liquid_fraction`` the light level of the liquid's own darkest part over the
+    backlight, measured on the free filament of the first frame (a refracting or
+    weakly absorbing liquid is lighter than the opaque end bodies, whose level is
+    ``shadow_level``); None falls back to the end bodies' level.
     """
 
     orientation: str
@@ -66,6 +70,7 @@ class Layout:
     axis_slope: float = 0.0
     clipped_background: float = 0.0
     light: LightField | None = field(default=None, compare=False, repr=False)
+    liquid_fraction: float | None = None
 
     @property
     def axial_range(self) -> tuple[int, int]:
@@ -88,10 +93,24 @@ class Layout:
         """Rows next to an end body's face left out of the free span (about 3 blur widths)."""
         return int(math.ceil(3.0 * self.blur_sigma_px)) + 1
 
+    @property
+    def liquid_depth(self) -> float:
+        """The liquid's own shadow depth in units of the end bodies' (1: as dark as a plate)."""
+        if self.liquid_fraction is None:
+            return 1.0
+        return (1.0 - self.liquid_fraction) / max(1.0 - self.shadow_fraction, 1e-6)
+
+    @property
+    def detect_fraction(self) -> float:
+        """The shadow level the detection thresholds are set against: the liquid's own."""
+        if self.liquid_fraction is None:
+            return self.shadow_fraction
+        return max(self.liquid_fraction, self.shadow_fraction)
+
     def presence_threshold(self, level) -> float:
-        """Smallest peak deficit of a row crossed by the thread: ``level``, or five times the
-        noise where that is larger."""
-        return max(level, 5.0 * self.noise)
+        """Smallest peak deficit (in units of the end bodies' depth) of a row crossed by the
+        thread: ``level`` of the liquid's own depth, or five times the noise where larger."""
+        return max(level * min(self.liquid_depth, 1.0), 5.0 * self.noise)
 
     @property
     def core_px(self) -> int:
@@ -222,9 +241,15 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
     bg = _background(block, rows, saturation=provisional.saturation, floor=floor)
     light, used = _fit_backlight(block, bg, noise_abs)
     provisional = replace(provisional, light=LightField.of(light, used))
-    fraction = _rim_fraction(measure_rows(block, provisional,
-                                           shadow_fraction=provisional.shadow_fraction)["rim_ratio"],
-                             np.ones(n_ax, bool))
+    # the end bodies' shadow level from their own rims where there are bodies, else from any
+    # thick rows; the liquid's own level apart (a refracting liquid is lighter than a plate)
+    body_rim = np.zeros(n_ax, bool)
+    body_rim[:n0] = True
+    body_rim[n_ax - n1:] = True
+    rim_ratio = measure_rows(block, provisional, shadow_fraction=provisional.shadow_fraction)["rim_ratio"]
+    fraction = _rim_fraction(rim_ratio, body_rim)
+    if fraction is None:
+        fraction = _rim_fraction(rim_ratio, np.ones(n_ax, bool))
     if fraction is not None:
         provisional = replace(provisional, shadow_level=fraction * levels["background"])
     # sub-pixel widths of the end bodies, with the row machinery itself
@@ -261,9 +286,31 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
                              geometry)
     if plate is not None:
         plate /= math.sqrt(1.0 + axis_slope * axis_slope)  # across the axis, not along the row
+    face = int(math.ceil(3.0 * blur)) + 1
+    liquid = _liquid_fraction(block, light, rows["has"], slice(n0 + face, n_ax - n1 - face),
+                              noise_abs / max(levels["background"], 1e-6))
     return replace(provisional, plate_width_px=plate, axis_slope=axis_slope,
                    end_widths_px=(widths[0], widths[1]),
-                   noise=noise_abs / max(levels["background"] - float(shadow), 1e-6))
+                   noise=noise_abs / max(levels["background"] - float(shadow), 1e-6),
+                   liquid_fraction=liquid)
+
+
+def _liquid_fraction(block, light, has, free, noise):
+    """The liquid's own darkest level over the backlight on the free rows of the first frame.
+
+    Each row's darkest 3-pixel mean of I / B; the median over the rows crossed by a clear
+    shadow (darker than five times the relative ``noise``). None without such rows.
+    """
+    rows = np.flatnonzero(has[free]) + (free.start or 0)
+    if rows.size < 3:
+        return None
+    ratio = np.asarray(block[rows], dtype=np.float64) / np.asarray(light[rows], dtype=np.float64)
+    smooth = (ratio[:, :-2] + ratio[:, 1:-1] + ratio[:, 2:]) / 3.0
+    low = smooth.min(axis=1)
+    low = low[low < 1.0 - 5.0 * noise]
+    if low.size < 3:
+        return None
+    return float(min(max(np.median(low), -0.5), 0.95))
 
 
 def _saturation(frame):
@@ -327,11 +374,8 @@ def _levels(block, mask, bright, dark):
 
 
 def _rim_fraction(rim_ratio, rows_ok):
-    """Shadow level over backlight from the rims of thick steady rows (None when too few).
-
-    Plates and nozzle count as well as the liquid: in a backlit shadowgraph the
-    refracting liquid is as dark as the solid bodies outside its lens streak.
-    """
+    """Shadow level over backlight from the rims of the thick steady rows ``rows_ok`` (None
+    when fewer than three)."""
     values = rim_ratio[rows_ok]
     values = values[np.isfinite(values)]
     if values.size < 3:

@@ -39,7 +39,8 @@ from .layout import Layout, NoFilament, find_layout
 from .light import refresh_light
 from .neck import MAX_HALF_WINDOW, MIN_HALF_WINDOW, necks_of
 from .profile import MAX_BEND_DEG, PRESENCE_LEVEL, Profile, ProfileBlock, bend_slope, profiles_of
-from .rows import CLIPPED_EDGE_LIMIT, measure_block, rim_fractions
+from .liquid import LiquidShadow, remeasure_necks
+from .rows import CLIPPED_EDGE_LIMIT, band_views, measure_bands, rim_fractions
 
 log = logging.getLogger(__name__)
 
@@ -199,29 +200,31 @@ def _measure_stream(frames, *, geometry, roi, n_frames) -> NeckSeries:
                 continue
             fraction = layout.shadow_fraction
             row_noise = _row_noise(layout)
+            liquid = LiquidShadow(fallback=1.0 - layout.detect_fraction)
             first = index
             axial = layout.axial_range
             block_frames = max(1, BLOCK_PIXELS // ((axial[1] - axial[0]) * (layout.band[1] - layout.band[0])))
         since = index - first
         if since >= 8 and since & (since - 1) == 0:  # 8, 16, 32, … frames after the layout
-            fraction = _measure_pending(pending, layout, fraction, row_noise, records, snaps)
+            fraction = _measure_pending(pending, layout, fraction, row_noise, records, snaps, liquid)
             layout = refresh_light(frame, layout) or layout
         pending.append((index, frame))
         if len(pending) >= block_frames:
-            fraction = _measure_pending(pending, layout, fraction, row_noise, records, snaps)
+            fraction = _measure_pending(pending, layout, fraction, row_noise, records, snaps, liquid)
     if layout is None:
         raise NoFilament("No filament in view in any frame of the recording.")
-    _measure_pending(pending, layout, fraction, row_noise, records, snaps)
+    _measure_pending(pending, layout, fraction, row_noise, records, snaps, liquid)
     table = pd.DataFrame({column: np.concatenate([r[column] for r in records])
                           for column in TABLE_COLUMNS})
     return summarise(table, layout, snapshots=snaps.result())
 
 
-def _measure_pending(pending, layout, fraction, row_noise, records, snaps):
+def _measure_pending(pending, layout, fraction, row_noise, records, snaps, liquid):
     """Measure the buffered frames as one block, in order; empties ``pending``, returns the shadow fraction."""
     if not pending:
         return fraction
-    rows = measure_block([f for _, f in pending], layout)
+    bands = band_views([f for _, f in pending], layout)
+    rows = measure_bands(bands, layout)
     fractions = []  # the running estimate of the shadow level before each frame
     for own in rim_fractions(rows):
         fractions.append(fraction)
@@ -237,6 +240,7 @@ def _measure_pending(pending, layout, fraction, row_noise, records, snaps):
         record.update(thread_connected=profiles.connected, filament_seen=profiles.present.any(axis=1),
                       plate_gap_px=_gaps(profiles, layout))
         profile_of = profiles.frame
+    remeasure_necks(bands, layout, rows, record, liquid, row_noise_px=row_noise)
     record["frame"] = np.array(frames)
     records.append(record)
     for b, (index, frame) in enumerate(pending):

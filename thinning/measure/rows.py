@@ -4,7 +4,7 @@
 returns a typed :class:`RowBlock` (arrays per frame and row). The pass has
 one compiled coding (:mod:`thinning.measure.compiled`, used where the
 install built it) and one numpy coding (:func:`_scan_rows_numpy`), chosen in
-:func:`_measure_bands` only; tests hold the two equal. The layout's own
+:func:`measure_bands` only; tests hold the two equal. The layout's own
 first look at a frame, before its light field exists, uses the full-row
 pass :func:`measure_rows` (also the light field's refresh).
 
@@ -47,6 +47,11 @@ DETECT_LEVEL = 0.25
 #: steepest light gradient instead of by partial area (measured with scripts/optics_probe.py:
 #: below it the partial area is the better of the two, above it by far the better is the gradient).
 CLIPPED_EDGE_LIMIT = 0.85
+#: Smallest mean deficit (fraction of the light) of a gap that joins two dark runs of a row into one
+#: thread: the bright lens band of a refracting thread loses light to reflection at both surfaces
+#: (about 4 % at n = 1.33, ((n − 1)/(n + 1))² each, docs/physics.md §8.1), the background between
+#: the thread and a speck of dust loses none.
+LENS_GAP_DEFICIT = 0.02
 
 
 @dataclass
@@ -155,7 +160,7 @@ def measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
     gappy = has & (mask.sum(axis=1) < rj - lj + 1)
     if gappy.any():
         for r in np.flatnonzero(gappy):
-            lj[r], rj[r] = _main_run(mask[r], pair[r], lj[r], rj[r])
+            lj[r], rj[r] = _main_run(mask[r], pair[r], deficit[r] / scale, lj[r], rj[r])
     # sub-pixel detection crossings of the pair average (pair j is centred at j + 0.5)
     lprev = np.maximum(lj - 1, 0)
     p0, p1 = pair[rows, lprev], pair[rows, lj]
@@ -220,9 +225,15 @@ def measure_block(frames, layout, *, detect_level=DETECT_LEVEL) -> RowBlock:
                               detect_level=detect_level) for f in frames]
         return RowBlock(**{f.name: np.stack([np.asarray(r[f.name]) for r in each])
                            for f in fields(RowBlock)})
+    return measure_bands(band_views(frames, layout), layout, detect_level=detect_level)
+
+
+def band_views(frames, layout) -> list:
+    """The band of each frame, axis along the rows: views into the frames (a vertical
+    filament's, when they share a layout in memory) or one transposed stack."""
     import cv2
 
-    (a0, a1), (b0, b1) = axial, layout.band
+    (a0, a1), (b0, b1) = layout.axial_range, layout.band
     frames = [np.asarray(frame) for frame in frames]
     if layout.orientation == "vertical":
         bands = [frame[a0:a1, b0:b1] for frame in frames]  # views: no copy
@@ -235,10 +246,10 @@ def measure_block(frames, layout, *, detect_level=DETECT_LEVEL) -> RowBlock:
         for block, frame in zip(stack, frames):
             cv2.transpose(frame[b0:b1, a0:a1], block)
         bands = list(stack)
-    return _measure_bands(bands, layout, detect_level=detect_level)
+    return bands
 
 
-def _measure_bands(bands, layout, *, detect_level=DETECT_LEVEL):
+def measure_bands(bands, layout, *, detect_level=DETECT_LEVEL) -> RowBlock:
     """The per-frame path of :func:`_measure_rows`: same quantities, a fraction of the work.
 
     Each row's dark extent comes from one comparison with a threshold map
@@ -273,7 +284,8 @@ def _measure_bands(bands, layout, *, detect_level=DETECT_LEVEL):
         ratio = ((sample[:, :k].sum(axis=1, dtype=np.int64) + sample[:, w - k:].sum(axis=1, dtype=np.int64))
                  / layout.light.margin_light[probe_rows])
         gains[b] = _frame_gain(bands[b], layout, ratio, sample, k, bool(clipped[b]))
-    maps = [layout.light.threshold_map(bands[0].dtype, detect_level, g, layout.shadow_fraction) for g in gains]
+    maps = [layout.light.threshold_map(bands[0].dtype, detect_level, g, layout.detect_fraction)
+            for g in gains]
     distinct = list({id(m): m for m in maps}.values())
     which = {id(m): i for i, m in enumerate(distinct)}
     map_of_frame = np.array([which[id(m)] for m in maps])
@@ -281,7 +293,7 @@ def _measure_bands(bands, layout, *, detect_level=DETECT_LEVEL):
     scan = compiled.scan_rows if compiled.COMPILED else _scan_rows_numpy
     rows = RowBlock(**scan(bands, thresholds, map_of_frame, layout.light.inverse, gains,
                            float(layout.saturation), 1.0 / max(1.0 - layout.shadow_fraction, 1e-3),
-                           layout.margin_px, layout.core_px), gain=gains)
+                           layout.margin_px, layout.core_px, LENS_GAP_DEFICIT), gain=gains)
     if layout.clipped_background > CLIPPED_EDGE_LIMIT:
         _steepest_edges(bands, rows, layout.margin_px)
     return rows
@@ -346,7 +358,7 @@ def _frame_gains_numpy(blocks, gain_rows, margin_light, k, saturation):
 
 
 def _scan_rows_numpy(blocks, thresholds, map_of_frame, inv_light, gains, saturation, scale,
-                     margin, core):
+                     margin, core, dim):
     """:func:`thinning.compiled.scan_rows` in numpy, for installs without the compiled module."""
     import cv2
 
@@ -371,7 +383,9 @@ def _scan_rows_numpy(blocks, thresholds, map_of_frame, inv_light, gains, saturat
     gappy = has & (probe & ~(head & tail)).any(axis=2)
     if gappy.any():
         for b, r in zip(*np.nonzero(gappy)):
-            lj[b, r], rj[b, r] = _main_run(mask[b, r], -(blocks[b, r] * inv_light[r]), lj[b, r], rj[b, r])
+            darkness = -(blocks[b, r] * inv_light[r])
+            lj[b, r], rj[b, r] = _main_run(mask[b, r], darkness, 1.0 + darkness / np.float32(gains[b]),
+                                           lj[b, r], rj[b, r], dim=dim)
     zone = m + a
     core_start = lj + a
     core_stop = rj + 1 - a
@@ -470,17 +484,24 @@ def _faint_rows(block, inv_light, has, centre, peak, cut, gain, scale, margin):
             centre[empty] = (d * (wc - row_start[empty][:, None])).sum(axis=1) / cut[empty]
 
 
-def _main_run(mask_row, pair_row, lo, hi, *, bridge_px=3):
-    """First and last index of the dark run holding the row's darkest pair (gaps ≤ bridge_px joined)."""
+def _main_run(mask_row, pair_row, deficit_row, lo, hi, *, bridge_px=3, dim=LENS_GAP_DEFICIT):
+    """First and last index of the dark run holding the row's darkest pair.
+
+    Runs are joined across a gap of at most ``bridge_px``, a gap narrower than a
+    quarter of the narrower run beside it, or a gap whose mean fractional deficit
+    ``deficit_row`` is at least ``dim``: the bright lens band of a transparent
+    thread between its two dark rims still loses light (reflection at both
+    surfaces), the background between the thread and a speck does not.
+    """
     on = mask_row[lo:hi + 1]
     edges = np.flatnonzero(np.diff(np.concatenate(([0], on.astype(np.int8), [0]))))
     starts, stops = edges[::2], edges[1::2] - 1
-    # join runs separated by a gap that is short, or narrow beside both runs (the bright
-    # lens streak between the two dark rims of a transparent thread)
     keep_s, keep_e = [starts[0]], [stops[0]]
     for a, b in zip(starts[1:], stops[1:]):
         gap = a - keep_e[-1] - 1
-        if gap <= bridge_px or gap <= 0.25 * min(keep_e[-1] - keep_s[-1] + 1, b - a + 1):
+        gap_deficit = float(np.mean(deficit_row[lo + keep_e[-1] + 1:lo + a], dtype=np.float64)) if gap > 0 else 0.0
+        if (gap <= bridge_px or gap <= 0.25 * min(keep_e[-1] - keep_s[-1] + 1, b - a + 1)
+                or gap_deficit >= dim):
             keep_e[-1] = b
         else:
             keep_s.append(a)
