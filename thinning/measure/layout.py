@@ -107,6 +107,11 @@ class Layout:
             return self.shadow_fraction
         return max(self.liquid_fraction, self.shadow_fraction)
 
+    def detection_level(self, level) -> float:
+        """``level`` (a fraction of the liquid's depth) raised to six times the pixel noise."""
+        noise = self.noise * (1.0 - self.shadow_fraction)  # fraction of the backlight
+        return max(level, 6.0 * noise / max(1.0 - self.detect_fraction, 1e-6))
+
     def presence_threshold(self, level) -> float:
         """Smallest peak deficit (in units of the end bodies' depth) of a row crossed by the
         thread: ``level`` of the liquid's own depth, or five times the noise where larger."""
@@ -298,15 +303,20 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
 def _liquid_fraction(block, light, has, free, noise):
     """The liquid's own darkest level over the backlight on the free rows of the first frame.
 
-    Each row's darkest 3-pixel mean of I / B; the median over the rows crossed by a clear
-    shadow (darker than five times the relative ``noise``). None without such rows.
+    Each row's shadow level of I / B (the median of its pixels within a tenth of the row's
+    range of its darkest 3-pixel mean); the median over the rows crossed by a clear shadow
+    (darker than five times the relative ``noise``). None without such rows.
     """
     rows = np.flatnonzero(has[free]) + (free.start or 0)
     if rows.size < 3:
         return None
     ratio = np.asarray(block[rows], dtype=np.float64) / np.asarray(light[rows], dtype=np.float64)
     smooth = (ratio[:, :-2] + ratio[:, 1:-1] + ratio[:, 2:]) / 3.0
-    low = smooth.min(axis=1)
+    darkest = smooth.min(axis=1)
+    # the level of the row's shadow: the median of its pixels within the darkest tenth of the
+    # row's range (the darkest single value is biased dark by the noise)
+    top = np.where(ratio <= (darkest + 0.1 * (1.0 - darkest))[:, None], ratio, np.nan)
+    low = np.nanmedian(top, axis=1)
     low = low[low < 1.0 - 5.0 * noise]
     if low.size < 3:
         return None

@@ -91,7 +91,8 @@ def _fit_backlight(block, bg, noise_abs, *, degree=2):
     The polynomial (``degree`` in the axial and lateral coordinate) carries the
     ramp and vignetting of the light; small dark specks of dust on the
     background are kept as they are (smoothed over 3×3 pixels), so that they
-    do not count as shadow when the thread later passes over them.
+    do not count as shadow when the thread later passes over them; a dark patch
+    longer than :data:`DUST_MAX_ROWS` along the axis is a faint thread, not dust.
     """
     n, w = block.shape
     v = np.linspace(-1.0, 1.0, n)[:, None] * np.ones((1, w))
@@ -118,6 +119,8 @@ def _fit_backlight(block, bg, noise_abs, *, degree=2):
     ratio = block / field_
     dark = bg & (ratio < 1.0 - max(6.0 * noise_abs / float(np.median(field_)), 0.02))
     if dark.any():
+        dark = _compact(dark)
+    if dark.any():
         import cv2
 
         spot = cv2.dilate(dark.astype(np.uint8), np.ones((5, 5), np.uint8)).astype(bool) & bg
@@ -125,6 +128,21 @@ def _fit_backlight(block, bg, noise_abs, *, degree=2):
         smooth = cv2.blur(np.where(bg, block, 0.0).astype(np.float32), (3, 3))
         field_ = np.where(spot, smooth / np.maximum(weight, 1e-6), field_)
     return field_.astype(np.float32), int(bg.sum())
+
+
+#: A dark patch of the background longer than this along the axis (rows) is no speck of dust
+#: but a faint thread (or its rim under diffuse light): it never becomes part of the light field.
+DUST_MAX_ROWS = 16
+
+
+def _compact(dark):
+    """The dark patches of ``dark`` short along the axis (rows, axis 0): specks of dust."""
+    import cv2
+
+    count, labels, stats, _ = cv2.connectedComponentsWithStats(dark.astype(np.uint8), connectivity=8)
+    short = stats[:, cv2.CC_STAT_HEIGHT] <= DUST_MAX_ROWS
+    short[0] = False  # the background label
+    return short[labels]
 
 
 def refresh_light(frame, layout: Layout, *, min_gain=1.1) -> Layout | None:

@@ -37,7 +37,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .neck import MAX_HALF_WINDOW, MIN_HALF_WINDOW, _smooth3, quadratic_fits
-from .rows import CLIPPED_EDGE_LIMIT, DETECT_LEVEL
+from .rows import CLIPPED_EDGE_LIMIT, TRACE_LEVEL
 
 #: A rim counts as resolved when it reaches RIM_DEPTH of the liquid's own depth (the layout
 #: frame's darkest level; shallower, the blur or the bright band fills the dip) and at least
@@ -186,8 +186,7 @@ def _row_widths(deficit, centre, guess, layout):
     hi = np.clip(np.ceil(cen + reach), 0, w - 1).astype(np.int64)
     within = (cols[None, None, :] >= lo[:, :, None]) & (cols[None, None, :] <= hi[:, :, None])
     depth = 1.0 - (layout.liquid_fraction if layout.liquid_fraction is not None else layout.shadow_fraction)
-    noise = layout.noise * (1.0 - layout.shadow_fraction)  # per pixel, fraction of the light
-    threshold = max(DETECT_LEVEL * depth, 4.0 * noise)
+    threshold = layout.detection_level(TRACE_LEVEL) * depth
     dark = within & (deficit > threshold)
     has = dark.any(axis=2)
     lj = np.where(has, np.argmax(dark, axis=2), lo)

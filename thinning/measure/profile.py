@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .layout import Layout
-from .rows import DETECT_LEVEL, measure_block, rim_fractions
+from .rows import TRACE_LEVEL, measure_block, rim_fractions
 
 
 #: Smallest peak deficit for a row to count as crossed by the thread (connectivity).
@@ -131,7 +131,7 @@ def axis_slopes(y, centre, ok, base_slope, max_bend_deg):
     return np.where(count >= 5, np.clip(slope, base - bend, base + bend), base)
 
 
-def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=DETECT_LEVEL,
+def locate_edges(frame, layout: Layout, *, shadow_fraction=None, detect_level=TRACE_LEVEL,
                  presence_level=PRESENCE_LEVEL, max_bend_deg=MAX_BEND_DEG) -> Profile:
     """Both edges of the filament on every row of the band, sub-pixel (see module docstring).
 

@@ -41,6 +41,9 @@ BACKGROUND_COLUMNS = 6
 
 #: Deficit level (fraction of the shadow depth) at which a row is taken to hold the filament.
 DETECT_LEVEL = 0.25
+#: The same, for the stream of frames, as a fraction of the liquid's own depth (at least six times
+#: the noise): a thin thread under diffuse light shows two shallow rims (docs/physics.md §8.1).
+TRACE_LEVEL = 0.12
 
 
 #: Fraction of the background at the sensor's maximum above which edges are placed at the
@@ -208,7 +211,7 @@ def measure_rows(block, layout, *, shadow_fraction, detect_level=DETECT_LEVEL):
             "light": light, "window": (s0, e0), "gain": gain}
 
 
-def measure_block(frames, layout, *, detect_level=DETECT_LEVEL) -> RowBlock:
+def measure_block(frames, layout, *, detect_level=TRACE_LEVEL) -> RowBlock:
     """Row measurements of several frames of one layout at once: arrays (frame, row).
 
     The same quantities as measuring each frame alone (:func:`thinning.measure.profile.locate_edges`),
@@ -249,7 +252,7 @@ def band_views(frames, layout) -> list:
     return bands
 
 
-def measure_bands(bands, layout, *, detect_level=DETECT_LEVEL) -> RowBlock:
+def measure_bands(bands, layout, *, detect_level=TRACE_LEVEL) -> RowBlock:
     """The per-frame path of :func:`_measure_rows`: same quantities, a fraction of the work.
 
     Each row's dark extent comes from one comparison with a threshold map
@@ -284,8 +287,8 @@ def measure_bands(bands, layout, *, detect_level=DETECT_LEVEL) -> RowBlock:
         ratio = ((sample[:, :k].sum(axis=1, dtype=np.int64) + sample[:, w - k:].sum(axis=1, dtype=np.int64))
                  / layout.light.margin_light[probe_rows])
         gains[b] = _frame_gain(bands[b], layout, ratio, sample, k, bool(clipped[b]))
-    maps = [layout.light.threshold_map(bands[0].dtype, detect_level, g, layout.detect_fraction)
-            for g in gains]
+    level = layout.detection_level(detect_level)
+    maps = [layout.light.threshold_map(bands[0].dtype, level, g, layout.detect_fraction) for g in gains]
     distinct = list({id(m): m for m in maps}.values())
     which = {id(m): i for i, m in enumerate(distinct)}
     map_of_frame = np.array([which[id(m)] for m in maps])
