@@ -669,3 +669,185 @@ def test_random_cases_render(family):
             frame = r.frame(i)
             assert frame.shape == r.truth.frame_shape and frame.dtype == np.dtype(r.truth.dtype)
             assert 0 < frame.mean() < r.max_value
+
+
+# --- light budget and edges of a straight thread ---------------------------------------------
+# A straight cylinder of radius R under a telecentric lens (docs/physics.md §8.1): each pupil
+# direction u = (u_x, u_z) sees the cylinder's silhouette projected onto the object plane, of
+# half width R·√(1 − u_z²)/√(1 − u_x² − u_z²) ≥ R (elementary geometry: the line through (x, 0)
+# along u passes the axis at distance x·d_y/√(d_x² + d_y²)). So just outside the rim,
+# 1 < x/R < 1/cos α, only part of the lit pupil misses the liquid (those rays carry the bare
+# backlight, the others graze the surface and are deflected by ~80°, lost); the penumbra's
+# deficit per side is R·P with P the lit pupil's mean of that ratio minus 1 (≈ a²/8 for a lit
+# pupil of radius a = min(NA, sin β): 0.5 % of R at NA 0.2 under diffuse light, ~0 collimated).
+
+def _lit_pupil_grid(a, n=801):
+    u = np.linspace(-a, a, n)
+    ux, uz = np.meshgrid(u, u)
+    inside = ux ** 2 + uz ** 2 < a * a
+    return ux[inside], uz[inside]
+
+
+def _penumbra_deficit(a):
+    """P: the penumbra's deficit per side in units of R (see above), by quadrature over the disk."""
+    ux, uz = _lit_pupil_grid(a)
+    return float(np.mean(np.sqrt(1 - uz ** 2) / np.sqrt(1 - ux ** 2 - uz ** 2) - 1.0))
+
+
+def _miss_fraction(q, a):
+    """Fraction of the lit pupil whose straight line through (q, 0) misses the unit circle."""
+    ux, uz = _lit_pupil_grid(a, 401)
+    return np.array([np.mean(qq * qq * (1 - ux ** 2 - uz ** 2) > 1 - uz ** 2) for qq in np.atleast_1d(q)])
+
+
+@pytest.mark.parametrize("na,beta_deg", [(0.02, 0.3), (0.2, 0.3), (0.05, 35.0), (0.2, 35.0)])
+def test_table_rim_penumbra_matches_straight_rays(na, beta_deg):
+    """What the table holds beyond the rim (q > 1) is the penumbra of straight rays, no more: its
+    deficit ∫_1^∞ (1 − T) dq equals P, and T follows the pupil's miss fraction. Before the fix the
+    first point traced beyond q = 1 was one uniform step (~0.005 at NA 0.2) out, and the linear
+    ramp from the rim's darkness to the bare light added a shadow of half that step (0.0025 R at
+    NA 0.2 under collimated light, where the true penumbra is ~1e-5 R)."""
+    table = raysynth.transmission_table(1.4, na, beta_deg)
+    q, t = table.q, table.transmission[0, 0]
+    a = min(na, math.sin(math.radians(beta_deg)))
+    out = q >= 1.0
+    assert np.trapezoid(1 - t[out], q[out]) == pytest.approx(_penumbra_deficit(a), rel=0.03, abs=2e-5)
+    rim = (q > 1.0) & (q < 1.0 / math.cos(math.asin(a)))
+    if beta_deg > 10:       # diffuse: the penumbra is resolved, point by point
+        assert rim.sum() > 20
+        np.testing.assert_allclose(t[rim], _miss_fraction(q[rim], a), atol=0.03)
+
+
+def _straight_thread(monkeypatch, radius_px, na, n, beta_deg, *, defocus_px=0.0, kappa_r=0.0,
+                     supersample=2):
+    """A renderer whose liquid is an exactly straight cylinder of radius ``radius_px`` between the
+    plates (the scene's own profile, elastic and nearly straight, tapers slightly: its small
+    slopes pick up part of the next slope row of the table)."""
+    original = raysynth._radius_and_slope
+
+    def straight(z, tl, i, dz=0.01):
+        r, _ = original(z, tl, i, dz)
+        return np.where(r > 0, tl.r_neck[i], 0.0), np.zeros(np.shape(r))
+
+    monkeypatch.setattr(raysynth, "_radius_and_slope", straight)
+    px = 5e-6
+    plate = max(2.5 * radius_px, 2 * radius_px + 4) * px
+    width = max(int(2.1 * radius_px) + 90, int(plate / px) + 12)
+    scene = small_scene(fluid=elastic_fluid(relaxation_time=5.0, solvent_viscosity=5.0),
+                        plate_diameter_m=plate, initial_diameter_m=2 * radius_px * px,
+                        pixel_size_m=px, frame_size_px=(160, width), n_frames=1, refractive_index=n,
+                        absorption_per_m=kappa_r / (radius_px * px))
+    optics = dataclasses.replace(CLEAN, numerical_aperture=na, illumination_half_angle_deg=beta_deg,
+                                 supersample=supersample,
+                                 defocus_m=defocus_px * px / math.tan(math.asin(na)))
+    return raysynth.RayRenderer(scene, optics, seed=0)
+
+
+def _neck_rows(renderer, phases):
+    """The neck row (light over the same row's far background) and x − axis (px), for the thread
+    axis moved to each sub-pixel ``phase`` about the frame's centre."""
+    width = renderer.scene.frame_size_px[1]
+    z = int(round(renderer.truth.neck_position_px[0]))
+    for phase in phases:
+        renderer.axis_px = (width - 1) / 2 + phase
+        row = renderer.optical_image(0)[z].astype(float)
+        yield row / (0.5 * (row[:4].mean() + row[-4:].mean())), np.arange(width) - renderer.axis_px
+
+
+def _thread_transmission(renderer):
+    """T(q) at slope 0 at the thread's κR (the renderer interpolates the absorbance rows)."""
+    table = renderer.table
+    if table.absorbance.size == 1:
+        return table.transmission[0, 0]
+    kr = renderer.scene.absorption_per_m * renderer.truth.diameter_px[0] / 2 * renderer.scene.pixel_size_m
+    return np.array([np.interp(kr, table.absorbance, col) for col in table.transmission[:, 0, :].T])
+
+
+@pytest.mark.parametrize("radius,na,n,beta_deg,defocus_px", [
+    (1.5, 0.1, 1.4, 0.3, 0.0), (3.0, 0.02, 1.33, 0.3, 0.0), (20.0, 0.02, 1.4, 0.3, 0.0),
+    (20.0, 0.2, 1.5, 0.3, 0.0), (75.0, 0.2, 1.4, 0.3, 0.0), (75.0, 0.1, 1.4, 0.3, 1.5),
+    (20.0, 0.2, 1.4, 35.0, 0.0), (75.0, 0.05, 1.33, 35.0, 0.0), (1.5, 0.2, 1.4, 35.0, 0.0)])
+def test_straight_thread_row_conserves_the_light_of_its_table(monkeypatch, radius, na, n, beta_deg,
+                                                             defocus_px):
+    """Light is conserved from the ray optics to the pixels: a straight thread's row deficit
+    Σ(1 − I/I_bg), over a row wider than the PSF's reach and normalised by its own far field,
+    equals 2R·[∫_0^1 (1 − T) dq + P], T from the renderer's table inside the rim and the
+    straight-ray penumbra P outside (see above) — whatever R, NA, n, backlight and defocus: the
+    area sampling, the PSF (unit sum) and its pixel phases neither add nor lose light. Before the
+    fix the spurious ramp beyond the rim made it 0.17–0.39 % (0.05–0.4 px) too dark at R ≥ 20."""
+    r = _straight_thread(monkeypatch, radius, na, n, beta_deg, defocus_px=defocus_px)
+    table, t = r.table, _thread_transmission(r)
+    a = min(na, math.sin(math.radians(beta_deg)))
+    inner = table.q <= 1.0
+    expected = 2 * radius * (np.trapezoid(1 - t[inner], table.q[inner]) + _penumbra_deficit(a))
+    for row, _ in _neck_rows(r, (-0.3, 0.0, 0.25)):
+        deficit = float(np.sum(1 - row))
+        print(f"R={radius} NA={na} n={n} beta={beta_deg} defocus={defocus_px}px: deficit/expected = "
+              f"{deficit / expected:.5f} ({deficit - expected:+.4f} px)")
+        assert deficit == pytest.approx(expected, rel=5e-4, abs=0.002)
+        # and against the table's own integral (what the renderer draws from)
+        assert deficit == pytest.approx(2 * radius * np.trapezoid(1 - t, table.q), rel=2e-4, abs=1e-3)
+
+
+@pytest.mark.parametrize("na,beta_deg", [(0.02, 0.3), (0.2, 0.3), (0.2, 35.0)])
+def test_opaque_thread_casts_its_geometric_shadow(monkeypatch, na, beta_deg):
+    """A strongly dyed thread (κR = 30: T ≈ 0 everywhere inside the rim) is an opaque cylinder:
+    its row deficit is 2R(1 + P) — 2R within 0.5 % (P ≈ 0) under collimated light, and 0.51 %
+    more at NA 0.2 under diffuse light, the tilted rays' wider silhouettes."""
+    radius = 20.0
+    r = _straight_thread(monkeypatch, radius, na, 1.4, beta_deg, kappa_r=30.0)
+    assert _thread_transmission(r)[r.table.q < 1.0].max() < 1e-6
+    a = min(na, math.sin(math.radians(beta_deg)))
+    (row, _), = _neck_rows(r, (0.17,))
+    deficit = float(np.sum(1 - row))
+    print(f"opaque R={radius} NA={na} beta={beta_deg}: deficit/2R = {deficit / (2 * radius):.5f}")
+    assert deficit == pytest.approx(2 * radius * (1 + _penumbra_deficit(a)), rel=5e-4)
+    if beta_deg < 1:
+        assert deficit == pytest.approx(2 * radius, rel=5e-3)
+
+
+def _outer_half_level_edges(renderer, phases):
+    """Outer crossings (right, left; px from the axis) of the level half-way down the thread's
+    own shadow, on the row profile sampled at all ``phases`` together (so that the pixel grid's
+    linear interpolation does not bias a sharp edge)."""
+    rows = list(_neck_rows(renderer, phases))
+    x = np.concatenate([xx for _, xx in rows])
+    v = np.concatenate([vv for vv, _ in rows])
+    level = 1 - (1 - v.min()) / 2
+    edges = []
+    for side in (1, -1):
+        s = side * x > 0
+        order = np.argsort(side * x[s])
+        xs, vs = (side * x[s])[order], v[s][order]
+        k = np.flatnonzero((vs[:-1] < level) & (vs[1:] >= level)).max()
+        edges.append(xs[k] + (level - vs[k]) / (vs[k + 1] - vs[k]) * (xs[k + 1] - xs[k]))
+    return edges
+
+
+@pytest.mark.parametrize("radius,na,n,beta_deg", [(20.0, 0.02, 1.4, 0.3), (20.0, 0.1, 1.33, 0.3),
+                                                  (75.0, 0.2, 1.4, 0.3), (75.0, 0.05, 1.33, 35.0)])
+def test_half_level_edges_of_a_wide_thread_sit_at_its_radius(monkeypatch, radius, na, n, beta_deg):
+    """A wide thread whose T is ≈ 0 just inside the rim and whose penumbra is narrow (collimated
+    light; or diffuse at low NA, R·P = 0.02 px here) has its half-level edges at ±R within
+    0.03 px (the symmetric PSF and pixel box put the half level of a step on the step). Before
+    the fix they sat 0.014 (NA 0.02) to 0.19 px (NA 0.2, R = 75) outside."""
+    r = _straight_thread(monkeypatch, radius, na, n, beta_deg)
+    edges = _outer_half_level_edges(r, np.linspace(-0.5, 0.5, 8, endpoint=False))
+    print(f"R={radius} NA={na} n={n} beta={beta_deg}: edges − R = {edges[0] - radius:+.4f}, "
+          f"{edges[1] - radius:+.4f} px")
+    for edge in edges:
+        assert edge == pytest.approx(radius, abs=0.03)
+
+
+def test_diffuse_high_na_edges_sit_out_by_the_penumbra(monkeypatch):
+    """Physics, not a defect: under diffuse light at NA 0.2 the tilted rays' silhouettes reach
+    out to R/cos α (0.4 px at R = 20), and the half-level edge sits outside R by about the
+    penumbra's deficit R·P ≈ 0.10 px."""
+    radius = 20.0
+    r = _straight_thread(monkeypatch, radius, 0.2, 1.4, 35.0)
+    shift = radius * _penumbra_deficit(0.2)
+    edges = _outer_half_level_edges(r, np.linspace(-0.5, 0.5, 8, endpoint=False))
+    print(f"diffuse NA 0.2 R={radius}: edges − R = {edges[0] - radius:+.4f}, {edges[1] - radius:+.4f} px "
+          f"(R·P = {shift:.4f})")
+    for edge in edges:
+        assert edge - radius == pytest.approx(shift, abs=0.03)

@@ -343,14 +343,25 @@ class TransmissionTable:
     illumination_half_angle_deg: float
 
 
-def _q_grid(numerical_aperture: float, n_inner: int = 640, n_outer: int = 128) -> np.ndarray:
-    """Impact coordinates b/R traced: dense towards the rim (sin-spaced up to 1), then
-    uniform out to where even the steepest tabulated surface stops catching pupil rays."""
+def _q_grid(numerical_aperture: float, n_inner: int = 640, n_outer: int = 128,
+            n_rim: int = 64) -> np.ndarray:
+    """Impact coordinates b/R traced: dense towards the rim (sin-spaced up to 1); then the
+    penumbra of a straight thread just outside it, 1 < b/R < 1/cos α, where only the pupil rays
+    tilted across the axis by more than about √(2(b/R − 1)) meet the liquid (quadratically
+    spaced from 1, so that its √-like rise is linear in the index and the step in T at the rim
+    stays sharp); then uniform out to where even the steepest tabulated surface stops catching
+    pupil rays.
+
+    The renderer integrates T linearly between these points: a coarse step just outside the
+    rim (formerly the first uniform point, ~0.005 at NA 0.2) drew a ramp from the rim's darkness
+    to the bare light, a shadow half a step wide beyond the true radius that no ray casts."""
     alpha = math.asin(numerical_aperture)
-    q_max = 1.0 / math.cos(alpha) + 1.2 * SLOPE_MAX * math.tan(alpha) + 0.02
+    q_rim = 1.0 / math.cos(alpha)
+    q_max = q_rim + 1.2 * SLOPE_MAX * math.tan(alpha) + 0.02
     inner = np.sin(np.linspace(0.0, 0.5 * math.pi, n_inner))
-    outer = np.linspace(1.0, q_max, n_outer + 1)[1:]
-    return np.concatenate([inner, outer])
+    rim = 1.0 + (q_rim - 1.0) * np.linspace(0.0, 1.0, n_rim + 1)[1:] ** 2
+    outer = np.linspace(q_rim, q_max, n_outer + 1)[1:]
+    return np.concatenate([inner, rim, outer])
 
 
 @lru_cache(maxsize=8)
@@ -412,8 +423,9 @@ def transmission_table(refractive_index: float, numerical_aperture: float,
             sums[k, lo + todo] = weight * np.sum(light * np.exp(-kr * path), axis=1)
     trans = (sums[:, :-1] / sums[:, -1:]).reshape(absorbance.size, n_slopes, q.size)
     trans = np.clip(trans, 0.0, None)
-    # running integral of the deficit, resampled on a uniform grid for the renderer
-    q_uniform = np.linspace(0.0, q[-1], n_uniform)
+    # running integral of the deficit, resampled on a uniform grid for the renderer; its step
+    # divides 1, so that the rim (where T jumps and the integral has a kink) is a node
+    q_uniform = np.arange(n_uniform) / math.floor((n_uniform - 1) / q[-1])
     gaps = 1.0 - trans
     cumulative = np.concatenate([np.zeros(trans.shape[:-1] + (1,)),
                                  np.cumsum(0.5 * (gaps[..., 1:] + gaps[..., :-1]) * np.diff(q), axis=-1)],
