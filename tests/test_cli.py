@@ -88,6 +88,8 @@ def test_reference_width_calibration(recording, tmp_path):
     ("no-fps", "frame rate"),
     ("bad-unit", "not a surface tension"),
     ("no-filament", "filament"),
+    ("backlight-vignette", "no filament in any frame"),
+    ("backlight-dust", "no filament in any frame"),
     ("no-surface-tension", "surface tension"),
 ])
 def test_bad_input_is_one_sentence_and_exit_2(tmp_path, recording, case, message):
@@ -106,6 +108,19 @@ def test_bad_input_is_one_sentence_and_exit_2(tmp_path, recording, case, message
     elif case == "no-filament":
         source = tmp_path / "blank.tif"
         tifffile.imwrite(source, np.full((20, 64, 64), 200, np.uint8), photometric="minisblack")
+    elif case.startswith("backlight-"):
+        # a backlight-only recording: a vignetted lamp, or dust specks drifting across it (a
+        # dark shadow in view, but no liquid thread between end bodies in any frame)
+        rng = np.random.default_rng(3)
+        y, x = np.mgrid[:120, :100]
+        lamp = 210.0 * (1.0 - 0.3 * ((x - 50) ** 2 + (y - 60) ** 2) / 5000.0)
+        frames = np.repeat(lamp[None], 30, axis=0) + rng.normal(0.0, 2.0, (30, 120, 100))
+        if case == "backlight-dust":
+            for i in range(30):
+                frames[i, (y - 40 - i) ** 2 + (x - 30) ** 2 < 25] = 40.0
+                frames[i, (y - 90) ** 2 + (x - 70 + i) ** 2 < 9] = 60.0
+        source = tmp_path / "lamp.tif"
+        tifffile.imwrite(source, frames.clip(0, 255).astype(np.uint8), photometric="minisblack")
     elif case == "no-fps":
         source = tmp_path / "stack.tif"   # a TIFF carries no frame rate
         tifffile.imwrite(source, np.full((3, 64, 64), 200, np.uint8), photometric="minisblack")

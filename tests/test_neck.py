@@ -69,7 +69,18 @@ def test_free_thinning_start_from_a_gap_series():
     gap = np.concatenate([np.linspace(50, 150, 21), np.full(80, 150.0)])
     gap += rng.integers(-1, 2, gap.size) * (np.arange(gap.size) > 20)
     assert free_thinning_start(gap) == pytest.approx(20, abs=2)
-    assert free_thinning_start(np.full(50, 150.0) + rng.integers(-1, 2, 50)) == 0.0
+    assert free_thinning_start(np.full(50, 150.0) + rng.integers(-1, 2, 50)) is None
+
+
+def test_draining_feet_on_still_plates_are_no_plate_motion():
+    # still plates: the liquid feet drain and the gap between the end bodies opens ever faster
+    # up to breakup; that never holds afterwards, so it is no motion of the plates
+    t = np.linspace(0.0, 1.0, 120)
+    draining = 150.0 + 30.0 * t ** 6
+    assert free_thinning_start(draining) is None
+    # a step stretch at the start, then the same drainage: the start follows the stretch
+    stretched = np.concatenate([np.linspace(60, 150, 16), draining])
+    assert free_thinning_start(stretched) == pytest.approx(15, abs=2)
 
 
 def test_blank_frames_before_the_filament_are_empty_rows():

@@ -252,6 +252,19 @@ def test_frame_strip_draws_edges_in_the_right_orientation(orientation):
     np.testing.assert_array_equal(left.get_ydata(), y)
 
 
+def test_frame_strip_draws_no_edges_without_a_connected_thread():
+    # a frame after breakup (or before the bridge formed) has no thread to outline
+    rng = np.random.default_rng(6)
+    snaps = _snapshots(rng, n=2)
+    index, image, profile = snaps[1]
+    snaps[1] = (index, image, SimpleNamespace(**vars(profile), connected=False))
+    fig = plots.plot_frame_strip(snaps, fps_hz=FPS)
+    first, second = fig.get_axes()
+    assert len(first.lines) == 2
+    assert not second.lines
+    assert [t.get_text() for t in second.texts] == ["no thread"]
+
+
 def test_frame_strip_rejects_an_unknown_orientation():
     with pytest.raises(ValueError, match="orientation"):
         plots.plot_frame_strip([], orientation="diagonal")

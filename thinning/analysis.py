@@ -137,6 +137,9 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
                                        n_frames=recording.n_frames)
         except NoFilament as exc:
             raise UnusableInput(f"{source}: {exc}") from None
+        if not series.table["thread_connected"].any():
+            raise UnusableInput(f"{source}: no filament in any frame: no frame shows a liquid thread "
+                                "between the end bodies (is this a backlight-only recording?).")
         if recording.frames_read == 0:
             raise UnusableInput(f"{source}: no frame could be decoded.")
         if recording.broken_off:
@@ -163,7 +166,8 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
         free_thinning_start_s=free_start_s, breakup_time_s=breakup_s,
         density=options.density_kg_m3, solvent_viscosity=options.solvent_viscosity_Pa_s,
         zero_shear_viscosity=options.zero_shear_viscosity_Pa_s, geometry=options.geometry,
-        seed=seed_from_sha256(sha256), diameter_noise_m=series.diameter_noise_px * pixel_size_m)
+        seed=seed_from_sha256(sha256), diameter_noise_m=series.diameter_noise_px * pixel_size_m,
+        breakup_parted=series.breakup_parted)
     findings.extend(rheo.findings)
     for column in rheo.curves.columns:
         table[column] = rheo.curves[column].to_numpy()

@@ -59,6 +59,9 @@ class Characterisation:
     fits: dict = field(default_factory=dict)
     curves: pd.DataFrame = field(default_factory=pd.DataFrame)
     findings: list = field(default_factory=list)
+    breakup_seen: str | None = None
+    filament_lifetime_basis: str | None = None
+    filament_lifetime_min_s: float | None = None
 
     @property
     def ohnesorge_number(self):
@@ -105,6 +108,9 @@ class Characterisation:
             "extensional_viscosity_terminal_Pa_s": num(self.extensional_viscosity_terminal_Pa_s),
             "breakup_time_s": num(self.breakup_time_s),
             "filament_lifetime_s": num(self.filament_lifetime_s),
+            "breakup_seen": self.breakup_seen,
+            "filament_lifetime_basis": self.filament_lifetime_basis,
+            "filament_lifetime_min_s": num(self.filament_lifetime_min_s),
             "trouton_ratio_max": num(self.trouton_ratio_max),
             "finite_extensibility_L2": num(self.finite_extensibility_L2),
             "resolution_floor_m": num(self.resolution_floor_m),
@@ -139,6 +145,9 @@ class Characterisation:
             extensional_viscosity_terminal_Pa_s=data.get("extensional_viscosity_terminal_Pa_s"),
             breakup_time_s=data.get("breakup_time_s"),
             filament_lifetime_s=data.get("filament_lifetime_s"),
+            breakup_seen=data.get("breakup_seen"),
+            filament_lifetime_basis=data.get("filament_lifetime_basis"),
+            filament_lifetime_min_s=data.get("filament_lifetime_min_s"),
             trouton_ratio_max=data.get("trouton_ratio_max"),
             finite_extensibility_L2=data.get("finite_extensibility_L2"),
             groups={key: data.get(key) for key in GROUP_KEYS},
@@ -204,7 +213,7 @@ def _longest(regs, kind):
 def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
                  free_thinning_start_s, breakup_time_s=None, density=None, solvent_viscosity=None,
                  zero_shear_viscosity=None, geometry="plates", seed: int, diameter_noise_m=None,
-                 resolution_floor_m=None) -> Characterisation:
+                 resolution_floor_m=None, breakup_parted=None) -> Characterisation:
     """Regimes, relaxation time, viscosities and quality findings of one diameter series.
 
     ``time_s`` (s, recording clock) and ``diameter_m`` (m, NaN where no thread)
@@ -212,7 +221,12 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     N/m, ρ in kg/m³, viscosities in Pa·s (all optional but σ). The resolution
     floor defaults to 3 pixel sizes; ``diameter_noise_m`` is estimated from the
     data when None. ``breakup_time_s`` None: estimated from the record (None
-    when the filament never broke). ``seed`` seeds the bootstrap.
+    when the filament never broke). ``breakup_parted`` False: the thread
+    faded below the optical resolution before it was seen to part, so the
+    breakup time is a lower bound and the lifetime is extrapolated by a
+    fitted law that reaches the last measured frames, or else left empty
+    (:func:`filament_lifetime`); None or True: the breakup was seen.
+    ``seed`` seeds the bootstrap.
     ``geometry`` ("plates" or "dripping") is checked and recorded: the
     elasto-capillary prefactor is the same for both (D0 = 2R0, docs/physics.md
     §3.3), so the numbers are computed alike.
@@ -295,7 +309,16 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
                                   relaxation_time=lam) if d0 is not None else \
         dimensionless_groups(initial_diameter=np.nan, surface_tension=surface_tension)
 
-    lifetime = (t_b - t0) if t_b is not None else None
+    lifetime, basis, lifetime_min, law = filament_lifetime(
+        t, d_fit, t0, t_b, breakup_parted, fits, fps_hz=fps_hz, surface_tension=surface_tension)
+    if basis is not None and basis != "observed":
+        done = (f"the filament lifetime, {lifetime * 1e3:.4g} ms, is extrapolated with the {law} law "
+                "fitted up to the last measured frames" if basis == "extrapolated" else
+                f"the filament lifetime is at least {lifetime_min * 1e3:.4g} ms and is left empty: "
+                "no fitted law reaches the last measured frames to extrapolate it")
+        findings.append(Finding(Code.BREAKUP_FADED, Severity.NOTE,
+            f"The thread faded below the optical resolution before it was seen to part: the "
+            f"breakup came at {t_b * 1e3:.4g} ms or later, and {done}."))
     findings += _findings(ra, regs, headline, head_fit, head_regime, t_b=t_b, fps_hz=fps_hz,
                           floor=floor, groups=groups, lam=lam)
     return Characterisation(
@@ -308,7 +331,60 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
         extensional_viscosity_terminal_Pa_s=eta_terminal, breakup_time_s=t_b,
         filament_lifetime_s=lifetime, trouton_ratio_max=trouton, finite_extensibility_L2=l2,
         groups=groups, resolution_floor_m=floor, diameter_noise_m=noise, fits=fits, curves=curves,
-        findings=findings)
+        findings=findings, breakup_seen=None if t_b is None else
+        ("faded" if breakup_parted is False else "parted"),
+        filament_lifetime_basis=basis, filament_lifetime_min_s=lifetime_min)
+
+
+#: The time (s) a law's neck of diameter D (m) still has before breakup, from its fit's values:
+#: D = v (t_b − t) visco-capillary (v the thinning speed), D = A (t_c − t)^(2/3)
+#: inertio-capillary, D = (σ/η_E,∞)(t_b − t) finite-extensibility (docs/physics.md).
+_REMAINING = {
+    "visco-capillary": lambda d, v, sigma: d / v["thinning_speed_m_s"],
+    "inertio-capillary": lambda d, v, sigma: (d / v["prefactor_m_s23"]) ** 1.5,
+    "finite-extensibility": lambda d, v, sigma: d * v["terminal_extensional_viscosity_Pa_s"] / sigma,
+}
+#: A law extrapolates a faded thread's breakup only when its window ends this close to the
+#: last measured frame (fraction of the lifetime; at least EXTRAPOLATION_FRAMES frames).
+EXTRAPOLATION_REACH = 0.25
+EXTRAPOLATION_FRAMES = 5
+#: Last measured frames whose extrapolations are pooled (median).
+EXTRAPOLATION_ANCHORS = 3
+
+
+def filament_lifetime(t, d, t0, t_b, parted, fits, *, fps_hz, surface_tension):
+    """``(lifetime s, basis, lower bound s, law)`` of a record with breakup ``t_b`` (s).
+
+    ``basis`` is ``"observed"`` (the thread was seen to part, or ``parted``
+    is None); ``"extrapolated"`` (it faded: among the visco-capillary,
+    inertio-capillary and finite-extensibility fits whose window reaches the
+    last measured frames, the one that ends last carries each of the last
+    measured diameters to zero at its own rate, and the median of those
+    breakups counts, never before ``t_b``); or ``"lower-bound"`` (it faded and
+    no law reaches: the lifetime is None and ``t_b − t0`` its lower bound).
+    All None without a breakup.
+    """
+    if t_b is None:
+        return None, None, None, None
+    if parted is not False:
+        return t_b - t0, "observed", None, None
+    measured = np.flatnonzero(np.isfinite(d) & (d > 0) & (t >= t0) & (t <= t_b))
+    if measured.size == 0:
+        return None, "lower-bound", t_b - t0, None
+    last = float(t[measured[-1]])
+    reach = max(EXTRAPOLATION_FRAMES / fps_hz, EXTRAPOLATION_REACH * (t_b - t0))
+    laws = [(fits[name].window_s[1], name) for name in _REMAINING
+            if fits.get(name) and fits[name].window_s[1] >= last - reach]
+    if not laws:
+        return None, "lower-bound", t_b - t0, None
+    name = max(laws)[1]
+    anchors = measured[-EXTRAPOLATION_ANCHORS:]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ends = t[anchors] + _REMAINING[name](d[anchors], fits[name].values, surface_tension)
+    end = float(np.median(ends))
+    if not np.isfinite(end):
+        return None, "lower-bound", t_b - t0, None
+    return max(end, t_b) - t0, "extrapolated", t_b - t0, name
 
 
 #: A Newtonian fit whose predicted breakup comes earlier than observed by more than this

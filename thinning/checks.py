@@ -69,6 +69,10 @@ class Code(str, enum.Enum):
         "few-frames-per-relaxation-time", "no", "fewer frames per λ than advisable")
     NO_ELASTIC_REGIME = ("no-elastic-regime", "no", "Newtonian thinning: no relaxation time")
     NO_BREAKUP = ("no-breakup", "no", "the filament did not break within the record")
+    BREAKUP_FADED = (
+        "breakup-faded", "no",
+        "the thread faded below the optical resolution before it was seen to part: the breakup "
+        "time is a lower bound; the lifetime is extrapolated by a fitted law or left empty")
     OUTLIER_FRAMES = (
         "outlier-frames", "no", "frames off the thinning trend (beads, dust) left out of the fits")
     CONTAINER_FRAME_RATE = (

@@ -183,7 +183,8 @@ def summary_text(result, out_dir) -> str:
         lines.append(f"  shear viscosity      {_fmt(c.shear_viscosity_Pa_s, 'mPa·s', 1e3, 4)}")
     if c.extensional_viscosity_max_Pa_s is not None:
         lines.append(f"  ext. viscosity max   {_fmt(c.extensional_viscosity_max_Pa_s, 'Pa·s')}")
-    lines.append(f"  breakup time         {_fmt(c.breakup_time_s, 'ms', 1e3, 4)}")
+    faded = " (lower bound: the thread faded first)" if c.breakup_seen == "faded" else ""
+    lines.append(f"  breakup time         {_fmt(c.breakup_time_s, 'ms', 1e3, 4)}{faded}")
     lines.append(f"  quality              {result.quality}")
     for code, warning in zip(result.warning_codes, result.warnings):
         lines.append(f"  warning [{code}]: {warning}")

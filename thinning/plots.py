@@ -264,7 +264,8 @@ def plot_frame_strip(snapshots, *, orientation="vertical", fps_hz=None, fig=None
 
     ``snapshots`` is a list of ``(frame_index, image, profile)``; ``image`` a
     2-D array (any dtype), ``profile`` anything with ``axial_px``, ``left_px``
-    and ``right_px`` arrays (or None). ``orientation`` says how the filament
+    and ``right_px`` arrays (or None; edges are drawn only where its
+    ``connected`` is true or absent). ``orientation`` says how the filament
     runs: ``"vertical"`` (axial = image row, edges = columns) or
     ``"horizontal"`` (axial = column, edges = rows). With ``fps_hz`` each
     panel gives its time. Returns the Figure.
@@ -284,7 +285,11 @@ def plot_frame_strip(snapshots, *, orientation="vertical", fps_hz=None, fig=None
             finite = img[np.isfinite(img)]
             lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
             ax.imshow(img, cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1.0, aspect="equal")
-            if profile is not None:
+            if profile is not None and not getattr(profile, "connected", True):
+                # no connected thread (before it formed, a gap, or after breakup): no edges
+                ax.text(0.5, 0.02, "no thread", transform=ax.transAxes, ha="center", va="bottom",
+                        fontsize=7, color="#ff8c1a")
+            elif profile is not None:
                 axial = np.asarray(profile.axial_px, dtype=float)
                 # rows the measurement trusted (where the profile says so), inside the image
                 keep = np.asarray(getattr(profile, "valid", np.ones(axial.shape, bool)), dtype=bool)

@@ -49,6 +49,12 @@ log = logging.getLogger(__name__)
 GAP_THIN_PX = 2.0
 
 
+#: Smallest diameter of the last thread (px, and in blur widths σ) for the thread to be seen
+#: parting: a thinner one may have faded below the optical resolution and parted later.
+PARTED_MIN_PX = 2.0
+PARTED_MIN_BLUR = 1.5
+
+
 #: Number of frames kept for the picture strip.
 SNAPSHOTS = 6
 
@@ -86,8 +92,11 @@ class NeckSeries:
     ``plate_gap_px`` (axial gap between the end bodies, the motion signal),
     ``beads`` (beads on the thread in this frame), ``fit_rows`` (rows used by
     the neck fit). ``free_thinning_start_frame`` and ``breakup_frame`` are in
-    frames (``breakup_frame`` None when the thread did not break);
-    ``diameter_noise_px`` is the per-frame noise of ``diameter_px``;
+    frames (``breakup_frame`` None when the thread did not break; the frame
+    after the last one with a thread, less half a frame); ``breakup_parted``
+    tells a thread seen parting (its last diameter resolved) from one that
+    faded below the optical resolution, whose breakup is only a lower bound
+    (None without breakup); ``diameter_noise_px`` is the per-frame noise of ``diameter_px``;
     ``snapshots`` a few ``(frame index, frame, profile)`` spread over the record.
     """
 
@@ -96,6 +105,7 @@ class NeckSeries:
     free_thinning_start_frame: float
     breakup_frame: float | None
     diameter_noise_px: float
+    breakup_parted: bool | None = None
     findings: list[Finding] = field(default_factory=list)
     snapshots: list[tuple[int, np.ndarray, Profile]] = field(default_factory=list)
 
@@ -288,13 +298,15 @@ def summarise(table: pd.DataFrame, layout: Layout, *, snapshots=()) -> NeckSerie
     seen = table["filament_seen"].to_numpy(bool)
     frames = table["frame"].to_numpy()
     findings = []
-    breakup = None
+    breakup = parted = None
     if connected.any():
         first = int(np.flatnonzero(connected)[0])
         last = int(np.flatnonzero(connected)[-1])
         if last < len(table) - 1:
             if seen[last + 1]:
                 breakup = float(frames[last]) + 0.5
+                final = float(table["diameter_px"].iloc[last])
+                parted = final >= max(PARTED_MIN_PX, PARTED_MIN_BLUR * layout.blur_sigma_px)
             else:
                 findings.append(Finding(Code.FILAMENT_LOST, Severity.DOUBTFUL,
                     f"The filament disappeared from view after frame {int(frames[last])} "
@@ -322,17 +334,19 @@ def summarise(table: pd.DataFrame, layout: Layout, *, snapshots=()) -> NeckSerie
             "No frame shows a connected thread between the ends; nothing could be measured."))
     table.loc[~table["thread_connected"], "diameter_px"] = np.nan
     end = len(table) if breakup is None else int(breakup + 0.5)
-    if layout.geometry == "dripping":
-        # the bridge forms when the drop touches the substrate; the sessile drop then keeps
-        # spreading, so the gap between the end bodies is no motion signal here
-        start = float(np.flatnonzero(connected)[0]) if connected.any() else 0.0
-    else:
+    # the bridge forms when the drop touches the substrate (dripping) or stands between still
+    # plates: free thinning then runs from the first frame with a connected thread; the
+    # sessile drop keeps spreading, so the gap between the end bodies is no motion signal there
+    start = None
+    if layout.geometry != "dripping":
         start = free_thinning_start(table["plate_gap_px"].to_numpy(float)[:end])
+    if start is None:
+        start = float(np.flatnonzero(connected)[0]) if connected.any() else 0.0
     noise = diameter_noise(table["diameter_px"].to_numpy(float)[int(start):end])
     findings.extend(_quality_findings(table.iloc[:end], layout, start))
     return NeckSeries(table=table, layout=layout, free_thinning_start_frame=float(start),
-                      breakup_frame=breakup, diameter_noise_px=noise, findings=findings,
-                      snapshots=list(snapshots))
+                      breakup_frame=breakup, diameter_noise_px=noise, breakup_parted=parted,
+                      findings=findings, snapshots=list(snapshots))
 
 
 def _longest_run(mask):
@@ -349,32 +363,47 @@ def _running_median(values, half):
     return np.nanmedian(np.lib.stride_tricks.sliding_window_view(padded, 2 * half + 1), axis=1)
 
 
-def free_thinning_start(gap_px, *, span=4, min_change_px=2.0, settle_px=1.0):
-    """First frame after the end bodies stopped moving (0 when they never moved in the record).
+def free_thinning_start(gap_px, *, span=4, min_change_px=2.0, settle_px=1.0, hold_fraction=0.1):
+    """First frame after the plates stopped moving, or None when they did not move in the record.
 
     ``gap_px``: the axial gap between the end bodies per frame (NaN where
-    unknown). A frame is within the motion when the median-filtered gap
+    unknown). A frame is within a motion when the median-filtered gap
     changes by more than ``max(min_change_px, 10 % of the largest change)``
-    between ``span`` frames before and after it; the motion has ended at the
-    first frame after that whose gap is within ``settle_px`` of the gap held
-    afterwards.
+    between ``span`` frames before and after it. A motion counts only when
+    the gap then holds, with no motion, for at least ``2 span`` frames and
+    ``hold_fraction`` of the frames measured: the liquid feet draining on
+    still plates change the gap up to breakup and never hold, so a record
+    whose only motion runs into its last frames is one of still plates
+    (docs/physics.md, "Start of free thinning"). The motion has ended at
+    the first frame after it whose gap is within ``settle_px`` of the gap
+    held afterwards.
     """
     idx = np.flatnonzero(np.isfinite(gap_px))
     if idx.size < 2 * span + 2:
-        return 0.0
+        return None
     g = _running_median(gap_px[idx], 2)
     change = np.abs(g[2 * span:] - g[:-2 * span])
     limit = max(min_change_px, 0.1 * float(change.max()))
-    moving = np.flatnonzero(change > limit)
-    if moving.size == 0:
-        return 0.0
-    centre = int(moving[-1]) + span
-    after = g[min(centre + span, g.size - 1): centre + 3 * span + 1]
-    held = float(np.median(after)) if after.size else float(g[-1])
-    for j in range(max(0, centre - span), g.size):
-        if abs(g[j] - held) <= settle_px:
-            return float(idx[j])
-    return float(idx[-1])
+    moving = change > limit
+    hold = max(2 * span, int(math.ceil(hold_fraction * g.size)))
+    for first, last in reversed(_runs(moving)):
+        still = (np.flatnonzero(moving[last + 1:])[:1] + last + 1).tolist() or [moving.size]
+        if still[0] - last - 1 < hold:
+            continue  # no hold after it: the feet draining, not the plates
+        centre = last + span
+        after = g[min(centre + span, g.size - 1): centre + 3 * span + 1]
+        held = float(np.median(after)) if after.size else float(g[-1])
+        for j in range(max(0, centre - span), g.size):
+            if abs(g[j] - held) <= settle_px:
+                return float(idx[j])
+        return float(idx[-1])
+    return None
+
+
+def _runs(mask):
+    """(first, last) index of every run of True in a boolean array."""
+    edges = np.diff(np.concatenate(([0], mask.astype(np.int8), [0])))
+    return list(zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1) - 1))
 
 
 def diameter_noise(diameter_px):

@@ -126,9 +126,15 @@ def _headline(result):
          "no finite-extensibility stretch located"),
         ("shear viscosity from visco-capillary thinning", "shear_viscosity_Pa_s", "Pa·s",
          "no visco-capillary fit"),
-        ("breakup time", "breakup_time_s", "s", "the filament did not break within the record"),
-        ("filament lifetime", "filament_lifetime_s", "s",
-         "no breakup within the record" if not broke else "start of free thinning unknown"),
+        ("breakup time" + (" (lower bound: the thread faded first)"
+                           if c.breakup_seen == "faded" else ""),
+         "breakup_time_s", "s", "the filament did not break within the record"),
+        ("filament lifetime" + (" (extrapolated)" if c.filament_lifetime_basis == "extrapolated"
+                                else ""), "filament_lifetime_s", "s",
+         "no breakup within the record" if not broke else
+         (f"at least {format_quantity(c.filament_lifetime_min_s, 's')}: the thread faded below the "
+          "optical resolution with no law to extrapolate" if c.filament_lifetime_basis == "lower-bound"
+          else "start of free thinning unknown")),
         ("initial diameter D0", "initial_diameter_m", "m", "not measured"),
         ("start of free thinning", "free_thinning_start_s", "s", "not located"),
     ]
