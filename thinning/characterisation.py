@@ -271,8 +271,13 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
             t, d_fit, window_s=(fe.t_start_s, fe.t_end_s), surface_tension=surface_tension,
             polymer_viscosity=polymer_viscosity, seed=seed + 3, **common)
 
+    # the elastic stretch heads when there is one; else the Newtonian law that covers the larger
+    # fall of ln D (a few frames of one law near the floor do not outrank a record of the other)
+    newtonian = sorted(((kind, reg) for kind, reg in ((rg.VISCO_CAPILLARY, vc), (rg.INERTIO_CAPILLARY, ic))
+                        if fits.get(kind)),
+                       key=lambda kr: -np.log(kr[1].diameter_start_m / kr[1].diameter_end_m))
     headline, head_fit, head_regime = UNDETERMINED, None, None
-    for kind, reg in ((rg.ELASTO_CAPILLARY, ec), (rg.VISCO_CAPILLARY, vc), (rg.INERTIO_CAPILLARY, ic)):
+    for kind, reg in [(rg.ELASTO_CAPILLARY, ec)] + newtonian:
         f = fits.get(kind)
         if f:
             headline, head_fit, head_regime = kind, f, reg

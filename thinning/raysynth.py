@@ -364,29 +364,16 @@ def _q_grid(numerical_aperture: float, n_inner: int = 640, n_outer: int = 128,
     return np.concatenate([inner, rim, outer])
 
 
-@lru_cache(maxsize=8)
-def transmission_table(refractive_index: float, numerical_aperture: float,
-                       illumination_half_angle_deg: float, *, absorbance_max: float = 0.0,
-                       pupil_samples: int = 256, n_slopes: int = 13,
-                       n_absorbance: int = 17, n_uniform: int = 4096) -> TransmissionTable:
-    """Tabulate the liquid's transmission against b/R, |dR/dz| and κR (see the module notes).
-
-    ``absorbance_max``: largest κR needed (0: clear liquid, one κR row). For a
-    backlight narrower than about the pupil, each entry samples the pupil region
-    that sees the backlight: u0 + J⁻¹·(disk of 1.3 sin β), u0 and J from Newton's
-    method on the exit direction; otherwise the whole pupil. ``pupil_samples``
-    rays per entry either way.
-    """
-    n = float(refractive_index)
-    na = float(numerical_aperture)
-    sin_beta = math.sin(math.radians(illumination_half_angle_deg))
-    q = _q_grid(na)
-    slope = SLOPE_MAX * np.linspace(0.0, 1.0, n_slopes) ** 2
-    absorbance = absorbance_max * np.linspace(0.0, 1.0, n_absorbance) ** 2 if absorbance_max > 0 \
-        else np.zeros(1)
+def _trace_rows(n: float, na: float, sin_beta: float, q: np.ndarray, slope: np.ndarray,
+                absorbance: np.ndarray, pupil_samples: int) -> np.ndarray:
+    """T[k, j, i] at κR = ``absorbance[k]``, |dR/dz| = ``slope[j]``, b/R = ``q[i]`` (see
+    :func:`transmission_table`), relative to the bare backlight."""
     qq, ss = np.meshgrid(q, slope)                       # (n_slopes, n_q)
-    entries_q = np.concatenate([qq.ravel(), [1e3]])      # the last: the bare backlight
-    entries_s = np.concatenate([ss.ravel(), [0.0]])
+    # beyond q_rim + 1.2·|dR/dz|·tan α (+ a margin) no pupil ray meets the cone: T = 1 exactly
+    alpha = math.asin(na)
+    missed = (qq > 1.0 / math.cos(alpha) + 1.2 * ss * math.tan(alpha) + 0.02).ravel()
+    entries_q = np.concatenate([qq.ravel()[~missed], [1e3]])      # the last: the bare backlight
+    entries_s = np.concatenate([ss.ravel()[~missed], [0.0]])
     pattern = _sunflower(pupil_samples)
     reach = 1.3 * sin_beta * (1.0 + 0.5 * BACKLIGHT_RIM)
     pupil_area = math.pi * na * na
@@ -421,8 +408,77 @@ def transmission_table(refractive_index: float, numerical_aperture: float,
         light = np.where(inside, _backlight(ex, ey, ez, sin_beta) * tr, 0.0)
         for k, kr in enumerate(absorbance):
             sums[k, lo + todo] = weight * np.sum(light * np.exp(-kr * path), axis=1)
-    trans = (sums[:, :-1] / sums[:, -1:]).reshape(absorbance.size, n_slopes, q.size)
-    trans = np.clip(trans, 0.0, None)
+    trans = np.ones((absorbance.size, missed.size))
+    trans[:, ~missed] = np.clip(sums[:, :-1] / sums[:, -1:], 0.0, None)
+    return trans.reshape(absorbance.size, slope.size, q.size)
+
+
+def _running_deficit(trans: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """∫_0^q (1 − T) dq' on the grid ``q`` (trapezoids; last axis)."""
+    gaps = 1.0 - trans
+    return np.concatenate([np.zeros(trans.shape[:-1] + (1,)),
+                           np.cumsum(0.5 * (gaps[..., 1:] + gaps[..., :-1]) * np.diff(q), axis=-1)],
+                          axis=-1)
+
+
+SLOPE_START_ROWS = 9
+SLOPE_TOLERANCE = 1e-3
+DEFICIT_FLOOR = 0.05
+
+
+def _slope_rows(n: float, na: float, sin_beta: float, q: np.ndarray, absorbance: np.ndarray,
+                pupil_samples: int, max_rows: int, tolerance: float = SLOPE_TOLERANCE):
+    """Adaptive |dR/dz| rows and their T."""
+    slope = SLOPE_MAX * np.linspace(0.0, 1.0, SLOPE_START_ROWS) ** 2
+    trans = _trace_rows(n, na, sin_beta, q, slope, absorbance, pupil_samples)
+    cum = _running_deficit(trans, q)
+    error = np.full(slope.size - 1, np.inf)
+    while slope.size < max_rows:
+        todo = np.flatnonzero(error > tolerance)
+        if todo.size == 0:
+            break
+        todo = np.sort(todo[np.argsort(-error[todo], kind="stable")][:max_rows - slope.size])
+        mid = 0.5 * (slope[todo] + slope[todo + 1])
+        t_mid = _trace_rows(n, na, sin_beta, q, mid, absorbance, pupil_samples)
+        c_mid = _running_deficit(t_mid, q)
+        linear = 0.5 * (cum[:, todo, -1] + cum[:, todo + 1, -1])
+        scale = np.maximum(c_mid[..., -1], DEFICIT_FLOOR)
+        e = np.max(np.abs(c_mid[..., -1] - linear) / scale, axis=0)
+        error[todo] = e
+        error = np.insert(error, todo + 1, e)
+        slope = np.insert(slope, todo + 1, mid)
+        trans = np.insert(trans, todo + 1, t_mid, axis=1)
+        cum = np.insert(cum, todo + 1, c_mid, axis=1)
+    return slope, trans
+
+
+def _slope_index(table: TransmissionTable, slope) -> np.ndarray:
+    """Fractional row of ``table`` for |dR/dz| = ``slope``, the renderer's interpolation."""
+    n_slope = table.slope.size
+    j = np.interp(np.clip(slope, 0.0, SLOPE_MAX), table.slope, np.arange(n_slope))
+    return np.minimum(j, n_slope - 1 - 1e-3)
+
+
+@lru_cache(maxsize=8)
+def transmission_table(refractive_index: float, numerical_aperture: float,
+                       illumination_half_angle_deg: float, *, absorbance_max: float = 0.0,
+                       pupil_samples: int = 256, n_slopes: int = 200,
+                       n_absorbance: int = 17, n_uniform: int = 4096) -> TransmissionTable:
+    """Tabulate the liquid's transmission against b/R, |dR/dz| and κR (see the module notes).
+
+    ``absorbance_max``: largest κR needed (0: clear liquid, one κR row). For a
+    backlight narrower than about the pupil, each entry samples the pupil region
+    that sees the backlight: u0 + J⁻¹·(disk of 1.3 sin β), u0 and J from Newton's
+    method on the exit direction; otherwise the whole pupil. ``pupil_samples``
+    rays per entry either way.
+    """
+    n = float(refractive_index)
+    na = float(numerical_aperture)
+    sin_beta = math.sin(math.radians(illumination_half_angle_deg))
+    q = _q_grid(na)
+    absorbance = absorbance_max * np.linspace(0.0, 1.0, n_absorbance) ** 2 if absorbance_max > 0 \
+        else np.zeros(1)
+    slope, trans = _slope_rows(n, na, sin_beta, q, absorbance, pupil_samples, n_slopes)
     # running integral of the deficit, resampled on a uniform grid for the renderer; its step
     # divides 1, so that the rim (where T jumps and the integral has a kink) is a node
     q_uniform = np.arange(n_uniform) / math.floor((n_uniform - 1) / q[-1])
@@ -1024,8 +1080,7 @@ class RayRenderer:
         q_scale = (table.q_uniform.size - 1) / table.q_uniform[-1]
         map_x = np.abs(offset).astype(np.float32)[None, :] * (np.float32(q_scale) / rr)
         n_slope = table.slope.size
-        j = (n_slope - 1) * np.sqrt(np.clip(slope, 0.0, SLOPE_MAX) / SLOPE_MAX)
-        j = np.minimum(j, n_slope - 1 - 1e-3)
+        j = _slope_index(table, slope)
         if table.absorbance.size == 1:
             slices = [(np.zeros(rows.size, int), None)]
         else:
