@@ -164,13 +164,55 @@ def _end_body(has, first, last, n_lat, *, from_end):
     f0, l0 = first[idx[0]], last[idx[0]]
     if l0 - f0 + 1 < 8:
         return 0, None, False
-    slack = 2.0 + 0.08 * np.arange(idx.size)  # a tilted body's sides drift slowly
-    inside = has[idx] & (np.abs(first[idx] - f0) <= slack) & (np.abs(last[idx] - l0) <= slack)
-    count = int(np.argmin(inside)) if not inside.all() else int(inside.size)
+    count = _straight_sides(has[idx], first[idx].astype(float), last[idx].astype(float))
     if count < 5 or count > has.size - 5:
         return 0, None, False
     full = f0 <= 1 and l0 >= n_lat - 2
     return count, (math.inf if full else float(l0 - f0 + 1)), (f0 <= 1) != (l0 >= n_lat - 2)
+
+
+#: How far (px) a body's side may stray from the straight line through its rows so far, and
+#: how steep (lateral px per axial px, about 6°) that line may be: a plate or nozzle is a
+#: straight-sided solid set close to the axis; a liquid's curved sides are neither.
+SIDE_SLACK_PX = 2.0
+MAX_SIDE_SLOPE = 0.1
+
+
+def _straight_sides(has, first, last):
+    """Rows from the start whose two sides stay on straight lines (within :data:`SIDE_SLACK_PX`).
+
+    Each row is checked against the least-squares lines through the rows before it, so a tilted
+    body's sides may drift steadily while a liquid foot's shoulder, which bends away, ends the run;
+    sides steeper than :data:`MAX_SIDE_SLOPE` over the first five rows are no body (0).
+    """
+    n = 0
+    s0 = s1 = 0.0
+    sf = sff = sl = sll = 0.0  # running sums of y and y·k for both sides
+    for k in range(has.size):
+        if not has[k]:
+            break
+        if n >= 2:
+            denom = n * s1 - s0 * s0
+            kf = float(k)
+            pf = ((s1 * sf - s0 * sff) + (n * sff - s0 * sf) * kf) / denom
+            pl = ((s1 * sl - s0 * sll) + (n * sll - s0 * sl) * kf) / denom
+            if abs(first[k] - pf) > SIDE_SLACK_PX or abs(last[k] - pl) > SIDE_SLACK_PX:
+                break
+            if n >= 5:
+                bf, bl = (n * sff - s0 * sf) / denom, (n * sll - s0 * sl) / denom
+                if max(abs(bf), abs(bl)) > MAX_SIDE_SLOPE:
+                    return 0 if n == 5 else n
+        elif n == 1 and (abs(first[k] - first[0]) > SIDE_SLACK_PX
+                         or abs(last[k] - last[0]) > SIDE_SLACK_PX):
+            break
+        n += 1
+        s0 += k
+        s1 += k * k
+        sf += first[k]
+        sff += first[k] * k
+        sl += last[k]
+        sll += last[k] * k
+    return n
 
 
 def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
