@@ -31,6 +31,7 @@ the axis to those widths across the axis, as in :mod:`thinning.measure.neck`.
 from __future__ import annotations
 
 import math
+import statistics
 import warnings
 from dataclasses import dataclass, field
 
@@ -70,7 +71,7 @@ class LiquidShadow:
 
     @property
     def mean_deficit(self) -> float | None:
-        return float(np.median(self.recent)) if self.recent else None
+        return float(statistics.median(self.recent)) if self.recent else None
 
     def value(self) -> float:
         return self.fallback if not self.recent else self.mean_deficit
@@ -103,26 +104,43 @@ def remeasure_necks(bands, layout, rows, record, shadow: LiquidShadow, *, row_no
     in_band = (r_idx >= 0) & (r_idx < n)
     r_idx = np.clip(r_idx, 0, n - 1)
     in_band &= rows.has[todo[:, None], r_idx] | np.isfinite(rows.cut_width[todo[:, None], r_idx])
-    pixels = np.stack([np.asarray(bands[b])[r_idx[k]] for k, b in enumerate(todo)]).astype(np.float32)
-    light = layout.light.backlight[r_idx]
+    centre = rows.centre[todo[:, None], r_idx]
+    guess = rows.cut_width[todo[:, None], r_idx] / (2.0 * min(layout.liquid_depth, 1.0))
+    # only the columns a frame's neck rows can reach: their integration windows, the
+    # background beside them and the rim search (the band is as wide as the widest body)
+    width = np.asarray(bands[todo[0]]).shape[1]
+    reach = np.where(np.isfinite(guess), guess, 0.0) + 2 * layout.margin_px + 3
+    cen = np.where(np.isfinite(centre), centre, width / 2.0)
+    pad = BASELINE_PX + layout.margin_px + 6
+    first = np.clip(np.floor((cen - reach).min(axis=1)) - pad, 0, width - 1).astype(np.int64)
+    last = np.clip(np.ceil((cen + reach).max(axis=1)) + pad, 0, width - 1).astype(np.int64)
+    span = int(min(width, (last - first).max() + 1))
+    first = np.minimum(first, width - span)
+    cols = first[:, None] + np.arange(span)[None, :]
+    pixels = np.stack([np.asarray(bands[b])[r_idx[k][:, None], cols[k][None, :]]
+                       for k, b in enumerate(todo)]).astype(np.float32)
+    light = layout.light.backlight[r_idx[:, :, None], cols[:, None, :]]
     saturated = pixels >= layout.saturation
     gain = rows.gain[todo].astype(np.float32)[:, None, None]
     deficit = 1.0 - pixels / (light * gain)
     deficit[saturated] = 0.0
-    centre = rows.centre[todo[:, None], r_idx]
-    guess = rows.cut_width[todo[:, None], r_idx] / (2.0 * min(layout.liquid_depth, 1.0))
-    widths, resolved, totals = _row_widths(deficit, centre, guess, layout)
+    widths, resolved, totals = _row_widths(deficit, centre - first[:, None], guess, layout)
     # the calibration, frame by frame in order (on the rows near the neck), then the widths of
     # the unresolved rows
     near = np.abs(offsets)[None, :] <= np.clip(record["fit_rows"][todo] // 2 + 1, MIN_HALF_WINDOW,
                                                MAX_HALF_WINDOW)[:, None]
-    for k in range(todo.size):
-        use = in_band[k] & near[k] & resolved[k] & np.isfinite(widths[k]) & (widths[k] > 0)
-        if use.sum() >= MIN_CALIBRATION_ROWS:
-            shadow.update(float(np.median(totals[k][use] / widths[k][use])))
-        unresolved = in_band[k] & ~resolved[k]
-        widths[k][unresolved] = totals[k][unresolved] / shadow.value()
-        widths[k][~(widths[k] > 0)] = np.nan
+    use = in_band & near & resolved & np.isfinite(widths) & (widths > 0)
+    with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
+        warnings.simplefilter("ignore", RuntimeWarning)  # frames without such rows: NaN
+        ratios = np.nanmedian(np.where(use, totals / widths, np.nan), axis=1)
+    calibrated = np.empty(todo.size)
+    for k, ok in enumerate(use.sum(axis=1) >= MIN_CALIBRATION_ROWS):
+        if ok:
+            shadow.update(float(ratios[k]))
+        calibrated[k] = shadow.value()
+    unresolved = in_band & ~resolved
+    widths = np.where(unresolved, totals / calibrated[:, None], widths)
+    widths[~(widths > 0)] = np.nan
     slope = np.tan(np.radians(record["axis_angle_deg"][todo]))
     across = widths / np.sqrt(1.0 + slope * slope)[:, None]
     new = _neck_fit(across, in_band & np.isfinite(across), offsets, row_noise_px)
@@ -195,8 +213,8 @@ def _row_widths(deficit, centre, guess, layout):
     # background level beside the thread
     s0 = np.clip(lj - m, 0, w)
     e0 = np.clip(rj + m + 1, 0, w)
-    cum = np.concatenate([np.zeros((nf, nr, 1), np.float64), np.cumsum(deficit, axis=2, dtype=np.float64)],
-                         axis=2)
+    cum = np.zeros((nf, nr, w + 1), np.float64)
+    np.cumsum(deficit.astype(np.float64), axis=2, out=cum[:, :, 1:])  # (faster than dtype=)
 
     def span_sum(a, b):
         return (np.take_along_axis(cum, b[:, :, None], 2)[:, :, 0]
@@ -240,10 +258,9 @@ def _rim_edge(deficit, edge, other, margin, core, *, inward, depth):
     inner = (steps[None, None, :] >= 0) & (inward * (cols - middle[:, :, None]) <= 0)
     values = np.take_along_axis(deficit, np.clip(cols, 0, w - 1), axis=2).astype(np.float64)
     values = np.where(valid, values, np.nan)
-    with warnings.catch_warnings():  # rows at the side of the band: no pixels there
-        warnings.simplefilter("ignore", RuntimeWarning)
-        rim = np.nanmax(np.where(inner, values, np.nan), axis=2)
-        ground = np.nanmedian(values[:, :, :4], axis=2)
+    rim = np.max(values, axis=2, where=inner & ~np.isnan(values), initial=-np.inf)
+    rim[rim == -np.inf] = np.nan  # rows at the side of the band: no pixels there
+    ground = _median4(values[:, :, :4])
     ground = np.where(np.isfinite(ground), ground, 0.0)
     level = ground + 0.5 * depth
     run = np.sum(inner & (values >= ground[:, :, None] + RIM_PLATEAU * (rim - ground)[:, :, None]), axis=2)
@@ -259,6 +276,15 @@ def _rim_edge(deficit, edge, other, margin, core, *, inward, depth):
     ok = (found & np.isfinite(rim) & (rim - ground >= RIM_DEPTH * depth) & (run >= RIM_RUN_PX)
           & np.isfinite(position))
     return position, ok
+
+
+def _median4(values):
+    """``np.nanmedian(values, axis=2)`` of four values per entry, without its generic cost."""
+    v = np.sort(values, axis=2)  # NaN last
+    count = np.isfinite(v).sum(axis=2)
+    a, b, c = v[:, :, 0], v[:, :, 1], v[:, :, 2]
+    return np.select([count == 4, count == 3, count == 2, count == 1],
+                     [0.5 * (b + c), b, 0.5 * (a + b), a], np.nan)
 
 
 def _along_axis_mean(values, size):
