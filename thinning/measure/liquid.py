@@ -53,6 +53,9 @@ CALIBRATION_FRAMES = 5
 #: averaged over GROUND_ROWS rows along the axis.
 BASELINE_PX = 8
 GROUND_ROWS = 7
+#: Rows measured beyond the row pass's neck window on each side: room for the new fit's own
+#: window (its thinnest row may move) and for the background's running mean along the axis.
+WINDOW_GUARD_ROWS = 8
 #: Fewest resolved rows in a frame for its calibration to count.
 MIN_CALIBRATION_ROWS = 3
 
@@ -99,7 +102,10 @@ def remeasure_necks(bands, layout, rows, record, shadow: LiquidShadow, *, row_no
     n = rows.cut_width.shape[1]
     axial0 = float(layout.axial_range[0])
     i0 = np.clip(np.rint(record["neck_position_px"][todo] - axial0).astype(np.int64), 0, n - 1)
-    offsets = np.arange(-MAX_HALF_WINDOW, MAX_HALF_WINDOW + 1)
+    # the rows of the row pass's neck fit and a guard either side for the new fit's window
+    half = int(np.clip(record["fit_rows"][todo].max() // 2 + 1 + WINDOW_GUARD_ROWS,
+                       MIN_HALF_WINDOW + WINDOW_GUARD_ROWS, MAX_HALF_WINDOW))
+    offsets = np.arange(-half, half + 1)
     r_idx = i0[:, None] + offsets[None, :]
     in_band = (r_idx >= 0) & (r_idx < n)
     r_idx = np.clip(r_idx, 0, n - 1)
