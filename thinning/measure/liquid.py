@@ -123,7 +123,7 @@ def remeasure_necks(bands, layout, rows, record, shadow: LiquidShadow, *, row_no
     span = int(min(width, (last - first).max() + 1))
     first = np.minimum(first, width - span)
     cols = first[:, None] + np.arange(span)[None, :]
-    pixels = np.stack([np.asarray(bands[b])[r_idx[k][:, None], cols[k][None, :]]
+    pixels = np.stack([np.asarray(bands[b])[:, first[k]:first[k] + span][r_idx[k]]
                        for k, b in enumerate(todo)]).astype(np.float32)
     light = layout.light.backlight[r_idx[:, :, None], cols[:, None, :]]
     saturated = pixels >= layout.saturation
