@@ -46,6 +46,15 @@ from .rows import CLIPPED_EDGE_LIMIT, TRACE_LEVEL
 RIM_DEPTH = 0.9
 RIM_RUN_PX = 3
 RIM_PLATEAU = 0.85
+#: A thin rim (narrower than the blur) counts when its peak deficit reaches THIN_RIM_PEAK of the
+#: liquid's depth and the profile inward of it dips to at most THIN_RIM_DIP of that peak.
+#: The dip must stay at least THIN_RIM_FLOOR of the depth above the background: a liquid's middle
+#: loses at least the Fresnel reflections of its two surfaces (about 4 % for n = 1.33 at normal
+#: incidence, ((n − 1)/(n + 1))² each), so a run back at the background level is a gap between
+#: two objects, not a thread's middle.
+THIN_RIM_PEAK = 0.25
+THIN_RIM_DIP = 0.6
+THIN_RIM_FLOOR = 0.03
 #: The calibration in use: the median of the last frames' (the narrowest resolved thread's).
 CALIBRATION_FRAMES = 5
 #: Columns on each side of a row's integration window whose mean is its background level (the
@@ -255,13 +264,23 @@ def _rim_edge(deficit, edge, other, margin, core, *, inward, depth):
     the edge (never past the middle) lies at least :data:`RIM_DEPTH` × ``depth``
     above the background, with :data:`RIM_RUN_PX` pixels within
     :data:`RIM_PLATEAU` of that darkest level.
+
+    Otherwise a **thin rim** (narrower than the blur: a refracting thread under
+    diffuse light, or at a small aperture, is dark only in a sliver at its
+    edge) still places the edge when a clear dip inward separates it from the
+    thread's lighter middle (:data:`THIN_RIM_DIP`, never back to the background:
+    :data:`THIN_RIM_FLOOR`): the rim's light deficit,
+    summed from outside to that dip, is a dark strip of ``area / depth``
+    pixels whose centroid no symmetric blur moves, so its outer side is the
+    centroid less half that width.
     """
     nf, nr, w = deficit.shape
     middle = (edge + other) // 2
-    steps = np.arange(-(margin + 4), core + 1)
+    steps = np.arange(-(margin + 4), core + margin + 1)
     cols = edge[:, :, None] + inward * steps[None, None, :]
     valid = (cols >= 0) & (cols < w)
-    inner = (steps[None, None, :] >= 0) & (inward * (cols - middle[:, :, None]) <= 0)
+    inner_far = (steps[None, None, :] >= 0) & (inward * (cols - middle[:, :, None]) <= 0)
+    inner = inner_far & (steps[None, None, :] <= core)
     values = np.take_along_axis(deficit, np.clip(cols, 0, w - 1), axis=2).astype(np.float64)
     values = np.where(valid, values, np.nan)
     rim = np.max(values, axis=2, where=inner & ~np.isnan(values), initial=-np.inf)
@@ -281,7 +300,32 @@ def _rim_edge(deficit, edge, other, margin, core, *, inward, depth):
     position = edge + inward * (steps[j - 1] + frac)
     ok = (found & np.isfinite(rim) & (rim - ground >= RIM_DEPTH * depth) & (run >= RIM_RUN_PX)
           & np.isfinite(position))
-    return position, ok
+    thin, thin_ok = _thin_rim(values, steps, inner, inner_far, ground, margin, depth)
+    thin_ok &= ~ok
+    return (np.where(ok, position, edge + inward * thin),
+            ok | thin_ok)
+
+
+def _thin_rim(values, steps, inner, inner_far, ground, margin, depth):
+    """Outer side of a rim narrower than the blur (steps from the edge pixel; see :func:`_rim_edge`)."""
+    d = np.where(np.isnan(values), -np.inf, values - ground[:, :, None])
+    peak_at = np.argmax(np.where(inner, d, -np.inf), axis=2)
+    peak = np.take_along_axis(d, peak_at[:, :, None], 2)[:, :, 0]
+    index = np.arange(steps.size)[None, None, :]
+    beyond = inner_far & (index > peak_at[:, :, None])
+    dip_at = np.argmin(np.where(beyond, d, np.inf), axis=2)
+    dip = np.take_along_axis(d, dip_at[:, :, None], 2)[:, :, 0]
+    weight = np.where((steps[None, None, :] >= -margin) & (index < dip_at[:, :, None]), d, 0.0)
+    weight = np.where(np.isfinite(weight), weight, 0.0)
+    half = 0.5 * np.where(np.isfinite(dip), dip, 0.0)
+    area = weight.sum(axis=2) + half
+    with np.errstate(all="ignore"):
+        centroid = ((weight * steps[None, None, :]).sum(axis=2) + half * steps[dip_at]) / area
+        outer = centroid - 0.5 * area / depth
+    ok = (beyond.any(axis=2) & np.isfinite(peak) & np.isfinite(dip) & np.isfinite(outer)
+          & (peak >= THIN_RIM_PEAK * depth) & (dip <= THIN_RIM_DIP * peak)
+          & (dip >= THIN_RIM_FLOOR * depth) & (area > 0))
+    return outer, ok
 
 
 def _median4(values):
