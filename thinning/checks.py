@@ -69,6 +69,9 @@ class Code(str, enum.Enum):
         "few-frames-per-relaxation-time", "no", "fewer frames per λ than advisable")
     NO_ELASTIC_REGIME = ("no-elastic-regime", "no", "Newtonian thinning: no relaxation time")
     NO_BREAKUP = ("no-breakup", "no", "the filament did not break within the record")
+    DEFECTIVE_PIXELS = (
+        "defective-pixels", "no",
+        "stuck, hot or dead sensor pixels were found and replaced by their neighbours' median")
     BREAKUP_FADED = (
         "breakup-faded", "no",
         "the thread faded below the optical resolution before it was seen to part: the breakup "

@@ -40,6 +40,7 @@ from .light import refresh_light
 from .neck import MAX_HALF_WINDOW, MIN_HALF_WINDOW, necks_of
 from .profile import MAX_BEND_DEG, PRESENCE_LEVEL, Profile, ProfileBlock, bend_slope, profiles_of
 from .liquid import LiquidShadow, remeasure_necks
+from .defects import CHECK_EVERY, DefectivePixels
 from .rows import CLIPPED_EDGE_LIMIT, band_views, measure_bands, rim_fractions
 
 log = logging.getLogger(__name__)
@@ -201,7 +202,11 @@ def _measure_stream(frames, *, geometry, roi, n_frames) -> NeckSeries:
     records = []
     pending = []  # (index, frame) waiting to be measured with the current layout
     snaps = _Snapshots(n_frames)
+    defects = DefectivePixels()
     for index, frame in enumerate(frames):
+        if index % CHECK_EVERY == 0 or layout is None:
+            defects.update(frame)
+        frame = defects.repair(frame)
         if layout is None:
             try:
                 layout = find_layout(frame, geometry=geometry, roi=roi)
@@ -226,7 +231,12 @@ def _measure_stream(frames, *, geometry, roi, n_frames) -> NeckSeries:
     _measure_pending(pending, layout, fraction, row_noise, records, snaps, liquid)
     table = pd.DataFrame({column: np.concatenate([r[column] for r in records])
                           for column in TABLE_COLUMNS})
-    return summarise(table, layout, snapshots=snaps.result())
+    series = summarise(table, layout, snapshots=snaps.result())
+    if len(defects):
+        series.findings.insert(0, Finding(Code.DEFECTIVE_PIXELS, Severity.NOTE,
+            f"{len(defects)} defective sensor pixel(s) (stuck, hot or dead: single pixels unlike "
+            "all their neighbours) were replaced by their neighbours' median before measuring."))
+    return series
 
 
 def _measure_pending(pending, layout, fraction, row_noise, records, snaps, liquid):
