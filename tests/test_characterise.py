@@ -439,3 +439,55 @@ def test_an_elastic_stretch_out_of_reach_is_right_or_doubtful(fluid, d0, fps, pi
     right = c.relaxation_time_s is not None and abs(c.relaxation_time_s / lam - 1) <= 0.1
     flagged = any(f.code == code and f.doubtful for f in c.findings)
     assert right or flagged, (c.relaxation_time_s, [f.code for f in c.findings])
+
+
+# --- the filament lifetime of a thread that fades before it parts -----------------------------
+
+def _faded(fluid, d0, *, fps, pixel, seed, parted):
+    """Camera series of the 0-D model that loses the thread below 10 px (a blurry view), its
+    breakup placed after the last frame with a thread."""
+    rng = np.random.default_rng(seed)
+    t, d, t0 = camera_series(fluid, d0, fps=fps, pixel=pixel, noise_px=0.1, rng=rng)
+    thin = np.flatnonzero((t >= t0) & ~(d >= 10.0 * pixel))
+    d[thin[0]:] = np.nan
+    last = np.flatnonzero(np.isfinite(d) & (t >= t0))[-1]
+    t_b = float(t[last]) + 0.5 / fps
+    c = characterise(t, d, surface_tension=fluid.surface_tension, pixel_size_m=pixel, fps_hz=fps,
+                     free_thinning_start_s=t0, breakup_time_s=t_b, breakup_parted=parted,
+                     density=fluid.density or None, seed=seed)
+    true_end = t0 + filament_model(fluid, d0, duration=50.0).breakup_time_s
+    return c, t_b, true_end
+
+
+def test_a_faded_viscous_thread_has_its_lifetime_extrapolated():
+    # visco-capillary thinning is linear to zero (Papageorgiou 1995, via docs/physics.md): the
+    # law carries the last measured diameters over the sub-pixel tail to the true breakup
+    fluid = Fluid(surface_tension=0.06, solvent_viscosity=1.0, density=1260.0)
+    c, t_b, true_end = _faded(fluid, 1e-3, fps=5000, pixel=5e-6, seed=4, parted=False)
+    assert c.regime == "visco-capillary"
+    assert c.breakup_seen == "faded" and c.filament_lifetime_basis == "extrapolated"
+    assert c.filament_lifetime_min_s == pytest.approx(t_b - c.free_thinning_start_s)
+    assert t_b < true_end  # the observed breakup is a lower bound …
+    end = c.free_thinning_start_s + c.filament_lifetime_s
+    assert abs(end - true_end) <= 1.0 / 5000  # … and the extrapolation lands within a frame
+    assert "breakup-faded" in {f.code for f in c.findings}
+
+
+def test_a_faded_elastic_thread_has_only_a_lower_bound():
+    # an elastic thread still thinning exponentially when it fades has no law to carry it to zero
+    fluid = Fluid(surface_tension=0.06, solvent_viscosity=1e-3, density=1000.0,
+                  polymer_modulus=2.0, relaxation_time=2e-3)
+    c, t_b, _ = _faded(fluid, 1e-3, fps=20000, pixel=5e-6, seed=5, parted=False)
+    assert c.regime == "elasto-capillary"
+    assert c.filament_lifetime_basis == "lower-bound" and c.filament_lifetime_s is None
+    assert c.filament_lifetime_min_s == pytest.approx(t_b - c.free_thinning_start_s)
+    fields = c.result_fields()
+    assert fields["filament_lifetime_s"] is None and fields["breakup_seen"] == "faded"
+
+
+def test_a_thread_seen_parting_has_its_observed_lifetime():
+    fluid = Fluid(surface_tension=0.06, solvent_viscosity=1.0, density=1260.0)
+    c, t_b, _ = _faded(fluid, 1e-3, fps=5000, pixel=5e-6, seed=4, parted=True)
+    assert c.breakup_seen == "parted" and c.filament_lifetime_basis == "observed"
+    assert c.filament_lifetime_s == pytest.approx(t_b - c.free_thinning_start_s)
+    assert c.filament_lifetime_min_s is None
