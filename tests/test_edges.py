@@ -228,3 +228,34 @@ def test_compiled_row_pass_matches_the_numpy_path(beaded_recording, monkeypatch)
     # a centre is defined to float32 rounding where the row holds some shadow
     shadow = np.abs(plain.cut_width) > 0.5
     assert np.max(np.abs(compiled.centre - plain.centre)[shadow]) < 1e-4
+
+
+def test_a_partially_coherent_straight_edge_is_placed_at_its_geometric_edge():
+    # Fresnel diffraction at a straight edge in coherent light (Born & Wolf, Principles of Optics,
+    # from memory): the geometric edge gets a quarter of the light, the first bright fringe 1.37 of
+    # it; incoherent light puts half the light there. Half and half here: the half-level crossing
+    # sits outside the edge, and the bright overshoot tells the level to use instead.
+    # Coherent part: I(v) = ((C(v) + 1/2)^2 + (S(v) + 1/2)^2) / 2, v into the light.
+    from scipy.ndimage import gaussian_filter1d
+    from scipy.special import erf, fresnel
+
+    from thinning.measure.liquid import _rim_edge
+
+    x = np.arange(-0.45, 119.5, 0.1)  # rendered finely, then averaged over pixels (centres at i)
+    left, right, scale, share = 40.3, 80.3, 1.6, 0.5
+    outside = np.maximum(left - x, x - right)
+    s, c = fresnel(outside / scale)
+    # (the backlight's angular size smooths the coherent fringes: 1 px, as in thinning.raysynth)
+    coherent = gaussian_filter1d(0.5 * ((c + 0.5) ** 2 + (s + 0.5) ** 2), 10.0)
+    incoherent = 0.5 * (1.0 + erf(outside / (0.7 * np.sqrt(2.0))))
+    light = (share * coherent + (1.0 - share) * incoherent).reshape(-1, 10).mean(axis=1)
+    x = np.arange(120, dtype=float)
+    deficit = (1.0 - light)[None, None, :].astype(np.float32)
+    dark = np.flatnonzero(deficit[0, 0] > 0.5)
+    lj, rj = np.array([[dark[0]]]), np.array([[dark[-1]]])
+    edge_l, ok_l = _rim_edge(deficit, lj, rj, 4, 4, inward=+1, depth=1.0)
+    edge_r, ok_r = _rim_edge(deficit, rj, lj, 4, 4, inward=-1, depth=1.0)
+    assert ok_l[0, 0] and ok_r[0, 0]
+    # within 0.12 px (measured 0.01 and 0.10, the pixel phase); taking the coherent share for
+    # the whole light (level 0.75) would put both edges about 0.3 px inside
+    assert abs(edge_l[0, 0] - left) <= 0.12 and abs(edge_r[0, 0] - right) <= 0.12

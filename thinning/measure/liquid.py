@@ -55,6 +55,10 @@ RIM_PLATEAU = 0.85
 THIN_RIM_PEAK = 0.25
 THIN_RIM_DIP = 0.6
 THIN_RIM_FLOOR = 0.03
+#: Intensity of the first bright Fresnel fringe outside a straight edge in coherent light, over
+#: the unobstructed light (Born & Wolf, Principles of Optics, straight-edge diffraction, from
+#: memory: 1.37; the geometric edge lies at 1/4 of the light).
+FRESNEL_FIRST_MAXIMUM = 1.37
 #: The calibration in use: the median of the last frames' (the narrowest resolved thread's).
 CALIBRATION_FRAMES = 5
 #: Columns on each side of a row's integration window whose mean is its background level (the
@@ -244,14 +248,15 @@ def _row_widths(deficit, centre, guess, layout):
     right_ground = np.where(np.isfinite(right_ground), right_ground, left_ground)
     ground = _along_axis_mean(np.where(has, 0.5 * (left_ground + right_ground), np.nan), GROUND_ROWS)
     total = span_sum(s0, e0) - np.nan_to_num(ground) * (e0 - s0)
-    left, left_ok = _rim_edge(deficit, lj, rj, m, core, inward=+1, depth=depth)
-    right, right_ok = _rim_edge(deficit, rj, lj, m, core, inward=-1, depth=depth)
+    noise = float(layout.noise) * depth
+    left, left_ok = _rim_edge(deficit, lj, rj, m, core, inward=+1, depth=depth, noise=noise)
+    right, right_ok = _rim_edge(deficit, rj, lj, m, core, inward=-1, depth=depth, noise=noise)
     resolved = has & left_ok & right_ok & (rj - lj >= 2 * RIM_RUN_PX)
     widths = np.where(resolved, right - left, np.nan)
     return widths, resolved, total
 
 
-def _rim_edge(deficit, edge, other, margin, core, *, inward, depth):
+def _rim_edge(deficit, edge, other, margin, core, *, inward, depth, noise=0.0):
     """Sub-pixel position of one edge (pixel centres at whole numbers) and whether its rim is resolved.
 
     ``edge`` the outermost dark pixel of each row on this side, ``other`` the
@@ -287,7 +292,15 @@ def _rim_edge(deficit, edge, other, margin, core, *, inward, depth):
     rim[rim == -np.inf] = np.nan  # rows at the side of the band: no pixels there
     ground = _median4(values[:, :, :4])
     ground = np.where(np.isfinite(ground), ground, 0.0)
-    level = ground + 0.5 * depth
+    # partially coherent light: a straight edge's Fresnel fringes put the geometric edge at a
+    # quarter of the light for coherent light (first bright fringe 1.37 of it) and at half for
+    # incoherent light; the bright overshoot just outside the edge measures the coherent share
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # rows at the side of the band
+        dip = np.nanmin(np.where((steps >= -margin) & (steps < 0), values, np.nan), axis=2)
+    overshoot = np.clip(np.nan_to_num(ground - dip) - 3.0 * noise, 0.0, None)
+    coherent = np.clip(overshoot / (FRESNEL_FIRST_MAXIMUM - 1.0) / depth, 0.0, 1.0)
+    level = ground + depth * (0.5 + 0.25 * coherent)
     run = np.sum(inner & (values >= ground[:, :, None] + RIM_PLATEAU * (rim - ground)[:, :, None]), axis=2)
     above = (values >= level[:, :, None]) & (steps[None, None, :] >= -margin)
     first = np.argmax(above, axis=2)
