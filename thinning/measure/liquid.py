@@ -128,7 +128,7 @@ def remeasure_necks(bands, layout, rows, record, shadow: LiquidShadow, *, row_no
     # only the columns a frame's neck rows can reach: their integration windows, the
     # background beside them and the rim search (the band is as wide as the widest body)
     width = np.asarray(bands[todo[0]]).shape[1]
-    reach = np.where(np.isfinite(guess), guess, 0.0) + 2 * layout.margin_px + 3
+    reach = _reach(guess, layout.margin_px)
     cen = np.where(np.isfinite(centre), centre, width / 2.0)
     pad = BASELINE_PX + layout.margin_px + 6
     first = np.clip(np.floor((cen - reach).min(axis=1)) - pad, 0, width - 1).astype(np.int64)
@@ -206,6 +206,11 @@ def _neck_fit(across, ok, offsets, row_noise_px):
     return np.where(count >= 3, diameter, np.nan)
 
 
+def _reach(guess, margin):
+    """How far (px) from a row's centre its integration window reaches, for half-width ``guess``."""
+    return np.where(np.isfinite(guess), guess, 0.0) + 2 * margin + 3
+
+
 def _row_widths(deficit, centre, guess, layout):
     """Widths along the rows (px), whether both rims were resolved, and the integrated deficit.
 
@@ -217,7 +222,7 @@ def _row_widths(deficit, centre, guess, layout):
     nf, nr, w = deficit.shape
     m, core = layout.margin_px, layout.core_px
     cols = np.arange(w, dtype=np.float64)
-    reach = np.where(np.isfinite(guess), guess, 0.0) + 2 * m + 3
+    reach = _reach(guess, m)
     cen = np.where(np.isfinite(centre), centre, w / 2.0)
     lo = np.clip(np.floor(cen - reach), 0, w - 1).astype(np.int64)
     hi = np.clip(np.ceil(cen + reach), 0, w - 1).astype(np.int64)

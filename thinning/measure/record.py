@@ -360,11 +360,7 @@ def summarise(table: pd.DataFrame, layout: Layout, *, snapshots=()) -> NeckSerie
 
 
 def _longest_run(mask):
-    best = run = 0
-    for value in mask:
-        run = run + 1 if value else 0
-        best = max(best, run)
-    return best
+    return max((last - first + 1 for first, last in _runs(np.asarray(mask, bool))), default=0)
 
 
 def _running_median(values, half):
