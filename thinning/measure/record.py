@@ -392,9 +392,10 @@ def free_thinning_start(gap_px, *, span=4, min_change_px=2.0, settle_px=1.0, hol
     limit = max(min_change_px, 0.1 * float(change.max()))
     moving = change > limit
     hold = max(2 * span, int(math.ceil(hold_fraction * g.size)))
-    for first, last in reversed(_runs(moving)):
-        still = (np.flatnonzero(moving[last + 1:])[:1] + last + 1).tolist() or [moving.size]
-        if still[0] - last - 1 < hold:
+    runs = _runs(moving)
+    starts = [first for first, _ in runs[1:]] + [moving.size]  # where the next motion begins
+    for (_, last), next_start in reversed(list(zip(runs, starts))):
+        if next_start - last - 1 < hold:
             continue  # no hold after it: the feet draining, not the plates
         centre = last + span
         after = g[min(centre + span, g.size - 1): centre + 3 * span + 1]
