@@ -27,6 +27,11 @@ from thinning import laws, synth
 GOLDEN = Path(__file__).resolve().parent.parent / "tests" / "golden" / "golden.json"
 #: Relative tolerance of the comparison: floating-point noise of another machine, not drift.
 RELATIVE_TOLERANCE = 1e-7
+#: Relative tolerance when the recording itself rendered differently (its SHA-256 differs: another
+#: CPU's or library's floating point flipped the rounding of a few pixels): the analysis then
+#: sees other frames, and its bootstrap intervals move by a few per cent; a drift of the method
+#: beyond that still shows.
+RENDERED_ELSEWHERE_TOLERANCE = 0.05
 
 
 def _fluid(lam, *, eta_s=1e-3, g=2.0, l2=None, sigma=0.06, rho=1000.0):
@@ -129,6 +134,34 @@ def differences(expected, actual, where="", *, rel=RELATIVE_TOLERANCE):
     return [] if expected == actual else [f"{where}: {actual!r}, expected {expected!r}"]
 
 
+def compare(golden: dict, records: dict) -> list:
+    """Where ``records`` depart from ``golden``, case by case: to :data:`RELATIVE_TOLERANCE`
+    where a case's recording rendered bit for bit as committed, else (its SHA-256 noted) to
+    :data:`RENDERED_ELSEWHERE_TOLERANCE`."""
+    out = [f".{name}: missing" for name in golden if name not in records]
+    out += [f".{name}: unexpected" for name in records if name not in golden]
+    for name in golden:
+        if name not in records:
+            continue
+        expected, actual = golden[name], records[name]
+        same = expected["result"]["source"]["sha256"] == actual["result"]["source"]["sha256"]
+        if not same:  # (the bootstrap's standard errors move by more: their intervals are compared)
+            expected, actual = json.loads(json.dumps(expected)), json.loads(json.dumps(actual))
+            expected["result"]["source"]["sha256"] = actual["result"]["source"]["sha256"]
+            for case in (expected, actual):
+                for fit in case["result"].get("fits", {}).values():
+                    fit.pop("stderr", None)
+        out += differences(expected, actual, f".{name}",
+                           rel=RELATIVE_TOLERANCE if same else RENDERED_ELSEWHERE_TOLERANCE)
+    return out
+
+
+def rendered_elsewhere(golden: dict, records: dict) -> list:
+    """The cases whose recording did not render bit for bit as committed."""
+    return [name for name in golden if name in records and golden[name]["result"]["source"]["sha256"]
+            != records[name]["result"]["source"]["sha256"]]
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--out", type=Path, help="keep every output file in OUT/<case>/")
@@ -143,7 +176,10 @@ def main(argv=None):
             print(f"{name}: λ = {records[name]['result']['relaxation_time_s']}", flush=True)
     if args.check:
         golden = json.loads(GOLDEN.read_text(encoding="utf-8"))
-        problems = differences(golden, records)
+        problems = compare(golden, records)
+        for name in rendered_elsewhere(golden, records):
+            print(f"{name}: rendered differently here (its SHA-256 differs), compared to "
+                  f"{RENDERED_ELSEWHERE_TOLERANCE:.0%}")
         print("\n".join(problems) or "no drift")
         return 1 if problems else 0
     GOLDEN.parent.mkdir(parents=True, exist_ok=True)
