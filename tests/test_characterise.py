@@ -11,13 +11,15 @@ fluids whose model λ is what the data show.
 """
 
 import json
+import math
 
 import numpy as np
 import pytest
 
-from thinning.characterisation import characterise
+from thinning.characterisation import Characterisation, characterise
 from thinning.checks import Severity
 from thinning.laws import Fluid, filament_model
+from thinning.modelfit import ModelFit
 
 CONTRACT_KEYS = {
     "regime", "regimes", "relaxation_time_s", "relaxation_time_ci95_s", "fit_window_s",
@@ -491,3 +493,63 @@ def test_a_thread_seen_parting_has_its_observed_lifetime():
     assert c.breakup_seen == "parted" and c.filament_lifetime_basis == "observed"
     assert c.filament_lifetime_s == pytest.approx(t_b - c.free_thinning_start_s)
     assert c.filament_lifetime_min_s is None
+
+
+@pytest.mark.slow
+def test_whole_curve_fit_recovers_lambda_over_the_polymer_matrix():
+    # the 0-D filament model fitted from the free-thinning start to the floor
+    # (thinning.modelfit): truth is the fluid's λ, held to 1 % in every case and its
+    # profile-likelihood interval covering it in at least 8 of the 10
+    covered = 0
+    for k, (lam, g, eta_s, rho, l2, d0, fps, pixel, noise, geometry) in enumerate(POLYMER_MATRIX):
+        fluid = Fluid(0.06, eta_s, rho, g, lam, l2)
+        c = run(fluid, d0, fps=fps, pixel=pixel, noise_px=noise, seed=100 + k, geometry=geometry)
+        m = c.model_fit
+        assert m and m.model == "viscoelastic", k
+        assert m.relaxation_time_s == pytest.approx(lam, rel=0.01), k
+        lo, hi = m.relaxation_time_ci95_s
+        covered += lo <= lam <= hi
+    assert covered >= 8
+
+
+def test_whole_curve_fit_is_in_the_result_and_reads_back():
+    c = run(Fluid(0.06, 1e-3, 1000.0, 2.0, 1e-3), 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, seed=1)
+    fields = json.loads(json.dumps(c.result_fields(), allow_nan=False))
+    m = fields["model_fit"]
+    assert m["model"] == "viscoelastic" and m["solvent_viscosity_fixed"]
+    assert m["relaxation_time_s"] == pytest.approx(1e-3, rel=0.02)
+    lo, hi = m["relaxation_time_ci95_s"]
+    assert lo < m["relaxation_time_s"] < hi
+    back = Characterisation.from_fields(fields)
+    assert back.model_fit.to_dict() == m
+
+
+def test_newtonian_record_gets_its_viscosity_from_the_whole_curve_too():
+    fluid = Fluid(0.063, 1.0, 0.0)
+    t, d, t0 = camera_series(fluid, 1e-3, fps=5000, pixel=5e-6, noise_px=0.2,
+                             rng=np.random.default_rng(4))
+    c = characterise(t, d, surface_tension=0.063, pixel_size_m=5e-6, fps_hz=5000,
+                     free_thinning_start_s=t0, seed=4)          # η not given: fitted
+    assert c.regime == "visco-capillary"
+    m = c.model_fit
+    assert m.model == "newtonian" and not m.solvent_viscosity_fixed
+    assert m.solvent_viscosity_Pa_s == pytest.approx(1.0, rel=0.03)
+    lo, hi = m.solvent_viscosity_ci95_Pa_s
+    assert lo < 1.0 < hi
+
+
+@pytest.mark.parametrize("model_lam, model_ci, disagrees", [
+    (1.10e-3, (1.08e-3, 1.12e-3), True),     # intervals apart
+    (1.015e-3, (1.005e-3, 1.03e-3), False),  # intervals overlap
+    (1.10e-3, (math.nan, 1.12e-3), False),   # open lower end reaches the local interval
+])
+def test_the_two_relaxation_times_are_compared_by_their_intervals(model_lam, model_ci, disagrees):
+    from thinning.characterisation import _model_findings
+    fit = ModelFit(model="viscoelastic", relaxation_time_s=model_lam, relaxation_time_ci95_s=model_ci,
+                   success=True)
+    found = _model_findings(fit, 1.0e-3, (0.99e-3, 1.01e-3))
+    assert bool(found) == disagrees
+    assert all(f.code == "model-fit-disagrees" for f in found)
+    newtonian = ModelFit(model="newtonian", solvent_viscosity_Pa_s=1.0, success=True)
+    assert [f.code for f in _model_findings(newtonian, 1.0e-3, (0.99e-3, 1.01e-3))] == \
+        ["model-fit-disagrees"]

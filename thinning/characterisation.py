@@ -18,6 +18,7 @@ from . import regimes as rg
 from .checks import Code, Finding, Severity
 from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_extensibility,
                    fit_inertiocapillary, fit_viscocapillary)
+from .modelfit import ModelFit, fit_filament_model
 from .series import check_series
 from .units import GEOMETRIES
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
@@ -62,6 +63,7 @@ class Characterisation:
     breakup_seen: str | None = None
     filament_lifetime_basis: str | None = None
     filament_lifetime_min_s: float | None = None
+    model_fit: ModelFit | None = None
 
     @property
     def ohnesorge_number(self):
@@ -119,6 +121,7 @@ class Characterisation:
         for key in GROUP_KEYS:
             out[key] = num(self.groups.get(key))
         out["fits"] = {name: f.to_dict() for name, f in self.fits.items()}
+        out["model_fit"] = self.model_fit.to_dict() if self.model_fit else None
         return out
 
     @classmethod
@@ -153,7 +156,8 @@ class Characterisation:
             groups={key: data.get(key) for key in GROUP_KEYS},
             resolution_floor_m=data.get("resolution_floor_m"),
             diameter_noise_m=data.get("diameter_noise_m"),
-            fits={name: Fit.from_dict(f) for name, f in (data.get("fits") or {}).items()})
+            fits={name: Fit.from_dict(f) for name, f in (data.get("fits") or {}).items()},
+            model_fit=ModelFit.from_dict(data["model_fit"]) if data.get("model_fit") else None)
 
     def interval(self, key: str):
         """The 95 % interval ``(low, high)`` behind the headline number ``key`` (a
@@ -314,6 +318,10 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
                                   relaxation_time=lam) if d0 is not None else \
         dimensionless_groups(initial_diameter=np.nan, surface_tension=surface_tension)
 
+    model_fit = _whole_curve_fit(t, d_fit, fits.get(rg.ELASTO_CAPILLARY), surface_tension=surface_tension,
+                                 t0=t0, floor=floor, noise=noise, density=density,
+                                 solvent_viscosity=solvent_viscosity, seed=seed)
+    findings += _model_findings(model_fit, lam, lam_ci)
     lifetime, basis, lifetime_min, law = filament_lifetime(
         t, d_fit, t0, t_b, breakup_parted, fits, fps_hz=fps_hz, surface_tension=surface_tension)
     if basis is not None and basis != "observed":
@@ -338,7 +346,48 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
         groups=groups, resolution_floor_m=floor, diameter_noise_m=noise, fits=fits, curves=curves,
         findings=findings, breakup_seen=None if t_b is None else
         ("faded" if breakup_parted is False else "parted"),
-        filament_lifetime_basis=basis, filament_lifetime_min_s=lifetime_min)
+        filament_lifetime_basis=basis, filament_lifetime_min_s=lifetime_min, model_fit=model_fit)
+
+
+def _whole_curve_fit(t, d, ec_fit, *, surface_tension, t0, floor, noise, density, solvent_viscosity,
+                     seed) -> ModelFit | None:
+    """The 0-D filament model fitted from the free-thinning start to the floor
+    (:func:`thinning.modelfit.fit_filament_model`), started from the local-slope
+    elasto-capillary fit when there is one; None when no fit could be made."""
+    start = None
+    if ec_fit:
+        a, b = ec_fit.window_s
+        inside = np.isfinite(d) & (t >= a - 1e-12) & (t <= b + 1e-12)
+        if inside.any():
+            start = {"relaxation_time_s": ec_fit.values["relaxation_time_s"], "window_s": (a, b),
+                     "diameter_at_window_start_m": float(d[np.flatnonzero(inside)[0]])}
+    fit = fit_filament_model(t, d, surface_tension=surface_tension, t_start_s=t0,
+                             resolution_floor_m=floor, noise_m=noise, density=density,
+                             solvent_viscosity=solvent_viscosity, start=start, seed=seed)
+    return fit if fit else None
+
+
+def _model_findings(model_fit, lam, lam_ci):
+    """A note when the whole-curve λ and the local-slope λ disagree beyond both intervals,
+    or when only one of the two sees elasticity."""
+    if model_fit is None or lam is None:
+        return []
+    model_lam = model_fit.relaxation_time_s if model_fit.model == "viscoelastic" else None
+    if model_lam is None or not np.isfinite(model_lam):
+        return [Finding(Code.MODEL_FIT_DISAGREES, Severity.NOTE,
+                        f"The local-slope fit gives λ = {lam * 1e3:.4g} ms, but the whole-curve "
+                        "filament model fits the record better without elasticity.")]
+    lo, hi = model_fit.relaxation_time_ci95_s
+    lo = lo if np.isfinite(lo) else -np.inf
+    hi = hi if np.isfinite(hi) else np.inf
+    a, b = lam_ci if lam_ci is not None else (lam, lam)
+    if hi < a or b < lo:
+        return [Finding(Code.MODEL_FIT_DISAGREES, Severity.NOTE,
+                        f"The whole-curve filament model gives λ = {model_lam * 1e3:.4g} ms, the "
+                        f"local-slope fit {lam * 1e3:.4g} ms: their 95 % intervals do not overlap, "
+                        "so one of them is off (the thread may not follow the model, or the "
+                        "window may miss the settled elastic stretch).")]
+    return []
 
 
 #: The time (s) a law's neck of diameter D (m) still has before breakup, from its fit's values:

@@ -1127,7 +1127,36 @@ class ModelFit:
             "solvent_viscosity_Pa_s": _plain(self.solvent_viscosity_Pa_s),
             "t_start_s": _plain(self.t_start_s),
             "reduced_chi2": _plain(self.reduced_chi2),
+            "model": self.model,
+            "solvent_viscosity_ci95_Pa_s": [_plain(v) for v in self.solvent_viscosity_ci95_Pa_s],
+            "solvent_viscosity_fixed": self.solvent_viscosity_fixed,
+            "n_points": int(self.n_points),
+            "noise_correlation": _plain(self.noise_correlation),
+            "message": self.message,
         }
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "ModelFit":
+        """The fit read back from its :meth:`to_dict` form (no curve)."""
+        def num(v):
+            return math.nan if v is None else float(v)
+
+        def pair(p):
+            return tuple(num(v) for v in (p or (None, None)))
+
+        l2 = data.get("finite_extensibility_L2")
+        return cls(model=str(data.get("model") or ""),
+                   relaxation_time_s=num(data.get("relaxation_time_s")),
+                   relaxation_time_ci95_s=pair(data.get("relaxation_time_ci95_s")),
+                   elastic_modulus_Pa=num(data.get("elastic_modulus_Pa")),
+                   finite_extensibility_L2=None if l2 is None else float(l2),
+                   solvent_viscosity_Pa_s=num(data.get("solvent_viscosity_Pa_s")),
+                   solvent_viscosity_ci95_Pa_s=pair(data.get("solvent_viscosity_ci95_Pa_s")),
+                   solvent_viscosity_fixed=bool(data.get("solvent_viscosity_fixed")),
+                   t_start_s=num(data.get("t_start_s")), reduced_chi2=num(data.get("reduced_chi2")),
+                   n_points=int(data.get("n_points") or 0),
+                   noise_correlation=num(data.get("noise_correlation")),
+                   success=True, message=str(data.get("message") or ""))
 
 
 def _failed(message, n_points=0) -> ModelFit:

@@ -38,6 +38,7 @@ REGIME_COLOURS = {
 }
 DATA_COLOUR = "#22303c"
 MARK_COLOUR = "#7a2e8e"
+MODEL_COLOUR = "#c2571a"
 FLOOR_COLOUR = "#8a8a8a"
 
 #: The look we want, independent of the user's matplotlibrc.
@@ -140,11 +141,32 @@ def fit_curves(result, *, n_points=200):
     return curves
 
 
+def model_curve(result, *, n_points=300):
+    """``(time_s, diameter_m)`` of the whole-curve filament model from its start to the last
+    frame above the resolution floor, or None (no fit, or one read back from a file)."""
+    c = result.characterisation
+    fit = c.model_fit
+    t0 = _number(fit.t_start_s) if fit else None
+    t = _column(result.table, "time_s")
+    d = _column(result.table, "diameter_m")
+    floor = _number(c.resolution_floor_m) or 0.0
+    above = np.isfinite(t) & np.isfinite(d) & (d > floor)
+    if t0 is None or not above.any():
+        return None
+    t_end = float(t[above].max())
+    if t_end <= t0:
+        return None
+    ft = np.linspace(t0, t_end, n_points)
+    fd = fit.curve(ft)
+    return (ft, fd) if np.isfinite(fd).any() else None
+
+
 def plot_diameter(result, *, ax=None):
     """Minimum neck diameter against time on a log axis.
 
     Each located regime is shaded in its own colour, the fits drawn over
-    their windows (:func:`fit_curves`), breakup marked by a dashed line, and
+    their windows (:func:`fit_curves`), the whole-curve model dashed
+    (:func:`model_curve`), breakup marked by a dashed line, and
     the resolution floor (else one pixel) drawn as a dotted line. Returns the
     Axes.
     """
@@ -170,6 +192,12 @@ def plot_diameter(result, *, ax=None):
                 colour = REGIME_COLOURS.get(kind, REGIME_COLOURS["undetermined"])[1]
                 ax.plot(ft[good] * t_factor, fd[good] * d_factor, "-", color=colour, lw=1.8,
                         label=f"{kind} fit", zorder=4)
+        model = model_curve(result)
+        if model is not None:
+            ft, fd = model
+            good = np.isfinite(fd) & (fd > 0)
+            ax.plot(ft[good] * t_factor, fd[good] * d_factor, "--", color=MODEL_COLOUR, lw=1.3,
+                    label="whole-curve filament model", zorder=5)
         floor = _number(result.characterisation.resolution_floor_m)
         floor_label = "resolution floor"
         if floor is None:

@@ -146,6 +146,7 @@ def _headline(result):
             interval = f"{MISSING} (not computed)"
         out.append({"label": label, "value": format_quantity(value, unit, missing=reason),
                     "interval": interval or "", "missing": _number(value) is None})
+    out += _model_rows(c)
     window = c.fit_window_s
     window_text = format_interval(window, "s", like=(window or [None, None])[1])
     frames = c.fit_window_frames
@@ -155,6 +156,32 @@ def _headline(result):
                 f"{MISSING} ({'no headline fit' if not lam else 'not recorded'})",
                 "interval": "", "missing": window_text is None})
     return out
+
+
+def _model_rows(c):
+    """Headline rows of the whole-curve filament model fit, beside the local-slope numbers."""
+    fit = c.model_fit
+    if not fit:
+        return [{"label": "whole-curve filament model", "value": f"{MISSING} (no fit could be made)",
+                 "interval": "", "missing": True}]
+    chi2 = _number(fit.reduced_chi2)
+    note = f" ({fit.model}, reduced χ² {_digits(chi2)})" if chi2 is not None else f" ({fit.model})"
+    rows = []
+    if fit.model == "viscoelastic":
+        rows.append({"label": "relaxation time λ, whole-curve filament model" + note,
+                     "value": format_quantity(fit.relaxation_time_s, "s"),
+                     "interval": format_interval(fit.relaxation_time_ci95_s, "s",
+                                                 like=fit.relaxation_time_s) or "",
+                     "missing": False})
+    label = "solvent viscosity η_s, whole-curve filament model"
+    rows.append({"label": label + (" (given, held fixed)" if fit.solvent_viscosity_fixed else
+                                   ("" if rows else note)),
+                 "value": format_quantity(fit.solvent_viscosity_Pa_s, "Pa·s"),
+                 "interval": "" if fit.solvent_viscosity_fixed else
+                 format_interval(fit.solvent_viscosity_ci95_Pa_s, "Pa·s",
+                                 like=fit.solvent_viscosity_Pa_s) or "",
+                 "missing": _number(fit.solvent_viscosity_Pa_s) is None})
+    return rows
 
 
 def _regimes(result):
