@@ -9,6 +9,7 @@ untrustworthy (:class:`thinning.findings.Finding`). Pure: arrays in, a
 
 from __future__ import annotations
 
+import logging
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -22,6 +23,8 @@ from .modelfit import ModelFit, fit_filament_model
 from .series import check_series
 from .units import GEOMETRIES
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
+
+logger = logging.getLogger(__name__)
 
 UNDETERMINED = "undetermined"
 #: Resolution floor in pixels (docs/physics.md §8: widths below ~3 blur sizes are biased).
@@ -361,9 +364,13 @@ def _whole_curve_fit(t, d, ec_fit, *, surface_tension, t0, floor, noise, density
         if inside.any():
             start = {"relaxation_time_s": ec_fit.values["relaxation_time_s"], "window_s": (a, b),
                      "diameter_at_window_start_m": float(d[np.flatnonzero(inside)[0]])}
-    fit = fit_filament_model(t, d, surface_tension=surface_tension, t_start_s=t0,
-                             resolution_floor_m=floor, noise_m=noise, density=density,
-                             solvent_viscosity=solvent_viscosity, start=start, seed=seed)
+    try:
+        fit = fit_filament_model(t, d, surface_tension=surface_tension, t_start_s=t0,
+                                 resolution_floor_m=floor, noise_m=noise, density=density,
+                                 solvent_viscosity=solvent_viscosity, start=start, seed=seed)
+    except (ArithmeticError, np.linalg.LinAlgError) as exc:  # the record stands without it
+        logger.warning("the whole-curve model fit failed: %s", exc)
+        return None
     return fit if fit else None
 
 

@@ -1038,7 +1038,7 @@ def _fit_viscoelastic(data, *, solvent_viscosity, extensibility, start, eta_gues
     cov = np.linalg.pinv(jac_hat[0].T @ jac_hat[0]) * scale2
     if _ETA in free:   # η_s only sets the transient here: a Wald interval in ln η_s
         half = float(stats.t.ppf(0.975, dof)) * math.sqrt(max(cov[which[1], which[1]], 0.0))
-        intervals["eta"] = (math.exp(theta[_ETA] - half), math.exp(theta[_ETA] + half))
+        intervals["eta"] = (float(np.exp(theta[_ETA] - half)), float(np.exp(theta[_ETA] + half)))
     g = math.exp(theta[_G])
     values = {"lam": math.exp(theta[_LAM]), "G": g, "eta": math.exp(theta[_ETA]),
               "t0": float(p_hat[nf]), "L2": None}
