@@ -153,6 +153,7 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
                                  bit_depth=int(recording.bit_depth))
 
     from .characterisation import characterise
+    from .uncertainty import reference_width_uncertainty
 
     pixel_size_m = _pixel_size(options, series)
     calibration = Calibration(fps_hz=fps_hz, pixel_size_m=pixel_size_m)
@@ -167,7 +168,9 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
         density=options.density_kg_m3, solvent_viscosity=options.solvent_viscosity_Pa_s,
         zero_shear_viscosity=options.zero_shear_viscosity_Pa_s, geometry=options.geometry,
         seed=seed_from_sha256(sha256), diameter_noise_m=series.diameter_noise_px * pixel_size_m,
-        breakup_parted=series.breakup_parted)
+        breakup_parted=series.breakup_parted,
+        pixel_size_rel=(0.0 if options.pixel_size_m is not None
+                        else reference_width_uncertainty(series.layout.plate_width_px)))
     findings.extend(rheo.findings)
     for column in rheo.curves.columns:
         table[column] = rheo.curves[column].to_numpy()

@@ -21,6 +21,8 @@ from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_e
                    fit_inertiocapillary, fit_viscocapillary)
 from .modelfit import ModelFit, fit_filament_model
 from .series import check_series
+from .uncertainty import (elastic_modulus_budget, relaxation_time_budget,
+                          shear_viscosity_budget)
 from .units import GEOMETRIES
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
 
@@ -67,6 +69,10 @@ class Characterisation:
     filament_lifetime_basis: str | None = None
     filament_lifetime_min_s: float | None = None
     model_fit: ModelFit | None = None
+    #: Result key → {term: relative 95 % half-width} (:mod:`thinning.uncertainty`).
+    uncertainty_budget: dict = field(default_factory=dict)
+    elastic_modulus_ci95_Pa: tuple | None = None
+    shear_viscosity_ci95_Pa_s: tuple | None = None
 
     @property
     def ohnesorge_number(self):
@@ -125,6 +131,10 @@ class Characterisation:
             out[key] = num(self.groups.get(key))
         out["fits"] = {name: f.to_dict() for name, f in self.fits.items()}
         out["model_fit"] = self.model_fit.to_dict() if self.model_fit else None
+        out["uncertainty_budget"] = {key: {term: num(v) for term, v in terms.items()}
+                                     for key, terms in self.uncertainty_budget.items()}
+        out["elastic_modulus_ci95_Pa"] = pair(self.elastic_modulus_ci95_Pa)
+        out["shear_viscosity_ci95_Pa_s"] = pair(self.shear_viscosity_ci95_Pa_s)
         return out
 
     @classmethod
@@ -160,13 +170,20 @@ class Characterisation:
             resolution_floor_m=data.get("resolution_floor_m"),
             diameter_noise_m=data.get("diameter_noise_m"),
             fits={name: Fit.from_dict(f) for name, f in (data.get("fits") or {}).items()},
-            model_fit=ModelFit.from_dict(data["model_fit"]) if data.get("model_fit") else None)
+            model_fit=ModelFit.from_dict(data["model_fit"]) if data.get("model_fit") else None,
+            uncertainty_budget=dict(data.get("uncertainty_budget") or {}),
+            elastic_modulus_ci95_Pa=pair(data.get("elastic_modulus_ci95_Pa")),
+            shear_viscosity_ci95_Pa_s=pair(data.get("shear_viscosity_ci95_Pa_s")))
 
     def interval(self, key: str):
         """The 95 % interval ``(low, high)`` behind the headline number ``key`` (a
         ``result.json`` key), taken from the fit that gave it; None when there is none."""
         if key == "relaxation_time_s":
             return self.relaxation_time_ci95_s
+        if key == "elastic_modulus_Pa" and self.elastic_modulus_ci95_Pa is not None:
+            return tuple(self.elastic_modulus_ci95_Pa) if self.regime == rg.ELASTO_CAPILLARY else None
+        if key == "shear_viscosity_Pa_s" and self.shear_viscosity_ci95_Pa_s is not None:
+            return tuple(self.shear_viscosity_ci95_Pa_s)
         source = _INTERVAL_SOURCES.get(key)
         if source is None:
             return None
@@ -220,7 +237,8 @@ def _longest(regs, kind):
 def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
                  free_thinning_start_s, breakup_time_s=None, density=None, solvent_viscosity=None,
                  zero_shear_viscosity=None, geometry="plates", seed: int, diameter_noise_m=None,
-                 resolution_floor_m=None, breakup_parted=None) -> Characterisation:
+                 resolution_floor_m=None, breakup_parted=None,
+                 pixel_size_rel=0.0) -> Characterisation:
     """Regimes, relaxation time, viscosities and quality findings of one diameter series.
 
     ``time_s`` (s, recording clock) and ``diameter_m`` (m, NaN where no thread)
@@ -233,7 +251,9 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     breakup time is a lower bound and the lifetime is extrapolated by a
     fitted law that reaches the last measured frames, or else left empty
     (:func:`filament_lifetime`); None or True: the breakup was seen.
-    ``seed`` seeds the bootstrap.
+    ``seed`` seeds the bootstrap. ``pixel_size_rel`` is the pixel size's relative
+    uncertainty (95 %; 0 for a given pixel size, taken as exact), a term of the
+    uncertainty budget (:mod:`thinning.uncertainty`).
     ``geometry`` ("plates" or "dripping") is checked and recorded: the
     elasto-capillary prefactor is the same for both (D0 = 2R0, docs/physics.md
     §3.3), so the numbers are computed alike.
@@ -325,6 +345,24 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
                                  t0=t0, floor=floor, noise=noise, density=density,
                                  solvent_viscosity=solvent_viscosity, seed=seed)
     findings += _model_findings(model_fit, lam, lam_ci)
+    budget, g_ci, eta_ci = {}, None, None
+    common_budget = dict(noise_m=noise, floor_m=floor, pixel_size_m=pixel_size_m)
+    if headline == rg.ELASTO_CAPILLARY and lam_ci is not None:
+        lam_budget = relaxation_time_budget(t, d_fit, head_fit, model_fit=model_fit, **common_budget)
+        if all(np.isfinite(lam_budget.interval)):
+            lam_ci = lam_budget.interval
+            budget["relaxation_time_s"] = lam_budget.terms
+            if d0 is not None:
+                g_budget = elastic_modulus_budget(head_fit, lam_budget, initial_diameter_m=d0,
+                                                  pixel_size_m=pixel_size_m,
+                                                  pixel_size_rel=pixel_size_rel)
+                if all(np.isfinite(g_budget.interval)):
+                    g_ci, budget["elastic_modulus_Pa"] = g_budget.interval, g_budget.terms
+    if eta_shear is not None:
+        eta_budget = shear_viscosity_budget(t, d_fit, fits["visco-capillary"], model_fit=model_fit,
+                                            pixel_size_rel=pixel_size_rel, **common_budget)
+        if all(np.isfinite(eta_budget.interval)):
+            eta_ci, budget["shear_viscosity_Pa_s"] = eta_budget.interval, eta_budget.terms
     lifetime, basis, lifetime_min, law = filament_lifetime(
         t, d_fit, t0, t_b, breakup_parted, fits, fps_hz=fps_hz, surface_tension=surface_tension)
     if basis is not None and basis != "observed":
@@ -349,7 +387,8 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
         groups=groups, resolution_floor_m=floor, diameter_noise_m=noise, fits=fits, curves=curves,
         findings=findings, breakup_seen=None if t_b is None else
         ("faded" if breakup_parted is False else "parted"),
-        filament_lifetime_basis=basis, filament_lifetime_min_s=lifetime_min, model_fit=model_fit)
+        filament_lifetime_basis=basis, filament_lifetime_min_s=lifetime_min, model_fit=model_fit,
+        uncertainty_budget=budget, elastic_modulus_ci95_Pa=g_ci, shear_viscosity_ci95_Pa_s=eta_ci)
 
 
 def _whole_curve_fit(t, d, ec_fit, *, surface_tension, t0, floor, noise, density, solvent_viscosity,
