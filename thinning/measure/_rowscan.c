@@ -6,13 +6,16 @@
  * of each frame, each row's dark extent against the threshold map, the deficit integrated
  * over the two edge zones (one window for a thin row), the rim level of thick steady rows,
  * and the faint trace of rows without a clear shadow (scan_rows); then the end bodies, the
- * free span, the axis and the quadratic neck fit of each frame (necks).
+ * free span, the axis and the quadratic neck fit of each frame (necks); then the neck rows
+ * measured again against the liquid's own shadow, their pixels read from the bands
+ * (liquid_widths: thinning/measure/liquid.py).
  *
  * Built as an optional extension module (setup.py); the tiny module init below only lets
  * Python find the file.
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
+#include <float.h>
 #include <math.h>
 #include <stdint.h>
 #include <stdlib.h>
@@ -534,8 +537,379 @@ int necks(int64_t nb, int64_t n, const double *cut_in, const double *core_n, con
     return 0;
 }
 
+/* The liquid-shadow remeasurement of the neck rows (thinning/measure/liquid.py: _row_widths,
+ * _rim_edge, _thin_rim; same arithmetic, sums in numpy's order): each row's deficit
+ * d = 1 - I / (B gain) over the columns [first, first + span) of its frame (the span of
+ * numpy's gather, whose column 0 starts the cumulative sums), a row's dark extent against the
+ * threshold, its integrated deficit above the background beside it, and its two rim edges. */
+
+/* The numbers of the remeasurement: the layout's (px; depth, threshold and noise as fractions of
+ * the light) and liquid.py's rules (in the order of liquid.COMPILED_RULES). */
+typedef struct {
+    int64_t margin, core, rim_run, baseline, ground_rows;
+    double threshold, depth, noise, rim_depth, rim_plateau, thin_peak, thin_dip, thin_floor, fresnel;
+} LiquidRules;
+
+/* numpy's pairwise sum of n doubles (the order of ndarray.sum along a contiguous axis). */
+static double pairwise_sum(const double *a, int64_t n)
+{
+    if (n < 8) {
+        double res = 0.0;
+        for (int64_t i = 0; i < n; i++) res += a[i];
+        return res;
+    }
+    if (n <= 128) {
+        double r[8];
+        int64_t i;
+        for (int j = 0; j < 8; j++) r[j] = a[j];
+        for (i = 8; i < n - n % 8; i += 8)
+            for (int j = 0; j < 8; j++) r[j] += a[i + j];
+        double res = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]));
+        for (; i < n; i++) res += a[i];
+        return res;
+    }
+    int64_t n2 = n / 2;
+    n2 -= n2 % 8;
+    return pairwise_sum(a, n2) + pairwise_sum(a + n2, n - n2);
+}
+
+static double clip_nan(double x, double lo, double hi) /* np.clip: NaN stays NaN */
+{
+    return x < lo ? lo : (x > hi ? hi : x);
+}
+
+/* np.nanmedian of four values (NaN where none is finite). */
+static double median4(const double *v)
+{
+    double s[4];
+    int64_t m = 0, finite = 0;
+    for (int i = 0; i < 4; i++) {
+        if (isnan(v[i])) continue;
+        int64_t j = m++;
+        for (; j > 0 && s[j - 1] > v[i]; j--) s[j] = s[j - 1];
+        s[j] = v[i];
+        finite += isfinite(v[i]) != 0;
+    }
+    switch (finite) {
+    case 4: return 0.5 * (s[1] + s[2]);
+    case 3: return s[1];
+    case 2: return 0.5 * (s[0] + s[1]);
+    case 1: return s[0];
+    default: return NAN;
+    }
+}
+
+/* One edge of a row: its sub-pixel position (pixel centres at whole numbers) and whether its rim
+ * is resolved, or else thin (see liquid._rim_edge). `edge` the outermost dark pixel on this side,
+ * `other` the one on the other side, `inward` +1 for a left edge, -1 for a right one; scratch:
+ * three arrays of core + 2 margin + 5 doubles. */
+static int rim_edge(const float *d, int64_t w, int64_t edge, int64_t other, int inward,
+                    const LiquidRules *rules, double *values, double *weight, double *moment,
+                    double *position)
+{
+    int64_t margin = rules->margin, core = rules->core;
+    double depth = rules->depth;
+    int64_t k_n = core + 2 * margin + 5, s_first = -(margin + 4), at0 = margin + 4;
+    int64_t middle = (edge + other) / 2; /* both >= 0: floor */
+    /* steps 0..far reach no further than the middle, 0..near also no deeper than core */
+    int64_t far = inward * (middle - edge), near = far < core ? far : core;
+    int64_t far_end = at0 + far < k_n - 1 ? at0 + far : k_n - 1, near_end = at0 + near;
+    for (int64_t i = 0; i < k_n; i++) {
+        int64_t col = edge + inward * (s_first + i);
+        values[i] = col >= 0 && col < w ? (double)d[col] : NAN;
+    }
+    double rim = -INFINITY;
+    for (int64_t i = at0; i <= near_end; i++)
+        if (!isnan(values[i]) && values[i] > rim) rim = values[i];
+    if (rim == -INFINITY) rim = NAN;
+    double ground = median4(values);
+    if (!isfinite(ground)) ground = 0.0;
+    /* partially coherent light: the bright overshoot just outside the edge */
+    double dip = NAN;
+    for (int64_t i = 4; i < at0; i++)
+        if (!isnan(values[i]) && (isnan(dip) || values[i] < dip)) dip = values[i];
+    double over = ground - dip;
+    over = isnan(over) ? 0.0 : (over == INFINITY ? DBL_MAX : (over == -INFINITY ? -DBL_MAX : over));
+    over -= 3.0 * rules->noise;
+    over = over < 0.0 ? 0.0 : over;
+    double coherent = clip_nan(over / (rules->fresnel - 1.0) / depth, 0.0, 1.0);
+    double level = ground + depth * (0.5 + 0.25 * coherent);
+    double plateau = ground + rules->rim_plateau * (rim - ground);
+    int64_t run = 0;
+    for (int64_t i = at0; i <= near_end; i++) run += values[i] >= plateau;
+    int64_t first = 0;
+    for (int64_t i = 4; i < k_n; i++)
+        if (values[i] >= level) { first = i; break; }
+    if (first > 0 && isfinite(rim) && rim - ground >= rules->rim_depth * depth && run >= rules->rim_run) {
+        double v0 = values[first - 1], v1 = values[first];
+        double frac = clip_nan((level - v0) / (v1 - v0), 0.0, 1.0);
+        *position = (double)edge + inward * ((double)(s_first + first - 1) + frac);
+        if (isfinite(*position)) return 1;
+    }
+    /* a thin rim: its deficit summed from outside to the dip inward of its peak */
+    for (int64_t i = 0; i < k_n; i++) values[i] = isnan(values[i]) ? -INFINITY : values[i] - ground;
+    int64_t peak_at = 0;
+    double best = -INFINITY;
+    for (int64_t i = at0; i <= near_end; i++)
+        if (values[i] > best) { best = values[i]; peak_at = i; }
+    double peak = values[peak_at];
+    int64_t dip_at = 0;
+    int any_beyond = 0;
+    best = INFINITY;
+    for (int64_t i = peak_at + 1 > at0 ? peak_at + 1 : at0; i <= far_end; i++) {
+        any_beyond = 1;
+        if (values[i] < best) { best = values[i]; dip_at = i; }
+    }
+    double low = values[dip_at];
+    for (int64_t i = 0; i < k_n; i++) {
+        double v = i >= 4 && i < dip_at && isfinite(values[i]) ? values[i] : 0.0;
+        weight[i] = v;
+        moment[i] = v * (double)(s_first + i);
+    }
+    double half = 0.5 * (isfinite(low) ? low : 0.0);
+    double area = pairwise_sum(weight, k_n) + half;
+    double centroid = (pairwise_sum(moment, k_n) + half * (double)(s_first + dip_at)) / area;
+    double outer = centroid - 0.5 * area / depth;
+    *position = (double)edge + inward * outer;
+    return any_beyond && isfinite(peak) && isfinite(low) && isfinite(outer)
+           && peak >= rules->thin_peak * depth && low <= rules->thin_dip * peak
+           && low >= rules->thin_floor * depth && area > 0;
+}
+
+/* One row of the remeasurement: its width (px, NaN unless both rims are resolved) and whether
+ * they are; the background level beside the thread (NaN without a dark pixel); and the deficit
+ * summed over the thread and a margin beyond both ends, `count` columns (see liquid._row_widths).
+ * `centre` and `guess` the row pass's centre (span columns) and half-width (px). */
+static void liquid_row(const float *d, int64_t w, double centre, double guess,
+                       const LiquidRules *rules, double *scratch, double *width,
+                       unsigned char *resolved, double *ground, double *sum, int64_t *count)
+{
+    int64_t m = rules->margin;
+    double reach = (isfinite(guess) ? guess : 0.0) + (double)(2 * m) + 3.0; /* liquid._reach */
+    double cen = isfinite(centre) ? centre : w / 2.0;
+    double lo_at = floor(cen - reach), hi_at = ceil(cen + reach);
+    int64_t lo = (int64_t)(lo_at < 0.0 ? 0.0 : (lo_at > w - 1 ? w - 1 : lo_at));
+    int64_t hi = (int64_t)(hi_at < 0.0 ? 0.0 : (hi_at > w - 1 ? w - 1 : hi_at));
+    float threshold = (float)rules->threshold; /* numpy compares the float32 deficit in float32 */
+    int64_t lj = lo, rj = hi;
+    while (lj <= hi && !(d[lj] > threshold)) lj++;
+    int has = lj <= hi;
+    if (has) {
+        while (!(d[rj] > threshold)) rj--;
+    } else {
+        lj = lo;
+    }
+    /* the sums of the deficit from the span's first column to l0, s0, e0, r1 (numpy's cumsum) */
+    int64_t s0 = lj - m > 0 ? lj - m : 0, e0 = rj + m + 1 < w ? rj + m + 1 : w;
+    int64_t l0 = s0 - rules->baseline > 0 ? s0 - rules->baseline : 0;
+    int64_t r1 = e0 + rules->baseline < w ? e0 + rules->baseline : w;
+    int64_t marks[4] = {l0, s0, e0, r1};
+    double cum[4], acc = 0.0;
+    for (int64_t q = 0, c = 0; q < 4; q++) {
+        for (; c < marks[q]; c++) acc += (double)d[c];
+        cum[q] = acc;
+    }
+    double left = s0 > l0 ? (cum[1] - cum[0]) / (double)(s0 - l0) : NAN;
+    double right = r1 > e0 ? (cum[3] - cum[2]) / (double)(r1 - e0) : NAN;
+    left = isfinite(left) ? left : right;
+    right = isfinite(right) ? right : left;
+    *ground = has ? 0.5 * (left + right) : NAN;
+    *sum = cum[2] - cum[1];
+    *count = e0 - s0;
+    *width = NAN;
+    *resolved = 0;
+    if (!has || rj - lj < 2 * rules->rim_run) return;
+    int64_t k_n = rules->core + 2 * m + 5;
+    double *values = scratch, *weight = scratch + k_n, *moment = scratch + 2 * k_n;
+    double left_at, right_at;
+    if (!rim_edge(d, w, lj, rj, +1, rules, values, weight, moment, &left_at)) return;
+    if (!rim_edge(d, w, rj, lj, -1, rules, values, weight, moment, &right_at)) return;
+    *width = right_at - left_at;
+    *resolved = 1;
+}
+
+/* The integrated deficit above the background of a frame's rows: the background level averaged,
+ * NaN ignored, over `size` rows around each (np.convolve "same" windows, summed in order). */
+static void liquid_totals(const double *ground, const double *sum, const int64_t *count, int64_t nr,
+                          int64_t size, double *totals)
+{
+    for (int64_t j = 0; j < nr; j++) {
+        int64_t a = j - size / 2, b = j + (size - 1) / 2;
+        double num = 0.0, den = 0.0;
+        for (int64_t i = a > 0 ? a : 0; i <= b && i < nr; i++)
+            if (isfinite(ground[i])) { num += ground[i]; den += 1.0; }
+        double mean = den > 0 ? num / den : 0.0; /* NaN counts as 0 */
+        mean = mean == INFINITY ? DBL_MAX : (mean == -INFINITY ? -DBL_MAX : mean);
+        totals[j] = sum[j] - mean * (double)count[j];
+    }
+}
+
+/* A frame's calibration of the mean deficit: the median (np.nanmedian) of total / width over the
+ * resolved rows `near` the neck with a positive width (NaN without any), and how many they are. */
+static void liquid_ratio(const double *widths, const unsigned char *resolved, const double *totals,
+                         const unsigned char *near, int64_t nr, double *scratch, double *ratio,
+                         int64_t *used)
+{
+    int64_t count = 0, m = 0;
+    for (int64_t j = 0; j < nr; j++) {
+        if (!(near[j] && resolved[j] && isfinite(widths[j]) && widths[j] > 0)) continue;
+        count++;
+        double q = totals[j] / widths[j];
+        if (!isnan(q)) scratch[m++] = q;
+    }
+    *used = count;
+    if (m == 0) { *ratio = NAN; return; }
+    qsort(scratch, m, sizeof(double), compare_double);
+    *ratio = (scratch[(m - 1) / 2] + scratch[m / 2]) / 2.0;
+}
+
+/* The minimum of a quadratic along the axis through the rows around the thinnest one, of each
+ * frame (liquid._neck_fit; sums in numpy's order). Rows: unresolved ones (`in_band`, not
+ * `resolved`) take total / calibrated[k]; widths not above 0 are dropped; across the axis:
+ * divided by stretch[k]. Diameter NaN where fewer than three rows; 0, or -1 when a row buffer
+ * cannot be allocated. */
+int liquid_necks(int64_t nf, int64_t nr, const double *widths, const unsigned char *resolved,
+                 const double *totals, const unsigned char *in_band, const double *calibrated,
+                 const double *stretch, double row_noise, int64_t max_half, int64_t min_half,
+                 double *diameter)
+{
+    double *across = malloc(nr * sizeof(double)), *smooth = malloc(nr * sizeof(double));
+    double *terms = malloc(7 * nr * sizeof(double));
+    unsigned char *ok = malloc(nr);
+    if (!across || !smooth || !terms || !ok) {
+        free(across); free(smooth); free(terms); free(ok);
+        return -1;
+    }
+    for (int64_t k = 0; k < nf; k++) {
+        int64_t o = k * nr;
+        for (int64_t j = 0; j < nr; j++) {
+            double v = in_band[o + j] && !resolved[o + j] ? totals[o + j] / calibrated[k] : widths[o + j];
+            across[j] = (v > 0 ? v : NAN) / stretch[k];
+            ok[j] = in_band[o + j] && isfinite(across[j]);
+        }
+        /* neck._smooth3: each valid row with its valid neighbours */
+        for (int64_t j = 0; j < nr; j++) {
+            if (!ok[j]) { smooth[j] = INFINITY; continue; }
+            double total = across[j], count = 1.0;
+            if (j > 0) { total += ok[j - 1] ? across[j - 1] : 0.0; count += ok[j - 1]; }
+            if (j + 1 < nr) { total += ok[j + 1] ? across[j + 1] : 0.0; count += ok[j + 1]; }
+            smooth[j] = total / count;
+        }
+        int64_t i_min = 0;
+        for (int64_t j = 1; j < nr; j++)
+            if (smooth[j] < smooth[i_min]) i_min = j;
+        double w_min = smooth[i_min], spread = 0.015 * w_min;
+        double level = w_min + (3.0 * row_noise > spread ? 3.0 * row_noise : spread);
+        int64_t before = -1, after = nr;
+        for (int64_t j = i_min - 1; j >= 0; j--)
+            if (!(smooth[j] <= level)) { before = j; break; }
+        for (int64_t j = i_min + 1; j < nr; j++)
+            if (!(smooth[j] <= level)) { after = j; break; }
+        int64_t lo = before + 1 > i_min - max_half ? before + 1 : i_min - max_half;
+        int64_t hi = after - 1 < i_min + max_half ? after - 1 : i_min + max_half;
+        int64_t mid = (lo + hi) / 2, half = (hi - lo + 1) / 2; /* 0 <= lo <= i_min <= hi */
+        half = half > min_half ? half : min_half;
+        /* neck.quadratic_fits over the rows mid ± half: the sums of x^p and x^p y, p = 0..2 */
+        double *x1 = terms, *x2 = terms + nr, *x3 = terms + 2 * nr, *x4 = terms + 3 * nr;
+        double *y0 = terms + 4 * nr, *y1 = terms + 5 * nr, *y2 = terms + 6 * nr;
+        int64_t count = 0;
+        double y_min = INFINITY, y_max = -INFINITY;
+        for (int64_t j = 0; j < nr; j++) {
+            int sel = ok[j] && mid - half <= j && j <= mid + half;
+            double x = sel ? (double)(j - i_min) : 0.0, y = sel ? across[j] : 0.0, xx = x * x;
+            x1[j] = x; x2[j] = xx; x3[j] = xx * x; x4[j] = xx * xx;
+            y0[j] = y; y1[j] = x * y; y2[j] = xx * y;
+            if (sel) {
+                count++;
+                y_min = x < y_min ? x : y_min;
+                y_max = x > y_max ? x : y_max;
+            }
+        }
+        double n = (double)count, s1 = pairwise_sum(x1, nr), s2 = pairwise_sum(x2, nr);
+        double s3 = pairwise_sum(x3, nr), s4 = pairwise_sum(x4, nr);
+        double t0 = pairwise_sum(y0, nr), t1 = pairwise_sum(y1, nr), t2 = pairwise_sum(y2, nr);
+        double det = s4 * (s2 * n - s1 * s1) - s3 * (s3 * n - s1 * s2) + s2 * (s3 * s1 - s2 * s2);
+        double scale = fabs(s4 * s2 * n) > 1e-300 ? fabs(s4 * s2 * n) : 1e-300;
+        int solvable = fabs(det) >= 1e-12 * scale;
+        det = solvable ? det : 1.0;
+        double a = (t2 * (s2 * n - s1 * s1) - s3 * (t1 * n - s1 * t0) + s2 * (t1 * s1 - s2 * t0)) / det;
+        double b = (s4 * (t1 * n - t0 * s1) - t2 * (s3 * n - s1 * s2) + s2 * (s3 * t0 - t1 * s2)) / det;
+        double c = (s4 * (s2 * t0 - s1 * t1) - s3 * (s3 * t0 - s2 * t1) + t2 * (s3 * s1 - s2 * s2)) / det;
+        solvable = solvable && count >= 5;
+        double d;
+        if (solvable) {
+            double vertex = a > 0 ? -b / (2.0 * a) : NAN;
+            if (isfinite(vertex) && y_min <= vertex && vertex <= y_max) {
+                d = c - b * b / (4.0 * a);
+            } else { /* no minimum inside the window: the fit's lowest point in it (NaN stays) */
+                double lo_end = a * y_min * y_min + b * y_min + c, hi_end = a * y_max * y_max + b * y_max + c;
+                d = isnan(lo_end) || isnan(c) ? NAN : (lo_end < c ? lo_end : c);
+                d = isnan(d) || isnan(hi_end) ? NAN : (hi_end < d ? hi_end : d);
+            }
+        } else {
+            d = t0 / n;
+        }
+        diameter[k] = count >= 3 ? d : NAN;
+    }
+    free(across); free(smooth); free(terms); free(ok);
+    return 0;
+}
+
+#define DEFINE_LIQUID(SUFFIX, PIXEL)                                                            \
+/* The remeasurement of a block's neck rows (see liquid._row_widths). bands[k] the band of frame \
+ * k (rows `stride` pixels apart), rows (frame, row) the band row of each neck row, whose       \
+ * deficit 1 - I / (backlight gains[k]) is read over columns first[k] .. first[k] + span - 1    \
+ * (backlight: band rows of w columns; pixels at saturation carry none); centre and guess       \
+ * (frame, row) as liquid_row takes them; `rules` as compiled.liquid_widths passes them; near   \
+ * (frame, row) the rows that calibrate. Outputs (frame, row): widths (px), resolved, totals    \
+ * (px of full shadow); per frame: the calibration ratio and the rows it used (liquid_ratio).   \
+ * Returns 0, or -1 when a buffer cannot be allocated. */                                      \
+int liquid_widths_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nf, int64_t w,     \
+                           const int64_t *rows, int64_t nr, const int64_t *first, int64_t span, \
+                           const double *centre, const double *guess, const float *backlight,  \
+                           const float *gains, double saturation, int64_t margin, int64_t core, \
+                           double threshold, double depth, double noise, const double *rules,  \
+                           const unsigned char *near, double *widths, unsigned char *resolved, \
+                           double *totals, double *ratios, int64_t *used)                      \
+{                                                                                               \
+    LiquidRules r = {margin, core, (int64_t)rules[1], (int64_t)rules[7], (int64_t)rules[8],     \
+                     threshold, depth, noise, rules[0], rules[2], rules[3], rules[4], rules[5], \
+                     rules[6]};                                                                 \
+    float *d = malloc(span * sizeof(float));                                                    \
+    double *scratch = malloc(3 * (core + 2 * margin + 5) * sizeof(double));                    \
+    double *ground = malloc(nr * sizeof(double)), *sum = malloc(nr * sizeof(double));           \
+    double *sorted = malloc(nr * sizeof(double));                                               \
+    int64_t *count = malloc(nr * sizeof(int64_t));                                              \
+    if (!d || !scratch || !ground || !sum || !sorted || !count) {                               \
+        free(d); free(scratch); free(ground); free(sum); free(sorted); free(count);             \
+        return -1;                                                                              \
+    }                                                                                           \
+    float sat = (float)saturation; /* numpy compares float32 pixels in float32 */              \
+    for (int64_t k = 0; k < nf; k++) {                                                          \
+        float g = gains[k];                                                                     \
+        for (int64_t j = 0; j < nr; j++) {                                                      \
+            int64_t o = k * nr + j, row = rows[o];                                              \
+            const PIXEL *px = bands[k] + row * stride + first[k];                               \
+            const float *light = backlight + row * w + first[k];                                \
+            for (int64_t c = 0; c < span; c++) {                                                \
+                float v = (float)px[c];                                                         \
+                d[c] = v >= sat ? 0.0f : 1.0f - v / (light[c] * g);                             \
+            }                                                                                   \
+            liquid_row(d, span, centre[o], guess[o], &r, scratch, widths + o, resolved + o,     \
+                       ground + j, sum + j, count + j);                                         \
+        }                                                                                       \
+        liquid_totals(ground, sum, count, nr, r.ground_rows, totals + k * nr);                  \
+        liquid_ratio(widths + k * nr, resolved + k * nr, totals + k * nr, near + k * nr, nr,    \
+                     sorted, ratios + k, used + k);                                             \
+    }                                                                                           \
+    free(d); free(scratch); free(ground); free(sum); free(sorted); free(count);                 \
+    return 0;                                                                                   \
+}
+
 DEFINE_KERNELS(u8, uint8_t)
 DEFINE_KERNELS(u16, uint16_t)
+DEFINE_LIQUID(u8, uint8_t)
+DEFINE_LIQUID(u16, uint16_t)
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_rowscan",
                                     "Compiled row pass of thinning.edges (used through ctypes).",

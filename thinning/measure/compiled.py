@@ -4,13 +4,16 @@
 analysed of each frame, axis along the rows: views into the decoded frames,
 or a transposed copy for a horizontal filament) to :func:`frame_gains` and
 :func:`scan_rows`, and :func:`thinning.measure.record.measure_recording` the resulting
-rows to :func:`necks`, when the compiled module ``thinning.measure._rowscan``
-(``thinning/measure/_rowscan.c``, built by ``setup.py`` when a C compiler is at hand)
-is installed. Without it the numpy path in :mod:`thinning.measure.rows`,
-:mod:`thinning.measure.profile` and :mod:`thinning.measure.neck` gives the same quantities, about two and a half times
-slower. The C functions are called through :mod:`ctypes`, which releases the
-GIL, so a block is measured while the decoding threads go on with the next
-frames.
+rows to :func:`necks`, and :func:`thinning.measure.liquid.remeasure_necks` the neck rows of
+each frame to :func:`liquid_widths` (their pixels read from the bands: widths against the
+liquid's own shadow, integrated deficits, the calibration of each frame) and
+:func:`liquid_necks` (the quadratic neck fit of those widths), when the compiled module
+``thinning.measure._rowscan`` (``thinning/measure/_rowscan.c``, built by ``setup.py`` when a
+C compiler is at hand) is installed. Without it the numpy path in :mod:`thinning.measure.rows`,
+:mod:`thinning.measure.profile`, :mod:`thinning.measure.neck` and :mod:`thinning.measure.liquid`
+gives the same quantities, a few times slower. The C functions are called through
+:mod:`ctypes`, which releases the GIL, so a block is measured while the decoding threads go
+on with the next frames.
 """
 
 from __future__ import annotations
@@ -40,8 +43,13 @@ def _load():
         scan = getattr(lib, f"scan_rows_{suffix}")
         scan.argtypes = [p, i, i, i, i, p, p, p, p, d, d, i, i, d, p, p, p, p, p, p, p, p]
         scan.restype = ctypes.c_int
+        liquid = getattr(lib, f"liquid_widths_{suffix}")
+        liquid.argtypes = [p, i, i, i, p, i, p, i, p, p, p, p, d, i, i, d, d, d] + [p] * 7
+        liquid.restype = ctypes.c_int
     lib.necks.argtypes = [i, i] + [p] * 7 + [d, p, p, i, d, d, d, d, d, d, i, i] + [p] * 10
     lib.necks.restype = ctypes.c_int
+    lib.liquid_necks.argtypes = [i, i] + [p] * 6 + [d, i, i, p]
+    lib.liquid_necks.restype = ctypes.c_int
     return lib
 
 
@@ -178,3 +186,62 @@ def necks(rows, fraction, *, layout_fraction, end_widths, face_px, axial0, band0
     for name in ("beads", "thread_connected", "filament_seen"):
         out[name] = out[name].view(bool)
     return out
+
+
+def liquid_widths(bands: Bands, rows, first, span, centre, guess, backlight, gains, saturation,
+                  margin, core, threshold, depth, noise, rules, near):
+    """The neck rows of a block measured against the liquid's own shadow, and each frame's
+    calibration: :func:`thinning.measure.liquid._row_widths` on the deficit of their pixels and
+    the calibration ratios of :func:`~thinning.measure.liquid.remeasure_necks`, in one compiled
+    pass (same arithmetic) that reads the pixels from the bands.
+
+    ``rows`` (frame, row) the band row of each neck row, read over the columns ``first`` (per
+    frame) to ``first + span − 1``; ``centre`` (those columns) and ``guess`` (frame, row) the
+    row pass's centre and half-width (px); ``backlight`` the layout's light field, ``gains``
+    the frames' flicker gains (pixels at ``saturation`` carry no deficit); ``margin``/``core``
+    px; ``threshold``, ``depth`` and ``noise`` fractions of the light; ``rules`` the numbers of
+    :mod:`thinning.measure.liquid` in the order of its ``COMPILED_RULES``; ``near`` (frame,
+    row) the rows that calibrate. Returns widths (px, NaN where unresolved), resolved (bool)
+    and the integrated deficits (px), (frame, row); the median ratio of deficit to width of
+    each frame's resolved ``near`` rows (NaN without any) and how many they are.
+    """
+    (n, w), nb, nr = bands.shape, len(bands), np.shape(rows)[1]
+    rows, centre, guess = (np.ascontiguousarray(a, dtype=t) for a, t in
+                           ((rows, np.int64), (centre, np.float64), (guess, np.float64)))
+    near = np.ascontiguousarray(near, dtype=np.uint8)
+    first = np.ascontiguousarray(first, dtype=np.int64)
+    gains = np.ascontiguousarray(gains, dtype=np.float32)
+    light = np.ascontiguousarray(backlight, dtype=np.float32)
+    rules = np.ascontiguousarray(rules, dtype=np.float64)
+    if (any(a.shape != (nb, nr) for a in (rows, centre, guess, near)) or first.shape != (nb,)
+            or gains.shape != (nb,) or light.shape != (n, w) or rules.shape != (9,)
+            or (nb and (rows.min() < 0 or rows.max() >= n or first.min() < 0 or first.max() + span > w))):
+        raise ValueError("the neck rows and their columns do not fit the bands")
+    widths, resolved, totals = np.empty((nb, nr)), np.zeros((nb, nr), np.uint8), np.empty((nb, nr))
+    ratios, used = np.empty(nb), np.empty(nb, np.int64)
+    _check(getattr(_lib, f"liquid_widths_{_suffix(bands.dtype)}")(
+        bands.pointers, bands.stride, nb, w, rows.ctypes.data, nr, first.ctypes.data, span,
+        centre.ctypes.data, guess.ctypes.data, light.ctypes.data, gains.ctypes.data, saturation,
+        margin, core, threshold, depth, noise, rules.ctypes.data, near.ctypes.data,
+        widths.ctypes.data, resolved.ctypes.data, totals.ctypes.data, ratios.ctypes.data,
+        used.ctypes.data))
+    return widths, resolved.view(bool), totals, ratios, used
+
+
+def liquid_necks(widths, resolved, totals, in_band, calibrated, stretch, row_noise, max_half,
+                 min_half):
+    """The diameter of each frame from the remeasured rows (:func:`liquid_widths`): the rows
+    ``in_band`` and not ``resolved`` take ``totals / calibrated``, the widths are divided by
+    ``stretch`` (1 / cosine of the axis' tilt) and :func:`thinning.measure.liquid._neck_fit`
+    (same arithmetic) takes their minimum; NaN where fewer than three rows.
+    """
+    nb, nr = np.shape(widths)
+    rows = [np.ascontiguousarray(a, dtype=t) for a, t in
+            ((widths, np.float64), (resolved, np.uint8), (totals, np.float64), (in_band, np.uint8))]
+    frames = [np.ascontiguousarray(a, dtype=np.float64) for a in (calibrated, stretch)]
+    if any(a.shape != (nb, nr) for a in rows) or any(a.shape != (nb,) for a in frames):
+        raise ValueError("the rows and frames of a block differ in shape")
+    diameter = np.empty(nb)
+    _check(_lib.liquid_necks(nb, nr, *(a.ctypes.data for a in rows + frames), row_noise, max_half,
+                             min_half, diameter.ctypes.data))
+    return diameter

@@ -26,6 +26,13 @@ are measured again here from their own pixels:
 
 The diameter of the frame is then the minimum of a quadratic fitted along
 the axis to those widths across the axis, as in :mod:`thinning.measure.neck`.
+
+The rows' widths, integrated deficits and each frame's calibration ratio, and the
+neck fit, are compiled (:func:`thinning.measure.compiled.liquid_widths` reading the
+pixels from the bands, :func:`~thinning.measure.compiled.liquid_necks`) where the
+install built the module; the numpy path here (:func:`_row_widths`, :func:`_neck_fit`)
+gives the same numbers otherwise. The running calibration (:class:`LiquidShadow`) stays
+in Python.
 """
 
 from __future__ import annotations
@@ -37,6 +44,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from . import compiled
 from .neck import MAX_HALF_WINDOW, MIN_HALF_WINDOW, _smooth3, quadratic_fits
 from .rows import CLIPPED_EDGE_LIMIT, TRACE_LEVEL
 
@@ -71,6 +79,10 @@ GROUND_ROWS = 7
 WINDOW_GUARD_ROWS = 8
 #: Fewest resolved rows in a frame for its calibration to count.
 MIN_CALIBRATION_ROWS = 3
+#: The rules above in the order the compiled remeasurement takes them (``liquid_widths`` in
+#: thinning/measure/_rowscan.c).
+COMPILED_RULES = (RIM_DEPTH, RIM_RUN_PX, RIM_PLATEAU, THIN_RIM_PEAK, THIN_RIM_DIP, THIN_RIM_FLOOR,
+                  FRESNEL_FIRST_MAXIMUM, BASELINE_PX, GROUND_ROWS)
 
 
 @dataclass
@@ -135,39 +147,41 @@ def remeasure_necks(bands, layout, rows, record, shadow: LiquidShadow, *, row_no
     last = np.clip(np.ceil((cen + reach).max(axis=1)) + pad, 0, width - 1).astype(np.int64)
     span = int(min(width, (last - first).max() + 1))
     first = np.minimum(first, width - span)
-    cols = first[:, None] + np.arange(span)[None, :]
-    pixels = np.stack([np.asarray(bands[b])[:, first[k]:first[k] + span][r_idx[k]]
-                       for k, b in enumerate(todo)]).astype(np.float32)
-    light = layout.light.backlight[r_idx[:, :, None], cols[:, None, :]]
-    saturated = pixels >= layout.saturation
-    gain = rows.gain[todo].astype(np.float32)[:, None, None]
-    deficit = 1.0 - pixels / (light * gain)
-    deficit[saturated] = 0.0
-    widths, resolved, totals = _row_widths(deficit, centre - first[:, None], guess, layout)
     # the calibration, frame by frame in order (on the rows near the neck), then the widths of
     # the unresolved rows
-    near = np.abs(offsets)[None, :] <= np.clip(record["fit_rows"][todo] // 2 + 1, MIN_HALF_WINDOW,
-                                               MAX_HALF_WINDOW)[:, None]
-    use = in_band & near & resolved & np.isfinite(widths) & (widths > 0)
-    with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
-        warnings.simplefilter("ignore", RuntimeWarning)  # frames without such rows: NaN
-        ratios = np.nanmedian(np.where(use, totals / widths, np.nan), axis=1)
+    near = in_band & (np.abs(offsets)[None, :] <= np.clip(record["fit_rows"][todo] // 2 + 1,
+                                                          MIN_HALF_WINDOW, MAX_HALF_WINDOW)[:, None])
+    widths, resolved, totals, ratios, used = _liquid_rows(
+        [bands[b] for b in todo], r_idx, first, span, centre - first[:, None], guess, rows.gain[todo],
+        near, layout)
     calibrated = np.empty(todo.size)
-    for k, ok in enumerate(use.sum(axis=1) >= MIN_CALIBRATION_ROWS):
+    value = shadow.value()
+    for k, ok in enumerate(used >= MIN_CALIBRATION_ROWS):
         if ok:
             shadow.update(float(ratios[k]))
-        calibrated[k] = shadow.value()
-    unresolved = in_band & ~resolved
-    widths = np.where(unresolved, totals / calibrated[:, None], widths)
-    widths[~(widths > 0)] = np.nan
+            value = shadow.value()
+        calibrated[k] = value
     slope = np.tan(np.radians(record["axis_angle_deg"][todo]))
-    across = widths / np.sqrt(1.0 + slope * slope)[:, None]
-    new = _neck_fit(across, in_band & np.isfinite(across), offsets, row_noise_px)
+    new = _liquid_necks(widths, resolved, totals, in_band, calibrated, np.sqrt(1.0 + slope * slope),
+                        row_noise_px)
     good = np.isfinite(new)
     diameter[todo[good]] = new[good]
 
 
-def _neck_fit(across, ok, offsets, row_noise_px):
+def _liquid_necks(widths, resolved, totals, in_band, calibrated, stretch, row_noise_px):
+    """The diameter (px) of each frame from its rows: those ``in_band`` whose rims were not
+    ``resolved`` take D = ∫d / f (``totals / calibrated``), widths across the axis (divided by
+    ``stretch``, 1 / cosine of its tilt) go to :func:`_neck_fit`; compiled where installed."""
+    if compiled.COMPILED:
+        return compiled.liquid_necks(widths, resolved, totals, in_band, calibrated, stretch,
+                                     row_noise_px, MAX_HALF_WINDOW, MIN_HALF_WINDOW)
+    widths = np.where(in_band & ~resolved, totals / calibrated[:, None], widths)
+    widths[~(widths > 0)] = np.nan
+    across = widths / stretch[:, None]
+    return _neck_fit(across, in_band & np.isfinite(across), row_noise_px)
+
+
+def _neck_fit(across, ok, row_noise_px):
     """The minimum of a quadratic along the axis through the rows around the thinnest one.
 
     The rows: contiguous around the thinnest (smoothed over three rows), whose
@@ -206,6 +220,43 @@ def _neck_fit(across, ok, offsets, row_noise_px):
     return np.where(count >= 3, diameter, np.nan)
 
 
+def _liquid_rows(bands, r_idx, first, span, centre, guess, gains, near, layout):
+    """:func:`_row_widths` of the rows ``r_idx`` (frame, row) of ``bands`` (one per frame) over
+    columns ``first`` … ``first + span − 1`` (``centre`` in those columns), and each frame's
+    calibration of the mean deficit: the median of ∫d / D over its resolved rows ``near`` the
+    neck (NaN without any) and how many they are. Compiled
+    (:func:`thinning.measure.compiled.liquid_widths`, pixels read from the bands) where
+    installed, else in numpy on the gathered deficit.
+    """
+    gains = np.asarray(gains).astype(np.float32)
+    if compiled.COMPILED:
+        return compiled.liquid_widths(compiled.Bands(bands), r_idx, first, span, centre, guess,
+                                      layout.light.backlight, gains, float(layout.saturation),
+                                      layout.margin_px, layout.core_px, *_levels(layout),
+                                      COMPILED_RULES, near)
+    # d = 1 − I / B, B the light field times the frame's gain (none at the sensor's saturation)
+    pixels = np.stack([np.asarray(band)[:, a:a + span][r]
+                       for band, a, r in zip(bands, first, r_idx)]).astype(np.float32)
+    cols = first[:, None] + np.arange(span)[None, :]
+    light = layout.light.backlight[r_idx[:, :, None], cols[:, None, :]]
+    deficit = 1.0 - pixels / (light * gains[:, None, None])
+    deficit[pixels >= layout.saturation] = 0.0
+    widths, resolved, totals = _row_widths(deficit, centre, guess, layout)
+    use = near & resolved & np.isfinite(widths) & (widths > 0)
+    with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
+        warnings.simplefilter("ignore", RuntimeWarning)  # frames without such rows: NaN
+        ratios = np.nanmedian(np.where(use, totals / widths, np.nan), axis=1)
+    return widths, resolved, totals, ratios, use.sum(axis=1)
+
+
+def _levels(layout):
+    """The detection threshold of a dark pixel, the liquid's own depth and the pixel noise, as
+    fractions of the light (Python floats: the float32 deficit is compared in float32)."""
+    depth = float(1.0 - (layout.liquid_fraction if layout.liquid_fraction is not None
+                         else layout.shadow_fraction))
+    return float(layout.detection_level(TRACE_LEVEL) * depth), depth, float(layout.noise) * depth
+
+
 def _reach(guess, margin):
     """How far (px) from a row's centre its integration window reaches, for half-width ``guess``."""
     return np.where(np.isfinite(guess), guess, 0.0) + 2 * margin + 3
@@ -227,8 +278,7 @@ def _row_widths(deficit, centre, guess, layout):
     lo = np.clip(np.floor(cen - reach), 0, w - 1).astype(np.int64)
     hi = np.clip(np.ceil(cen + reach), 0, w - 1).astype(np.int64)
     within = (cols[None, None, :] >= lo[:, :, None]) & (cols[None, None, :] <= hi[:, :, None])
-    depth = 1.0 - (layout.liquid_fraction if layout.liquid_fraction is not None else layout.shadow_fraction)
-    threshold = layout.detection_level(TRACE_LEVEL) * depth
+    threshold, depth, noise = _levels(layout)
     dark = within & (deficit > threshold)
     has = dark.any(axis=2)
     lj = np.where(has, np.argmax(dark, axis=2), lo)
@@ -253,7 +303,6 @@ def _row_widths(deficit, centre, guess, layout):
     right_ground = np.where(np.isfinite(right_ground), right_ground, left_ground)
     ground = _along_axis_mean(np.where(has, 0.5 * (left_ground + right_ground), np.nan), GROUND_ROWS)
     total = span_sum(s0, e0) - np.nan_to_num(ground) * (e0 - s0)
-    noise = float(layout.noise) * depth
     left, left_ok = _rim_edge(deficit, lj, rj, m, core, inward=+1, depth=depth, noise=noise)
     right, right_ok = _rim_edge(deficit, rj, lj, m, core, inward=-1, depth=depth, noise=noise)
     resolved = has & left_ok & right_ok & (rj - lj >= 2 * RIM_RUN_PX)
