@@ -23,7 +23,9 @@ name = "open-ended"
 relaxation_time_s = [nan, 0.012]
 """
 
-SPEC = qc.Spec(name="ink", relaxation_time_s=(0.008, 0.012), replicates=3, max_cv=0.10)
+SPEC = qc.Spec(name="ink", relaxation_time_s=(0.008, 0.012), replicates=3, max_cv=0.10,
+               decision_rule="simple")
+GUARDED = qc.Spec(name="ink", relaxation_time_s=(0.008, 0.012), replicates=3, max_cv=0.10)
 
 
 def rep(label, lam, *, status="ok", quality="good", reason=None, **values):
@@ -84,7 +86,8 @@ def test_lot_statistics_match_independent_formulas():
 def test_limits_are_inclusive_and_nan_is_an_open_end():
     at_edges = qc.lot_verdict(SPEC, [rep("a", 0.008), rep("b", 0.008), rep("c", 0.008)])
     assert at_edges.verdict == "pass"
-    open_low = qc.Spec(name="o", relaxation_time_s=(math.nan, 0.012), replicates=1)
+    open_low = qc.Spec(name="o", relaxation_time_s=(math.nan, 0.012), replicates=1,
+                       decision_rule="simple")
     assert qc.lot_verdict(open_low, [rep("a", 1e-6)]).verdict == "pass"
     assert qc.lot_verdict(open_low, [rep("a", 0.0121)]).verdict == "fail"
 
@@ -118,13 +121,53 @@ def test_review_reasons(reps, expected):
 
 
 def test_every_limited_quantity_counts():
-    spec = qc.Spec(name="x", relaxation_time_s=(0.008, 0.012), filament_lifetime_s=(0.05, 0.20), replicates=2)
+    spec = qc.Spec(name="x", relaxation_time_s=(0.008, 0.012), filament_lifetime_s=(0.05, 0.20), replicates=2,
+                   decision_rule="simple")
     missing = qc.lot_verdict(spec, [rep("a", 0.01, filament_lifetime_s=0.1), rep("b", 0.01)])
     assert missing.verdict == "review" and missing.n_valid == 1
     assert any("replicate b is not valid: no filament lifetime" in r for r in missing.reasons)
     long = qc.lot_verdict(spec, [rep("a", 0.01, filament_lifetime_s=0.3), rep("b", 0.01, filament_lifetime_s=0.25)])
     assert long.verdict == "fail"
     assert long.stats["filament_lifetime_s"].mean == pytest.approx(0.275)
+
+
+def test_guard_band_reviews_a_lot_whose_interval_straddles_a_limit_that_the_simple_rule_passes():
+    # mean 0.0113 s inside [0.008, 0.012]; t-interval (2 dof, t = 4.303): 0.0113 ± 0.00123 s
+    reps = [rep("a", 0.0105), rep("b", 0.0113), rep("c", 0.0121 - 0.0000)]
+    lam = qc.quantity_stats([0.0105, 0.0113, 0.0121])
+    assert lam.ci95[0] < 0.012 < lam.ci95[1]
+    simple = qc.lot_verdict(SPEC, [rep("a", 0.0105), rep("b", 0.0113), rep("c", 0.0119)])
+    assert simple.verdict == "pass"
+    guarded = qc.lot_verdict(GUARDED, [rep("a", 0.0105), rep("b", 0.0113), rep("c", 0.0119)])
+    assert guarded.verdict == "review"
+    assert any("straddles the maximum 0.012 s" in r for r in guarded.reasons), guarded.reasons
+    assert qc.lot_verdict(GUARDED, reps).verdict == "review"
+
+
+def test_guard_band_fails_only_an_interval_wholly_outside_and_passes_one_wholly_inside():
+    out = qc.lot_verdict(GUARDED, [rep("a", 0.0130), rep("b", 0.0131), rep("c", 0.0132)])
+    assert out.verdict == "fail"
+    assert any("wholly above the maximum 0.012 s" in r for r in out.reasons), out.reasons
+    inside = qc.lot_verdict(GUARDED, [rep("a", 0.0099), rep("b", 0.0100), rep("c", 0.0101)])
+    assert inside.verdict == "pass" and inside.reasons == ()
+    # a mean outside whose interval still reaches inside: review, not fail
+    near = qc.lot_verdict(GUARDED, [rep("a", 0.0115), rep("b", 0.0125), rep("c", 0.0130)])
+    assert near.stats["relaxation_time_s"].mean > 0.012 and near.verdict == "review"
+
+
+def test_guard_band_cannot_judge_a_single_replicate():
+    one = qc.Spec(name="o", relaxation_time_s=(0.008, 0.012), replicates=1)
+    verdict = qc.lot_verdict(one, [rep("a", 0.010)])
+    assert verdict.verdict == "review"
+    assert any("single valid replicate gives no 95 % interval" in r for r in verdict.reasons)
+
+
+def test_decision_rule_is_read_from_the_specification_and_checked():
+    text = SPEC_TOML.replace('name = "open-ended"', 'name = "open-ended"\ndecision_rule = "simple"')
+    ink, open_ended = qc.parse_specs(text)
+    assert ink.decision_rule == "guard-band" and open_ended.decision_rule == "simple"
+    with pytest.raises(qc.SpecError, match="decision_rule must be one of"):
+        qc.parse_specs(SPEC_TOML.replace('max_cv = 0.10', 'max_cv = 0.10\ndecision_rule = "lenient"'))
 
 
 def test_no_specification_means_review():

@@ -27,7 +27,7 @@ CONTRACT_EXPORT = ["product", "lot", "sample", "replicate", "status", "quality",
                    "analysed_at", "tool_version",
                    "warning_codes"]  # contract version 2: the findings' codes
 CONTRACT_LOTS = ["product", "lot", "made_on", "n_valid", "relaxation_time_mean_s", "relaxation_time_sd_s",
-                 "relaxation_time_cv", "verdict", "reasons", "chart_flags"]
+                 "relaxation_time_cv", "verdict", "reasons", "chart_flags", "decision_rule"]
 
 SPECS = """
 [[product]]
@@ -210,7 +210,10 @@ def test_lots_csv_has_the_contract_columns_and_verdicts(db_url, tmp_path):
     assert by_lot["A1"]["verdict"] == "pass" and by_lot["A1"]["reasons"] == ""
     assert float(by_lot["A1"]["relaxation_time_mean_s"]) == pytest.approx(0.010)
     assert by_lot["A2"]["verdict"] == "fail" and "above the maximum" in by_lot["A2"]["reasons"]
-    assert by_lot["B1"]["verdict"] == "review" and by_lot["B1"]["reasons"] == "1 valid replicate of 2 required"
+    assert by_lot["B1"]["verdict"] == "review" and by_lot["B1"]["reasons"] == (
+        "lot mean relaxation time 0.005 s lies inside the limits, but a single valid replicate gives no "
+        "95 % interval to judge it by; 1 valid replicate of 2 required")
+    assert {r["decision_rule"] for r in table} == {"guard-band"}
     assert by_lot["B1"]["relaxation_time_sd_s"] == "" and by_lot["B1"]["n_valid"] == "1"
     only_b = run(["lots", "--csv", "--product", "ink-B"], db_url)
     assert len(only_b.output.strip().splitlines()) == 2
@@ -405,3 +408,40 @@ def test_show_says_why_a_replicate_is_not_valid_with_the_codes(db_url, tmp_path)
     with open(tmp_path / "all.csv", newline="") as handle:
         codes = [r["warning_codes"] for r in csv.DictReader(handle)]
     assert codes == ["", "few-frames-in-window"]
+
+
+def test_a_database_of_schema_version_1_keeps_its_verdicts_until_the_specifications_are_reloaded(tmp_path):
+    # a lot whose mean (11.73 ms) lies inside [8, 12] ms but whose t-interval reaches 12.25 ms:
+    # `pass` under the simple rule that judged it before decision rules existed, `review` under
+    # the guard-band rule a reloaded specification brings
+    db_url = f"sqlite:///{tmp_path / 'old.db'}"
+    write_batch(tmp_path / "b", lot_rows("ink-A", "A1", [0.0115, 0.0118, 0.0119]))
+    with rec.open_records(db_url) as store:
+        store.load_specs(_specs(tmp_path))
+        store.load_batch(tmp_path / "b")
+    engine = create_engine(db_url)
+    with engine.begin() as conn:  # back to version 1: no decision_rule column, no version 2
+        conn.exec_driver_sql("ALTER TABLE products DROP COLUMN decision_rule")
+        conn.exec_driver_sql("UPDATE schema_version SET version = 1")
+        conn.exec_driver_sql("DROP TABLE verdict_changes")
+    engine.dispose()
+    with rec.open_records(db_url) as store:
+        (lot,) = store.lots()
+        assert lot.verdict.verdict == "pass" and lot.verdict.decision_rule == "simple"
+    result = run(["load-specs", str(_specs(tmp_path))], db_url)
+    assert result.exit_code == 0, result.output
+    assert "re-evaluated: ink-A lot A1: pass → review (decision rule simple → guard-band)" in result.output
+    with rec.open_records(db_url) as store:
+        (lot,) = store.lots()
+        assert lot.verdict.verdict == "review" and lot.verdict.decision_rule == "guard-band"
+        (change,) = store.lot_detail("A1").verdict_changes
+        assert (change["old_verdict"], change["new_verdict"], change["cause"]) == (
+            "pass", "review", "specification loaded")
+    assert count(db_url, rec.schema_version) == 2
+    shown = run(["show", "A1"], db_url)
+    assert "re-evaluated" in shown.output and "pass → review" in shown.output
+    # loading the same specifications again changes nothing and records nothing
+    again = run(["load-specs", str(_specs(tmp_path))], db_url)
+    assert "re-evaluated" not in again.output
+    with rec.open_records(db_url) as store:
+        assert len(store.lot_detail("A1").verdict_changes) == 1

@@ -142,14 +142,15 @@ def lots_command(db_url, product, as_csv):
 
     table = Table(show_lines=False)
     for header in ("product", "lot", "made on", "valid", "λ mean (ms)", "λ sd (ms)", "CV", "verdict",
-                   "reasons", "chart flags"):
+                   "rule", "reasons", "chart flags"):
         table.add_column(header, overflow="fold")
     for row in rows:
         cv = "—" if row["relaxation_time_cv"] is None else f"{row['relaxation_time_cv']:.3f}"
         table.add_row(row["product"], row["lot"], row["made_on"] or "—", str(row["n_valid"]),
                       _ms(row["relaxation_time_mean_s"]), _ms(row["relaxation_time_sd_s"], 3), cv,
                       f"[{_VERDICT_STYLE[row['verdict']]}]{row['verdict']}[/]",
-                      row["reasons"].replace("; ", "\n") or "—", row["chart_flags"].replace("; ", "\n") or "—")
+                      row["decision_rule"] or "—", row["reasons"].replace("; ", "\n") or "—",
+                      row["chart_flags"].replace("; ", "\n") or "—")
     _console().print(table)
 
 
@@ -183,10 +184,15 @@ def show_command(lot, db_url, product, as_csv, history):
     console = _console()
     console.print(f"[bold]{escape(summary.product)}[/] lot [bold]{escape(summary.lot)}[/]  made on "
                   f"{summary.made_on or '—'}  first analysed {summary.first_analysed_at}")
+    rule = f", decision rule {verdict.decision_rule}" if verdict.decision_rule else ""
     console.print(f"verdict: [{_VERDICT_STYLE[verdict.verdict]}]{verdict.verdict}[/]  "
-                  f"({verdict.n_valid} valid of {verdict.n_replicates} replicates)")
+                  f"({verdict.n_valid} valid of {verdict.n_replicates} replicates{rule})")
     for reason in verdict.reasons:
         console.print(f"  - {escape(reason)}")
+    for c in detail.verdict_changes:
+        console.print(f"  re-evaluated {c['changed_at']} ({escape(c['cause'])}): {c['old_verdict']} → "
+                      f"{c['new_verdict']}, decision rule {c['old_decision_rule'] or 'simple'} → "
+                      f"{c['new_decision_rule'] or 'simple'}")
     if summary.chart_flags:
         console.print("chart flags: " + ", ".join(summary.chart_flags))
     if lam.mean is not None:
@@ -258,10 +264,16 @@ def load_specs_command(specs_file, db_url):
     \b
       thinning records load-specs specs.toml --db sqlite:///records.db
     """
+    changes: list[dict] = []
     with _open(db_url) as store:
-        specs = store.load_specs(specs_file)
+        specs = store.load_specs(specs_file, changes=changes)
     click.echo(f"loaded the specifications of {len(specs)} product{'s' if len(specs) != 1 else ''}: "
                + ", ".join(s.name for s in specs))
+    for c in changes:  # recorded in the database too: no verdict already shown changes silently
+        rule = ("" if c["old_decision_rule"] == c["new_decision_rule"] else
+                f" (decision rule {c['old_decision_rule'] or 'simple'} → {c['new_decision_rule']})")
+        click.echo(f"re-evaluated: {c['product']} lot {c['lot']}: {c['old_verdict']} → "
+                   f"{c['new_verdict']}{rule}")
 
 
 @records.command("load")

@@ -14,6 +14,15 @@ The rules are those of the contract (``docs/contract.md``, "Verdicts"):
   Otherwise ``pass``. Every ``fail`` and ``review`` lists all its reasons.
 * A lot of a product without a specification is ``review`` ("no
   specification").
+* The **decision rule** of a specification (``decision_rule``) says how a lot
+  mean meets a limit. ``"simple"``: the mean itself, as above. ``"guard-band"``
+  (the default): the mean's 95 % interval, the Student-t interval of the valid
+  replicates' values (n − 1 degrees of freedom), following the guard-band
+  practice for conformity decisions (ISO 14253-1; JCGM 106:2012, "Evaluation of
+  measurement data — The role of measurement uncertainty in conformity
+  assessment"): ``fail`` when the interval lies wholly outside a limit,
+  ``review`` when it straddles one (or when a single valid replicate gives no
+  interval), the other ``review`` reasons as above.
 
 Control charts (:func:`control_chart`) are individuals (X) and moving-range
 (MR) charts of the lot means of λ, one product at a time, in production order.
@@ -44,6 +53,9 @@ LIMITED_QUANTITIES = {
 }
 
 VERDICTS = ("pass", "review", "fail")
+
+#: decision rules a specification may name; the first is the default
+DECISION_RULES = ("guard-band", "simple")
 
 #: lots before this one needed for control limits (contract: at least 5)
 MIN_BASELINE_LOTS = 5
@@ -89,6 +101,7 @@ class Spec:
     extensional_viscosity_max_Pa_s: tuple[float, float] | None = None
     replicates: int = 3
     max_cv: float = 0.10
+    decision_rule: str = DECISION_RULES[0]
 
     @property
     def limits(self) -> dict[str, tuple[float, float]]:
@@ -114,7 +127,7 @@ def spec_from_mapping(entry: Mapping) -> Spec:
     name = entry.get("name")
     if not isinstance(name, str) or not name.strip():
         raise SpecError("every [[product]] needs a name (text).")
-    known = {"name", "replicates", "max_cv", *LIMITED_QUANTITIES}
+    known = {"name", "replicates", "max_cv", "decision_rule", *LIMITED_QUANTITIES}
     unknown = sorted(set(entry) - known)
     if unknown:
         raise SpecError(f"product {name!r}: unknown key {unknown[0]!r} (known: {', '.join(sorted(known))}).")
@@ -127,8 +140,12 @@ def spec_from_mapping(entry: Mapping) -> Spec:
     if not isinstance(max_cv, (int, float)) or isinstance(max_cv, bool) or not max_cv > 0 \
             or math.isinf(max_cv):
         raise SpecError(f"product {name!r}: max_cv must be a positive number such as 0.10.")
+    rule = entry.get("decision_rule", DECISION_RULES[0])
+    if rule not in DECISION_RULES:
+        raise SpecError(f"product {name!r}: decision_rule must be one of "
+                        f"{', '.join(repr(r) for r in DECISION_RULES)}, not {rule!r}.")
     limits = {key: _limit(name, key, entry[key]) for key in LIMITED_QUANTITIES if key in entry}
-    return Spec(name=name, replicates=replicates, max_cv=float(max_cv), **limits)
+    return Spec(name=name, replicates=replicates, max_cv=float(max_cv), decision_rule=rule, **limits)
 
 
 def parse_specs(text: str) -> list[Spec]:
@@ -193,6 +210,8 @@ class LotVerdict:
     stats: Mapping[str, QuantityStats] = field(default_factory=dict)
     #: per replicate, why it is not valid (None for a valid one)
     invalid_reasons: tuple[str | None, ...] = ()
+    #: the specification's decision rule (None without a specification)
+    decision_rule: str | None = None
 
 
 def quantity_stats(values: Sequence[float]) -> QuantityStats:
@@ -237,6 +256,44 @@ def _clean(text: str) -> str:
     return " ".join(str(text).replace(";", ",").split())
 
 
+def _simple_judgement(key, st: QuantityStats, limits) -> list[str]:
+    """The simple rule: the lot mean itself against the limits (fail reasons)."""
+    name, unit = LIMITED_QUANTITIES[key]
+    where = _outside(st.mean, limits) if st.mean is not None else None
+    return [f"lot mean {name} {st.mean:.4g} {unit} is {where} {unit}"] if where else []
+
+
+def _guard_band_judgement(key, st: QuantityStats, limits) -> tuple[list[str], list[str]]:
+    """The guard-band rule: the lot mean's 95 % interval against the limits (fail and review
+    reasons). A limit inside the interval is straddled: the lot may lie on either side."""
+    name, unit = LIMITED_QUANTITIES[key]
+    if st.mean is None:
+        return [], []
+    if st.ci95 is None:  # a single valid replicate
+        where = _outside(st.mean, limits)
+        state = f"is {where} {unit}" if where else "lies inside the limits"
+        return [], [f"lot mean {name} {st.mean:.4g} {unit} {state}, but a single valid replicate "
+                    "gives no 95 % interval to judge it by"]
+    low, high = st.ci95
+    lo_limit, hi_limit = limits
+    interval = f"{low:.4g}–{high:.4g} {unit}"
+    if not math.isnan(lo_limit) and high < lo_limit:
+        return [f"lot mean {name} {st.mean:.4g} {unit} (95 % interval {interval}) is wholly below the "
+                f"minimum {lo_limit:.4g} {unit}"], []
+    if not math.isnan(hi_limit) and low > hi_limit:
+        return [f"lot mean {name} {st.mean:.4g} {unit} (95 % interval {interval}) is wholly above the "
+                f"maximum {hi_limit:.4g} {unit}"], []
+    straddled = []
+    if not math.isnan(lo_limit) and low < lo_limit:
+        straddled.append(f"the minimum {lo_limit:.4g}")
+    if not math.isnan(hi_limit) and high > hi_limit:
+        straddled.append(f"the maximum {hi_limit:.4g}")
+    if straddled:
+        return [], [f"the 95 % interval of the lot mean {name} ({interval}) straddles "
+                    f"{' and '.join(straddled)} {unit}"]
+    return [], []
+
+
 def lot_verdict(spec: Spec | None, replicates: Sequence[Replicate], *, product: str = "") -> LotVerdict:
     """The verdict of one lot from its replicates (contract "Verdicts").
 
@@ -256,11 +313,12 @@ def lot_verdict(spec: Spec | None, replicates: Sequence[Replicate], *, product: 
         reviews.append(f"no specification loaded for product {product!r}")
     else:
         for key, limits in spec.limits.items():
-            name, unit = LIMITED_QUANTITIES[key]
-            mean = lot_stats[key].mean
-            where = _outside(mean, limits) if mean is not None else None
-            if where:
-                fails.append(f"lot mean {name} {mean:.4g} {unit} is {where} {unit}")
+            if spec.decision_rule == "simple":
+                fails += _simple_judgement(key, lot_stats[key], limits)
+            else:
+                failed, reviewed = _guard_band_judgement(key, lot_stats[key], limits)
+                fails += failed
+                reviews += reviewed
         if len(good) < spec.replicates:
             reviews.append(f"{len(good)} valid replicate{'s' if len(good) != 1 else ''} "
                            f"of {spec.replicates} required")
@@ -281,7 +339,8 @@ def lot_verdict(spec: Spec | None, replicates: Sequence[Replicate], *, product: 
     verdict = "fail" if fails else ("review" if reviews else "pass")
     return LotVerdict(verdict=verdict, reasons=tuple(_clean(r) for r in fails + reviews),
                       n_replicates=len(replicates), n_valid=len(good), valid=valid, stats=lot_stats,
-                      invalid_reasons=tuple(invalid))
+                      invalid_reasons=tuple(invalid),
+                      decision_rule=None if spec is None else spec.decision_rule)
 
 
 @dataclass(frozen=True)
@@ -422,7 +481,7 @@ class LotSummary:
                 "n_valid": self.verdict.n_valid, "relaxation_time_mean_s": lam.mean,
                 "relaxation_time_sd_s": lam.sd, "relaxation_time_cv": lam.cv,
                 "verdict": self.verdict.verdict, "reasons": "; ".join(self.verdict.reasons),
-                "chart_flags": "; ".join(self.chart_flags)}
+                "chart_flags": "; ".join(self.chart_flags), "decision_rule": self.verdict.decision_rule}
 
 
 def natural_key(value: str):

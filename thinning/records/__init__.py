@@ -9,7 +9,9 @@ Tables (schema version :data:`SCHEMA_VERSION`, kept in ``schema_version``):
 ``products``
     one row per product name; its specification (``<quantity>_min`` /
     ``_max`` in SI, NULL for an open end, ``<quantity>_limited``,
-    ``replicates``, ``max_cv``) once a specifications file was loaded.
+    ``replicates``, ``max_cv``, ``decision_rule``: NULL for one stored before
+    schema version 2, judged by the simple rule) once a specifications file
+    was loaded.
 ``lots``
     (product, lot id) with ``made_on`` (ISO date) and ``first_analysed_at``.
 ``samples``
@@ -25,6 +27,9 @@ Tables (schema version :data:`SCHEMA_VERSION`, kept in ``schema_version``):
 ``curves``
     a copy of each measurement's diameter curve (``time_s``,
     ``diameter_m`` as little-endian float64 bytes, NaN where no filament).
+``verdict_changes``
+    each lot whose verdict a reloaded specification changed: old and new
+    verdict and decision rule, cause, ``changed_at`` (version 2).
 ``failures``
     rows of a batch that failed (not measurements): the reason, so that the
     verdict can count the replicate as invalid. A failure counts only while

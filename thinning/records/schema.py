@@ -10,7 +10,9 @@ from sqlalchemy import (Boolean, Column, Double, ForeignKey, Index, Integer, Lar
 
 from .. import qc
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+#: What each version added (:meth:`thinning.records.Records` migrates older databases in place).
+SCHEMA_CHANGES = {2: "products.decision_rule; the verdict_changes table"}
 
 
 #: headline numbers copied from result.json into columns of the same name
@@ -40,6 +42,8 @@ products = Table(
     *_limit_columns,
     Column("replicates", Integer),
     Column("max_cv", Double),
+    #: NULL: a specification stored before decision rules existed, judged by the simple rule
+    Column("decision_rule", String(20)),
     Column("spec_loaded_at", String(40)),
 )
 
@@ -126,3 +130,17 @@ failures = Table(
     Column("stored_at", String(40), nullable=False),
     UniqueConstraint("sample_id", "sha256", name="uq_failures_sample_sha256"),
 )
+
+verdict_changes = Table(
+    "verdict_changes", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("product_id", Integer, ForeignKey("products.id"), nullable=False),
+    Column("lot", String(200), nullable=False),
+    Column("old_verdict", String(10), nullable=False),
+    Column("new_verdict", String(10), nullable=False),
+    Column("old_decision_rule", String(20)),
+    Column("new_decision_rule", String(20)),
+    Column("cause", Text, nullable=False),
+    Column("changed_at", String(40), nullable=False),
+)
+Index("ix_verdict_changes_product_lot", verdict_changes.c.product_id, verdict_changes.c.lot)

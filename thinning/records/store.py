@@ -23,7 +23,7 @@ from .. import qc
 from ..errors import ThinningError
 from ..result import Result
 from .schema import (SCHEMA_VERSION, curves, failures, lots, measurements, metadata, products, samples,
-                     schema_version, NUMBER_KEYS)
+                     schema_version, verdict_changes, NUMBER_KEYS)
 from ..values import finite_number as _number
 from ..values import json_plain, utc_text
 from ..batch.table import read_batch, read_curve
@@ -45,7 +45,7 @@ EXPORT_COLUMNS = (
 #: columns of ``thinning records lots`` (contract), in order
 LOT_COLUMNS = (
     "product", "lot", "made_on", "n_valid", "relaxation_time_mean_s", "relaxation_time_sd_s",
-    "relaxation_time_cv", "verdict", "reasons", "chart_flags",
+    "relaxation_time_cv", "verdict", "reasons", "chart_flags", "decision_rule",
 )
 
 
@@ -131,6 +131,9 @@ class LotDetail:
     curves: dict[int, tuple[np.ndarray, np.ndarray]]
     chart: list[tuple[qc.LotSummary, qc.ChartPoint]]
     history: list[dict] = field(default_factory=list)
+    #: re-evaluations that changed the lot's verdict (oldest first): old/new verdict and rule,
+    #: cause, changed_at
+    verdict_changes: list[dict] = field(default_factory=list)
 
 
 T = TypeVar("T")
@@ -183,35 +186,52 @@ class Records:
         def work(conn: Connection) -> None:
             if conn.dialect.name == "postgresql":  # serialise concurrent first opens
                 conn.execute(text("SELECT pg_advisory_xact_lock(7163512)"))
-            metadata.create_all(conn)
+            metadata.create_all(conn)  # (new tables of a newer version too)
             found = conn.execute(select(func.max(schema_version.c.version))).scalar()
             if found is None:
                 conn.execute(schema_version.insert().values(version=SCHEMA_VERSION, applied_at=utc_text()))
             elif found > SCHEMA_VERSION:
                 raise RecordsError(f"the records database has schema version {found}, newer than this "
                                    f"thinning understands ({SCHEMA_VERSION}); upgrade thinning.")
+            elif found < 2:
+                # version 1 → 2: specifications stored so far keep the simple rule (NULL) that
+                # judged the verdicts already shown
+                conn.execute(text("ALTER TABLE products ADD COLUMN decision_rule VARCHAR(20)"))
+                conn.execute(schema_version.insert().values(version=2, applied_at=utc_text()))
         self._transaction(work)
 
     # ------------------------------------------------------------------ specifications
-    def load_specs(self, path: str | Path) -> list[qc.Spec]:
-        """Load or update the product specifications of a TOML file; returns them."""
+    def load_specs(self, path: str | Path, *, changes: list | None = None) -> list[qc.Spec]:
+        """Load or update the product specifications of a TOML file; returns them.
+
+        ``changes``, when given, receives the verdict changes the new
+        specifications make (see :meth:`store_specs`)."""
         try:
             content = Path(path).read_text(encoding="utf-8")
         except OSError as exc:
             raise RecordsError(f"cannot read the specifications file {path} ({exc.strerror}).") from None
         specs = qc.parse_specs(content)
-        self.store_specs(specs)
+        made = self.store_specs(specs)
+        if changes is not None:
+            changes.extend(made)
         return specs
 
-    def store_specs(self, specs: Iterable[qc.Spec]) -> None:
-        """Store (insert or replace) specifications in one transaction."""
+    def store_specs(self, specs: Iterable[qc.Spec]) -> list[dict]:
+        """Store (insert or replace) specifications in one transaction.
+
+        Returns the lots whose verdict the new specifications change (each also
+        kept in ``verdict_changes``, so that no verdict already shown changes
+        silently): product, lot, old and new verdict and decision rule.
+        """
         specs = list(specs)
 
-        def work(conn: Connection) -> None:
+        def work(conn: Connection) -> list[dict]:
             now = utc_text()
+            before = {(s.product, s.lot): s.verdict.verdict for s in self._summaries(conn)[0]}
+            old_rules = {name: spec.decision_rule for name, spec in self._specs(conn).items()}
             for spec in specs:
                 values = {"has_spec": True, "replicates": spec.replicates, "max_cv": spec.max_cv,
-                          "spec_loaded_at": now}
+                          "decision_rule": spec.decision_rule, "spec_loaded_at": now}
                 for key in qc.LIMITED_QUANTITIES:
                     limits = getattr(spec, key)
                     values[f"{key}_limited"] = limits is not None
@@ -220,7 +240,25 @@ class Records:
                     values[f"{key}_max"] = _number(high)
                 product_id = self._get_or_create(conn, products, {"name": spec.name})
                 conn.execute(update(products).where(products.c.id == product_id).values(**values))
-        self._transaction(work)
+            changes = []
+            names = {spec.name: spec for spec in specs}
+            for summary in self._summaries(conn)[0]:
+                old = before.get((summary.product, summary.lot))
+                if summary.product not in names or old is None or old == summary.verdict.verdict:
+                    continue
+                change = {"product": summary.product, "lot": summary.lot, "old_verdict": old,
+                          "new_verdict": summary.verdict.verdict,
+                          "old_decision_rule": old_rules.get(summary.product),
+                          "new_decision_rule": names[summary.product].decision_rule}
+                product_id = self._get_or_create(conn, products, {"name": summary.product})
+                conn.execute(verdict_changes.insert().values(
+                    product_id=product_id, lot=summary.lot, old_verdict=old,
+                    new_verdict=change["new_verdict"], old_decision_rule=change["old_decision_rule"],
+                    new_decision_rule=change["new_decision_rule"],
+                    cause="specification loaded", changed_at=now))
+                changes.append(change)
+            return changes
+        return self._transaction(work)
 
     def specs(self) -> dict[str, qc.Spec]:
         """Every stored specification by product name."""
@@ -237,7 +275,8 @@ class Records:
                     low, high = row[f"{key}_min"], row[f"{key}_max"]
                     limits[key] = (math.nan if low is None else low, math.nan if high is None else high)
             found[row["name"]] = qc.Spec(name=row["name"], replicates=row["replicates"],
-                                         max_cv=row["max_cv"], **limits)
+                                         max_cv=row["max_cv"],
+                                         decision_rule=row["decision_rule"] or "simple", **limits)
         return found
 
     # ------------------------------------------------------------------ storing
@@ -478,10 +517,14 @@ class Records:
                 self._joined(current=False).where(products.c.name == product, lots.c.lot == lot)
                 .order_by(measurements.c.superseded_at)).mappings()]
             spec = self._specs(conn).get(product)
+            changed = [dict(r) for r in conn.execute(
+                select(verdict_changes).select_from(verdict_changes.join(products))
+                .where(products.c.name == product, verdict_changes.c.lot == lot)
+                .order_by(verdict_changes.c.id)).mappings()]
         summary = next(s for s in summaries if (s.product, s.lot) == (product, lot))
         chart = [(s, s.chart) for s in summaries if s.product == product and s.chart is not None]
         return LotDetail(summary=summary, spec=spec, measurements=rows, failures=failures_by_lot[(product, lot)],
-                         curves=curve_map, chart=chart, history=history)
+                         curves=curve_map, chart=chart, history=history, verdict_changes=changed)
 
     def export_rows(self, *, product: str | None = None) -> list[dict]:
         """Every current measurement as a dict of :data:`EXPORT_COLUMNS`."""
