@@ -73,6 +73,7 @@ class Characterisation:
     uncertainty_budget: dict = field(default_factory=dict)
     elastic_modulus_ci95_Pa: tuple | None = None
     shear_viscosity_ci95_Pa_s: tuple | None = None
+    extensional_viscosity_max_ci95_Pa_s: tuple | None = None
 
     @property
     def ohnesorge_number(self):
@@ -135,6 +136,7 @@ class Characterisation:
                                      for key, terms in self.uncertainty_budget.items()}
         out["elastic_modulus_ci95_Pa"] = pair(self.elastic_modulus_ci95_Pa)
         out["shear_viscosity_ci95_Pa_s"] = pair(self.shear_viscosity_ci95_Pa_s)
+        out["extensional_viscosity_max_ci95_Pa_s"] = pair(self.extensional_viscosity_max_ci95_Pa_s)
         return out
 
     @classmethod
@@ -173,7 +175,8 @@ class Characterisation:
             model_fit=ModelFit.from_dict(data["model_fit"]) if data.get("model_fit") else None,
             uncertainty_budget=dict(data.get("uncertainty_budget") or {}),
             elastic_modulus_ci95_Pa=pair(data.get("elastic_modulus_ci95_Pa")),
-            shear_viscosity_ci95_Pa_s=pair(data.get("shear_viscosity_ci95_Pa_s")))
+            shear_viscosity_ci95_Pa_s=pair(data.get("shear_viscosity_ci95_Pa_s")),
+            extensional_viscosity_max_ci95_Pa_s=pair(data.get("extensional_viscosity_max_ci95_Pa_s")))
 
     def interval(self, key: str):
         """The 95 % interval ``(low, high)`` behind the headline number ``key`` (a
@@ -184,6 +187,9 @@ class Characterisation:
             return tuple(self.elastic_modulus_ci95_Pa) if self.regime == rg.ELASTO_CAPILLARY else None
         if key == "shear_viscosity_Pa_s" and self.shear_viscosity_ci95_Pa_s is not None:
             return tuple(self.shear_viscosity_ci95_Pa_s)
+        if key == "extensional_viscosity_max_Pa_s":
+            ci = self.extensional_viscosity_max_ci95_Pa_s
+            return None if ci is None or not all(np.isfinite(ci)) else tuple(ci)
         source = _INTERVAL_SOURCES.get(key)
         if source is None:
             return None
@@ -325,7 +331,7 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     curves = derived_curves(t, d, surface_tension=surface_tension,
                             initial_diameter=d0 if d0 is not None else np.nan, t_start_s=t0,
                             resolution_floor_m=floor, diameter_noise_m=noise)
-    eta_max = extensional_viscosity_max(curves)
+    eta_max, eta_max_ci = extensional_viscosity_max(curves)
 
     eta0 = zero_shear_viscosity
     if eta0 is None and solvent_viscosity is not None:
@@ -388,7 +394,8 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
         findings=findings, breakup_seen=None if t_b is None else
         ("faded" if breakup_parted is False else "parted"),
         filament_lifetime_basis=basis, filament_lifetime_min_s=lifetime_min, model_fit=model_fit,
-        uncertainty_budget=budget, elastic_modulus_ci95_Pa=g_ci, shear_viscosity_ci95_Pa_s=eta_ci)
+        uncertainty_budget=budget, elastic_modulus_ci95_Pa=g_ci, shear_viscosity_ci95_Pa_s=eta_ci,
+        extensional_viscosity_max_ci95_Pa_s=eta_max_ci)
 
 
 def _whole_curve_fit(t, d, ec_fit, *, surface_tension, t0, floor, noise, density, solvent_viscosity,

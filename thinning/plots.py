@@ -216,7 +216,8 @@ def plot_diameter(result, *, ax=None):
 
 
 def plot_extensional_viscosity(result, *, ax=None):
-    """Apparent extensional viscosity against Hencky strain (log y), with η_E max marked."""
+    """Apparent extensional viscosity against Hencky strain (log y), with η_E max (the largest
+    plotted value) and its 95 % interval marked."""
     with _style():
         ax = _new_axes(ax)
         table = result.table
@@ -232,6 +233,9 @@ def plot_extensional_viscosity(result, *, ax=None):
         eta_max = _number(result.characterisation.extensional_viscosity_max_Pa_s)
         if eta_max is not None:
             ax.axhline(eta_max, color=MARK_COLOUR, ls="--", lw=1.0, label="η_E max")
+            interval = result.characterisation.interval("extensional_viscosity_max_Pa_s")
+            if interval is not None:
+                ax.axhspan(*interval, color=MARK_COLOUR, alpha=0.12, lw=0, label="η_E max 95 % interval")
         eta_inf = _number(result.characterisation.extensional_viscosity_terminal_Pa_s)
         if eta_inf is not None:
             ax.axhline(eta_inf, color=REGIME_COLOURS["finite-extensibility"][1], ls="-.", lw=1.0,

@@ -74,13 +74,29 @@ def derived_curves(time_s, diameter_m, *, surface_tension, initial_diameter, t_s
     }, columns=list(CURVE_COLUMNS))
 
 
-def extensional_viscosity_max(curves: pd.DataFrame) -> float | None:
-    """Largest apparent extensional viscosity (Pa·s) over resolved frames above the floor, else None."""
+def extensional_viscosity_max(curves: pd.DataFrame) -> tuple[float | None, tuple | None]:
+    """The largest apparent extensional viscosity (Pa·s) above the resolution floor, and its 95 %
+    interval; (None, None) when there is none.
+
+    The largest value of the ``apparent_extensional_viscosity_Pa_s`` column (a smoothed curve:
+    local fits, :func:`derived_curves`) over the frames above the floor that are not outliers,
+    so that the number, the file's column and the plot agree. η_E ∝ 1/(d ln D/dt), so the
+    interval is η_E / (1 ± 1.96 r), r the local slope's relative standard error (an open upper
+    end, NaN, when 1.96 r ≥ 1).
+    """
     visc = curves["apparent_extensional_viscosity_Pa_s"].to_numpy()
-    good = curves["resolved"].to_numpy() & curves["above_resolution_floor"].to_numpy() & np.isfinite(visc)
+    good = (curves["above_resolution_floor"].to_numpy() & ~curves["outlier"].to_numpy()
+            & np.isfinite(visc))
     if not good.any():
-        return None
-    return float(np.max(visc[good]))
+        return None, None
+    at = np.flatnonzero(good)[np.argmax(visc[good])]
+    value = float(visc[at])
+    rate, se = curves["strain_rate_1_s"].to_numpy()[at], curves["strain_rate_se_1_s"].to_numpy()[at]
+    r = abs(se / rate) if rate and np.isfinite(se) else np.nan
+    if not np.isfinite(r):
+        return value, None
+    half = 1.96 * r
+    return value, (value / (1.0 + half), value / (1.0 - half) if half < 1.0 else float("nan"))
 
 
 def dimensionless_groups(*, initial_diameter, surface_tension, density=None, viscosity=None,
