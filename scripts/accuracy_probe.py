@@ -51,7 +51,7 @@ VISIBLE_PARTING_PX = 2.0
 #: The lead's targets.
 TARGETS = {"band_median_signed_px": 0.03, "median_of_median_abs_px": 0.05, "median_of_p95_px": 0.2,
            "lambda_median_abs": 0.015, "lambda_each": 0.05, "viscosity_each": 0.03,
-           "breakup_frames": 3.0}
+           "breakup_frames": 3.0, "coverage": (0.90, 0.98)}
 
 
 # --- one case -----------------------------------------------------------------------------
@@ -130,6 +130,30 @@ def _rel(measured, true):
     return None if measured is None or not np.isfinite(measured) else float(measured / true - 1.0)
 
 
+def _interval(ci, truth) -> dict:
+    """Whether a 95 % interval ``ci`` (low, high; NaN an open end) covers ``truth``, and its
+    relative half-width (None without an interval)."""
+    if ci is None or truth is None:
+        return {"covered": None, "half_rel": None}
+    lo = -math.inf if ci[0] is None or not math.isfinite(ci[0]) else float(ci[0])
+    hi = math.inf if ci[1] is None or not math.isfinite(ci[1]) else float(ci[1])
+    half = (hi - lo) / 2 / truth if math.isfinite(hi - lo) else None
+    return {"covered": bool(lo <= truth <= hi), "half_rel": half}
+
+
+def _coverage(entries) -> dict:
+    """Coverage, median half-width and median |error| of (rel_error, covered, half_rel) dicts."""
+    got = [e for e in entries if e is not None and e.get("rel_error") is not None]
+    with_ci = [e for e in got if e.get("covered") is not None]
+    covered = sum(e["covered"] for e in with_ci)
+    half = _median(e["half_rel"] for e in with_ci if e["half_rel"] is not None)
+    err = _median(abs(e["rel_error"]) for e in got)
+    return {"n": len(got), "with_interval": len(with_ci), "covered": covered,
+            "coverage": covered / len(with_ci) if with_ci else None, "median_half_rel": half,
+            "median_abs": err, "within_3pct": sum(abs(e["rel_error"]) <= 0.03 for e in got),
+            "width_ratio": half / err if half is not None and err else None}
+
+
 def compare(truth: dict, result) -> dict:
     """The case's figures: the analyser's ``result`` against the ``truth`` dict."""
     fps, px = truth["fps_hz"], truth["pixel_size_m"]
@@ -149,12 +173,22 @@ def compare(truth: dict, result) -> dict:
     kind = liquid_kind(truth)
     out["regime"] = {"truth": TRUE_REGIME[kind], "measured": ch.regime,
                      "right": ch.regime == TRUE_REGIME[kind]}
+    lam = truth["relaxation_time_s"]
+    model = ch.model_fit if ch.model_fit else None
+    model_lam = model.relaxation_time_s if model is not None and model.model == "viscoelastic" else None
     out["lambda"] = None if kind != "elastic" else {
-        "truth": truth["relaxation_time_s"], "measured": ch.relaxation_time_s,
-        "rel_error": _rel(ch.relaxation_time_s, truth["relaxation_time_s"])}
+        "truth": lam, "measured": ch.relaxation_time_s,
+        "rel_error": _rel(ch.relaxation_time_s, lam), **_interval(ch.relaxation_time_ci95_s, lam),
+        "model": {"measured": model_lam, "rel_error": _rel(model_lam, lam),
+                  **_interval(model.relaxation_time_ci95_s if model_lam is not None else None, lam)}}
     eta = truth["fluid"]["solvent_viscosity"]
+    model_eta = model.solvent_viscosity_Pa_s if model is not None and model.model == "newtonian" else None
     out["viscosity"] = None if kind != "viscous" else {
-        "truth": eta, "measured": ch.shear_viscosity_Pa_s, "rel_error": _rel(ch.shear_viscosity_Pa_s, eta)}
+        "truth": eta, "measured": ch.shear_viscosity_Pa_s, "rel_error": _rel(ch.shear_viscosity_Pa_s, eta),
+        **_interval(ch.interval("shear_viscosity_Pa_s"), eta),
+        "model": {"measured": model_eta, "rel_error": _rel(model_eta, eta),
+                  **_interval(model.solvent_viscosity_ci95_Pa_s if model_eta is not None else None,
+                              eta)}}
     t_b = truth["breakup_time_s"]
     parts = t_b is not None and t_b < truth["n_frames"] / fps
     thin = np.flatnonzero(np.isfinite(true_px) & (true_px < 1.0))
@@ -353,13 +387,19 @@ def summarise(cases: list[dict]) -> dict:
                    "median_abs": _median(abs(v) for v in lam),
                    "worst": None if lam_worst is None else {
                        "seed": lam_worst["seed"], "rel_error": lam_worst["lambda"]["rel_error"]},
-                   "within_5pct": sum(abs(v) <= TARGETS["lambda_each"] for v in lam)},
+                   "within_5pct": sum(abs(v) <= TARGETS["lambda_each"] for v in lam),
+                   "local_slope": _coverage(c["lambda"] for c in ok if c["lambda"] is not None),
+                   "whole_curve": _coverage(c["lambda"]["model"] for c in ok
+                                            if c["lambda"] is not None)},
         "regime": {"right": sum(c["regime"]["right"] for c in ok), "total": len(cases),
                    "wrong": dict(wrong)},
         "viscosity": {"viscous": len(viscous), "measured": len(eta),
                       "median_abs": _median(abs(v) for v in eta),
                       "worst": max(eta, key=abs, default=None),
-                      "within_3pct": sum(abs(v) <= TARGETS["viscosity_each"] for v in eta)},
+                      "within_3pct": sum(abs(v) <= TARGETS["viscosity_each"] for v in eta),
+                      "local_slope": _coverage(c["viscosity"] for c in ok if c["viscosity"] is not None),
+                      "whole_curve": _coverage(c["viscosity"]["model"] for c in ok
+                                               if c["viscosity"] is not None)},
         "breakup": {"parts": len(parting), "measured": len(brk),
                     "within_3_frames": sum(abs(v) <= TARGETS["breakup_frames"] for v in brk),
                     "median_abs_frames": _median(abs(v) for v in brk),
@@ -444,7 +484,10 @@ def case_line(c: dict) -> str:
     if c["liquid"] != "elastic":
         text += f" Oh {c['ohnesorge_d0']:.2g}→{c['ohnesorge_floor']:.2g}"
     if c["lambda"] is not None:
-        text += f" λ {_pct(c['lambda']['rel_error'])}"
+        lam = c["lambda"]
+        text += (f" λ {_pct(lam['rel_error'])}{'' if lam['covered'] in (None, True) else '!'}"
+                 f" model {_pct(lam['model']['rel_error'])}"
+                 f"{'' if lam['model']['covered'] in (None, True) else '!'}")
     if c["viscosity"] is not None:
         text += f" η {_pct(c['viscosity']['rel_error'])}"
     if c["breakup"] is not None:
@@ -495,6 +538,20 @@ def summary_text(s: dict) -> str:
             f"worst {'—' if lw is None else _pct(lw['rel_error']) + ' (seed ' + str(lw['seed']) + ')'}; "
             f"within 5 %: {lam['within_5pct']}/{lam['elastic']} "
             f"(target all: {_mark(lam['within_5pct'] == lam['elastic'])})")
+    for what, key in (("λ", "lambda"), ("η (Newtonian)", "viscosity")):
+        for name in ("local_slope", "whole_curve"):
+            cov = s[key].get(name) if s[key] else None
+            if not cov or not cov["n"]:
+                continue
+            ok_cov = None if cov["coverage"] is None else (
+                t["coverage"][0] <= cov["coverage"] <= t["coverage"][1])
+            ratio = cov["width_ratio"]
+            lines.append(
+                f"{what} {name.replace('_', '-')}: median |err| {_pct(cov['median_abs'], '')}, within 3 % "
+                f"{cov['within_3pct']}/{cov['n']}; 95 % interval covers {cov['covered']}/"
+                f"{cov['with_interval']} ({_pct(cov['coverage'], '')}; target 90–98 %: {_mark(ok_cov)}); "
+                f"median half-width {_pct(cov['median_half_rel'], '')} = {_num(ratio, '.2f')} × median "
+                f"|err| (target ≤ 3: {_mark(None if ratio is None else ratio <= 3)})")
     reg = s["regime"]
     wrong = "; ".join(f"{k} ×{v}" for k, v in reg["wrong"].items())
     lines.append(f"regime: {reg['right']}/{reg['total']} right (target all: "
