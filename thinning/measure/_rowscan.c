@@ -856,6 +856,17 @@ int liquid_necks(int64_t nf, int64_t nr, const double *widths, const unsigned ch
 }
 
 #define DEFINE_LIQUID(SUFFIX, PIXEL)                                                            \
+/* d = 1 - I / (light g) of n pixels, 0 at saturation (float32, as numpy; restrict: the         \
+ * compiler vectorises it). */                                                                  \
+static void deficit_row_##SUFFIX(const PIXEL *restrict px, const float *restrict light,         \
+                                 float g, float sat, int64_t n, float *restrict d)              \
+{                                                                                               \
+    for (int64_t c = 0; c < n; c++) {                                                           \
+        float v = (float)px[c], q = 1.0f - v / (light[c] * g);                                  \
+        d[c] = v >= sat ? 0.0f : q;                                                             \
+    }                                                                                           \
+}                                                                                               \
+                                                                                                \
 /* The remeasurement of a block's neck rows (see liquid._row_widths). bands[k] the band of frame \
  * k (rows `stride` pixels apart), rows (frame, row) the band row of each neck row, whose       \
  * deficit 1 - I / (backlight gains[k]) is read over columns first[k] .. first[k] + span - 1    \
@@ -891,10 +902,7 @@ int liquid_widths_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nf
             int64_t o = k * nr + j, row = rows[o];                                              \
             const PIXEL *px = bands[k] + row * stride + first[k];                               \
             const float *light = backlight + row * w + first[k];                                \
-            for (int64_t c = 0; c < span; c++) {                                                \
-                float v = (float)px[c];                                                         \
-                d[c] = v >= sat ? 0.0f : 1.0f - v / (light[c] * g);                             \
-            }                                                                                   \
+            deficit_row_##SUFFIX(px, light, g, sat, span, d);                                    \
             liquid_row(d, span, centre[o], guess[o], &r, scratch, widths + o, resolved + o,     \
                        ground + j, sum + j, count + j);                                         \
         }                                                                                       \
