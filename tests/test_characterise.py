@@ -547,10 +547,14 @@ def test_newtonian_record_gets_its_viscosity_from_the_whole_curve_too():
 def test_the_two_relaxation_times_are_compared_by_their_intervals(model_lam, model_ci, disagrees):
     from thinning.characterisation import _model_findings
     fit = ModelFit(model="viscoelastic", relaxation_time_s=model_lam, relaxation_time_ci95_s=model_ci,
-                   success=True)
+                   reduced_chi2=1.0, success=True)
     found = _model_findings(fit, 1.0e-3, (0.99e-3, 1.01e-3))
     assert bool(found) == disagrees
     assert all(f.code == "model-fit-disagrees" for f in found)
-    newtonian = ModelFit(model="newtonian", solvent_viscosity_Pa_s=1.0, success=True)
+    newtonian = ModelFit(model="newtonian", solvent_viscosity_Pa_s=1.0, reduced_chi2=1.0, success=True)
     assert [f.code for f in _model_findings(newtonian, 1.0e-3, (0.99e-3, 1.01e-3))] == \
         ["model-fit-disagrees"]
+    # a model that does not describe the record says so, whatever its λ
+    poor = ModelFit(model="newtonian", solvent_viscosity_Pa_s=1.0, reduced_chi2=7000.0, success=True)
+    (note,) = _model_findings(poor, None, None)
+    assert "does not describe this record" in note.message

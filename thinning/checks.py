@@ -78,8 +78,8 @@ class Code(str, enum.Enum):
         "time is a lower bound; the lifetime is extrapolated by a fitted law or left empty")
     MODEL_FIT_DISAGREES = (
         "model-fit-disagrees", "no",
-        "the whole-curve filament model's λ and the local-slope λ disagree beyond their 95 % "
-        "intervals, or only one of them finds elasticity")
+        "the whole-curve filament model does not describe the record, or its λ and the local-slope "
+        "λ disagree beyond their 95 % intervals, or only one of them finds elasticity")
     OUTLIER_FRAMES = (
         "outlier-frames", "no", "frames off the thinning trend (beads, dust) left out of the fits")
     CONTAINER_FRAME_RATE = (
