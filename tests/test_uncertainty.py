@@ -29,15 +29,17 @@ def _exponential(lam=5e-3, d1=30.0, d2=3.0, n=300):
 
 
 def test_bias_term_follows_the_closed_form_of_a_two_point_slope():
-    # with uniform weights and only the two end points, +B at D1 and −B at D2 move the slope of
-    # ln D by (ln((D1+B)/(D2−B)) − ln(D1/D2)) / ln(D1/D2) in relative terms
+    # with only the two end points: a constant offset B moves the slope of ln D by
+    # ln((D1+B)/(D2+B))/ln(D1/D2) − 1, a change of B across the window (+B/2 at D1, −B/2 at D2)
+    # by ln((D1+B/2)/(D2−B/2))/ln(D1/D2) − 1; the two add in quadrature
     t = np.array([0.0, 1.0])
     d = np.array([30.0, 3.0])
     got = u._bias_term(t, d, np.ones(2), 0.15, log=True)
-    expected = math.log((30.15) / (2.85)) / math.log(10.0) - 1.0
-    assert got == pytest.approx(expected, rel=1e-9)
-    # a linear law's slope: (D1 − D2 + 2B)/(D1 − D2) − 1
-    assert u._bias_term(t, d, np.ones(2), 0.15, log=False) == pytest.approx(0.3 / 27.0, rel=1e-9)
+    offset = math.log(30.15 / 3.15) / math.log(10.0) - 1.0
+    ramp = math.log(30.075 / 2.925) / math.log(10.0) - 1.0
+    assert got == pytest.approx(math.hypot(offset, ramp), rel=1e-9)
+    # a linear law's slope: an offset moves nothing, the change across moves it by B/(D1 − D2)
+    assert u._bias_term(t, d, np.ones(2), 0.15, log=False) == pytest.approx(0.15 / 27.0, rel=1e-9)
 
 
 def test_bias_term_grows_as_the_window_reaches_thinner_threads():
@@ -69,7 +71,9 @@ def test_relaxation_time_budget_names_its_terms_and_widens_the_bootstrap():
     fit = Fit(model="elasto-capillary", values={"relaxation_time_s": 5e-3},
               ci95={"relaxation_time_s": (4.99e-3, 5.01e-3)}, window_s=(t[0], t[-1]), success=True)
     b = u.relaxation_time_budget(t, d * px, fit, noise_m=0.1 * px, floor_m=3 * px, pixel_size_m=px)
-    assert set(b.terms) == {"scatter_and_window", "diameter_bias", "local_drift"}
+    assert set(b.terms) == {"scatter_and_window", "diameter_bias", "local_drift",
+                            "unchecked_model_departure"}       # no whole-curve fit to check it
+    assert b.terms["unchecked_model_departure"] == u.ELASTIC_TOLERANCE
     assert b.interval[0] < 4.99e-3 and b.interval[1] > 5.01e-3
     assert b.terms["local_drift"] == 0.0
 

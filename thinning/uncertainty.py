@@ -6,8 +6,9 @@ leaves out is systematic, and on real recordings larger:
 
 - ``diameter_bias``: the edge method's residual bias, bounded by
   :data:`EDGE_BIAS_PX` pixels (measured on two renderers with different
-  optics, README "Accuracy"), taken at its worst for a slope: +B at one end of
-  the window and −B at the other;
+  optics, README "Accuracy"): a constant offset of B within the window (which
+  moves a slope of ln D, not one of D) and a change of B from one end of the
+  window to the other (the bias depends on the width), in quadrature;
 - ``local_drift``: the local value drifting across the window (a thread
   thinning not quite exponentially: solvent drag early, finite extensibility
   late; or not quite linearly); the fluid's value may lie anywhere in that
@@ -15,7 +16,15 @@ leaves out is systematic, and on real recordings larger:
 - ``whole_curve_difference``: the local-slope value against the whole-curve
   filament model's (:mod:`thinning.modelfit`), when that fit describes the
   record (reduced χ² ≤ :data:`MODEL_CHI2_LIMIT`): the model accounts for
-  the solvent and finite extensibility the window's line ignores;
+  the solvent and finite extensibility the window's line ignores, so the
+  interval reaches the model's value and its own interval (the difference
+  plus the model's relative half-width);
+- ``unchecked_model_departure`` (λ only, in place of the former when no
+  whole-curve fit describes the record): the local λ is accepted as constant
+  within ±:data:`ELASTIC_TOLERANCE` across the elastic stretch
+  (:func:`thinning.regimes.find_elastocapillary_run`), and nothing in the
+  record then tells how far the fluid's λ lies from the window's, so that
+  tolerance bounds it;
 - ``pixel_size``: the calibration, when it came from a reference width
   measured in the frame (each edge within :data:`EDGE_BIAS_PX`); a given pixel
   size is taken as exact (verify it with a reference liquid).
@@ -45,6 +54,8 @@ EDGE_BIAS_PX = 0.15
 #: this (allowing for its correlated noise, which the reduced χ² of the white-noise sum shows
 #: inflated by up to (1 + φ)/(1 − φ)).
 MODEL_CHI2_LIMIT = 4.0
+#: The relative constancy of the local λ the elastic stretch is located by (thinning.regimes).
+ELASTIC_TOLERANCE = 0.05
 
 
 @dataclass(frozen=True)
@@ -101,17 +112,23 @@ def _drift_of_slope(x, y, w):
 
 
 def _bias_term(x, d, w, bias_m, *, log):
-    """Relative change of the fitted slope when D is off by +bias at the window's start and
-    −bias at its end (linear in x between): the worst a bounded bias does to a slope."""
+    """Relative change of the fitted slope under a bias of D bounded by ``bias_m``: a constant
+    offset of ``bias_m`` and a change of ``bias_m`` from the window's start to its end (linear
+    in x), added in quadrature."""
     span = x.max() - x.min()
     if not span > 0:
         return 0.0
-    shift = bias_m * (1.0 - 2.0 * (x - x.min()) / span)
     y = np.log(d) if log else d
-    y_shifted = np.log(np.clip(d + shift, 1e-300, None)) if log else d + shift
     s0, _, _ = weighted_line(x, y, w)
-    s1, _, _ = weighted_line(x, y_shifted, w)
-    return abs(s1 / s0 - 1.0) if s0 != 0 else 0.0
+    if s0 == 0:
+        return 0.0
+
+    def moved(shift):
+        y_shifted = np.log(np.clip(d + shift, 1e-300, None)) if log else d + shift
+        return abs(weighted_line(x, y_shifted, w)[0] / s0 - 1.0)
+
+    ramp = bias_m * (0.5 - (x - x.min()) / span)
+    return math.hypot(moved(np.full(x.size, bias_m)), moved(ramp))
 
 
 def _model_term(local, model_value, model_fit):
@@ -119,7 +136,15 @@ def _model_term(local, model_value, model_fit):
         return None
     if not model_fit.reduced_chi2 <= MODEL_CHI2_LIMIT:
         return None
-    return abs(local / model_value - 1.0)
+    return abs(local / model_value - 1.0) + _half_width(model_fit, model_value)
+
+
+def _half_width(model_fit, value):
+    """The whole-curve fit's relative 95 % half-width of ``value`` (0 when open or unknown)."""
+    lo, hi = (model_fit.relaxation_time_ci95_s if model_fit.model == "viscoelastic"
+              else model_fit.solvent_viscosity_ci95_Pa_s)
+    half = 0.5 * (hi - lo) / value
+    return float(half) if np.isfinite(half) and half > 0 else 0.0
 
 
 def relaxation_time_budget(t, d, fit, *, noise_m, floor_m, pixel_size_m, model_fit=None) -> Budget:
@@ -133,6 +158,8 @@ def relaxation_time_budget(t, d, fit, *, noise_m, floor_m, pixel_size_m, model_f
     difference = _model_term(lam, model_lam, model_fit)
     if difference is not None:
         terms["whole_curve_difference"] = difference
+    else:
+        terms["unchecked_model_departure"] = ELASTIC_TOLERANCE
     return combine(lam, fit.ci95["relaxation_time_s"], terms)
 
 
