@@ -440,6 +440,11 @@ def test_a_database_of_schema_version_1_keeps_its_verdicts_until_the_specificati
     assert count(db_url, rec.schema_version) == 2
     shown = run(["show", "A1"], db_url)
     assert "re-evaluated" in shown.output and "pass → review" in shown.output
+    from thinning.report.lot import write_lot_report
+    with rec.open_records(db_url) as store:
+        html = write_lot_report(store, "A1", out_dir=tmp_path / "out").read_text(encoding="utf-8")
+    assert "Decision rule: guard-band" in html
+    assert "specification loaded): pass → review, decision rule simple → guard-band" in html
     # loading the same specifications again changes nothing and records nothing
     again = run(["load-specs", str(_specs(tmp_path))], db_url)
     assert "re-evaluated" not in again.output

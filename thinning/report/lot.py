@@ -203,6 +203,8 @@ def lot_report_html(detail, *, generated_at: str | None = None) -> str:
         "required": detail.spec.replicates if detail.spec is not None else None,
         "max_cv": fmt(detail.spec.max_cv, None, 3) if detail.spec is not None else None,
         "has_spec": detail.spec is not None,
+        "decision_rule": detail.spec.decision_rule if detail.spec is not None else None,
+        "verdict_changes": detail.verdict_changes,
         "chart_flags": [(name, qc.CHART_RULES[name]) for name in summary.chart_flags],
         "lam_mean": fmt(summary.relaxation_time.mean, "s"),
         "lam_cv": fmt(summary.relaxation_time.cv, None, 3),
