@@ -41,17 +41,19 @@ def find_defects(frame) -> np.ndarray:
     median = cv2.medianBlur(work, 3)
     high = cv2.dilate(work, _RING)
     low = cv2.erode(work, _RING)
-    f = work.astype(np.float32)
-    sample = f[::4, ::4]
+    sample = work[::4, ::4].astype(np.float32)
     contrast = float(np.percentile(sample, 98) - np.percentile(sample, 0.5))
-    departure = f - median.astype(np.float32)
-    noise = 1.4826 * float(np.median(np.abs(departure[::2, ::2])))
-    spread = high.astype(np.float32) - low.astype(np.float32)
-    outside = (f > high) | (f < low)
-    bad = (outside & (np.abs(departure) > max(DEFECT_LEVEL * contrast, 8.0 * noise))
+    noise = 1.4826 * float(np.median(np.abs(work[::2, ::2].astype(np.float32)
+                                            - median[::2, ::2].astype(np.float32))))
+    # only a pixel outside its ring's range can be a defect: the other tests on those alone
+    outside = (work > high) | (work < low)
+    outside[0, :] = outside[-1, :] = outside[:, 0] = outside[:, -1] = False  # (borders: no full ring)
+    r, c = np.nonzero(outside)
+    departure = work[r, c].astype(np.float32) - median[r, c].astype(np.float32)
+    spread = high[r, c].astype(np.float32) - low[r, c].astype(np.float32)
+    bad = ((np.abs(departure) > max(DEFECT_LEVEL * contrast, 8.0 * noise))
            & (spread <= max(NEIGHBOUR_SPREAD * contrast, 6.0 * noise)))
-    bad[0, :] = bad[-1, :] = bad[:, 0] = bad[:, -1] = False  # (borders: no full ring)
-    found = np.argwhere(bad)
+    found = np.stack([r[bad], c[bad]], axis=1).astype(np.int64)
     return found if found.shape[0] <= MAX_FRACTION * frame.size else np.empty((0, 2), np.int64)
 
 
