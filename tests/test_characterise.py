@@ -517,7 +517,7 @@ def test_whole_curve_fit_is_in_the_result_and_reads_back():
     c = run(Fluid(0.06, 1e-3, 1000.0, 2.0, 1e-3), 1e-3, fps=20000, pixel=5e-6, noise_px=0.1, seed=1)
     fields = json.loads(json.dumps(c.result_fields(), allow_nan=False))
     m = fields["model_fit"]
-    assert m["model"] == "viscoelastic" and m["solvent_viscosity_fixed"]
+    assert m["model"] == "viscoelastic" and m["solvent_viscosity_fixed"] and m["describes_record"]
     assert m["relaxation_time_s"] == pytest.approx(1e-3, rel=0.02)
     lo, hi = m["relaxation_time_ci95_s"]
     assert lo < m["relaxation_time_s"] < hi

@@ -1133,6 +1133,8 @@ class ModelFit:
             "n_points": int(self.n_points),
             "noise_correlation": _plain(self.noise_correlation),
             "message": self.message,
+            "describes_record": bool(math.isfinite(self.reduced_chi2)
+                                     and self.reduced_chi2 <= DESCRIBES_RECORD_CHI2),
         }
 
     @classmethod
@@ -1157,6 +1159,11 @@ class ModelFit:
                    n_points=int(data.get("n_points") or 0),
                    noise_correlation=num(data.get("noise_correlation")),
                    success=True, message=str(data.get("message") or ""))
+
+
+#: A fit describes the record when its reduced χ² is at most this (the uncertainty budget and the
+#: report use its numbers only then).
+DESCRIBES_RECORD_CHI2 = 4.0
 
 
 def _failed(message, n_points=0) -> ModelFit:

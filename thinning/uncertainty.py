@@ -45,6 +45,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .kinematics import weighted_line
+from .modelfit import DESCRIBES_RECORD_CHI2
 
 #: Bound of the edge method's residual diameter bias (px): on refracting threads (the second
 #: renderer) the per-band median errors run from −0.10 px (3–6 px) to +0.10 px (80+ px), and
@@ -53,7 +54,7 @@ EDGE_BIAS_PX = 0.15
 #: The whole-curve fit counts in the budget only when it describes the record: reduced χ² at most
 #: this (allowing for its correlated noise, which the reduced χ² of the white-noise sum shows
 #: inflated by up to (1 + φ)/(1 − φ)).
-MODEL_CHI2_LIMIT = 4.0
+MODEL_CHI2_LIMIT = DESCRIBES_RECORD_CHI2
 #: The relative constancy of the local λ the elastic stretch is located by (thinning.regimes).
 ELASTIC_TOLERANCE = 0.05
 
