@@ -21,8 +21,7 @@ from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_e
                    fit_inertiocapillary, fit_viscocapillary)
 from .modelfit import ModelFit, fit_filament_model
 from .series import check_series
-from .uncertainty import (MODEL_CHI2_LIMIT, elastic_modulus_budget, relaxation_time_budget,
-                          shear_viscosity_budget)
+from .uncertainty import elastic_modulus_budget, relaxation_time_budget, shear_viscosity_budget
 from .units import GEOMETRIES
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
 
@@ -352,14 +351,14 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
     whole = dict(surface_tension=surface_tension, floor=floor, noise=noise, density=density,
                  solvent_viscosity=solvent_viscosity, seed=seed)
     model_fit = _whole_curve_fit(t, d_fit, fits.get(rg.ELASTO_CAPILLARY), t0=t0, **whole)
-    if (not model_fit or not model_fit.reduced_chi2 <= MODEL_CHI2_LIMIT) and regs \
+    if not (model_fit and model_fit.describes_record) and regs \
             and regs[0].t_start_s > t0:
         # the model does not describe the record from the free-thinning start (a drop that
         # spreads on its substrate before its neck is a free filament): from where the first
         # thinning law holds instead, if that describes it
         later = _whole_curve_fit(t, d_fit, fits.get(rg.ELASTO_CAPILLARY), t0=regs[0].t_start_s,
                                  **whole)
-        if later and later.reduced_chi2 <= MODEL_CHI2_LIMIT:
+        if later and later.describes_record:
             model_fit = later
     findings += _model_findings(model_fit, lam, lam_ci)
     budget, g_ci, eta_ci = {}, None, None
@@ -446,7 +445,7 @@ def _model_findings(model_fit, lam, lam_ci):
     elasticity."""
     if model_fit is None:
         return []
-    if not model_fit.reduced_chi2 <= MODEL_CHI2_LIMIT:
+    if not model_fit.describes_record:
         return [Finding(Code.MODEL_FIT_DISAGREES, Severity.NOTE,
                         f"The whole-curve filament model ({model_fit.model}) does not describe this "
                         f"record (reduced χ² {model_fit.reduced_chi2:.3g}): its numbers are left out "

@@ -1102,6 +1102,13 @@ class ModelFit:
     def __bool__(self) -> bool:
         return self.success
 
+    @property
+    def describes_record(self) -> bool:
+        """Whether the fit describes the record: reduced χ² at most :data:`DESCRIBES_RECORD_CHI2`
+        (the report and the uncertainty budget use its numbers only then)."""
+        return self.success and math.isfinite(self.reduced_chi2) and \
+            self.reduced_chi2 <= DESCRIBES_RECORD_CHI2
+
     def curve(self, t):
         """The fitted D(t) (m) at recording times ``t`` (s); NaN for a failed fit."""
         t = np.asarray(t, dtype=float)
@@ -1133,8 +1140,7 @@ class ModelFit:
             "n_points": int(self.n_points),
             "noise_correlation": _plain(self.noise_correlation),
             "message": self.message,
-            "describes_record": bool(math.isfinite(self.reduced_chi2)
-                                     and self.reduced_chi2 <= DESCRIBES_RECORD_CHI2),
+            "describes_record": self.describes_record,
         }
 
     @classmethod
@@ -1161,8 +1167,9 @@ class ModelFit:
                    success=True, message=str(data.get("message") or ""))
 
 
-#: A fit describes the record when its reduced χ² is at most this (the uncertainty budget and the
-#: report use its numbers only then).
+#: A fit describes the record when its reduced χ² is at most this (allowing for correlated noise,
+#: which inflates the reduced χ² of the white-noise sum by up to (1 + φ)/(1 − φ)); the uncertainty
+#: budget and the report use its numbers only then.
 DESCRIBES_RECORD_CHI2 = 4.0
 
 

@@ -15,7 +15,7 @@ leaves out is systematic, and on real recordings larger:
   range, so half the range of the local value over the window counts;
 - ``whole_curve_difference``: the local-slope value against the whole-curve
   filament model's (:mod:`thinning.modelfit`), when that fit describes the
-  record (reduced χ² ≤ :data:`MODEL_CHI2_LIMIT`): the model accounts for
+  record (:attr:`thinning.modelfit.ModelFit.describes_record`): the model accounts for
   the solvent and finite extensibility the window's line ignores, so the
   interval reaches the model's value and its own interval (the difference
   plus the model's relative half-width);
@@ -45,16 +45,11 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .kinematics import weighted_line
-from .modelfit import DESCRIBES_RECORD_CHI2
 
 #: Bound of the edge method's residual diameter bias (px): on refracting threads (the second
 #: renderer) the per-band median errors run from −0.10 px (3–6 px) to +0.10 px (80+ px), and
 #: partially coherent light adds up to about 0.25 px on wide threads (README "Accuracy").
 EDGE_BIAS_PX = 0.15
-#: The whole-curve fit counts in the budget only when it describes the record: reduced χ² at most
-#: this (allowing for its correlated noise, which the reduced χ² of the white-noise sum shows
-#: inflated by up to (1 + φ)/(1 − φ)).
-MODEL_CHI2_LIMIT = DESCRIBES_RECORD_CHI2
 #: The relative constancy of the local λ the elastic stretch is located by (thinning.regimes).
 ELASTIC_TOLERANCE = 0.05
 
@@ -135,7 +130,7 @@ def _bias_term(x, d, w, bias_m, *, log):
 def _model_term(local, model_value, model_fit):
     if model_fit is None or not model_fit or model_value is None or not np.isfinite(model_value):
         return None
-    if not model_fit.reduced_chi2 <= MODEL_CHI2_LIMIT:
+    if not model_fit.describes_record:
         return None
     return abs(local / model_value - 1.0) + _half_width(model_fit, model_value)
 

@@ -17,7 +17,6 @@ from pathlib import Path, PurePath
 import jinja2
 from .. import atomic
 from ..result import RESULT_SCHEMA
-from ..uncertainty import MODEL_CHI2_LIMIT
 from ..values import finite_number as _number
 
 TEMPLATE_DIR = Path(__file__).parent / "templates"
@@ -167,7 +166,7 @@ def _model_rows(c):
                  "interval": "", "missing": True}]
     chi2 = _number(fit.reduced_chi2)
     note = f" ({fit.model}, reduced χ² {_digits(chi2)})" if chi2 is not None else f" ({fit.model})"
-    if not (chi2 is not None and chi2 <= MODEL_CHI2_LIMIT):
+    if not fit.describes_record:
         return [{"label": "whole-curve filament model" + note,
                  "value": f"{MISSING} (the model does not describe this record)", "interval": "",
                  "missing": True}]
