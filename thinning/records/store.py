@@ -229,6 +229,7 @@ class Records:
             now = utc_text()
             before = {(s.product, s.lot): s.verdict.verdict for s in self._summaries(conn)[0]}
             old_rules = {name: spec.decision_rule for name, spec in self._specs(conn).items()}
+            product_ids = {}
             for spec in specs:
                 values = {"has_spec": True, "replicates": spec.replicates, "max_cv": spec.max_cv,
                           "decision_rule": spec.decision_rule, "spec_loaded_at": now}
@@ -238,8 +239,9 @@ class Records:
                     low, high = limits if limits is not None else (math.nan, math.nan)
                     values[f"{key}_min"] = _number(low)
                     values[f"{key}_max"] = _number(high)
-                product_id = self._get_or_create(conn, products, {"name": spec.name})
-                conn.execute(update(products).where(products.c.id == product_id).values(**values))
+                product_ids[spec.name] = self._get_or_create(conn, products, {"name": spec.name})
+                conn.execute(update(products).where(products.c.id == product_ids[spec.name])
+                             .values(**values))
             changes = []
             names = {spec.name: spec for spec in specs}
             for summary in self._summaries(conn)[0]:
@@ -250,9 +252,8 @@ class Records:
                           "new_verdict": summary.verdict.verdict,
                           "old_decision_rule": old_rules.get(summary.product),
                           "new_decision_rule": names[summary.product].decision_rule}
-                product_id = self._get_or_create(conn, products, {"name": summary.product})
                 conn.execute(verdict_changes.insert().values(
-                    product_id=product_id, lot=summary.lot, old_verdict=old,
+                    product_id=product_ids[summary.product], lot=summary.lot, old_verdict=old,
                     new_verdict=change["new_verdict"], old_decision_rule=change["old_decision_rule"],
                     new_decision_rule=change["new_decision_rule"],
                     cause="specification loaded", changed_at=now))
