@@ -350,6 +350,32 @@ int scan_rows_##SUFFIX(const PIXEL *const *bands, int64_t stride, int64_t nb, in
 
 /* Straight-line direction of the centre line over the rows `use` (lateral px per axial px),
  * kept within `bend` of `base`; `base` with fewer than 5 rows (see edges.axis_slopes). */
+/* The rows of a neck's quadratic fit (the rule of thinning.measure.neck.necks_of): the thinnest
+   row *i_min of smooth[0..n), the contiguous run around it whose smoothed width stays within
+   max(3 row_noise, 1.5 %) of it, capped at max_half rows each side; its middle *mid and
+   half-length *half, at least min_half. */
+static void neck_window(const double *smooth, int64_t n, double row_noise, int64_t max_half,
+                        int64_t min_half, int64_t *i_min, int64_t *mid, int64_t *half)
+{
+    int64_t i0 = 0;
+    for (int64_t r = 1; r < n; r++)
+        if (smooth[r] < smooth[i0]) i0 = r;
+    double w0 = smooth[i0], spread = 0.015 * w0;
+    double level = w0 + (3.0 * row_noise > spread ? 3.0 * row_noise : spread);
+    int64_t before = -1, after = n;
+    for (int64_t r = i0 - 1; r >= 0; r--)
+        if (!(smooth[r] <= level)) { before = r; break; }
+    for (int64_t r = i0 + 1; r < n; r++)
+        if (!(smooth[r] <= level)) { after = r; break; }
+    int64_t lo = before + 1 > i0 - max_half ? before + 1 : i0 - max_half;
+    int64_t hi = after - 1 < i0 + max_half ? after - 1 : i0 + max_half;
+    int64_t h = (hi - lo + 1) / 2; /* 0 <= lo <= i0 <= hi */
+    *i_min = i0;
+    *mid = (lo + hi) / 2;
+    *half = h > min_half ? h : min_half;
+}
+
+
 static double axis_slope(const double *y, const double *centre, const unsigned char *use, int64_t n,
                          double base, double bend)
 {
@@ -464,20 +490,8 @@ int necks(int64_t nb, int64_t n, const double *cut_in, const double *core_n, con
             double thread = left[r] > running ? left[r] : running;
             if (valid[r] && isfinite(thread) && smooth[r] > 1.6 * thread && smooth[r] > thread + 3.0) bead = 1;
         }
-        int64_t i0 = 0;
-        for (int64_t r = 1; r < n; r++)
-            if (smooth[r] < smooth[i0]) i0 = r;
-        double w0 = smooth[i0];
-        double level = w0 + (3.0 * row_noise > 0.015 * w0 ? 3.0 * row_noise : 0.015 * w0);
-        int64_t before = -1, after = n;
-        for (int64_t r = i0 - 1; r >= 0; r--)
-            if (!(smooth[r] <= level)) { before = r; break; }
-        for (int64_t r = i0 + 1; r < n; r++)
-            if (!(smooth[r] <= level)) { after = r; break; }
-        int64_t wlo = before + 1 > i0 - max_half ? before + 1 : i0 - max_half;
-        int64_t whi = after - 1 < i0 + max_half ? after - 1 : i0 + max_half;
-        int64_t mid = (wlo + whi) / 2, half = (whi - wlo + 1) / 2; /* 0 <= wlo <= i0 <= whi */
-        half = half > min_half ? half : min_half;
+        int64_t i0, mid, half;
+        neck_window(smooth, n, row_noise, max_half, min_half, &i0, &mid, &half);
         int measured = connected[b] && n_ok >= 3;
         if (!measured) {
             diameter[b] = position[b] = angle_deg[b] = lateral[b] = min_contrast[b] = NAN;
@@ -795,20 +809,8 @@ int liquid_necks(int64_t nf, int64_t nr, const double *widths, const unsigned ch
             if (j + 1 < nr) { total += ok[j + 1] ? across[j + 1] : 0.0; count += ok[j + 1]; }
             smooth[j] = total / count;
         }
-        int64_t i_min = 0;
-        for (int64_t j = 1; j < nr; j++)
-            if (smooth[j] < smooth[i_min]) i_min = j;
-        double w_min = smooth[i_min], spread = 0.015 * w_min;
-        double level = w_min + (3.0 * row_noise > spread ? 3.0 * row_noise : spread);
-        int64_t before = -1, after = nr;
-        for (int64_t j = i_min - 1; j >= 0; j--)
-            if (!(smooth[j] <= level)) { before = j; break; }
-        for (int64_t j = i_min + 1; j < nr; j++)
-            if (!(smooth[j] <= level)) { after = j; break; }
-        int64_t lo = before + 1 > i_min - max_half ? before + 1 : i_min - max_half;
-        int64_t hi = after - 1 < i_min + max_half ? after - 1 : i_min + max_half;
-        int64_t mid = (lo + hi) / 2, half = (hi - lo + 1) / 2; /* 0 <= lo <= i_min <= hi */
-        half = half > min_half ? half : min_half;
+        int64_t i_min, mid, half;
+        neck_window(smooth, nr, row_noise, max_half, min_half, &i_min, &mid, &half);
         /* neck.quadratic_fits over the rows mid ± half: the sums of x^p and x^p y, p = 0..2 */
         double *x1 = terms, *x2 = terms + nr, *x3 = terms + 2 * nr, *x4 = terms + 3 * nr;
         double *y0 = terms + 4 * nr, *y1 = terms + 5 * nr, *y2 = terms + 6 * nr;
