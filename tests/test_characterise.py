@@ -558,3 +558,47 @@ def test_the_two_relaxation_times_are_compared_by_their_intervals(model_lam, mod
     poor = ModelFit(model="newtonian", solvent_viscosity_Pa_s=1.0, reduced_chi2=7000.0, success=True)
     (note,) = _model_findings(poor, None, None)
     assert "does not describe this record" in note.message
+
+
+def _sub_floor_series(*, elastic, seed, pixel=5e-6, fps=3000.0, lam=0.02, noise_px=0.02):
+    """Visco-capillary thinning (Papageorgiou's law, D falls linearly) from 60 px to 2.8 px, then,
+    when ``elastic``, an elasto-capillary stretch D ∝ exp(−t/3λ) wholly below the 3 px floor
+    (down to 0.3 px); else the linear law goes on to breakup. Closed forms, pixel noise."""
+    rng = np.random.default_rng(seed)
+    d0, d_switch, speed = 60 * pixel, 2.8 * pixel, 8.5e-3          # m, m, m/s (η = 1 Pa·s)
+    t_switch = (d0 - d_switch) / speed
+    t = np.arange(int((t_switch + 3 * lam * np.log(d_switch / (0.3 * pixel))) * fps)) / fps
+    linear = d0 - speed * t
+    true = np.where(t < t_switch, linear, d_switch * np.exp(-(t - t_switch) / (3 * lam))) \
+        if elastic else linear
+    d = true + rng.normal(0.0, noise_px * pixel, t.size)
+    d[true < 0.3 * pixel] = np.nan
+    return t, d
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_elastic_stretch_below_the_floor_is_fitted_there_and_flagged(seed):
+    # truth: the closed-form λ of the stretch, which lies wholly below the 3 px floor
+    t, d = _sub_floor_series(elastic=True, seed=seed)
+    args = dict(surface_tension=0.06, pixel_size_m=5e-6, fps_hz=3000.0, free_thinning_start_s=0.0,
+                seed=seed)
+    c = characterise(t, d, **args)
+    assert c.regime == "elasto-capillary"
+    assert c.relaxation_time_s == pytest.approx(0.02, rel=0.03)
+    lo, hi = c.relaxation_time_ci95_s
+    assert lo <= 0.02 <= hi
+    below = [f for f in c.findings if f.code == "window-below-floor"]
+    assert below and below[0].severity is Severity.DOUBTFUL
+    assert c.resolution_floor_m < 3 * 5e-6
+    # a caller who fixes the floor gets that floor: no stretch above it, no λ
+    fixed = characterise(t, d, resolution_floor_m=15e-6, **args)
+    assert fixed.regime != "elasto-capillary" and fixed.relaxation_time_s is None
+
+
+def test_newtonian_thread_below_the_floor_stays_newtonian():
+    # truth: Papageorgiou's linear visco-capillary law all the way down: nothing elastic below
+    t, d = _sub_floor_series(elastic=False, seed=4)
+    c = characterise(t, d, surface_tension=0.06, pixel_size_m=5e-6, fps_hz=3000.0,
+                     free_thinning_start_s=0.0, seed=4)
+    assert c.regime == "visco-capillary"
+    assert "window-below-floor" not in {f.code for f in c.findings}

@@ -10,6 +10,7 @@ untrustworthy (:class:`thinning.findings.Finding`). Pure: arrays in, a
 from __future__ import annotations
 
 import logging
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -38,6 +39,12 @@ MODEL_MAX_POINTS = 1500
 SAGGING_BOND_NUMBER = 0.5
 #: An elastic window ended by the floor is doubtful when D falls by less than this inside it.
 MIN_FLOOR_CUT_DECREASE = 3.0
+#: The sub-floor (in pixels) down to which an elastic stretch not seen above the floor is
+#: sought: the integrated shadow of a thread narrower than the blur still scales with its
+#: width, down to about one pixel (measured on both test renderers, DEVELOPERS.md).
+SUB_FLOOR_PIXELS = 1.0
+#: ... and at least this many times the diameter noise (each point then within 10 %).
+SUB_FLOOR_NOISE = 10.0
 
 
 @dataclass(frozen=True)
@@ -247,6 +254,59 @@ def characterise(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
                  resolution_floor_m=None, breakup_parted=None,
                  pixel_size_rel=0.0) -> Characterisation:
     """Regimes, relaxation time, viscosities and quality findings of one diameter series.
+
+    As :func:`characterise_at_floor`; with the default floor (3 pixel sizes), a record
+    whose elasto-capillary stretch is not found above it, or only its unsettled start,
+    is characterised again down to the sub-floor (:func:`sub_floor`). When that finds
+    a (settled) elasto-capillary stretch, that characterisation stands, its floor is
+    the sub-floor and the finding ``window-below-floor`` makes it doubtful: widths
+    under a few pixels rest on the thread's integrated shadow, not on resolved edges
+    (docs/physics.md §8).
+    """
+    args = dict(surface_tension=surface_tension, pixel_size_m=pixel_size_m, fps_hz=fps_hz,
+                free_thinning_start_s=free_thinning_start_s, breakup_time_s=breakup_time_s,
+                density=density, solvent_viscosity=solvent_viscosity,
+                zero_shear_viscosity=zero_shear_viscosity, geometry=geometry, seed=seed,
+                diameter_noise_m=diameter_noise_m, breakup_parted=breakup_parted,
+                pixel_size_rel=pixel_size_rel)
+    first = characterise_at_floor(time_s, diameter_m, resolution_floor_m=resolution_floor_m, **args)
+    unsettled = Code.ELASTIC_NOT_SETTLED in {f.code for f in first.findings}
+    if resolution_floor_m is not None or (first.regime == rg.ELASTO_CAPILLARY and not unsettled):
+        return first
+    floor = sub_floor(pixel_size_m, first.diameter_noise_m)
+    if not floor < first.resolution_floor_m:
+        return first
+    below = characterise_at_floor(time_s, diameter_m, resolution_floor_m=floor, **args)
+    if below.regime != rg.ELASTO_CAPILLARY or \
+            Code.ELASTIC_NOT_SETTLED in {f.code for f in below.findings}:
+        return first
+    lo, hi = below.fit_window_s
+    moved = "" if first.regime != rg.ELASTO_CAPILLARY else \
+        " (the stretch above it was only the unsettled passage from viscous to elastic thinning)"
+    finding = Finding(
+        Code.WINDOW_BELOW_FLOOR, Severity.DOUBTFUL,
+        f"The elasto-capillary stretch lies below the resolution floor "
+        f"({first.resolution_floor_m * 1e6:.3g} µm){moved}: λ comes from widths down to "
+        f"{floor * 1e6:.3g} µm, read from the thread's integrated shadow rather than resolved "
+        f"edges, so it is less certain than its interval says; film at higher magnification.",
+        (lo, hi))
+    return dataclasses.replace(below, findings=[*below.findings, finding])
+
+
+def sub_floor(pixel_size_m: float, diameter_noise_m: float | None) -> float:
+    """The lowest width (m) a sub-floor elastic stretch is fitted to: one pixel, or
+    :data:`SUB_FLOOR_NOISE` times the diameter noise when that is larger."""
+    noise = diameter_noise_m if diameter_noise_m is not None and np.isfinite(diameter_noise_m) else 0.0
+    return max(SUB_FLOOR_PIXELS * pixel_size_m, SUB_FLOOR_NOISE * noise)
+
+
+def characterise_at_floor(time_s, diameter_m, *, surface_tension, pixel_size_m, fps_hz,
+                          free_thinning_start_s, breakup_time_s=None, density=None,
+                          solvent_viscosity=None, zero_shear_viscosity=None, geometry="plates",
+                          seed: int, diameter_noise_m=None, resolution_floor_m=None,
+                          breakup_parted=None, pixel_size_rel=0.0) -> Characterisation:
+    """Regimes, relaxation time, viscosities and quality findings of one diameter series,
+    every fit stopping at one resolution floor.
 
     ``time_s`` (s, recording clock) and ``diameter_m`` (m, NaN where no thread)
     are per frame; frames before ``free_thinning_start_s`` are ignored. σ in

@@ -62,6 +62,10 @@ class Code(str, enum.Enum):
         "late-breakup", "yes",
         "a \"Newtonian\" thread broke well after its law predicts: elastic stress held it in a "
         "stretch too thin to resolve")
+    WINDOW_BELOW_FLOOR = (
+        "window-below-floor", "yes",
+        "no settled elasto-capillary stretch above the resolution floor: λ comes from one below "
+        "it (widths of one to three pixels, read from the thread's integrated shadow)")
     FLOOR_ENDS_WINDOW = (
         "floor-ends-window", "no",
         "the window ends at the resolution floor (thinner frames left out)")
