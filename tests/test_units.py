@@ -41,6 +41,41 @@ def test_nonsense_is_one_sentence(name, text):
     assert "\n" not in message and message.endswith(".")
 
 
+@pytest.mark.parametrize("name, text, words", [
+    # decimal commas are refused, never read as thousands separators (issue: 2,5kHz ran at 25 kHz)
+    ("fps", "2,5kHz", "comma"), ("pixel_size", "25,4um", "comma"),
+    ("surface_tension", "41,5mN/m", "comma"), ("fps", "1,000", "comma"),
+    # dimensionless units where they make no sense, and per-pixel units outside the image scale
+    ("pixel_size", "25%", "number and a unit"), ("pixel_size", "25um%", "number and a unit"),
+    ("pixel_size", "25 um*rad", "dimensionless"), ("reference_width", "3 mm*deg", "dimensionless"),
+    ("surface_tension", "41 mN/m/px", "per pixel"),
+    # outside the plausible range of this experiment (units.BOUNDS, with reasons)
+    ("pixel_size", "1e300m", "plausible range"), ("surface_tension", "1e308N/m", "plausible range"),
+    ("reference_width", "1e30m", "plausible range"), ("fps", "1e300", "plausible range"),
+    ("pixel_size", "0.025", "Give the unit"), ("density", "1", "plausible range"),
+    ("solvent_viscosity", "1e12 Pa*s", "plausible range"),
+])
+def test_mistyped_values_are_refused_with_the_reason(name, text, words):
+    with pytest.raises(BadQuantity) as info:
+        parse_quantity(text, name)
+    message = str(info.value)
+    assert words in message and "\n" not in message and message.endswith(".")
+
+
+@pytest.mark.parametrize("name, text, expected", [
+    ("fps", "10 kfps", 1e4), ("fps", "500fps", 500.0), ("pixel_size", "4.2 um/pixel", 4.2e-6),
+    ("fps", "20/s", 20.0), ("pixel_size", "0.1um", 1e-7), ("surface_tension", "485mN/m", 0.485),
+])
+def test_plausible_values_near_the_edges_pass(name, text, expected):
+    assert math.isclose(parse_quantity(text, name), expected, rel_tol=1e-12)
+
+
+def test_plausible_ranges_read_in_the_default_unit():
+    from thinning.units import plausible_range
+    assert plausible_range("pixel_size") == "0.1–1000 µm"
+    assert plausible_range("fps") == "0.1–5×10⁷ 1/s"
+
+
 def test_roi():
     assert parse_roi("10,0,200,256") == (10, 0, 200, 256)
     for bad in ("10,0,5,256", "1,2,3", "a,b,c,d", "-1,0,5,5"):
@@ -70,3 +105,13 @@ def test_every_option_has_one_field_of_the_analysis_options():
     from thinning.units import OPTION_FIELDS, AnalysisOptions
 
     assert set(OPTION_FIELDS.values()) == {f.name for f in fields(AnalysisOptions)}
+
+
+def test_readme_lists_every_plausible_range_with_its_reason():
+    from pathlib import Path
+
+    from thinning.units import BOUNDS, QUANTITIES, plausible_range
+    readme = Path(__file__).resolve().parents[1].joinpath("README.md").read_text(encoding="utf-8")
+    for name in QUANTITIES:
+        row = f"| `--{name.replace('_', '-')}` | {plausible_range(name)} | {BOUNDS[name][2]} |"
+        assert row in readme, row

@@ -16,7 +16,7 @@ import click
 
 from . import __version__
 from .errors import ThinningError
-from .units import OPTION_FIELDS, BadQuantity, GEOMETRIES, options_from_text
+from .units import OPTION_FIELDS, BadQuantity, GEOMETRIES, options_from_text, plausible_range
 
 #: subcommands living in their own modules: name → "module:attribute"
 _LAZY_COMMANDS = {
@@ -53,17 +53,24 @@ class FriendlyError(click.ClickException):
 def analysis_options(func):
     """Decorate a command with every ``analyse`` option (shared by analyse and batch)."""
     decorators = [
-        click.option("--fps", help=f"{ANALYSIS_OPTION_HELP['fps']} Default unit: 1/s."),
-        click.option("--pixel-size", help=f"{ANALYSIS_OPTION_HELP['pixel_size']} Default unit: µm."),
+        click.option("--fps", help=f"{ANALYSIS_OPTION_HELP['fps']} Default unit: 1/s; "
+                          f"plausible range {plausible_range('fps')}."),
+        click.option("--pixel-size", help=f"{ANALYSIS_OPTION_HELP['pixel_size']} Default unit: µm; "
+                          f"plausible range {plausible_range('pixel_size')}."),
         click.option("--reference-width",
-                     help=f"{ANALYSIS_OPTION_HELP['reference_width']} Default unit: mm."),
+                     help=f"{ANALYSIS_OPTION_HELP['reference_width']} Default unit: mm; "
+                          f"plausible range {plausible_range('reference_width')}."),
         click.option("--surface-tension",
-                     help=f"{ANALYSIS_OPTION_HELP['surface_tension']} Default unit: mN/m."),
-        click.option("--density", help=f"{ANALYSIS_OPTION_HELP['density']} Default unit: kg/m³."),
+                     help=f"{ANALYSIS_OPTION_HELP['surface_tension']} Default unit: mN/m; "
+                          f"plausible range {plausible_range('surface_tension')}."),
+        click.option("--density", help=f"{ANALYSIS_OPTION_HELP['density']} Default unit: kg/m³; "
+                          f"plausible range {plausible_range('density')}."),
         click.option("--solvent-viscosity",
-                     help=f"{ANALYSIS_OPTION_HELP['solvent_viscosity']} Default unit: mPa·s."),
+                     help=f"{ANALYSIS_OPTION_HELP['solvent_viscosity']} Default unit: mPa·s; "
+                          f"plausible range {plausible_range('solvent_viscosity')}."),
         click.option("--zero-shear-viscosity",
-                     help=f"{ANALYSIS_OPTION_HELP['zero_shear_viscosity']} Default unit: mPa·s."),
+                     help=f"{ANALYSIS_OPTION_HELP['zero_shear_viscosity']} Default unit: mPa·s; "
+                          f"plausible range {plausible_range('zero_shear_viscosity')}."),
         click.option("--geometry", type=click.Choice(GEOMETRIES), default=None,
                      help="'plates': step stretch between two end plates (default); "
                           "'dripping': dripping onto a substrate from a nozzle."),

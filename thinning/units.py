@@ -50,8 +50,28 @@ def _registry():
     return pint.UnitRegistry()
 
 
+#: Plausible range (SI) of each physical option for capillary-thinning recordings, with its reason.
+#: A value outside is refused: it is a typing or unit mistake, never a measurement.
+BOUNDS = {
+    "fps": (0.1, 5e7, "from a frame every 10 s (the slowest Boger fluids) to the fastest "
+                      "high-speed cameras"),
+    "pixel_size": (0.1e-6, 1e-3, "finer than 0.1 µm no visible-light lens resolves; coarser than "
+                                 "1 mm a millimetre bridge is not imaged"),
+    "reference_width": (10e-6, 0.2, "plates and nozzles of this method are 10 µm to 200 mm wide"),
+    "surface_tension": (1e-3, 1.0, "liquids lie between about 10 mN/m (fluorocarbons) and "
+                                   "0.5 N/m (liquid metals)"),
+    "density": (100.0, 25000.0, "liquids lie between about 600 kg/m³ and 13,600 kg/m³ (mercury)"),
+    "solvent_viscosity": (1e-5, 1e6, "liquids lie above about 0.2 mPa·s; above 10⁶ Pa·s nothing "
+                                     "thins in a recording"),
+    "zero_shear_viscosity": (1e-5, 1e6, "liquids lie above about 0.2 mPa·s; above 10⁶ Pa·s "
+                                        "nothing thins in a recording"),
+}
+
 _PER_PIXEL = re.compile(r"\s*/\s*(px|pixels?|pix)\s*$", re.IGNORECASE)
 _BARE_NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
+#: What a quantity may be written with: a number, then unit names, powers, products, quotients.
+_QUANTITY_CHARS = re.compile(r"^[A-Za-z0-9 .+\-*/^()_·]+$")
+_DECIMAL_COMMA = re.compile(r"\d,\d")
 
 
 def parse_quantity(text, name):
@@ -64,15 +84,27 @@ def parse_quantity(text, name):
     if isinstance(text, (int, float)) and not isinstance(text, bool):
         text = repr(float(text))
     raw = str(text).strip().replace("µ", "u").replace("μ", "u")
-    raw = _PER_PIXEL.sub("", raw)
-    if raw.lower().endswith("fps"):
-        raw = raw[:-3] + "/s"
+    if _PER_PIXEL.search(raw):
+        if name != "pixel_size":
+            raise BadQuantity(f"'{text}' is given per pixel, but a {spec.label} is not a per-pixel "
+                              f"quantity; write e.g. '{_example(name)}'.")
+        raw = _PER_PIXEL.sub("", raw)
+    if re.search(r"fps$", raw, re.IGNORECASE):
+        raw = raw[:-3] + "Hz"
     if not raw:
         raise BadQuantity(f"--{name.replace('_', '-')} is empty; give a number with a unit, e.g. "
                           f"'{_example(name)}'.")
+    if _DECIMAL_COMMA.search(raw):
+        raise BadQuantity(f"'{text}' has a comma in the number, which is read neither as a "
+                          f"decimal nor as a thousands separator: write '{raw.replace(',', '.')}' "
+                          f"if the comma is a decimal, or the digits alone.")
+    if not _QUANTITY_CHARS.match(raw):
+        raise BadQuantity(f"'{text}' is not a {spec.label}: write a number and a unit, e.g. "
+                          f"'{_example(name)}'.")
     ureg = _registry()
+    bare = bool(_BARE_NUMBER.match(raw))
     try:
-        if _BARE_NUMBER.match(raw):
+        if bare:
             quantity = ureg.Quantity(float(raw), spec.default_unit)
         else:
             quantity = ureg.Quantity(raw)
@@ -80,6 +112,12 @@ def parse_quantity(text, name):
                 raise BadQuantity(f"'{text}' is not a {spec.label}.")
             if quantity.unitless:
                 quantity = ureg.Quantity(quantity.magnitude, spec.default_unit)
+            for unit in quantity.unit_items() if hasattr(quantity, "unit_items") else \
+                    quantity._units.items():
+                if ureg.Quantity(1.0, unit[0]).dimensionless:
+                    raise BadQuantity(f"'{text}' carries the dimensionless unit '{unit[0]}', "
+                                      f"which a {spec.label} does not take; write e.g. "
+                                      f"'{_example(name)}'.")
         value = float(quantity.to(spec.si_unit).magnitude)
     except BadQuantity:
         raise
@@ -88,7 +126,44 @@ def parse_quantity(text, name):
                           f"{spec.default_unit}, e.g. '{_example(name)}').") from None
     if not math.isfinite(value) or value <= 0:
         raise BadQuantity(f"The {spec.label} must be a positive number, got '{text}'.")
+    lo, hi, reason = BOUNDS[name]
+    if not lo <= value <= hi:
+        hint = ""
+        if bare:
+            hint = (" Give the unit (a bare number is read in "
+                    f"{_unit_text(spec.default_unit)}), e.g. '{_example(name)}'.")
+        side = "below" if value < lo else "above"
+        raise BadQuantity(f"The {spec.label} '{text}' is {side} the plausible range "
+                          f"{plausible_range(name)}: {reason}.{hint}")
     return value
+
+
+def plausible_range(name) -> str:
+    """The option's plausible range in its default unit, e.g. ``'0.1–1000 µm'``."""
+    spec = QUANTITIES[name]
+    lo, hi, _ = BOUNDS[name]
+    per = _DEFAULT_UNIT_IN_SI[spec.default_unit]
+    lo, hi = lo / per, hi / per
+    return f"{_plain_number(lo)}–{_plain_number(hi)} {_unit_text(spec.default_unit)}"
+
+
+#: One default unit in SI (kept here so that --help needs no unit registry).
+_DEFAULT_UNIT_IN_SI = {"1/s": 1.0, "um": 1e-6, "mm": 1e-3, "mN/m": 1e-3, "kg/m^3": 1.0,
+                       "mPa*s": 1e-3}
+
+
+def _unit_text(unit):
+    return {"um": "µm", "kg/m^3": "kg/m³", "mPa*s": "mPa·s"}.get(unit, unit)
+
+
+def _plain_number(v):
+    """``1000``, ``0.01``, ``5×10⁷``: plain digits between 10⁻³ and 10⁶, else a power of ten."""
+    if 1e-3 <= v < 1e6:
+        return f"{v:g}"
+    exp = int(math.floor(math.log10(v)))
+    mant = f"{v / 10 ** exp:g}"
+    sup = str(exp).translate(str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹"))
+    return f"10{sup}" if mant == "1" else f"{mant}×10{sup}"
 
 
 def _example(name):
