@@ -2,6 +2,7 @@
 
 import json
 import math
+import numpy as np
 
 import pytest
 from click.testing import CliRunner
@@ -161,3 +162,53 @@ def test_truncated_video_is_analysed_with_a_warning(recording, tmp_path):
     data = json.loads((out / "result.json").read_text())
     assert data["quality"] == "doubtful"
     assert any("broke off" in r for r in data["quality_reasons"])
+
+
+def test_ctrl_c_exits_130_with_one_word(tmp_path):
+    # a real process given SIGINT mid-command (the demo runs for many seconds)
+    import signal
+    import subprocess
+    import sys
+
+    proc = subprocess.Popen([sys.executable, "-m", "thinning.cli", "demo", "--out", str(tmp_path / "d"),
+                             "--workers", "1"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    for line in proc.stdout:   # interrupt it inside the batch, after its first row
+        if "row 1 " in line:
+            break
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert err.strip().splitlines()[-1] == "thinning: interrupted."
+    assert "Traceback" not in err and "Aborted" not in err
+
+
+@pytest.mark.parametrize("what", ["video", "image-folder", "out"])
+def test_names_that_are_not_utf8_are_refused_not_crashed_on(tmp_path, recording, what):
+    # OpenCV's readers die (exit 139) on such names: a real process must exit 2 with one line
+    import os
+    import shutil
+    import subprocess
+    import sys
+
+    good, _ = recording
+    bad = os.fsdecode(b"caf\xe9\xff")
+    source, out = tmp_path / "ok.avi", tmp_path / "o"
+    if what == "video":
+        source = tmp_path / f"{bad}.avi"
+        shutil.copy(good, source)
+    elif what == "image-folder":
+        import cv2
+        source = tmp_path / "frames"
+        source.mkdir()
+        cv2.imwrite(str(source / "f1.png"), np.full((32, 32), 200, np.uint8))
+        (source / f"{bad}.png").write_bytes((source / "f1.png").read_bytes())
+    else:
+        shutil.copy(good, source)
+        out = tmp_path / bad
+    proc = subprocess.run([sys.executable, "-m", "thinning.cli", *map(str, analyse_args(source, out))],
+                          capture_output=True)
+    err = proc.stderr.decode("utf-8", "replace")
+    assert proc.returncode == 2, err
+    assert "not valid UTF-8" in err and len(err.strip().splitlines()) == 1
+    assert not out.exists()

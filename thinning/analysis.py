@@ -109,6 +109,9 @@ def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> R
     -------
     Result
     """
+    from .frames import require_text_path
+
+    require_text_path(out_dir, "output folder")
     result = analyse(source, options, progress=progress)
     write_outputs(result, out_dir)
     return result

@@ -10,6 +10,7 @@ from __future__ import annotations
 import importlib
 import logging
 import os
+import signal
 import sys
 
 import click
@@ -202,18 +203,30 @@ def summary_text(result, out_dir) -> str:
 def main(argv=None):
     """Entry point: run the CLI with exit statuses 0 / 1 / 2."""
     try:
-        cli.main(args=argv, prog_name="thinning", standalone_mode=True)
+        # not click's standalone mode: that turns Ctrl-C into "Aborted!" and exit status 1
+        status = cli.main(args=argv, prog_name="thinning", standalone_mode=False)
     except SystemExit:
         raise
-    except KeyboardInterrupt:
+    except (KeyboardInterrupt, click.exceptions.Abort):
+        signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C must not cut the clean-up
         click.echo("thinning: interrupted.", err=True)
         sys.exit(130)
+    except click.exceptions.Exit as exc:
+        sys.exit(exc.exit_code)
+    except click.ClickException as exc:
+        exc.show()
+        sys.exit(exc.exit_code)
+    except OSError as exc:  # the user's environment: a full disk, a read-only or missing folder
+        where = f" ({exc.filename})" if exc.filename else ""
+        click.echo(f"thinning: {exc.strerror or exc}{where}.", err=True)
+        sys.exit(2)
     except Exception as exc:  # internal error: one line, exit 1; THINNING_DEBUG=1 for the traceback
         if os.environ.get("THINNING_DEBUG"):
             raise
         click.echo(f"thinning: internal error: {type(exc).__name__}: {exc} "
                    "(set THINNING_DEBUG=1 for details).", err=True)
         sys.exit(1)
+    sys.exit(status if isinstance(status, int) else 0)
 
 
 if __name__ == "__main__":

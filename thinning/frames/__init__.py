@@ -360,6 +360,8 @@ class ImageFolderSource(FrameSource):
                  if p.is_file() and p.suffix.lower() in IMAGE_SUFFIXES and not p.name.startswith(".")]
         if not files:
             raise UnusableSource(f"{path}: the folder holds no image files (PNG, TIFF, BMP, JPEG).")
+        for file in files:
+            require_text_path(file, "image file")
         self._files = sorted(files, key=lambda p: natural_key(p.name))
         first = self._read(self._files[0])
         if first is None:
@@ -389,12 +391,24 @@ class ImageFolderSource(FrameSource):
         return self._files
 
 
+def require_text_path(path, what="recording") -> None:
+    """Refuse a path whose name is not valid UTF-8 (bytes the file system holds but text cannot
+    name): OpenCV's readers crash on such names, and no report could print them."""
+    try:
+        os.fspath(path).encode("utf-8")
+    except UnicodeEncodeError:
+        shown = os.fsencode(path).decode("utf-8", "backslashreplace")
+        raise UnusableSource(f"{shown}: the {what}'s name is not valid UTF-8 text; rename it "
+                             "(letters, digits, '-', '_', '.') and try again.") from None
+
+
 def open_source(path) -> FrameSource:
     """Open ``path`` as a recording: a video file, a multi-page TIFF, a folder of images, a
     Phantom ``.cine``, or a Photron ``.mraw`` with its ``.cih``/``.cihx`` header (either named).
 
     Raises :class:`UnusableSource` with one sentence when nothing can read it.
     """
+    require_text_path(path)
     p = Path(path)
     if not p.exists():
         raise UnusableSource(f"{path}: no such file or folder.")
