@@ -50,7 +50,9 @@ def test_rows_paths_and_identity(tmp_path):
 
 
 @pytest.mark.parametrize("text, words", [
-    ("path,sampel\na.tif,x\n", "'sampel'"),
+    ("path,sampel\na.tif,x\n", "'sampel' \\(did you mean 'sample'\\?\\)"),
+    ("Path,Surface Tension\na.tif,x\n", "'Surface Tension' \\(did you mean 'surface_tension'\\?\\)"),
+    ("path\tsample\na.tif\tx\n", "not split into columns"),
     ("sample,lot\nx,L1\n", "no 'path' column"),
     ("path,fps,fps\na.tif,1,2\n", "'fps' appears more than once"),
     ("path,,fps\na.tif,,1\n", "column 2 has no name"),
@@ -152,3 +154,29 @@ def test_check_command_exit_status(tmp_path):
     unknown.write_text("path,pixelsize\ngood.tif,5um\n")
     result = runner.invoke(cli, ["batch", str(unknown), "--check", *common])
     assert result.exit_code == 2 and "'pixelsize'" in result.output
+
+
+def test_cells_keep_quoted_line_breaks_and_unicode_separators(tmp_path):
+    # the csv module reads the file itself: a quoted newline stays in its cell, and U+2028 (a
+    # line separator to str.splitlines) neither splits the row nor drops the options after it
+    manifest = tmp_path / "m.csv"
+    manifest.write_text('path,sample,notes,fps\n'
+                        'a.tif,S-1,"first line\nsecond line",10kHz\n'
+                        'b.tif,S-2,odd\u2028cell,20kHz\n', encoding="utf-8")
+    rows = read_manifest(manifest)
+    assert [r.identity["sample"] for r in rows] == ["S-1", "S-2"]
+    assert rows[0].identity["notes"] == "first line\nsecond line"
+    assert rows[1].identity["notes"] == "odd\u2028cell"
+    assert [r.cells["fps"] for r in rows] == ["10kHz", "20kHz"]
+
+
+def test_semicolon_separated_manifests_are_read(tmp_path):
+    # what spreadsheets write in many locales; a decimal comma in a cell is then refused by name
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path;sample;lot;fps\na.tif;S-1;L1;10kHz\nb.tif;S-2;L1;2,5kHz\n",
+                        encoding="utf-8")
+    rows = read_manifest(manifest)
+    assert [r.identity["sample"] for r in rows] == ["S-1", "S-2"]
+    assert rows[0].cells["fps"] == "10kHz"
+    with pytest.raises(BadQuantity, match="comma"):
+        row_options(rows[1])

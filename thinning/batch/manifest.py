@@ -19,6 +19,8 @@ no cell at all are skipped and not counted.
 from __future__ import annotations
 
 import csv
+import difflib
+import io
 import logging
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -76,7 +78,10 @@ def read_manifest(path) -> list[ManifestRow]:
     """
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8-sig")
+        # the csv module reads the file itself (newline=""), so a quoted line break or a U+2028
+        # inside a cell stays in its cell
+        with open(path, encoding="utf-8-sig", newline="") as handle:
+            text = handle.read()
     except FileNotFoundError:
         raise UnusableManifest(f"{path}: no such manifest file.") from None
     except IsADirectoryError:
@@ -85,14 +90,17 @@ def read_manifest(path) -> list[ManifestRow]:
         raise UnusableManifest(f"{path}: not a text CSV file (it is not UTF-8).") from None
     except OSError as exc:
         raise UnusableManifest(f"{path}: the manifest cannot be read ({exc.strerror}).") from None
+    first_line = text.lstrip("\r\n").split("\n", 1)[0]
+    delimiter = ";" if ";" in first_line and "," not in first_line else ","
     try:
-        records = [r for r in csv.reader(text.splitlines()) if any(cell.strip() for cell in r)]
+        records = [r for r in csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+                   if any(cell.strip() for cell in r)]
     except csv.Error as exc:
         raise UnusableManifest(f"{path}: not a readable CSV file ({exc}).") from None
     if not records:
         raise UnusableManifest(f"{path}: the manifest is empty; it needs a header with a 'path' column.")
     header = [cell.strip().lower() for cell in records[0]]
-    _check_header(path, header)
+    _check_header(path, header, [cell.strip() for cell in records[0]])
     base = path.parent
     rows = []
     for number, cells in enumerate(records[1:], start=1):
@@ -115,15 +123,22 @@ def read_manifest(path) -> list[ManifestRow]:
     return rows
 
 
-def _check_header(path, header):
+def _check_header(path, header, written):
     blank = [i + 1 for i, name in enumerate(header) if not name]
     if blank:
         raise UnusableManifest(f"{path}: header column {blank[0]} has no name; every column needs "
                                f"one of: {', '.join(MANIFEST_COLUMNS)}.")
-    unknown = [name for name in header if name not in MANIFEST_COLUMNS]
+    unknown = [i for i, name in enumerate(header) if name not in MANIFEST_COLUMNS]
     if unknown:
-        raise UnusableManifest(f"{path}: unknown column '{unknown[0]}'; the columns a manifest may "
-                               f"have are {', '.join(MANIFEST_COLUMNS)}.")
+        name = header[unknown[0]]
+        if "\t" in name or "|" in name:
+            raise UnusableManifest(f"{path}: the header '{written[unknown[0]]}' is not split into "
+                                   "columns; separate the columns with commas (or semicolons).")
+        close = difflib.get_close_matches(name.replace(" ", "_").replace("-", "_"),
+                                          MANIFEST_COLUMNS, n=1, cutoff=0.7)
+        hint = f" (did you mean '{close[0]}'?)" if close else ""
+        raise UnusableManifest(f"{path}: unknown column '{written[unknown[0]]}'{hint}; the columns a "
+                               f"manifest may have are {', '.join(MANIFEST_COLUMNS)}.")
     repeated = sorted({name for name in header if header.count(name) > 1})
     if repeated:
         raise UnusableManifest(f"{path}: column '{repeated[0]}' appears more than once.")
