@@ -137,7 +137,7 @@ def write_synthetic_set(folder):
 
 
 def read_table(path):
-    with open(path, newline="", encoding="utf-8") as fh:
+    with open(path, newline="", encoding="utf-8-sig") as fh:
         reader = csv.DictReader(fh)
         return reader.fieldnames, list(reader)
 
@@ -473,3 +473,25 @@ def test_batch_command_errors(tmp_path):
     result = runner.invoke(cli, ["batch", str(good), "--out", str(tmp_path / "out"),
                                  "--specs", str(tmp_path / "specs.toml")])
     assert result.exit_code == 2 and "--db" in result.output
+
+
+@pytest.mark.parametrize("cell, shown", [
+    ("=HYPERLINK(\"http://x\",\"y\")", "'=HYPERLINK(\"http://x\",\"y\")"),
+    ("@SUM(A1:A9)", "'@SUM(A1:A9)"), ("+cmd|' /C calc'!A0", "'+cmd|' /C calc'!A0"),
+    ("-2+3", "'-2+3"), ("\tx", "'\tx"),
+    ("-0.5", "-0.5"), ("+1e-3", "+1e-3"), ("lot 7 = ok", "lot 7 = ok"), ("'quoted", "'quoted"),
+])
+def test_results_table_cells_never_start_a_formula(tmp_path, cell, shown):
+    # OWASP, "CSV Injection": a text cell starting with = + - @ tab or CR gets an apostrophe;
+    # numbers stay numbers; the batch reads its own table back unchanged
+    from thinning.batch.table import TABLE_COLUMNS, _text, write_results_csv
+    from thinning.values import from_spreadsheet_safe, spreadsheet_safe
+
+    assert spreadsheet_safe(cell) == shown
+    assert from_spreadsheet_safe(shown) == cell
+    row = {c: None for c in TABLE_COLUMNS} | {"row": 1, "notes": cell, "sample": "S1"}
+    write_results_csv(tmp_path, [row])
+    raw = (tmp_path / "results.csv").read_bytes()
+    assert raw.startswith(b"\xef\xbb\xbf")          # a byte-order mark for spreadsheets
+    _, table = read_table(tmp_path / "results.csv")
+    assert table[0]["notes"] == shown and _text(table[0]["notes"]) == cell

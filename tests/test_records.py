@@ -82,7 +82,7 @@ def test_load_batch_is_idempotent_and_keeps_full_precision(db_url, tmp_path):
     out = tmp_path / "export.csv"
     result = run(["export", "--out", str(out)], db_url)
     assert result.exit_code == 0, result.output
-    with out.open() as handle:
+    with out.open(encoding="utf-8-sig") as handle:
         reader = csv.DictReader(handle)
         table = list(reader)
     assert reader.fieldnames == CONTRACT_EXPORT
@@ -405,7 +405,7 @@ def test_show_says_why_a_replicate_is_not_valid_with_the_codes(db_url, tmp_path)
     assert "replicate L1-s #2 is not valid: quality doubtful (few-frames-in-window)" in lot.verdict.reasons
     exported = run(["export", "--out", str(tmp_path / "all.csv")], db_url)
     assert exported.exit_code == 0
-    with open(tmp_path / "all.csv", newline="") as handle:
+    with open(tmp_path / "all.csv", newline="", encoding="utf-8-sig") as handle:
         codes = [r["warning_codes"] for r in csv.DictReader(handle)]
     assert codes == ["", "few-frames-in-window"]
 

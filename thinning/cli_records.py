@@ -18,6 +18,7 @@ from platformdirs import user_data_dir
 
 from . import atomic
 from .cli import FriendlyCommand, FriendlyError, FriendlyGroup
+from .values import spreadsheet_safe
 
 ENV_DB = "THINNING_DB"  # same name as thinning.records.ENV_DB
 
@@ -70,7 +71,7 @@ def csv_cell(value) -> str:
         return str(value).lower()
     if isinstance(value, float):
         return repr(value)
-    return str(value)
+    return spreadsheet_safe(str(value))
 
 
 def _write_csv(handle, columns, rows) -> None:
@@ -246,7 +247,8 @@ def export_command(db_url, out_path, product):
     with _open(db_url) as store:
         rows = store.export_rows(product=product)
     try:
-        with atomic.replacing(out_path, "w", newline="", encoding="utf-8") as handle:
+        # a byte-order mark, so that spreadsheets read µ and other non-ASCII text right
+        with atomic.replacing(out_path, "w", newline="", encoding="utf-8-sig") as handle:
             _write_csv(handle, EXPORT_COLUMNS, rows)
     except OSError as exc:
         raise FriendlyError(f"cannot write {out_path} ({exc.strerror}).") from None

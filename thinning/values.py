@@ -1,5 +1,5 @@
 """Small helpers shared by the writers and readers of results: plain JSON values, numbers read
-back, file names, UTC time stamps."""
+back, file names, UTC time stamps, spreadsheet-safe CSV text."""
 
 from __future__ import annotations
 
@@ -62,3 +62,26 @@ def safe_name(text: str) -> str:
 def row_folder_name(row: int, name: str, width: int) -> str:
     """``<row>-<name>``: row zero-padded to ``width`` digits, name made safe."""
     return f"{row:0{width}d}-{safe_name(name)}"
+
+
+#: The first characters that make a spreadsheet read a cell as a formula (OWASP, "CSV Injection").
+FORMULA_LEADS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def spreadsheet_safe(text: str) -> str:
+    """A CSV cell that a spreadsheet shows as text: a cell that is not a number and starts like
+    a formula gets a leading apostrophe (OWASP's advice against CSV injection); numbers, such as
+    ``-0.5``, and other text are unchanged. :func:`from_spreadsheet_safe` undoes it."""
+    if text.startswith(FORMULA_LEADS):
+        try:
+            float(text)
+        except ValueError:
+            return "'" + text
+    return text
+
+
+def from_spreadsheet_safe(text: str) -> str:
+    """The cell as written before :func:`spreadsheet_safe`."""
+    if text.startswith("'") and text[1:].startswith(FORMULA_LEADS) and spreadsheet_safe(text[1:]) == text:
+        return text[1:]
+    return text

@@ -22,7 +22,7 @@ import numpy as np
 from .. import __version__, atomic
 from ..errors import ThinningError
 from ..result import Result
-from ..values import finite_number, row_folder_name, utc_text
+from ..values import finite_number, from_spreadsheet_safe, row_folder_name, spreadsheet_safe, utc_text
 from .manifest import ManifestRow
 from .rows import RowOutcome
 
@@ -79,7 +79,7 @@ def _cell(value) -> str:
         return ""
     if isinstance(value, float):
         return repr(value) if math.isfinite(value) else ""
-    return str(value)
+    return spreadsheet_safe(str(value))
 
 
 def results_csv_text(rows: list[dict]) -> str:
@@ -105,7 +105,8 @@ def results_frame(rows: list[dict]):
 
 def write_results_csv(out: Path, rows: list[dict]):
     """Atomically (re)write ``out/results.csv`` from table rows."""
-    atomic.write_bytes(out / "results.csv", results_csv_text(rows).encode("utf-8"))
+    # with a byte-order mark, so that spreadsheets read µ and other non-ASCII text right
+    atomic.write_bytes(out / "results.csv", results_csv_text(rows).encode("utf-8-sig"))
 
 
 def write_results_parquet(out: Path, frame):
@@ -174,7 +175,7 @@ def result_from_results_row(row) -> Result:
 
 
 def _text(value) -> str:
-    return "" if value is None else str(value).strip()
+    return "" if value is None else from_spreadsheet_safe(str(value).strip())
 
 
 def _row_folder(batch_dir: Path, row, width: int) -> Path:
@@ -198,7 +199,7 @@ def read_batch(batch_dir) -> list[FinishedRow]:
     table = batch_dir / "results.csv"
     if not table.is_file():
         raise UnusableBatchFolder(f"{batch_dir} has no results.csv; give the folder of a finished batch.")
-    with table.open(newline="", encoding="utf-8") as handle:
+    with table.open(newline="", encoding="utf-8-sig") as handle:
         reader = csv.DictReader(handle)
         missing = [c for c in ("row", "path", "status", "sha256") if c not in (reader.fieldnames or [])]
         if missing:
