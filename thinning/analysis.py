@@ -225,20 +225,23 @@ def write_outputs(result: Result, out_dir) -> Path:
         A fresh result of :func:`analyse` (with its per-frame table and neck series).
     out_dir : str or path
         The folder, created if needed. ``diameter.csv``, the figures,
-        ``report.html`` and, last, ``result.json`` are each replaced atomically.
+        ``report.html`` and ``result.json`` are written into a staging folder
+        beside it, which then replaces it in one step (:func:`thinning.atomic.replacing_folder`):
+        the folder is wholly old or wholly new, and other files in it are kept.
 
     Returns
     -------
     pathlib.Path
         The folder.
     """
-    from .plots import write_figures
+    from .plots import FIGURE_NAMES, write_figures
     from .report.recording import write_recording_report
 
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    atomic.write_bytes(out / "diameter.csv", diameter_csv_text(result.table).encode())
-    figures = write_figures(out, result)
-    write_recording_report(out, result, figures)
-    atomic.write_bytes(out / "result.json", result.to_json_text().encode())
+    own = {"diameter.csv", "report.html", "result.json"} | {f"{n}.png" for n in FIGURE_NAMES}
+    with atomic.replacing_folder(out, own) as stage:
+        atomic.write_bytes(stage / "diameter.csv", diameter_csv_text(result.table).encode())
+        figures = write_figures(stage, result)
+        write_recording_report(stage, result, figures)
+        atomic.write_bytes(stage / "result.json", result.to_json_text().encode())
     return out

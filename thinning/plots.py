@@ -362,6 +362,10 @@ def _save_png(fig, path):
     return path
 
 
+#: The figures of one recording, each written as ``NAME.png``.
+FIGURE_NAMES = ("diameter", "extensional_viscosity", "strain_rate", "frames")
+
+
 def write_figures(out_dir, result):
     """Write ``diameter.png``, ``extensional_viscosity.png``, ``strain_rate.png`` and ``frames.png``.
 

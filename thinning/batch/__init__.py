@@ -35,7 +35,7 @@ from ..values import row_folder_name, safe_name
 from .manifest import read_manifest, row_options
 from .rows import DEFAULT_ANALYSER, TEMP_SUFFIX, RowOutcome, RowTask, run_row, write_failed_folder
 from .table import (RESULT_COLUMNS, TABLE_COLUMNS, FinishedRow, read_batch, results_frame, table_row,
-                    write_results_csv, write_results_parquet, _parquet_available)
+                    earlier_rows, write_results_csv, write_results_parquet, _parquet_available)
 from .workers import SchedulerUnreachable, run_dask, run_local
 
 log = logging.getLogger(__name__)
@@ -138,9 +138,11 @@ def _run(rows, out, *, defaults, workers, scheduler, redo, on_row, records, anal
     width = len(str(max((r.row for r in rows), default=1)))
     by_row = {r.row: r for r in rows}
     folders = {r.row: row_folder_name(r.row, r.name, width) for r in rows}
-    finished: dict[int, dict] = {}
+    # the rows of an earlier run stay in the table until this run finishes them again, so an
+    # interrupted rerun (or --redo) never shrinks results.csv
+    finished: dict[int, dict] = {number: old for number, old in earlier_rows(out).items()
+                                 if number in folders and old.get("folder") == folders[number]}
     outcomes: dict[int, RowOutcome] = {}
-    (out / "results.parquet").unlink(missing_ok=True)  # written again when the batch completes
 
     def record(outcome: RowOutcome):
         row = by_row[outcome.row]
@@ -164,16 +166,19 @@ def _run(rows, out, *, defaults, workers, scheduler, redo, on_row, records, anal
             record(write_failed_folder(empty, str(exc)))
             continue
         tasks.append(RowTask(row.row, str(row.source.resolve()), options, folder, redo, analyser))
-    if tasks:
-        if scheduler:
-            run_dask(tasks, record, scheduler=scheduler, connect_timeout_s=connect_timeout_s)
-        else:
-            run_local(tasks, record, workers=workers)
-    rows_done = [finished[k] for k in sorted(finished)]
-    write_results_csv(out, rows_done)
-    table = results_frame(rows_done)
-    if _parquet_available():
-        write_results_parquet(out, table)
+    try:
+        if tasks:
+            if scheduler:
+                run_dask(tasks, record, scheduler=scheduler, connect_timeout_s=connect_timeout_s)
+            else:
+                run_local(tasks, record, workers=workers)
+    finally:
+        # on every way out (done, Ctrl-C, an error): both tables from every finished row
+        rows_done = [finished[k] for k in sorted(finished)]
+        write_results_csv(out, rows_done)
+        table = results_frame(rows_done)
+        if _parquet_available():
+            write_results_parquet(out, table)
     n_ok = sum(o.ok for o in outcomes.values())
     return BatchReport(table=table, n_rows=len(rows), n_ok=n_ok, n_failed=len(outcomes) - n_ok,
                        n_skipped=sum(o.skipped for o in outcomes.values()),

@@ -1,7 +1,7 @@
 """One batch row, in a worker: analyse it into its own folder, or find it up to date.
 
 :func:`run_row` writes the row's folder ``DIR/<row>-<name>/`` through a
-temporary sibling and a rename (:func:`swap_in`), so a half-written folder
+temporary sibling and a rename (:func:`thinning.atomic.swap_in`), so a half-written folder
 never survives; ``row.json`` in it says what became of the row (status,
 reason, source sha256, options in SI, analysis time, tool version). A row
 whose folder says ``ok`` for the same sha256 and options is not analysed
@@ -14,13 +14,11 @@ import contextlib
 import importlib
 import json
 import logging
-import os
-import secrets
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
-from .. import __version__
+from .. import __version__, atomic
 from ..errors import ThinningError
 from ..result import Result
 from ..units import AnalysisOptions
@@ -39,7 +37,7 @@ ROW_FILE = "row.json"
 
 
 #: Suffix of the temporary sibling folders a row is written through.
-TEMP_SUFFIX = ".thinning-tmp"
+TEMP_SUFFIX = atomic.TEMP_SUFFIX
 
 
 @dataclass(frozen=True)
@@ -88,7 +86,7 @@ def run_row(task: RowTask) -> RowOutcome:
         earlier = _up_to_date(task)
         if earlier is not None:
             return earlier
-    temp = _temp_sibling(folder, "new")
+    temp = atomic.temp_sibling(folder, "new")
     temp.mkdir(parents=True)
     with _cleared(temp):
         try:
@@ -150,25 +148,10 @@ def _up_to_date(task: RowTask) -> RowOutcome | None:
     return RowOutcome(task.row, "ok", "", result, record.get("analysed_at", ""), skipped=True)
 
 
-def _temp_sibling(folder: Path, tag: str) -> Path:
-    return folder.with_name(f".{folder.name}.{tag}-{os.getpid()}-{secrets.token_hex(4)}{TEMP_SUFFIX}")
-
-
-def swap_in(temp: Path, folder: Path):
-    """Put the finished folder ``temp`` in place of ``folder`` by renames (same file system)."""
-    old = None
-    if folder.exists():
-        old = _temp_sibling(folder, "old")
-        os.rename(folder, old)
-    os.rename(temp, folder)
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
-
-
 def write_failed_folder(task: RowTask, reason: str) -> RowOutcome:
     """A failed row decided by the coordinator (bad cells): its folder holds only ``row.json``."""
     folder = Path(task.folder)
-    temp = _temp_sibling(folder, "new")
+    temp = atomic.temp_sibling(folder, "new")
     temp.mkdir(parents=True)
     with _cleared(temp):
         return _publish(temp, folder, task, RowOutcome(task.row, "failed", reason, None, utc_text()))
@@ -177,7 +160,7 @@ def write_failed_folder(task: RowTask, reason: str) -> RowOutcome:
 def _publish(temp: Path, folder: Path, task: RowTask, outcome: RowOutcome) -> RowOutcome:
     """Add ``row.json`` to the finished folder ``temp`` and swap it in as the row's ``folder``."""
     _write_row_json(temp, task, outcome)
-    swap_in(temp, folder)
+    atomic.swap_in(temp, folder)
     return outcome
 
 

@@ -103,6 +103,20 @@ def results_frame(rows: list[dict]):
     return frame
 
 
+def earlier_rows(out: Path) -> dict[int, dict]:
+    """The rows of ``out/results.csv`` as written by an earlier run (cells as text, by row
+    number); empty when there is none, or it is not this version's table."""
+    path = Path(out) / "results.csv"
+    try:
+        with path.open(newline="", encoding="utf-8-sig") as handle:
+            reader = csv.DictReader(handle)
+            if tuple(reader.fieldnames or ()) != TABLE_COLUMNS:
+                return {}
+            return {int(r["row"]): {c: r[c] for c in TABLE_COLUMNS} for r in reader}
+    except (OSError, UnicodeDecodeError, csv.Error, ValueError, TypeError):
+        return {}
+
+
 def write_results_csv(out: Path, rows: list[dict]):
     """Atomically (re)write ``out/results.csv`` from table rows."""
     # with a byte-order mark, so that spreadsheets read µ and other non-ASCII text right
