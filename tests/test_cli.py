@@ -244,3 +244,16 @@ def test_killed_analyse_leaves_its_folder_wholly_old_or_wholly_new(tmp_path, rec
         assert now in (old, new), sorted(name for name in now if now[name] != old.get(name))
     assert run(*analyse_args(good, out)).exit_code == 0
     assert sorted(p.name for p in tmp_path.iterdir()) == ["o"]
+
+
+def test_a_playback_rate_used_without_fps_makes_the_record_doubtful():
+    # an AVI's 25/s playback rate, taken for the camera's clock, would scale λ 100-fold or more
+    from thinning.analysis import resolve_frame_rate
+    from thinning.checks import Severity
+    from thinning.units import AnalysisOptions
+
+    fps, findings = resolve_frame_rate(AnalysisOptions(), 25.0)
+    assert fps == 25.0 and [f.code for f in findings] == ["container-frame-rate"]
+    assert findings[0].severity is Severity.DOUBTFUL
+    assert resolve_frame_rate(AnalysisOptions(), 10000.0) == (10000.0, [])
+    assert resolve_frame_rate(AnalysisOptions(fps_hz=5000.0), 25.0) == (5000.0, [])

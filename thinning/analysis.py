@@ -55,8 +55,9 @@ def resolve_frame_rate(options: AnalysisOptions, container_fps):
     if container_fps >= PLAYBACK_RATE_LIMIT_HZ:
         return container_fps, []
     message = (f"No --fps given: the container's rate of {container_fps:g}/s was used, but for "
-               "high-speed cameras it is usually a playback rate; pass --fps to be sure.")
-    return container_fps, [Finding(Code.CONTAINER_FRAME_RATE, Severity.NOTE, message)]
+               "high-speed cameras it is usually a playback rate, and every time and λ scale with "
+               "it; pass --fps with the camera's recording rate.")
+    return container_fps, [Finding(Code.CONTAINER_FRAME_RATE, Severity.DOUBTFUL, message)]
 
 
 def analyse(source, options: AnalysisOptions, *, progress=None) -> Result:

@@ -87,7 +87,8 @@ class Code(str, enum.Enum):
     OUTLIER_FRAMES = (
         "outlier-frames", "no", "frames off the thinning trend (beads, dust) left out of the fits")
     CONTAINER_FRAME_RATE = (
-        "container-frame-rate", "no", "the frame rate came from the file, likely a playback rate")
+        "container-frame-rate", "yes",
+        "no --fps: the file's rate, under 500/s and so likely a playback rate, set the clock")
     VISCOSITY_FALLBACK = (
         "viscosity-fallback", "no", "the solvent viscosity stood in for the zero-shear viscosity")
     GRAVITY_SAGGING = ("gravity-sagging", "no", "Bond number large: the neck may sag")
