@@ -165,6 +165,19 @@ def test_names():
     assert safe_name("Lot 7/ä+b.c_d-e") == "Lot_7___b.c_d-e"
     assert row_folder_name(3, "S 1", 3) == "003-S_1"
     assert row_folder_name(12, "x", 2) == "12-x"
+    # names over 80 characters are cut, with a digest of the whole name (file names hold 255 bytes)
+    long_a, long_b = "S" * 300 + "a", "S" * 300 + "b"
+    assert len(safe_name(long_a)) == 80 and safe_name(long_a) != safe_name(long_b)
+    assert safe_name(long_a).startswith("S" * 71 + "-")
+
+
+def test_a_very_long_sample_name_is_analysed_like_any_other(tmp_path, fake_env):
+    rng = np.random.default_rng(6)
+    write_stack(tmp_path / "a.tif", rng)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text(f"path,sample,fps\na.tif,{'x' * 300},10kHz\n")
+    report = run_batch(manifest, tmp_path / "out", defaults=DEFAULTS, workers=1, analyser=FAKE)
+    assert report.n_ok == 1
 
 
 def test_failed_rows_and_results_table(tmp_path, fake_env):

@@ -3,6 +3,7 @@ back, file names, UTC time stamps, spreadsheet-safe CSV text."""
 
 from __future__ import annotations
 
+import hashlib
 import math
 import re
 from collections.abc import Mapping
@@ -51,12 +52,23 @@ def finite_number(value) -> float | None:
     return x if math.isfinite(x) else None
 
 
+#: Longest safe name (characters): file systems allow 255 bytes a name, and the batch stages a
+#: row folder under a longer hidden name beside it.
+MAX_NAME_CHARS = 80
+
+
 def safe_name(text: str) -> str:
     """``text`` with every character outside ASCII letters, digits, ``.``, ``_``, ``-`` → ``_``.
 
-    The contract's rule for batch row folders and lot report file names.
+    The contract's rule for batch row folders and lot report file names; a name longer than
+    :data:`MAX_NAME_CHARS` keeps its first 71 characters and gets ``-`` and 8 hex digits of the
+    SHA-256 of the whole text, so long names stay distinct.
     """
-    return re.sub(r"[^A-Za-z0-9._-]", "_", text)
+    name = re.sub(r"[^A-Za-z0-9._-]", "_", text)
+    if len(name) > MAX_NAME_CHARS:
+        digest = hashlib.sha256(text.encode("utf-8", "surrogatepass")).hexdigest()[:8]
+        name = f"{name[:MAX_NAME_CHARS - 9]}-{digest}"
+    return name
 
 
 def row_folder_name(row: int, name: str, width: int) -> str:
