@@ -92,6 +92,10 @@ def test_reference_width_calibration(recording, tmp_path):
     ("backlight-vignette", "no filament in any frame"),
     ("backlight-dust", "no filament in any frame"),
     ("no-surface-tension", "surface tension"),
+    ("huge-png", "not a readable image"),
+    ("roi-outside", "leaves less than 8×8 pixels"),
+    ("out-inside-source", "inside the image folder"),
+    ("decimal-comma", "comma"),
 ])
 def test_bad_input_is_one_sentence_and_exit_2(tmp_path, recording, case, message):
     import numpy as np
@@ -130,6 +134,29 @@ def test_bad_input_is_one_sentence_and_exit_2(tmp_path, recording, case, message
     elif case == "bad-unit":
         args = analyse_args(good, tmp_path / "o")
         args[args.index("--surface-tension") + 1] = "3 kg"
+    elif case == "huge-png":
+        # a PNG header claiming 100000 × 100000 pixels (OpenCV refuses to allocate it)
+        import struct
+        import zlib
+
+        def chunk(kind, data):
+            return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data))
+        source = tmp_path / "huge"
+        source.mkdir()
+        (source / "f1.png").write_bytes(b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", struct.pack(
+            ">IIBBBBB", 100000, 100000, 8, 0, 0, 0, 0)) + chunk(b"IDAT", zlib.compress(b"\0" * 99))
+            + chunk(b"IEND", b""))
+    elif case == "roi-outside":
+        args = analyse_args(good, tmp_path / "o", roi="1000,1000,2000,2000")
+    elif case == "out-inside-source":
+        import cv2
+        source = tmp_path / "frames"
+        source.mkdir()
+        cv2.imwrite(str(source / "f1.png"), np.full((32, 32), 200, np.uint8))
+        args = analyse_args(source, source / "results")
+    elif case == "decimal-comma":
+        args = analyse_args(good, tmp_path / "o")
+        args[args.index("--fps") + 1] = "2,5kHz"
     elif case == "no-surface-tension":
         args = ["analyse", good, "--out", tmp_path / "o", "--fps", "2kHz", "--pixel-size", "5um"]
     if args is None:
@@ -257,3 +284,38 @@ def test_a_playback_rate_used_without_fps_makes_the_record_doubtful():
     assert findings[0].severity is Severity.DOUBTFUL
     assert resolve_frame_rate(AnalysisOptions(), 10000.0) == (10000.0, [])
     assert resolve_frame_rate(AnalysisOptions(fps_hz=5000.0), 25.0) == (5000.0, [])
+
+
+@pytest.mark.parametrize("kind", ["tiff-pages", "image-bits"])
+def test_frames_unlike_the_first_end_the_record_as_doubtful(tmp_path, recording, kind):
+    # a TIFF whose second page has another size, or a folder mixing 8- and 16-bit frames, is
+    # never analysed as one good recording
+    import cv2
+    import tifffile
+
+    good, _ = recording
+    cap = cv2.VideoCapture(str(good))
+    frames = []
+    while len(frames) < 12:
+        ok, frame = cap.read()
+        if not ok:
+            break
+        frames.append(cv2.cvtColor(frame, cv2.COLOR_BGR2GRAY))
+    if kind == "tiff-pages":
+        source = tmp_path / "mixed.tif"
+        with tifffile.TiffWriter(source) as tif:
+            tif.write(frames[0], photometric="minisblack")
+            tif.write(np.zeros((40, 40), np.uint8), photometric="minisblack")
+            for frame in frames[1:]:
+                tif.write(frame, photometric="minisblack")
+    else:
+        source = tmp_path / "bits"
+        source.mkdir()
+        for i, frame in enumerate(frames):
+            cv2.imwrite(str(source / f"f{i:03d}.png"), frame if i % 2 else frame.astype(np.uint16) * 256)
+    result = run(*analyse_args(source, tmp_path / "o"))
+    if result.exit_code == 0:
+        data = json.loads((tmp_path / "o" / "result.json").read_text())
+        assert data["quality"] == "doubtful" and "record-broken-off" in data["finding_codes"]
+    else:
+        assert result.exit_code == 2 and "Traceback" not in result.output

@@ -113,6 +113,10 @@ def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> R
     from .frames import require_text_path
 
     require_text_path(out_dir, "output folder")
+    source_path, out_path = Path(source).resolve(), Path(out_dir).resolve()
+    if source_path.is_dir() and (out_path == source_path or source_path in out_path.parents):
+        raise UnusableInput(f"{out_dir}: the output folder lies inside the image folder {source}, "
+                            "whose frames it would mix with figures; choose an --out elsewhere.")
     result = analyse(source, options, progress=progress)
     write_outputs(result, out_dir)
     return result
@@ -129,6 +133,13 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
         recording = open_source(source)
     except UnusableSource as exc:
         raise UnusableInput(str(exc)) from None
+    if options.roi_px is not None:
+        x0, y0, x1, y1 = options.roi_px
+        h, w = recording.shape
+        if min(x1, w) - x0 < 8 or min(y1, h) - y0 < 8:
+            recording.close()
+            raise UnusableInput(f"--roi {x0},{y0},{x1},{y1} leaves less than 8×8 pixels of the "
+                                f"{w}×{h}-pixel frames; give a crop inside them.")
     # while the frames are measured: the file's hash, and the imports of the later stages
     # (both mostly outside the GIL or on an idle core; about a second on a laptop)
     threading.Thread(target=_import_later_stages, name="thinning-imports", daemon=True).start()

@@ -333,11 +333,15 @@ class TiffSource(FrameSource):
         self.fps = None
 
     def _frames(self):
-        for page in self._tif.pages:
-            try:
+        pages = iter(self._tif.pages)
+        while True:
+            try:  # tifffile can fail on a page itself (a page unlike the first: "incompatible keyframe")
+                page = next(pages)
                 data = page.asarray()
+            except StopIteration:
+                return
             except Exception:
-                log.warning("%s: page unreadable, stream stops here", self.path)
+                log.warning("%s: page unreadable or unlike the first, stream stops here", self.path)
                 return
             planes = data if self._planes_per_page > 1 else (_to_grey(data),)
             for plane in planes:
@@ -376,14 +380,17 @@ class ImageFolderSource(FrameSource):
     def _read(file):
         import cv2
 
-        image = cv2.imread(str(file), cv2.IMREAD_UNCHANGED)
+        try:
+            image = cv2.imread(str(file), cv2.IMREAD_UNCHANGED)
+        except cv2.error:  # e.g. a header claiming more pixels than OpenCV will allocate
+            return None
         return None if image is None else _to_grey(image)
 
     def _frames(self):
         for file in self._files:
             image = self._read(file)
-            if image is None or image.shape[:2] != self.shape:
-                log.warning("%s: unreadable or of another size, stream stops here", file)
+            if image is None or image.shape[:2] != self.shape or image.dtype != self.dtype:
+                log.warning("%s: unreadable, or of another size or bit depth, stream stops here", file)
                 return
             yield image
 
