@@ -180,3 +180,20 @@ def test_semicolon_separated_manifests_are_read(tmp_path):
     assert rows[0].cells["fps"] == "10kHz"
     with pytest.raises(BadQuantity, match="comma"):
         row_options(rows[1])
+
+
+def test_bad_dates_and_duplicate_identities_are_row_problems_for_check_and_batch(tmp_path):
+    # the same rule for --check, batch and records load: a row that records load would refuse
+    # is refused at once, by row
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path,sample,lot,product,replicate,made_on\n"
+                        "a.tif,S1,L1,ink,1,2026-13-45\n"
+                        "b.tif,S2,L1,ink,1,2026-03-01\n"
+                        "c.tif,S2,L1,ink,1,2026-03-01\n"
+                        "d.tif,S2,L1,ink,2,\n")
+    rows = read_manifest(manifest)
+    assert "not an ISO date" in rows[0].problem
+    assert rows[1].problem is None and rows[3].problem is None
+    assert "as row 2" in rows[2].problem
+    problems = check_manifest(manifest)
+    assert {p.row for p in problems if "ISO date" in p.message or "as row" in p.message} == {1, 3}

@@ -23,6 +23,7 @@ import difflib
 import io
 import logging
 from dataclasses import dataclass, field
+from datetime import date
 from pathlib import Path
 
 from ..errors import ThinningError
@@ -103,6 +104,7 @@ def read_manifest(path) -> list[ManifestRow]:
     _check_header(path, header, [cell.strip() for cell in records[0]])
     base = path.parent
     rows = []
+    seen: dict[tuple, int] = {}
     for number, cells in enumerate(records[1:], start=1):
         problem = None
         if len(cells) > len(header):
@@ -114,6 +116,18 @@ def read_manifest(path) -> list[ManifestRow]:
         given = values.get("path", "")
         if problem is None and not given:
             problem = "the path cell is empty."
+        made_on = values.get("made_on", "")
+        if problem is None and made_on:
+            try:
+                date.fromisoformat(made_on)
+            except ValueError:
+                problem = f"made_on '{made_on}' is not an ISO date such as 2026-03-01."
+        key = (values.get("product", ""), values.get("lot", ""),
+               values.get("sample", "") or Path(given.rstrip("/\\")).stem, values.get("replicate", ""))
+        if problem is None and given and (key[0] or key[1]) and key in seen:
+            problem = (f"the same product, lot, sample and replicate as row {seen[key]}; give each "
+                       "recording its own sample or replicate.")
+        seen.setdefault(key, number)   # (rows of no lot and no product are no lot's replicates)
         source = Path(given) if Path(given).is_absolute() else base / given
         rows.append(ManifestRow(
             row=number, path=given, source=source,
