@@ -49,8 +49,14 @@ def test_parse_specs_reads_the_contract_example():
     ('[[product]]\nname = "a"\nrelaxation_time_s = [2.0, 1.0]\n', "above its maximum"),
     ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0]\n', "two numbers"),
     ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nreplicate = 3\n', "unknown key 'replicate'"),
-    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nreplicates = 0\n', "at least 1"),
-    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nmax_cv = -1\n', "positive"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nreplicates = 0\n', "from 1 to 100"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nreplicates = 1000000000\n',
+     "from 1 to 100"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nmax_cv = -1\n', "above 0 and at most 1"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\nmax_cv = 1e308\n', "at most 1"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [-5.0, -1.0]\n', "cannot be met"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [nan, 0.0]\n', "cannot be met"),
+    ('[[product]]\nname = "a"\nrelaxation_time_s = [1e400, 2.0]\n', "infinite"),
     ('[[product]]\nname = "a"\nrelaxation_time_s = [1.0, 2.0]\n[[product]]\nname = "a"\n'
      'relaxation_time_s = [1.0, 2.0]\n', "specified twice"),
     ("name = 'a'\n", "no [[product]]"),
@@ -242,3 +248,15 @@ def test_a_drifting_product_gets_trend_and_shift_flags_while_a_steady_one_does_n
     drifting = steady[:5] + [0.0103, 0.0106, 0.0109, 0.0112, 0.0115, 0.0118]
     flags = qc.control_chart(list(enumerate(drifting)))[-1].flags
     assert "6-trending" in flags and "beyond-3-sigma" in flags
+
+
+def test_a_binary_specifications_file_is_one_sentence_and_exit_2(tmp_path):
+    import subprocess
+    import sys
+
+    specs = tmp_path / "specs.toml"
+    specs.write_bytes(bytes(range(256)) * 3)
+    proc = subprocess.run([sys.executable, "-m", "thinning.cli", "records", "load-specs", str(specs),
+                           "--db", f"sqlite:///{tmp_path / 'r.db'}"], capture_output=True, text=True)
+    assert proc.returncode == 2 and "not UTF-8 text" in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1

@@ -109,6 +109,10 @@ class Spec:
         return {key: getattr(self, key) for key in LIMITED_QUANTITIES if getattr(self, key) is not None}
 
 
+#: More valid replicates per lot than this is no lab's plan: a typing mistake.
+MAX_REPLICATES = 100
+
+
 def _limit(name: str, key: str, value) -> tuple[float, float]:
     if (not isinstance(value, (list, tuple)) or len(value) != 2
             or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)):
@@ -119,6 +123,9 @@ def _limit(name: str, key: str, value) -> tuple[float, float]:
         raise SpecError(f"product {name!r}: {key} uses an infinite limit; use nan for an open end.")
     if not math.isnan(low) and not math.isnan(high) and low > high:
         raise SpecError(f"product {name!r}: {key} has its minimum {low:g} above its maximum {high:g}.")
+    if (not math.isnan(low) and low < 0) or (not math.isnan(high) and high <= 0):
+        raise SpecError(f"product {name!r}: {key} = [{low:g}, {high:g}] cannot be met: the quantity "
+                        "is positive (use nan for an open end).")
     return low, high
 
 
@@ -134,12 +141,14 @@ def spec_from_mapping(entry: Mapping) -> Spec:
     if "relaxation_time_s" not in entry:
         raise SpecError(f"product {name!r} needs relaxation_time_s = [min, max].")
     replicates = entry.get("replicates", 3)
-    if not isinstance(replicates, int) or isinstance(replicates, bool) or replicates < 1:
-        raise SpecError(f"product {name!r}: replicates must be a whole number of at least 1.")
+    if not isinstance(replicates, int) or isinstance(replicates, bool) or \
+            not 1 <= replicates <= MAX_REPLICATES:
+        raise SpecError(f"product {name!r}: replicates must be a whole number from 1 to "
+                        f"{MAX_REPLICATES}.")
     max_cv = entry.get("max_cv", 0.10)
-    if not isinstance(max_cv, (int, float)) or isinstance(max_cv, bool) or not max_cv > 0 \
-            or math.isinf(max_cv):
-        raise SpecError(f"product {name!r}: max_cv must be a positive number such as 0.10.")
+    if not isinstance(max_cv, (int, float)) or isinstance(max_cv, bool) or not 0 < max_cv <= 1:
+        raise SpecError(f"product {name!r}: max_cv must be a fraction above 0 and at most 1, such "
+                        "as 0.10 (10 %).")
     rule = entry.get("decision_rule", DECISION_RULES[0])
     if rule not in DECISION_RULES:
         raise SpecError(f"product {name!r}: decision_rule must be one of "

@@ -210,6 +210,9 @@ class Records:
             content = Path(path).read_text(encoding="utf-8")
         except OSError as exc:
             raise RecordsError(f"cannot read the specifications file {path} ({exc.strerror}).") from None
+        except UnicodeDecodeError:
+            raise RecordsError(f"the specifications file {path} is not UTF-8 text (is it a TOML "
+                               "file?).") from None
         specs = qc.parse_specs(content)
         made = self.store_specs(specs)
         if changes is not None:
