@@ -535,3 +535,30 @@ def test_an_interrupted_redo_keeps_every_row_in_both_tables(tmp_path, fake_env):
     if importlib.util.find_spec("pyarrow"):
         import pandas as pd
         assert list(pd.read_parquet(out / "results.parquet")["row"]) == [1, 2, 3]
+
+
+def test_an_edited_result_is_refused_by_name_and_analysed_again_on_resume(tmp_path, fake_env):
+    # row.json keeps the SHA-256 of every output: records load (read_batch) refuses an edited
+    # folder, naming the file, and a rerun analyses the row again instead of copying the edit
+    from thinning.batch import read_batch
+    from thinning.batch.table import UnusableBatchFolder
+
+    rng = np.random.default_rng(8)
+    for name in ("a", "b"):
+        write_stack(tmp_path / f"{name}.tif", rng)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path,fps\na.tif,10kHz\nb.tif,10kHz\n")
+    out = tmp_path / "out"
+    run_batch(manifest, out, defaults=DEFAULTS, workers=1, analyser=FAKE)
+    assert len(read_batch(out)) == 2
+    _, table = read_table(out / "results.csv")
+    edited = out / table[0]["folder"] / "result.json"
+    data = json.loads(edited.read_text())
+    data["relaxation_time_s"] = 1.0
+    edited.write_text(json.dumps(data))
+    with pytest.raises(UnusableBatchFolder, match="result.json was changed after its analysis"):
+        read_batch(out)
+    fake_env.unlink()
+    run_batch(manifest, out, defaults=DEFAULTS, workers=1, analyser=FAKE)
+    assert calls(fake_env) == ["a.tif"]
+    assert len(read_batch(out)) == 2

@@ -11,6 +11,7 @@ again unless ``redo``.
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import importlib
 import json
 import logging
@@ -122,8 +123,33 @@ def _row_json(task: RowTask, outcome: RowOutcome) -> dict:
 
 
 def _write_row_json(folder: Path, task: RowTask, outcome: RowOutcome):
-    text = json.dumps(_row_json(task, outcome), indent=2, allow_nan=False) + "\n"
+    record = {**_row_json(task, outcome), "outputs": outputs_digest(folder)}
+    text = json.dumps(record, indent=2, allow_nan=False) + "\n"
     (folder / ROW_FILE).write_text(text, encoding="utf-8")
+
+
+def outputs_digest(folder: Path) -> dict[str, str]:
+    """``{file name: SHA-256 hex}`` of every file of a row folder but ``row.json``: the tamper
+    evidence that ``row.json`` keeps of the analysis's outputs."""
+    digest = {}
+    for path in sorted(Path(folder).iterdir()):
+        if path.is_file() and path.name != ROW_FILE:
+            h = hashlib.sha256()
+            with path.open("rb") as stream:
+                for block in iter(lambda: stream.read(1 << 20), b""):
+                    h.update(block)
+            digest[path.name] = h.hexdigest()
+    return digest
+
+
+def changed_outputs(folder: Path, record: dict) -> list[str]:
+    """The outputs listed in a row's ``row.json`` record that are missing or no longer match their
+    digest (empty for a record written before digests were kept)."""
+    listed = record.get("outputs") if isinstance(record, dict) else None
+    if not isinstance(listed, dict):
+        return []
+    now = outputs_digest(folder) if Path(folder).is_dir() else {}
+    return sorted(name for name, digest in listed.items() if now.get(name) != digest)
 
 
 def _up_to_date(task: RowTask) -> RowOutcome | None:
@@ -134,9 +160,14 @@ def _up_to_date(task: RowTask) -> RowOutcome | None:
     try:
         record = json.loads((folder / ROW_FILE).read_text(encoding="utf-8"))
         result = Result.from_json(json.loads((folder / "result.json").read_text(encoding="utf-8")))
-    except (OSError, ValueError, TypeError, KeyError):
+    except (OSError, ValueError, TypeError, KeyError, AttributeError):
         return None
-    if record.get("status") != "ok" or record.get("options") != _plain_options(task.options):
+    if not isinstance(record, dict) or record.get("status") != "ok" \
+            or record.get("options") != _plain_options(task.options):
+        return None
+    if changed_outputs(folder, record):
+        log.warning("row %d: %s changed since its analysis; analysing it again", task.row,
+                    ", ".join(changed_outputs(folder, record)))
         return None
     try:
         with open_source(task.source) as recording:

@@ -207,6 +207,24 @@ IDENTITY_CELLS = ("path", "sample", "lot", "product", "replicate", "made_on", "n
                   "reason", "sha256", "tool_version")
 
 
+def _check_untouched(folder: Path):
+    """Refuse a row folder whose outputs were edited after the analysis (row.json's digests)."""
+    from .rows import ROW_FILE, changed_outputs
+
+    path = folder / ROW_FILE
+    if not path.is_file():
+        return          # a folder of an older version, or made by hand: nothing to check against
+    try:
+        record = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        raise UnusableBatchFolder(f"{path} is not a row record of this tool.") from None
+    changed = changed_outputs(folder, record)
+    if changed:
+        raise UnusableBatchFolder(
+            f"{folder / changed[0]} was changed after its analysis (it no longer matches the digest "
+            f"in {ROW_FILE}); restore it, or analyse the row again with batch --redo.")
+
+
 def read_batch(batch_dir) -> list[FinishedRow]:
     """Read a finished batch folder (``results.csv`` and each row's folder), in table order."""
     batch_dir = Path(batch_dir)
@@ -229,11 +247,12 @@ def read_batch(batch_dir) -> list[FinishedRow]:
         folder = _row_folder(batch_dir, row, width)
         result, curve = None, None
         result_path = folder / "result.json"
+        _check_untouched(folder)
         if (identity["status"] or "ok") == "ok":
             if result_path.is_file():
                 try:
                     result = Result.from_json(json.loads(result_path.read_text(encoding="utf-8")))
-                except (ValueError, TypeError, KeyError):
+                except (ValueError, TypeError, KeyError, AttributeError):
                     raise UnusableBatchFolder(f"{result_path} is not a result of this tool.") from None
             else:
                 result = result_from_results_row(row)
