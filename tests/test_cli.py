@@ -319,3 +319,15 @@ def test_frames_unlike_the_first_end_the_record_as_doubtful(tmp_path, recording,
         assert data["quality"] == "doubtful" and "record-broken-off" in data["finding_codes"]
     else:
         assert result.exit_code == 2 and "Traceback" not in result.output
+
+
+def test_a_folder_of_videos_points_to_batch(tmp_path, recording):
+    import shutil
+
+    good, _ = recording
+    folder = tmp_path / "videos"
+    folder.mkdir()
+    shutil.copy(good, folder / "a.avi")
+    shutil.copy(good, folder / "b.avi")
+    result = CliRunner().invoke(cli, [str(a) for a in analyse_args(folder, tmp_path / "o")])
+    assert result.exit_code == 2 and "thinning batch" in result.output

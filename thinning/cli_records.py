@@ -57,6 +57,16 @@ def csv_option(func):
     return click.option("--csv", "as_csv", is_flag=True, help="Write CSV to standard output.")(func)
 
 
+def _shown_url(url: str) -> str:
+    """A database URL without its password."""
+    try:
+        from sqlalchemy.engine import make_url
+
+        return make_url(url).render_as_string(hide_password=True)
+    except Exception:  # not a URL SQLAlchemy reads: shown as given
+        return url
+
+
 def _open(db_url):
     from .records import open_records
 
@@ -137,7 +147,11 @@ def lots_command(db_url, product, as_csv):
         _write_csv(sys.stdout, LOT_COLUMNS, rows)
         return
     if not rows:
-        click.echo("No lots in the records yet.")
+        from .records import default_db_url
+
+        url = db_url or default_db_url()
+        click.echo(f"No lots in the records yet (database {_shown_url(url)}; pass --db to read "
+                   "another, e.g. the demo's sqlite:///thinning-demo/records.db).")
         return
     from rich.table import Table
 

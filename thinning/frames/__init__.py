@@ -31,6 +31,11 @@ from ..errors import ThinningError
 
 log = logging.getLogger(__name__)
 
+# FFmpeg's own log lines (a corrupt file's complaints) would reach the user's terminal before our
+# one-sentence refusal: quiet (AV_LOG_QUIET) unless the user asked for them; OpenCV reads this
+# when it first opens a video
+os.environ.setdefault("OPENCV_FFMPEG_LOGLEVEL", "-8")
+
 VIDEO_SUFFIXES = {".avi", ".mp4", ".mov", ".mkv", ".m4v", ".wmv", ".mpg", ".mpeg", ".webm", ".ogv"}
 TIFF_SUFFIXES = {".tif", ".tiff"}
 IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".bmp", ".jpg", ".jpeg", ".pgm", ".ppm"}
@@ -360,10 +365,19 @@ class ImageFolderSource(FrameSource):
     def __init__(self, path):
         super().__init__(path)
         folder = Path(path)
-        files = [p for p in folder.iterdir()
-                 if p.is_file() and p.suffix.lower() in IMAGE_SUFFIXES and not p.name.startswith(".")]
+        entries = [p for p in folder.iterdir() if p.is_file() and not p.name.startswith(".")]
+        files = [p for p in entries if p.suffix.lower() in IMAGE_SUFFIXES]
+        recordings = [p for p in entries if p.suffix.lower() in VIDEO_SUFFIXES | CINE_SUFFIXES
+                      | MRAW_SUFFIXES]
         if not files:
-            raise UnusableSource(f"{path}: the folder holds no image files (PNG, TIFF, BMP, JPEG).")
+            hint = (f"; it holds {len(recordings)} video or camera file(s): analyse each one, or list "
+                    "them in a manifest for 'thinning batch'") if recordings else ""
+            raise UnusableSource(f"{path}: the folder holds no image files (PNG, TIFF, BMP, JPEG)"
+                                 f"{hint}.")
+        ignored = [p for p in entries if p not in files and p.suffix.lower() != ".json"]
+        if ignored:
+            log.warning("%s: %d file(s) that are not frames were left out (e.g. %s)", path,
+                        len(ignored), sorted(ignored)[0].name)
         for file in files:
             require_text_path(file, "image file")
         self._files = sorted(files, key=lambda p: natural_key(p.name))
@@ -443,5 +457,5 @@ def open_source(path) -> FrameSource:
         try:
             return backend(path)
         except UnusableSource as exc:
-            reasons.append(str(exc).split(": ", 1)[-1])
+            reasons.append(str(exc).split(": ", 1)[-1].rstrip("."))
     raise UnusableSource(f"{path}: not a recording this tool can read ({'; '.join(dict.fromkeys(reasons))}).")
