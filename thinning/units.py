@@ -84,6 +84,7 @@ def parse_quantity(text, name):
     if isinstance(text, (int, float)) and not isinstance(text, bool):
         text = repr(float(text))
     raw = str(text).strip().replace("µ", "u").replace("μ", "u")
+    text = shown_text(text)   # as echoed in a message: one line, control characters escaped
     if _PER_PIXEL.search(raw):
         if name != "pixel_size":
             raise BadQuantity(f"'{text}' is given per pixel, but a {spec.label} is not a per-pixel "
@@ -96,7 +97,7 @@ def parse_quantity(text, name):
                           f"'{_example(name)}'.")
     if _DECIMAL_COMMA.search(raw):
         raise BadQuantity(f"'{text}' has a comma in the number, which is read neither as a "
-                          f"decimal nor as a thousands separator: write '{raw.replace(',', '.')}' "
+                          f"decimal nor as a thousands separator: write '{shown_text(raw.replace(',', '.'))}' "
                           f"if the comma is a decimal, or the digits alone.")
     if not _QUANTITY_CHARS.match(raw):
         raise BadQuantity(f"'{text}' is not a {spec.label}: write a number and a unit, e.g. "
@@ -136,6 +137,12 @@ def parse_quantity(text, name):
         raise BadQuantity(f"The {spec.label} '{text}' is {side} the plausible range "
                           f"{plausible_range(name)}: {reason}.{hint}")
     return value
+
+
+def shown_text(text) -> str:
+    """``text`` as a message may echo it: control characters and line separators escaped, so the
+    message stays one line."""
+    return re.sub(r"[\x00-\x1f\x7f\u0085\u2028\u2029]", lambda m: f"\\x{ord(m.group()):02x}", str(text))
 
 
 def plausible_range(name) -> str:

@@ -27,7 +27,8 @@ from datetime import date
 from pathlib import Path
 
 from ..errors import ThinningError
-from ..units import OPTION_FIELDS, AnalysisOptions, BadQuantity, check_required, options_from_text
+from ..units import (OPTION_FIELDS, AnalysisOptions, BadQuantity, check_required, options_from_text,
+                     shown_text)
 
 log = logging.getLogger(__name__)
 
@@ -121,7 +122,7 @@ def read_manifest(path) -> list[ManifestRow]:
             try:
                 date.fromisoformat(made_on)
             except ValueError:
-                problem = f"made_on '{made_on}' is not an ISO date such as 2026-03-01."
+                problem = f"made_on '{shown_text(made_on)}' is not an ISO date such as 2026-03-01."
         key = (values.get("product", ""), values.get("lot", ""),
                values.get("sample", "") or Path(given.rstrip("/\\")).stem, values.get("replicate", ""))
         if problem is None and given and (key[0] or key[1]) and key in seen:
@@ -146,12 +147,12 @@ def _check_header(path, header, written):
     if unknown:
         name = header[unknown[0]]
         if "\t" in name or "|" in name:
-            raise UnusableManifest(f"{path}: the header '{written[unknown[0]]}' is not split into "
+            raise UnusableManifest(f"{path}: the header '{shown_text(written[unknown[0]])}' is not split into "
                                    "columns; separate the columns with commas (or semicolons).")
         close = difflib.get_close_matches(name.replace(" ", "_").replace("-", "_"),
                                           MANIFEST_COLUMNS, n=1, cutoff=0.7)
         hint = f" (did you mean '{close[0]}'?)" if close else ""
-        raise UnusableManifest(f"{path}: unknown column '{written[unknown[0]]}'{hint}; the columns a "
+        raise UnusableManifest(f"{path}: unknown column '{shown_text(written[unknown[0]])}'{hint}; the columns a "
                                f"manifest may have are {', '.join(MANIFEST_COLUMNS)}.")
     repeated = sorted({name for name in header if header.count(name) > 1})
     if repeated:

@@ -295,8 +295,17 @@ class VideoSource(FrameSource):
         cv2 = self._cv2
         cap = self._open(packets=True)
 
+        shape = tuple(self.shape)
+
+        def one(packet):
+            try:
+                frame = cv2.imdecode(packet, cv2.IMREAD_GRAYSCALE)
+            except cv2.error:  # a corrupt packet (e.g. claiming more pixels than OpenCV allows)
+                return None
+            return frame if frame is not None and frame.shape == shape else None
+
         def decode(packets):
-            return [cv2.imdecode(packet, cv2.IMREAD_GRAYSCALE) for packet in packets]
+            return [one(packet) for packet in packets]
 
         try:
             with ThreadPoolExecutor(max_workers=self._threads) as pool:
@@ -329,8 +338,17 @@ class TiffSource(FrameSource):
             first = pages.first.asarray()
         except Exception as exc:
             raise UnusableSource(f"{path}: not a readable TIFF ({type(exc).__name__}).") from None
+        if first.ndim not in (2, 3) or min(first.shape[:2]) < 2:
+            raise UnusableSource(f"{path}: its first page is not an image (shape {first.shape}).")
         self._planes_per_page = first.shape[0] if first.ndim == 3 and first.shape[-1] > 4 else 1
-        plane = first[0] if self._planes_per_page > 1 else _to_grey(first)
+        try:
+            plane = first[0] if self._planes_per_page > 1 else _to_grey(first)
+        except Exception:  # OpenCV refuses e.g. two-channel pages
+            raise UnusableSource(f"{path}: its pages are not grey or colour images "
+                                 f"(shape {first.shape}).") from None
+        if plane.ndim != 2 or plane.dtype not in (np.uint8, np.uint16):
+            raise UnusableSource(f"{path}: not an 8- or 16-bit grey or colour image stack "
+                                 f"(pages of {plane.dtype} {plane.shape}).")
         self.shape = plane.shape[:2]
         self.dtype = plane.dtype
         self.bit_depth = int(pages.first.bitspersample)
