@@ -249,6 +249,10 @@ def test_shared_lot_ids_need_a_product_and_unknown_lots_are_reported(db_url, tmp
     assert shown.exit_code == 0 and "ink-B" in shown.output and "review" in shown.output
     unknown = run(["show", "nope"], db_url)
     assert unknown.exit_code == 2 and unknown.output.strip() == "thinning: no lot 'nope' in the records."
+    cased = run(["show", "x1", "--product", "ink-A"], db_url)
+    assert cased.exit_code == 2 and "case-sensitive: did you mean 'X1'?" in cased.output
+    product = run(["lots", "--product", "INK-A"], db_url)
+    assert product.exit_code == 2 and "did you mean 'ink-A'?" in product.output
     csv_out = run(["show", "X1", "--product", "ink-A", "--csv"], db_url)
     assert csv_out.output.splitlines()[0] == ",".join(CONTRACT_EXPORT)
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 import json
 import logging
@@ -488,7 +489,9 @@ class Records:
         with self.engine.connect() as conn:
             summaries, _, _ = self._summaries(conn)
         if product is not None and not any(s.product == product for s in summaries):
-            raise RecordsError(f"no lot of product {product!r} in the records.")
+            near = [s.product for s in summaries if s.product.casefold() == product.casefold()]
+            hint = f" (product names are case-sensitive: did you mean {near[0]!r}?)" if near else ""
+            raise RecordsError(f"no lot of product {product!r} in the records{hint}.")
         return [s for s in summaries if product is None or s.product == product]
 
     def resolve_lot(self, lot: str, *, product: str | None = None) -> tuple[str, str]:
@@ -500,7 +503,13 @@ class Records:
             names = sorted(conn.execute(query).scalars())
         if not names:
             where = f" of product {product!r}" if product is not None else ""
-            raise LotNotFound(f"no lot {lot!r}{where} in the records.")
+            with self.engine.connect() as conn:
+                # lot ids are case-sensitive (as labs write them): name a near one
+                known = sorted(set(conn.execute(select(lots.c.lot)).scalars()))
+            near = [k for k in known if k.casefold() == str(lot).casefold()] or \
+                difflib.get_close_matches(str(lot), known, n=1, cutoff=0.8)
+            hint = f" (lot ids are case-sensitive: did you mean {near[0]!r}?)" if near else ""
+            raise LotNotFound(f"no lot {lot!r}{where} in the records{hint}.")
         if len(names) > 1:
             raise AmbiguousLot(f"lot {lot!r} exists for products {', '.join(map(repr, names))}: "
                                "name one with --product.")
