@@ -562,3 +562,42 @@ def test_an_edited_result_is_refused_by_name_and_analysed_again_on_resume(tmp_pa
     run_batch(manifest, out, defaults=DEFAULTS, workers=1, analyser=FAKE)
     assert calls(fake_env) == ["a.tif"]
     assert len(read_batch(out)) == 2
+
+
+@pytest.mark.slow
+def test_a_full_disk_during_a_batch_is_exit_2_and_keeps_what_was_written(tmp_path):
+    # a write-failing shim: the child's file-size limit (RLIMIT_FSIZE, SIGXFSZ ignored) makes
+    # every write past 20 kB fail with EFBIG, as a full disk does with ENOSPC
+    import resource
+
+    from thinning import synth
+
+    data = tmp_path / "data"
+    data.mkdir()
+    for name, seed in (("a.avi", 21), ("b.avi", 22)):
+        synth.write_recording(small_scene(), synth.Optics(), data / name, fmt="avi-raw", seed=seed)
+    manifest = data / "m.csv"
+    manifest.write_text("path,sample,lot,product\na.avi,S1,L1,ink\nb.avi,S2,L1,ink\n")
+    out = tmp_path / "out"
+    command = [sys.executable, "-m", "thinning.cli", "batch", str(manifest), "--out", str(out),
+               "--fps", "2000/s", "--pixel-size", "25um", "--surface-tension", "62mN/m",
+               "--workers", "1"]
+    subprocess.run(command, check=True, capture_output=True)
+    before = {p.relative_to(out).as_posix(): p.read_bytes() for p in out.rglob("*")
+              if p.is_file() and p.parent != out}
+
+    def small_files():
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+        resource.setrlimit(resource.RLIMIT_FSIZE, (20_000, 20_000))
+
+    proc = subprocess.run(command + ["--redo"], capture_output=True, text=True,
+                          preexec_fn=small_files)
+    assert proc.returncode == 2, proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert proc.stderr.strip().splitlines()[-1].startswith("thinning: 2 row(s) could not be written")
+    after = {p.relative_to(out).as_posix(): p.read_bytes() for p in out.rglob("*")
+             if p.is_file() and p.parent != out}
+    assert after == before                            # the rows' folders are untouched
+    _, table = read_table(out / "results.csv")
+    assert [r["row"] for r in table] == ["1", "2"]
+    assert not [p for p in out.iterdir() if p.name.endswith(TEMP_SUFFIX)]

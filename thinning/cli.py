@@ -200,6 +200,20 @@ def summary_text(result, out_dir) -> str:
     return "\n".join(lines)
 
 
+def environment_error_text(exc: OSError) -> str:
+    """One sentence for a failure of the user's environment (disk, permissions, names)."""
+    import errno
+
+    where = f" ({exc.filename})" if exc.filename else ""
+    what = exc.strerror or str(exc)
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT, errno.EFBIG):
+        return (f"{what}{where}: the disk or quota holding the output is full; free space (or choose "
+                "another --out) and run again: results already written are unchanged.")
+    if exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+        return f"{what}{where}: the tool may not write there; choose another --out."
+    return f"{what}{where}."
+
+
 def main(argv=None):
     """Entry point: run the CLI with exit statuses 0 / 1 / 2."""
     try:
@@ -217,8 +231,7 @@ def main(argv=None):
         exc.show()
         sys.exit(exc.exit_code)
     except OSError as exc:  # the user's environment: a full disk, a read-only or missing folder
-        where = f" ({exc.filename})" if exc.filename else ""
-        click.echo(f"thinning: {exc.strerror or exc}{where}.", err=True)
+        click.echo(f"thinning: {environment_error_text(exc)}", err=True)
         sys.exit(2)
     except Exception as exc:  # internal error: one line, exit 1; THINNING_DEBUG=1 for the traceback
         if os.environ.get("THINNING_DEBUG"):

@@ -73,6 +73,10 @@ def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo
     skipped = f" ({report.n_skipped} already up to date)" if report.n_skipped else ""
     click.echo(f"{report.n_rows} rows: {report.n_ok} ok{skipped}, {report.n_failed} failed; "
                f"table in {report.results_csv}")
+    refused = [o for o in report.outcomes.values() if o.environment]
+    if refused:
+        raise FriendlyError(f"{len(refused)} row(s) could not be written: {refused[0].reason} "
+                            "Finished rows are kept and will not be analysed again.")
 
 
 def _check(manifest, defaults):

@@ -11,6 +11,7 @@ again unless ``redo``.
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
 import importlib
 import json
@@ -35,6 +36,10 @@ ROW_SCHEMA = "thinning.batch-row/1"
 
 
 ROW_FILE = "row.json"
+#: The errors of the machine, not of the recording: a full disk or quota, a file-size limit,
+#: no permission, a read-only file system.
+ENVIRONMENT_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EACCES, errno.EPERM,
+                                errno.EROFS})
 
 
 #: Suffix of the temporary sibling folders a row is written through.
@@ -69,6 +74,7 @@ class RowOutcome:
     result: Result | None = None
     analysed_at: str = ""
     skipped: bool = False
+    environment: bool = False   # failed for the machine's sake (a full disk, no permission)
     attempts: int = 1
 
     @property
@@ -88,21 +94,34 @@ def run_row(task: RowTask) -> RowOutcome:
         if earlier is not None:
             return earlier
     temp = atomic.temp_sibling(folder, "new")
-    temp.mkdir(parents=True)
-    with _cleared(temp):
-        try:
-            result = _analyser(task.analyser)(task.source, temp, task.options).summary()
-            status, reason = "ok", ""
-        except ThinningError as exc:
-            result, status, reason = None, "failed", str(exc)
-        except Exception as exc:  # a bug must not stop the batch: the row fails, saying so
-            log.exception("row %d: internal error", task.row)
-            result, status = None, "failed"
-            reason = f"Internal error while analysing it ({type(exc).__name__}: {exc})."
-        if result is None:
-            shutil.rmtree(temp)
-            temp.mkdir()
-        return _publish(temp, folder, task, RowOutcome(task.row, status, reason, result, utc_text()))
+    try:
+        temp.mkdir(parents=True)
+        with _cleared(temp):
+            try:
+                result = _analyser(task.analyser)(task.source, temp, task.options).summary()
+                status, reason = "ok", ""
+            except ThinningError as exc:
+                result, status, reason = None, "failed", str(exc)
+            except Exception as exc:  # a bug must not stop the batch: the row fails, saying so
+                if isinstance(exc, OSError) and exc.errno in ENVIRONMENT_ERRNOS:
+                    raise
+                log.exception("row %d: internal error", task.row)
+                result, status = None, "failed"
+                reason = f"Internal error while analysing it ({type(exc).__name__}: {exc})."
+            if result is None:
+                shutil.rmtree(temp)
+                temp.mkdir()
+            return _publish(temp, folder, task, RowOutcome(task.row, status, reason, result, utc_text()))
+    except OSError as exc:
+        if exc.errno not in ENVIRONMENT_ERRNOS:
+            raise
+        # the machine's fault, not the recording's: one line, no traceback, and the row's folder
+        # keeps whatever it held before
+        log.warning("row %d: %s", task.row, exc.strerror)
+        return RowOutcome(task.row, "failed",
+                          f"The batch folder's disk refused the outputs ({exc.strerror}); free space "
+                          "or fix the permissions and run the batch again.", None, utc_text(),
+                          environment=True)
 
 
 def _analyser(spec: str):
