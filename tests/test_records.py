@@ -454,3 +454,12 @@ def test_a_database_of_schema_version_1_keeps_its_verdicts_until_the_specificati
     assert "re-evaluated" not in again.output
     with rec.open_records(db_url) as store:
         assert len(store.lot_detail("A1").verdict_changes) == 1
+
+
+def test_a_result_json_that_is_not_an_object_is_refused_by_name(db_url, tmp_path):
+    batch = write_batch(tmp_path / "b", lot_rows("ink-A", "L1", [0.01]))
+    result_json = next(batch.glob("*/result.json"))
+    result_json.write_text("[1, 2, 3]\n")
+    loaded = run(["load", str(batch)], db_url)
+    assert loaded.exit_code == 2, loaded.output
+    assert "is not a result of this tool" in loaded.output and "Traceback" not in loaded.output
