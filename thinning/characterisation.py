@@ -22,7 +22,8 @@ from .fits import (Fit, estimate_breakup_time, fit_elastocapillary, fit_finite_e
                    fit_inertiocapillary, fit_viscocapillary)
 from .modelfit import ModelFit, fit_filament_model
 from .series import check_series
-from .uncertainty import elastic_modulus_budget, relaxation_time_budget, shear_viscosity_budget
+from .uncertainty import (elastic_modulus_budget, model_fit_budget, relaxation_time_budget,
+                          shear_viscosity_budget)
 from .units import GEOMETRIES
 from .rheology import derived_curves, dimensionless_groups, extensional_viscosity_max
 
@@ -439,6 +440,15 @@ def characterise_at_floor(time_s, diameter_m, *, surface_tension, pixel_size_m, 
                                             pixel_size_rel=pixel_size_rel, **common_budget)
         if all(np.isfinite(eta_budget.interval)):
             eta_ci, budget["shear_viscosity_Pa_s"] = eta_budget.interval, eta_budget.terms
+    if model_fit:
+        # the whole-curve interval gains the systematic terms its likelihood leaves out (after
+        # the budgets above, which add the fit's own statistical half-width to theirs)
+        widened = model_fit_budget(t, d_fit, model_fit, pixel_size_rel=pixel_size_rel,
+                                   **common_budget)
+        if widened is not None and all(np.isfinite(widened[0].interval)):
+            model_budget, key = widened
+            model_fit = dataclasses.replace(model_fit, **{key: tuple(model_budget.interval)})
+            budget["model_fit"] = model_budget.terms
     lifetime, basis, lifetime_min, law = filament_lifetime(
         t, d_fit, t0, t_b, breakup_parted, fits, fps_hz=fps_hz, surface_tension=surface_tension)
     if basis is not None and basis != "observed":

@@ -198,6 +198,38 @@ def elastic_modulus_budget(fit, lam_budget: Budget, *, initial_diameter_m, pixel
     return combine(g, fit.ci95["elastic_modulus_Pa"], terms)
 
 
+def model_fit_budget(t, d, model_fit, *, noise_m, floor_m, pixel_size_m, pixel_size_rel=0.0):
+    """The whole-curve fit's interval of λ (viscoelastic) or η_s (Newtonian) with the systematic
+    terms its likelihood leaves out: the diameter bias bounded by :data:`EDGE_BIAS_PX` over the
+    fitted stretch (from its start to the floor) and, for η_s, the pixel size. Returns
+    ``(Budget, key)`` with ``key`` the ``ModelFit`` field of the widened interval, or None when
+    the fit has no finite interval to widen."""
+    if not model_fit:
+        return None
+    if model_fit.model == "viscoelastic":
+        key, value = "relaxation_time_ci95_s", model_fit.relaxation_time_s
+    elif model_fit.model == "newtonian" and not model_fit.solvent_viscosity_fixed:
+        key, value = "solvent_viscosity_ci95_Pa_s", model_fit.solvent_viscosity_Pa_s
+    else:
+        return None
+    stat = getattr(model_fit, key)
+    if not (np.isfinite(value) and all(np.isfinite(stat))):
+        return None
+    ok = np.isfinite(t) & np.isfinite(d) & (d >= floor_m) & (t >= model_fit.t_start_s - 1e-12)
+    tw, dw = t[ok], d[ok]
+    if tw.size < 3:
+        return None
+    viscoelastic = model_fit.model == "viscoelastic"
+    w = (dw / noise_m) ** 2 if viscoelastic else np.full(tw.size, 1.0 / noise_m ** 2)
+    terms = {"diameter_bias": _bias_term(tw, dw, w, EDGE_BIAS_PX * pixel_size_m, log=viscoelastic)}
+    if pixel_size_rel and not viscoelastic:
+        terms["pixel_size"] = pixel_size_rel
+    budget = combine(value, stat, terms)
+    budget = Budget(value, budget.interval, {"likelihood": budget.terms.pop("scatter_and_window"),
+                                             **budget.terms})
+    return budget, key
+
+
 def _diameter_at(fit, t):
     law = fit.law
     if not law:
