@@ -74,8 +74,8 @@ class RowOutcome:
     result: Result | None = None
     analysed_at: str = ""
     skipped: bool = False
-    environment: bool = False   # failed for the machine's sake (a full disk, no permission)
     attempts: int = 1
+    environment: bool = False   # failed for the machine's sake (a full disk, no permission)
 
     @property
     def ok(self) -> bool:

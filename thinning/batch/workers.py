@@ -10,6 +10,8 @@ retried per the scheduler's ``allowed-failures``).
 
 from __future__ import annotations
 
+import dataclasses
+
 import logging
 import os
 import secrets
@@ -174,8 +176,7 @@ def _remove_temp_folders(folder: Path, pid: int):
 def _with_attempts(outcome: RowOutcome, attempts: int) -> RowOutcome:
     if outcome.attempts == attempts:
         return outcome
-    return RowOutcome(outcome.row, outcome.status, outcome.reason, outcome.result,
-                      outcome.analysed_at, outcome.skipped, attempts)
+    return dataclasses.replace(outcome, attempts=attempts)
 
 
 def run_dask(tasks, on_outcome, *, scheduler: str, connect_timeout_s: float = 20.0):
