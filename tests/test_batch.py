@@ -142,6 +142,17 @@ def read_table(path):
         return reader.fieldnames, list(reader)
 
 
+def stacks_and_manifest(folder, names, *, seed, missing=()):
+    """Tiny stacks ``NAME.tif`` for ``names`` and ``folder/m.csv`` listing them (then the
+    ``missing`` files), each at 10 kHz; returns the manifest path."""
+    rng = np.random.default_rng(seed)
+    for name in names:
+        write_stack(folder / f"{name}.tif", rng)
+    manifest = folder / "m.csv"
+    manifest.write_text("path,fps\n" + "".join(f"{n}.tif,10kHz\n" for n in (*names, *missing)))
+    return manifest
+
+
 def calls(path):
     return path.read_text().split() if path.exists() else []
 
@@ -247,11 +258,8 @@ def test_failed_rows_and_results_table(tmp_path, fake_env):
 
 
 def test_resume_skips_finished_rows_and_redoes_changed_ones(tmp_path, fake_env):
-    rng = np.random.default_rng(4)
-    for name in ("a", "b", "c"):
-        write_stack(tmp_path / f"{name}.tif", rng)
-    manifest = tmp_path / "m.csv"
-    manifest.write_text("path,fps\na.tif,10kHz\nb.tif,10kHz\nc.tif,10kHz\nnone.tif,10kHz\n")
+    manifest = stacks_and_manifest(tmp_path, ("a", "b", "c"), seed=4, missing=("none",))
+    rng = np.random.default_rng(40)                     # for new content later
     out = tmp_path / "out"
     first = run_batch(manifest, out, defaults=DEFAULTS, workers=2, analyser=FAKE)
     assert sorted(calls(fake_env)) == ["a.tif", "b.tif", "c.tif", "none.tif"]
@@ -513,11 +521,7 @@ def test_results_table_cells_never_start_a_formula(tmp_path, cell, shown):
 def test_an_interrupted_redo_keeps_every_row_in_both_tables(tmp_path, fake_env):
     # Ctrl-C after the first row of a --redo: results.csv and results.parquet still list every
     # row, the first as redone and the others as they were
-    rng = np.random.default_rng(5)
-    for name in ("a", "b", "c"):
-        write_stack(tmp_path / f"{name}.tif", rng)
-    manifest = tmp_path / "m.csv"
-    manifest.write_text("path,fps\na.tif,10kHz\nb.tif,10kHz\nc.tif,10kHz\n")
+    manifest = stacks_and_manifest(tmp_path, ("a", "b", "c"), seed=5)
     out = tmp_path / "out"
     run_batch(manifest, out, defaults=DEFAULTS, workers=1, analyser=FAKE)
     _, before = read_table(out / "results.csv")
@@ -543,11 +547,7 @@ def test_an_edited_result_is_refused_by_name_and_analysed_again_on_resume(tmp_pa
     from thinning.batch import read_batch
     from thinning.batch.table import UnusableBatchFolder
 
-    rng = np.random.default_rng(8)
-    for name in ("a", "b"):
-        write_stack(tmp_path / f"{name}.tif", rng)
-    manifest = tmp_path / "m.csv"
-    manifest.write_text("path,fps\na.tif,10kHz\nb.tif,10kHz\n")
+    manifest = stacks_and_manifest(tmp_path, ("a", "b"), seed=8)
     out = tmp_path / "out"
     run_batch(manifest, out, defaults=DEFAULTS, workers=1, analyser=FAKE)
     assert len(read_batch(out)) == 2

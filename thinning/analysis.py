@@ -124,6 +124,7 @@ def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> R
 
 def _analyse(source, options: AnalysisOptions, progress) -> Result:
     from .measure import NoFilament, measure_recording, to_physical
+    from .measure.layout import UnusableRoi, roi_within
 
     try:
         check_required(options, container_fps=1.0)  # the frame rate is checked below, with the source
@@ -133,13 +134,11 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
         recording = open_source(source)
     except UnusableSource as exc:
         raise UnusableInput(str(exc)) from None
-    if options.roi_px is not None:
-        x0, y0, x1, y1 = options.roi_px
-        h, w = recording.shape
-        if min(x1, w) - x0 < 8 or min(y1, h) - y0 < 8:
-            recording.close()
-            raise UnusableInput(f"--roi {x0},{y0},{x1},{y1} leaves less than 8×8 pixels of the "
-                                f"{w}×{h}-pixel frames; give a crop inside them.")
+    try:  # the crop is checked against the frames before any is decoded
+        roi_within(options.roi_px, recording.shape)
+    except UnusableRoi as exc:
+        recording.close()
+        raise UnusableInput(str(exc)) from None
     # while the frames are measured: the file's hash, and the imports of the later stages
     # (both mostly outside the GIL or on an idle core; about a second on a laptop)
     threading.Thread(target=_import_later_stages, name="thinning-imports", daemon=True).start()

@@ -9,8 +9,8 @@ untrustworthy (:class:`thinning.findings.Finding`). Pure: arrays in, a
 
 from __future__ import annotations
 
-import logging
 import dataclasses
+import logging
 from dataclasses import dataclass, field
 
 import numpy as np

@@ -16,7 +16,7 @@ import sys
 import click
 
 from . import __version__
-from .errors import ThinningError
+from .errors import FULL_DISK_ERRNOS, NO_WRITE_ERRNOS, ThinningError
 from .units import OPTION_FIELDS, BadQuantity, GEOMETRIES, options_from_text, plausible_range
 
 #: subcommands living in their own modules: name → "module:attribute"
@@ -202,14 +202,12 @@ def summary_text(result, out_dir) -> str:
 
 def environment_error_text(exc: OSError) -> str:
     """One sentence for a failure of the user's environment (disk, permissions, names)."""
-    import errno
-
     where = f" ({exc.filename})" if exc.filename else ""
     what = exc.strerror or str(exc)
-    if exc.errno in (errno.ENOSPC, errno.EDQUOT, errno.EFBIG):
+    if exc.errno in FULL_DISK_ERRNOS:
         return (f"{what}{where}: the disk or quota holding the output is full; free space (or choose "
                 "another --out) and run again: results already written are unchanged.")
-    if exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+    if exc.errno in NO_WRITE_ERRNOS:
         return f"{what}{where}: the tool may not write there; choose another --out."
     return f"{what}{where}."
 

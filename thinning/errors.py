@@ -10,6 +10,16 @@ result are findings (:mod:`thinning.checks`), not errors.
 
 from __future__ import annotations
 
+import errno
+
 
 class ThinningError(Exception):
     """A user-fixable problem (message: one sentence for the user)."""
+
+
+#: OSError numbers of a full disk: no space, quota, file-size limit.
+FULL_DISK_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EFBIG})
+#: OSError numbers of a place the tool may not write: permission, read-only file system.
+NO_WRITE_ERRNOS = frozenset({errno.EACCES, errno.EPERM, errno.EROFS})
+#: The failures of the machine, not of the input: the command says so in one sentence (exit 2).
+ENVIRONMENT_ERRNOS = FULL_DISK_ERRNOS | NO_WRITE_ERRNOS

@@ -224,10 +224,10 @@ def model_fit_budget(t, d, model_fit, *, noise_m, floor_m, pixel_size_m, pixel_s
     terms = {"diameter_bias": _bias_term(tw, dw, w, EDGE_BIAS_PX * pixel_size_m, log=viscoelastic)}
     if pixel_size_rel and not viscoelastic:
         terms["pixel_size"] = pixel_size_rel
-    budget = combine(value, stat, terms)
-    budget = Budget(value, budget.interval, {"likelihood": budget.terms.pop("scatter_and_window"),
-                                             **budget.terms})
-    return budget, key
+    combined = combine(value, stat, terms)
+    named = {("likelihood" if name == "scatter_and_window" else name): size
+             for name, size in combined.terms.items()}
+    return Budget(value, combined.interval, named), key
 
 
 def _diameter_at(fit, t):

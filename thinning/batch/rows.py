@@ -11,8 +11,6 @@ again unless ``redo``.
 from __future__ import annotations
 
 import contextlib
-import errno
-import hashlib
 import importlib
 import json
 import logging
@@ -21,7 +19,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .. import __version__, atomic
-from ..errors import ThinningError
+from ..errors import ENVIRONMENT_ERRNOS, ThinningError
 from ..result import Result
 from ..units import AnalysisOptions
 from ..values import utc_text
@@ -36,10 +34,6 @@ ROW_SCHEMA = "thinning.batch-row/1"
 
 
 ROW_FILE = "row.json"
-#: The errors of the machine, not of the recording: a full disk or quota, a file-size limit,
-#: no permission, a read-only file system.
-ENVIRONMENT_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT, errno.EFBIG, errno.EACCES, errno.EPERM,
-                                errno.EROFS})
 
 
 #: Suffix of the temporary sibling folders a row is written through.
@@ -150,15 +144,10 @@ def _write_row_json(folder: Path, task: RowTask, outcome: RowOutcome):
 def outputs_digest(folder: Path) -> dict[str, str]:
     """``{file name: SHA-256 hex}`` of every file of a row folder but ``row.json``: the tamper
     evidence that ``row.json`` keeps of the analysis's outputs."""
-    digest = {}
-    for path in sorted(Path(folder).iterdir()):
-        if path.is_file() and path.name != ROW_FILE:
-            h = hashlib.sha256()
-            with path.open("rb") as stream:
-                for block in iter(lambda: stream.read(1 << 20), b""):
-                    h.update(block)
-            digest[path.name] = h.hexdigest()
-    return digest
+    from ..frames import sha256_of_files
+
+    return {path.name: sha256_of_files([path]) for path in sorted(Path(folder).iterdir())
+            if path.is_file() and path.name != ROW_FILE}
 
 
 def changed_outputs(folder: Path, record: dict) -> list[str]:
@@ -184,9 +173,10 @@ def _up_to_date(task: RowTask) -> RowOutcome | None:
     if not isinstance(record, dict) or record.get("status") != "ok" \
             or record.get("options") != _plain_options(task.options):
         return None
-    if changed_outputs(folder, record):
+    changed = changed_outputs(folder, record)
+    if changed:
         log.warning("row %d: %s changed since its analysis; analysing it again", task.row,
-                    ", ".join(changed_outputs(folder, record)))
+                    ", ".join(changed))
         return None
     try:
         with open_source(task.source) as recording:

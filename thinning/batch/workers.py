@@ -11,7 +11,6 @@ retried per the scheduler's ``allowed-failures``).
 from __future__ import annotations
 
 import dataclasses
-
 import logging
 import os
 import secrets

@@ -29,6 +29,30 @@ class NoFilament(ThinningError, ValueError):
     """No filament in view (message: one sentence for the user)."""
 
 
+class UnusableRoi(ThinningError, ValueError):
+    """A region of interest that leaves too little of the frame (one sentence for the user)."""
+
+
+#: The smallest region (pixels a side) a layout is looked for in.
+MIN_ROI_PX = 8
+
+
+def roi_within(roi, shape) -> tuple[int, int, int, int]:
+    """``roi`` (``x0, y0, x1, y1``, or None for the whole frame) clipped to frames of ``shape``
+    (rows, columns); raises :class:`UnusableRoi` when less than :data:`MIN_ROI_PX` a side is left."""
+    h, w = shape
+    x0, y0, x1, y1 = (0, 0, w, h) if roi is None else (int(v) for v in roi)
+    x1, y1 = min(x1, w), min(y1, h)
+    if x1 - x0 < MIN_ROI_PX or y1 - y0 < MIN_ROI_PX:
+        if roi is None:
+            raise UnusableRoi(f"The {w}×{h}-pixel frames are smaller than {MIN_ROI_PX}×{MIN_ROI_PX} "
+                              "pixels: too small to measure.")
+        raise UnusableRoi(f"--roi {','.join(str(int(v)) for v in roi)} leaves less than "
+                          f"{MIN_ROI_PX}×{MIN_ROI_PX} pixels of the {w}×{h}-pixel frames; give a "
+                          "crop inside them.")
+    return x0, y0, x1, y1
+
+
 @dataclass(frozen=True)
 class Layout:
     """Where to measure, found once from the first frame (pixels, full-frame coordinates).
@@ -220,18 +244,13 @@ def find_layout(frame, *, geometry="plates", roi=None) -> Layout:
 
     ``geometry`` is ``"plates"`` or ``"dripping"``; ``roi`` optional
     ``(x0, y0, x1, y1)`` in full-frame pixels. Raises :class:`NoFilament`
-    when the frame shows no dark object on a bright background.
+    when the frame shows no dark object on a bright background, :class:`UnusableRoi` when the
+    roi leaves too little of it (:func:`roi_within`).
     """
     frame = np.asarray(frame)
     if frame.ndim != 2:
         raise ValueError("find_layout expects a 2-D grey frame")
-    h, w = frame.shape
-    if roi is None:
-        roi = (0, 0, w, h)
-    x0, y0, x1, y1 = (int(v) for v in roi)
-    x1, y1 = min(x1, w), min(y1, h)
-    if x1 - x0 < 8 or y1 - y0 < 8:
-        raise ValueError(f"the region of interest {roi} is too small (at least 8×8 pixels)")
+    x0, y0, x1, y1 = roi_within(roi, frame.shape)
     region = np.asarray(frame[y0:y1, x0:x1], dtype=np.float32)
     bright = float(np.percentile(region, 98))
     dark = float(np.percentile(region, 0.5))

@@ -501,11 +501,10 @@ class Records:
             if product is not None:
                 query = query.where(products.c.name == product)
             names = sorted(conn.execute(query).scalars())
+            # lot ids are case-sensitive (as labs write them): for a refusal, a near one to name
+            known = [] if names else sorted(set(conn.execute(select(lots.c.lot)).scalars()))
         if not names:
             where = f" of product {product!r}" if product is not None else ""
-            with self.engine.connect() as conn:
-                # lot ids are case-sensitive (as labs write them): name a near one
-                known = sorted(set(conn.execute(select(lots.c.lot)).scalars()))
             near = [k for k in known if k.casefold() == str(lot).casefold()] or \
                 difflib.get_close_matches(str(lot), known, n=1, cutoff=0.8)
             hint = f" (lot ids are case-sensitive: did you mean {near[0]!r}?)" if near else ""
