@@ -375,6 +375,17 @@ def test_real_batch_matches_single_analyses(tmp_path):
         lots = {lot.lot for lot in records.lots(product="ink")}
     assert sorted(m["sha256"] for m in stored) == sorted(r["sha256"] for r in table if r["status"] == "ok")
     assert lots == {"L1", "L2"}
+    # each with the digests of its row folder, so that the folder can be checked later
+    checked = runner.invoke(cli, ["records", "verify", "--db", db_url, "--folder", str(out)])
+    assert checked.exit_code == 0 and "3 stored measurements intact; 3 rows" in checked.output, checked.output
+    from sqlalchemy import create_engine, select
+
+    from thinning.records import measurements
+    engine = create_engine(db_url)
+    with engine.connect() as conn:
+        kept = [json.loads(v) for (v,) in conn.execute(select(measurements.c.outputs_json))]
+    engine.dispose()
+    assert len(kept) == 3 and all({"result.json", "diameter.csv", "report.html"} <= set(k) for k in kept)
 
 
 def test_killed_command_then_rerun_keeps_each_recording_once(tmp_path):

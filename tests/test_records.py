@@ -424,8 +424,9 @@ def test_a_database_of_schema_version_1_keeps_its_verdicts_until_the_specificati
         store.load_specs(_specs(tmp_path))
         store.load_batch(tmp_path / "b")
     engine = create_engine(db_url)
-    with engine.begin() as conn:  # back to version 1: no decision_rule column, no version 2
+    with engine.begin() as conn:  # back to version 1: no decision_rule column, no version 2 or 3
         conn.exec_driver_sql("ALTER TABLE products DROP COLUMN decision_rule")
+        conn.exec_driver_sql("ALTER TABLE measurements DROP COLUMN outputs_json")
         conn.exec_driver_sql("UPDATE schema_version SET version = 1")
         conn.exec_driver_sql("DROP TABLE verdict_changes")
     engine.dispose()
@@ -441,7 +442,7 @@ def test_a_database_of_schema_version_1_keeps_its_verdicts_until_the_specificati
         (change,) = store.lot_detail("A1").verdict_changes
         assert (change["old_verdict"], change["new_verdict"], change["cause"]) == (
             "pass", "review", "specification loaded")
-    assert count(db_url, rec.schema_version) == 2
+    assert count(db_url, rec.schema_version) == 3
     shown = run(["show", "A1"], db_url)
     assert "re-evaluated" in shown.output and "pass → review" in shown.output
     from thinning.report.lot import write_lot_report
@@ -463,3 +464,62 @@ def test_a_result_json_that_is_not_an_object_is_refused_by_name(db_url, tmp_path
     loaded = run(["load", str(batch)], db_url)
     assert loaded.exit_code == 2, loaded.output
     assert "is not a result of this tool" in loaded.output and "Traceback" not in loaded.output
+
+
+def _with_row_records(batch_dir: Path) -> None:
+    """Give each row folder of a written batch the row.json digests a real batch keeps."""
+    from thinning.batch.rows import ROW_FILE, outputs_digest
+
+    for folder in sorted(p for p in batch_dir.iterdir() if p.is_dir()):
+        (folder / ROW_FILE).write_text(json.dumps({"status": "ok", "outputs": outputs_digest(folder)}))
+
+
+def test_stored_digests_let_a_folder_and_the_database_be_checked_later(db_url, tmp_path):
+    from thinning.batch.rows import ROW_FILE, outputs_digest
+
+    batch = tmp_path / "b"
+    write_batch(batch, lot_rows("ink-A", "V1", [0.010, 0.011]))
+    _with_row_records(batch)
+    assert run(["load", str(batch)], db_url).exit_code == 0
+    engine = create_engine(db_url)
+    with engine.connect() as conn:
+        stored = [json.loads(v) for (v,) in conn.execute(select(rec.measurements.c.outputs_json))]
+    assert sorted(stored, key=str) == sorted(
+        (outputs_digest(p) for p in batch.iterdir() if p.is_dir()), key=str)
+    ok = run(["verify", "--folder", str(batch)], db_url)
+    assert ok.exit_code == 0, ok.output
+    assert "2 stored measurements intact; 2 rows" in ok.output
+    # a curve rewritten later with its row.json made to agree: the folder no longer matches the
+    # digests stored with the measurement
+    folder = sorted(p for p in batch.iterdir() if p.is_dir())[0]
+    (folder / "diameter.csv").write_text((folder / "diameter.csv").read_text().replace("0.", "0.0", 1))
+    (folder / ROW_FILE).write_text(json.dumps({"status": "ok", "outputs": outputs_digest(folder)}))
+    bad = run(["verify", "--folder", str(batch)], db_url)
+    assert bad.exit_code == 2 and "differ from the digests stored" in bad.output
+    assert "(first diameter.csv)" in bad.output and len(bad.output.strip().splitlines()) == 1
+    # a stored result edited in the database itself
+    with engine.begin() as conn:
+        text = conn.execute(select(rec.measurements.c.result_json)).first()[0]
+        conn.execute(update(rec.measurements).values(result_json=text.replace('"quality":"good"',
+                                                                               '"quality":"doubtful"')))
+    engine.dispose()
+    edited = run(["verify"], db_url)
+    assert edited.exit_code == 2 and "no longer matches its fingerprint" in edited.output
+
+
+def test_a_version_2_database_gains_output_digests_on_the_next_load(tmp_path):
+    db_url = f"sqlite:///{tmp_path / 'v2.db'}"
+    batch = tmp_path / "b"
+    write_batch(batch, lot_rows("ink-A", "V2", [0.010]))
+    with rec.open_records(db_url) as store:
+        store.load_batch(batch)
+    engine = create_engine(db_url)
+    with engine.begin() as conn:
+        conn.exec_driver_sql("ALTER TABLE measurements DROP COLUMN outputs_json")
+        conn.exec_driver_sql("UPDATE schema_version SET version = 2")
+    engine.dispose()
+    _with_row_records(batch)
+    with rec.open_records(db_url) as store:
+        assert store.load_batch(batch)["unchanged"] == 1
+    assert count(db_url, rec.schema_version) == 2   # versions 2 and 3
+    assert count(db_url, rec.measurements, rec.measurements.c.outputs_json.is_not(None)) == 1

@@ -310,6 +310,25 @@ def load_command(batch_dir, db_url):
                f"{counts['unchanged']} unchanged, {counts['failure']} failed rows noted")
 
 
+@records.command("verify")
+@db_option
+@click.option("--folder", "batch_dir", type=click.Path(), default=None,
+              help="Also check this batch folder against the stored measurements.")
+def verify_command(db_url, batch_dir):
+    """Check that every stored measurement is intact, and optionally that a batch folder's files are
+    the ones its measurements were stored from (exit 2 naming the first mismatch).
+
+    Example:
+
+    \b
+      thinning records verify --db sqlite:///records.db --folder results/2026-10
+    """
+    with _open(db_url) as store:
+        counts = store.verify(batch_dir)
+    folder = f"; {counts['rows']} rows of {batch_dir} match them" if batch_dir is not None else ""
+    click.echo(f"{counts['measurements']} stored measurements intact{folder}")
+
+
 @click.command("report", cls=FriendlyCommand)
 @click.argument("lot")
 @db_option

@@ -147,12 +147,14 @@ class FinishedRow:
     """One row of a finished batch folder: the ``results.csv`` cells (``identity``: path,
     sample, lot, product, replicate, made_on, notes, status, reason, sha256, tool_version, as
     text), the row's :class:`~thinning.result.Result` (None for a failed row), when it was
-    analysed (UTC ISO time) and its diameter curve ``(time_s, diameter_m)`` or None."""
+    analysed (UTC ISO time), its diameter curve ``(time_s, diameter_m)`` or None, and the
+    digests of its folder's files that ``row.json`` keeps (None where it keeps none)."""
 
     identity: dict
     result: Result | None
     analysed_at: str
     curve: tuple | None
+    outputs: dict | None = None
 
 
 def read_curve(row_dir: Path) -> tuple[np.ndarray, np.ndarray] | None:
@@ -207,13 +209,15 @@ IDENTITY_CELLS = ("path", "sample", "lot", "product", "replicate", "made_on", "n
                   "reason", "sha256", "tool_version")
 
 
-def _check_untouched(folder: Path):
-    """Refuse a row folder whose outputs were edited after the analysis (row.json's digests)."""
+def recorded_outputs(folder: Path) -> dict[str, str] | None:
+    """The output digests ``{file name: SHA-256 hex}`` that the row folder's ``row.json`` keeps,
+    after refusing a folder whose outputs were edited since (None: a folder of an older version,
+    or made by hand, holds no digests to check against)."""
     from .rows import ROW_FILE, changed_outputs
 
-    path = folder / ROW_FILE
+    path = Path(folder) / ROW_FILE
     if not path.is_file():
-        return          # a folder of an older version, or made by hand: nothing to check against
+        return None
     try:
         record = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError):
@@ -223,6 +227,8 @@ def _check_untouched(folder: Path):
         raise UnusableBatchFolder(
             f"{folder / changed[0]} was changed after its analysis (it no longer matches the digest "
             f"in {ROW_FILE}); restore it, or analyse the row again with batch --redo.")
+    outputs = record.get("outputs") if isinstance(record, dict) else None
+    return dict(outputs) if isinstance(outputs, dict) else None
 
 
 def read_batch(batch_dir) -> list[FinishedRow]:
@@ -247,7 +253,7 @@ def read_batch(batch_dir) -> list[FinishedRow]:
         folder = _row_folder(batch_dir, row, width)
         result, curve = None, None
         result_path = folder / "result.json"
-        _check_untouched(folder)
+        outputs = recorded_outputs(folder)
         if (identity["status"] or "ok") == "ok":
             if result_path.is_file():
                 try:
@@ -261,5 +267,5 @@ def read_batch(batch_dir) -> list[FinishedRow]:
         if not stamp:
             source = result_path if result_path.is_file() else table
             stamp = utc_text(datetime.fromtimestamp(source.stat().st_mtime, timezone.utc))
-        loaded.append(FinishedRow(identity, result, stamp, curve))
+        loaded.append(FinishedRow(identity, result, stamp, curve, outputs))
     return loaded

@@ -22,7 +22,9 @@ Tables (schema version :data:`SCHEMA_VERSION`, kept in ``schema_version``):
     JSON, the source sha256, tool version, ``analysed_at`` and
     ``is_current``. A measurement is identified by (product, lot, sample,
     replicate, source sha256); a partial unique index keeps one current row
-    per identity. Superseded rows keep ``superseded_at`` and
+    per identity. ``outputs_json`` keeps the digests of the row folder's
+    files (``row.json``'s ``outputs``, version 3), so that an archived
+    folder can be checked against its measurement later (``records verify``). Superseded rows keep ``superseded_at`` and
     ``superseded_by`` and are never deleted.
 ``curves``
     a copy of each measurement's diameter curve (``time_s``,

@@ -10,9 +10,10 @@ from sqlalchemy import (Boolean, Column, Double, ForeignKey, Index, Integer, Lar
 
 from .. import qc
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 #: What each version added (:meth:`thinning.records.Records` migrates older databases in place).
-SCHEMA_CHANGES = {2: "products.decision_rule; the verdict_changes table"}
+SCHEMA_CHANGES = {2: "products.decision_rule; the verdict_changes table",
+                  3: "measurements.outputs_json: the digests of the row folder's files"}
 
 
 #: headline numbers copied from result.json into columns of the same name
@@ -97,6 +98,9 @@ measurements = Table(
     Column("options", Text, nullable=False),
     Column("result_json", Text, nullable=False),
     Column("result_fingerprint", String(64), nullable=False),
+    #: ``{file name: SHA-256 hex}`` of the row folder's outputs as row.json recorded them (NULL
+    #: for a measurement stored before schema version 3 or from a folder without digests)
+    Column("outputs_json", Text),
     Column("tool_version", String(60)),
     Column("analysed_at", String(40), nullable=False),
     Column("stored_at", String(40), nullable=False),

@@ -27,7 +27,7 @@ from .schema import (SCHEMA_VERSION, curves, failures, lots, measurements, metad
                      schema_version, verdict_changes, NUMBER_KEYS)
 from ..values import finite_number as _number
 from ..values import json_plain, utc_text
-from ..batch.table import read_batch, read_curve
+from ..batch.table import read_batch, read_curve, recorded_outputs
 
 logger = logging.getLogger(__name__)
 
@@ -194,11 +194,16 @@ class Records:
             elif found > SCHEMA_VERSION:
                 raise RecordsError(f"the records database has schema version {found}, newer than this "
                                    f"thinning understands ({SCHEMA_VERSION}); upgrade thinning.")
-            elif found < 2:
-                # version 1 → 2: specifications stored so far keep the simple rule (NULL) that
-                # judged the verdicts already shown
-                conn.execute(text("ALTER TABLE products ADD COLUMN decision_rule VARCHAR(20)"))
-                conn.execute(schema_version.insert().values(version=2, applied_at=utc_text()))
+            else:
+                if found < 2:
+                    # version 1 → 2: specifications stored so far keep the simple rule (NULL)
+                    # that judged the verdicts already shown
+                    conn.execute(text("ALTER TABLE products ADD COLUMN decision_rule VARCHAR(20)"))
+                    conn.execute(schema_version.insert().values(version=2, applied_at=utc_text()))
+                if found < 3:
+                    # version 2 → 3: measurements stored so far have no output digests (NULL)
+                    conn.execute(text("ALTER TABLE measurements ADD COLUMN outputs_json TEXT"))
+                    conn.execute(schema_version.insert().values(version=3, applied_at=utc_text()))
         self._transaction(work)
 
     # ------------------------------------------------------------------ specifications
@@ -323,14 +328,15 @@ class Records:
         return sample_id
 
     @staticmethod
-    def _meta(manifest_row: Mapping) -> dict:
+    def _meta(manifest_row: Mapping, outputs: Mapping | None = None) -> dict:
         sample = _text(manifest_row.get("sample")) or Path(_text(manifest_row.get("path"))).stem
         return {"product": _text(manifest_row.get("product")), "lot": _text(manifest_row.get("lot")),
                 "sample": sample, "replicate": _text(manifest_row.get("replicate")),
                 "made_on": _made_on(manifest_row.get("made_on")), "notes": _text(manifest_row.get("notes")),
                 "path": _text(manifest_row.get("path")), "status": _text(manifest_row.get("status")) or "ok",
                 "reason": _text(manifest_row.get("reason")), "sha256": _text(manifest_row.get("sha256")),
-                "tool_version": _text(manifest_row.get("tool_version"))}
+                "tool_version": _text(manifest_row.get("tool_version")),
+                "outputs": _json(dict(outputs)) if outputs else None}
 
     def _store(self, conn: Connection, meta: Mapping, result: Mapping | None, analysed_at: str,
                curve: tuple[np.ndarray, np.ndarray] | None) -> str:
@@ -356,13 +362,18 @@ class Records:
             raise RecordsError(f"sample {meta['sample']!r} of lot {meta['lot']!r} has no source sha256.")
         fingerprint = result_fingerprint(result)
         current = conn.execute(
-            select(measurements.c.id, measurements.c.result_fingerprint, measurements.c.analysed_at).where(
+            select(measurements.c.id, measurements.c.result_fingerprint, measurements.c.analysed_at,
+                   measurements.c.outputs_json).where(
                 measurements.c.sample_id == sample_id, measurements.c.sha256 == sha,
                 measurements.c.is_current.is_(True))).first()
         if current is not None and current.result_fingerprint == fingerprint:
             if curve is not None and conn.execute(select(curves.c.measurement_id).where(
                     curves.c.measurement_id == current.id)).first() is None:
                 self._insert_curve(conn, current.id, curve)
+            if meta["outputs"] is not None and current.outputs_json is None:
+                # stored before digests were kept (or from a folder without them): add them
+                conn.execute(update(measurements).where(measurements.c.id == current.id).values(
+                    outputs_json=meta["outputs"]))
             return "unchanged"
         if current is not None and analysed_at < current.analysed_at:
             # an older analysis (e.g. an earlier batch folder loaded late): history, not current
@@ -406,7 +417,7 @@ class Records:
             relaxation_time_ci95_low_s=_number(ci[0]), relaxation_time_ci95_high_s=_number(ci[1]),
             fit_window_start_s=_number(window[0]), fit_window_end_s=_number(window[1]),
             warnings=_json(list(result.get("warnings") or [])), options=_json(result.get("options") or {}),
-            result_json=_json(dict(result)),
+            result_json=_json(dict(result)), outputs_json=meta["outputs"],
             tool_version=_text(result.get("tool_version")) or meta["tool_version"] or None)
         return values
 
@@ -430,7 +441,8 @@ class Records:
         latest analysis stays current whatever the loading order) or
         ``"failure"`` (a failed row noted).
         """
-        meta = self._meta(manifest_row)
+        outputs = recorded_outputs(Path(row_dir)) if row_dir is not None else None
+        meta = self._meta(manifest_row, outputs)
         curve = read_curve(Path(row_dir)) if row_dir is not None and meta["status"] == "ok" else None
         stamp = normalise_timestamp(analysed_at)
         data = None if result is None else result.to_json()
@@ -442,7 +454,7 @@ class Records:
         Idempotent: loading the same folder again changes nothing. Returns
         counts by outcome (see :meth:`store_result`).
         """
-        rows = [(self._meta(row.identity), None if row.result is None else row.result.to_json(),
+        rows = [(self._meta(row.identity, row.outputs), None if row.result is None else row.result.to_json(),
                  normalise_timestamp(row.analysed_at), row.curve) for row in read_batch(batch_dir)]
 
         def work(conn: Connection) -> dict[str, int]:
@@ -547,6 +559,61 @@ class Records:
             rows = [_measurement_row(r) for r in conn.execute(query).mappings()]
         rows.sort(key=lambda r: (r["product"], r["lot"], *qc.row_order(r)))
         return [{col: row[col] for col in EXPORT_COLUMNS} for row in rows]
+
+    def verify(self, batch_dir: str | Path | None = None) -> dict[str, int]:
+        """Check the stored measurements, and optionally a batch folder against them.
+
+        Every measurement (current and superseded) must still match its
+        ``result_fingerprint``. With ``batch_dir``, every finished row of that
+        folder must be untouched since its analysis (``row.json``'s digests)
+        and be stored with the same result and the same output digests.
+        Raises :class:`RecordsError` naming the first mismatch; returns the
+        counts ``{"measurements": …, "rows": …}`` checked."""
+        with self.engine.connect() as conn:
+            stored = conn.execute(self._joined(True).union_all(self._joined(False))).mappings().all()
+        for row in sorted(stored, key=lambda r: r["id"]):
+            try:
+                intact = result_fingerprint(json.loads(row["result_json"])) == row["result_fingerprint"]
+            except (ValueError, TypeError):
+                intact = False
+            if not intact:
+                raise RecordsError(f"measurement {row['id']} ({_named(row)}) no longer matches its "
+                                   "fingerprint: the database was changed outside thinning.")
+        checked = 0
+        if batch_dir is not None:
+            by_identity: dict[tuple, list] = {}
+            for row in stored:
+                key = (row["product"], row["lot"], row["sample"], row["replicate"], row["sha256"])
+                by_identity.setdefault(key, []).append(row)
+            for finished in read_batch(batch_dir):
+                if finished.result is None:
+                    continue
+                meta = self._meta(finished.identity, finished.outputs)
+                data = finished.result.to_json()
+                sha = meta["sha256"] or _text((data.get("source") or {}).get("sha256"))
+                fingerprint = result_fingerprint(data)
+                matches = [r for r in by_identity.get((meta["product"], meta["lot"], meta["sample"],
+                                                       meta["replicate"], sha), [])
+                           if r["result_fingerprint"] == fingerprint]
+                if not matches:
+                    raise RecordsError(f"the row of {meta['path'] or meta['sample']} in {batch_dir} is "
+                                       f"not stored with this result ({_named(meta)}); load the folder "
+                                       "with records load.")
+                kept = [json.loads(r["outputs_json"]) for r in matches if r["outputs_json"]]
+                if finished.outputs and kept and all(k != finished.outputs for k in kept):
+                    name = sorted(n for n in set(kept[0]) | set(finished.outputs)
+                                  if kept[0].get(n) != finished.outputs.get(n))[0]
+                    raise RecordsError(f"the outputs of the row of {meta['path'] or meta['sample']} in "
+                                       f"{batch_dir} differ from the digests stored with its measurement "
+                                       f"(first {name}).")
+                checked += 1
+        return {"measurements": len(stored), "rows": checked}
+
+
+def _named(row: Mapping) -> str:
+    """``product P, lot L, sample S, replicate R`` of a measurement or manifest row."""
+    return ", ".join(f"{key} {row[key]!r}" for key in ("product", "lot", "sample", "replicate")
+                     if row.get(key))
 
 
 def _measurement_row(row: Mapping) -> dict:
