@@ -442,7 +442,7 @@ import sys
 sys.path.insert(0, {tests!r})
 from thinning.batch import run_batch
 if __name__ == "__main__":
-    run_batch({manifest!r}, {out!r}, defaults={defaults!r}, workers=2, analyser={fake!r})
+    run_batch({manifest!r}, {out!r}, defaults={defaults!r}, workers=2, analyser={fake!r}, redo={redo!r})
 """
 
 
@@ -456,7 +456,7 @@ def test_kill_and_rerun_analyses_every_recording_exactly_once(tmp_path, fake_env
     out = tmp_path / "out"
     script = tmp_path / "run.py"
     script.write_text(_KILL_SCRIPT.format(tests=str(Path(__file__).parent), manifest=str(manifest),
-                                          out=str(out), defaults=DEFAULTS, fake=FAKE))
+                                          out=str(out), defaults=DEFAULTS, fake=FAKE, redo=False))
     env = {**os.environ, DELAY_ENV: "0.4"}
     proc = subprocess.Popen([sys.executable, str(script)], env=env, start_new_session=True)
     try:
@@ -489,6 +489,52 @@ def test_kill_and_rerun_analyses_every_recording_exactly_once(tmp_path, fake_env
     rerun_calls = calls(fake_env)[len(first_calls):]
     # rows finished before the kill are not analysed again; every other row once in the rerun
     assert sorted(rerun_calls) == sorted(set(f"{n}.tif" for n in names) - finished_before)
+
+
+def test_redo_killed_at_twenty_moments_keeps_every_row_once_and_whole(tmp_path, fake_env):
+    # SIGKILL at 20 moments spread over `batch --redo` of a finished six-row batch: after each kill
+    # both tables still list every row exactly once, each row folder holds the files of one
+    # analysis (its row.json digests match), and a rerun leaves no debris
+    from thinning.batch.rows import ROW_FILE, changed_outputs
+
+    rng = np.random.default_rng(9)
+    names = [f"q{i}" for i in range(6)]
+    for name in names:
+        write_stack(tmp_path / f"{name}.tif", rng)
+    manifest = tmp_path / "m.csv"
+    manifest.write_text("path,fps\n" + "".join(f"{n}.tif,5kHz\n" for n in names))
+    out = tmp_path / "out"
+    run_batch(manifest, out, defaults=DEFAULTS, workers=2, analyser=FAKE)
+    script = tmp_path / "redo.py"
+    script.write_text(_KILL_SCRIPT.format(tests=str(Path(__file__).parent), manifest=str(manifest),
+                                          out=str(out), defaults=DEFAULTS, fake=FAKE, redo=True))
+    env = {**os.environ, DELAY_ENV: "0.2"}
+    start = time.monotonic()
+    subprocess.run([sys.executable, str(script)], env=env, check=True)
+    full = time.monotonic() - start
+    folders = sorted([f"{i + 1}-{n}" for i, n in enumerate(names)] + ["results.csv", "results.parquet"])
+    for k in range(20):
+        proc = subprocess.Popen([sys.executable, str(script)], env=env, start_new_session=True)
+        time.sleep(full * (0.1 + 0.045 * k))
+        os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=10)
+        time.sleep(0.1)
+        _, table = read_table(out / "results.csv")
+        assert [r["path"] for r in table] == [f"{n}.tif" for n in names], k
+        assert (out / "results.parquet").is_file(), k
+        for r in table:
+            record = json.loads((out / r["folder"] / ROW_FILE).read_text())
+            assert changed_outputs(out / r["folder"], record) == [], (k, r["folder"])
+        run_batch(manifest, out, defaults=DEFAULTS, workers=2, analyser=FAKE)
+        _, table = read_table(out / "results.csv")
+        assert [r["path"] for r in table] == [f"{n}.tif" for n in names] and all(
+            r["status"] == "ok" for r in table), k
+        for r in table:   # the table tells what each row folder holds
+            record = json.loads((out / r["folder"] / ROW_FILE).read_text())
+            assert r["analysed_at"] == record["analysed_at"], (k, r["folder"])
+        assert sorted(p.name for p in out.iterdir() if not p.name.startswith(".")) == folders, k
+        hidden = sorted(p.name for p in out.iterdir() if p.name.startswith("."))
+        assert hidden == [".thinning-batch.lock"], (k, hidden)   # the lock stays; nothing else
 
 
 def test_batch_command_errors(tmp_path):

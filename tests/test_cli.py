@@ -241,9 +241,11 @@ def test_names_that_are_not_utf8_are_refused_not_crashed_on(tmp_path, recording,
     assert not out.exists()
 
 
+@pytest.mark.slow
 def test_killed_analyse_leaves_its_folder_wholly_old_or_wholly_new(tmp_path, recording):
-    # SIGKILL at moments spread over a rerun with another surface tension: every file of the
-    # folder comes from one run, and the next run clears the killed one's staging folder
+    # SIGKILL at 20 moments spread over a run towards the other of two versions (two surface
+    # tensions): every file of the folder comes from one run, and the next run clears the killed
+    # one's staging folder
     import signal
     import subprocess
     import sys
@@ -251,25 +253,27 @@ def test_killed_analyse_leaves_its_folder_wholly_old_or_wholly_new(tmp_path, rec
 
     good, _ = recording
     out = tmp_path / "o"
-    assert run(*analyse_args(good, out)).exit_code == 0
-    old = {p.name: p.read_bytes() for p in out.iterdir()}
-    command = [sys.executable, "-m", "thinning.cli", *map(str, analyse_args(good, out))]
-    command[command.index("--surface-tension") + 1] = "55mN/m"
-    start = time.monotonic()
-    subprocess.run(command, check=True, capture_output=True)
-    new = {p.name: p.read_bytes() for p in out.iterdir()}
-    full = time.monotonic() - start
+    versions = []
+    for tension in ("62mN/m", "55mN/m"):
+        command = [sys.executable, "-m", "thinning.cli", *map(str, analyse_args(good, out))]
+        command[command.index("--surface-tension") + 1] = tension
+        start = time.monotonic()
+        subprocess.run(command, check=True, capture_output=True)
+        full = time.monotonic() - start
+        versions.append((command, {p.name: p.read_bytes() for p in out.iterdir()}))
+    (_, old), (_, new) = versions
     assert new.keys() == old.keys() and new["result.json"] != old["result.json"]
-    for k in range(6):
-        # back to the old version, then kill a rerun towards the new one part-way
-        assert run(*analyse_args(good, out)).exit_code == 0
+    for k in range(20):
+        now = {p.name: p.read_bytes() for p in out.iterdir()}
+        command = versions[1][0] if now == old else versions[0][0]
         proc = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        time.sleep(full * (0.3 + 0.12 * k))
+        time.sleep(full * (0.15 + 0.05 * k))
         proc.send_signal(signal.SIGKILL)
         proc.wait()
         now = {p.name: p.read_bytes() for p in out.iterdir()}
         assert now in (old, new), sorted(name for name in now if now[name] != old.get(name))
     assert run(*analyse_args(good, out)).exit_code == 0
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == old
     assert sorted(p.name for p in tmp_path.iterdir()) == ["o"]
 
 

@@ -523,3 +523,59 @@ def test_a_version_2_database_gains_output_digests_on_the_next_load(tmp_path):
         assert store.load_batch(batch)["unchanged"] == 1
     assert count(db_url, rec.schema_version) == 2   # versions 2 and 3
     assert count(db_url, rec.measurements, rec.measurements.c.outputs_json.is_not(None)) == 1
+
+
+@pytest.mark.slow
+def test_records_load_killed_at_twenty_moments_stores_all_or_nothing(tmp_path):
+    # SIGKILL at 20 moments spread over `records load` of a 150-row folder that supersedes every
+    # stored measurement: after each kill the database holds the old measurements or the new
+    # ones, never a mix, and a rerun stores every row exactly once
+    import shutil
+    import signal
+    import time
+
+    n = 150
+    old_batch, new_batch = tmp_path / "old", tmp_path / "new"
+    write_batch(old_batch, lot_rows("ink-K", "K1", [0.010] * n))
+    write_batch(new_batch, lot_rows("ink-K", "K1", [0.012] * n, analysed_at="2026-03-01T10:00:00Z"))
+    seed = tmp_path / "seed.db"
+    with rec.open_records(f"sqlite:///{seed}") as store:
+        store.load_batch(old_batch)
+
+    def load(db):
+        return subprocess.Popen([sys.executable, "-m", "thinning.cli", "records", "load", str(new_batch),
+                                 "--db", f"sqlite:///{db}"], stdout=subprocess.DEVNULL,
+                                stderr=subprocess.DEVNULL)
+
+    def state(db):
+        engine = create_engine(f"sqlite:///{db}")
+        try:
+            with engine.connect() as conn:
+                assert conn.exec_driver_sql("PRAGMA integrity_check").scalar() == "ok"
+                current = conn.execute(select(rec.measurements.c.relaxation_time_s).where(
+                    rec.measurements.c.is_current.is_(True))).scalars().all()
+                total = conn.execute(select(func.count()).select_from(rec.measurements)).scalar()
+        finally:
+            engine.dispose()
+        return sorted(set(current)), len(current), total
+
+    trial = tmp_path / "trial.db"
+    shutil.copy(seed, trial)
+    start = time.monotonic()
+    assert load(trial).wait() == 0
+    full = time.monotonic() - start
+    assert state(trial) == ([0.012], n, 2 * n)
+    outcomes = set()
+    for k in range(20):
+        db = tmp_path / f"k{k}.db"
+        shutil.copy(seed, db)
+        proc = load(db)
+        time.sleep(full * (0.2 + 0.045 * k))
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        found = state(db)
+        assert found in (([0.010], n, n), ([0.012], n, 2 * n)), (k, found)
+        outcomes.add(found[0][0])
+        assert load(db).wait() == 0
+        assert state(db) == ([0.012], n, 2 * n), k
+    assert 0.010 in outcomes        # at least one kill landed before the commit
