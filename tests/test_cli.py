@@ -335,3 +335,18 @@ def test_a_folder_of_videos_points_to_batch(tmp_path, recording):
     shutil.copy(good, folder / "b.avi")
     result = CliRunner().invoke(cli, [str(a) for a in analyse_args(folder, tmp_path / "o")])
     assert result.exit_code == 2 and "thinning batch" in result.output
+
+
+def test_a_mixed_folder_says_which_files_it_left_out(tmp_path, recording):
+    good, truth = recording
+    folder = tmp_path / "frames"
+    synth.write_recording(synth.dilute_polymer_plates(**SMALL), synth.Optics(), folder, fmt="png-folder",
+                          seed=7)
+    (folder / "notes.txt").write_text("camera settings")
+    (folder / "run.avi").write_bytes(good.read_bytes())
+    result = run(*analyse_args(folder, tmp_path / "o"))
+    assert result.exit_code == 0, result.output
+    data = json.loads((tmp_path / "o" / "result.json").read_text())
+    (left,) = [f for f in data["findings"] if f["code"] == "files-left-out"]
+    assert left["severity"] == "note" and "notes.txt, run.avi" in left["message"]
+    assert data["source"]["n_frames"] == truth.n_frames and data["quality"] == "good"

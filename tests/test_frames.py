@@ -186,3 +186,29 @@ def test_read_ahead_hands_a_failure_to_the_consumer():
     assert next(reader) == 1
     with pytest.raises(OSError, match="disk went away"):
         next(reader)
+
+
+def test_jpeg_frames_are_read_quietly_and_damage_ends_the_stream(tmp_path, capfd):
+    # OpenCV's libjpeg prints "Premature end of JPEG file" on the terminal and returns a truncated
+    # frame as whole; the folder reader says nothing there and stops the stream at the damage
+    import cv2
+
+    from thinning.frames import open_source
+
+    rng = np.random.default_rng(5)
+    frames = [cv2.GaussianBlur((rng.random((48, 40)) * 255).astype(np.uint8), (5, 5), 0) for _ in range(3)]
+    for i, frame in enumerate(frames):
+        cv2.imwrite(str(tmp_path / f"f{i}.jpg"), frame)
+    whole = (tmp_path / "f2.jpg").read_bytes()
+    with open_source(tmp_path) as recording:
+        read = list(recording)
+    # the same decode as OpenCV's within one grey level (two libjpeg builds)
+    for path, image in zip(sorted(tmp_path.glob("*.jpg")), read):
+        reference = cv2.imread(str(path), cv2.IMREAD_GRAYSCALE)
+        assert image.dtype == np.uint8 and np.abs(image.astype(int) - reference).max() <= 1
+    (tmp_path / "f2.jpg").write_bytes(whole[: len(whole) // 2])
+    capfd.readouterr()
+    with open_source(tmp_path) as recording:
+        assert len(list(recording)) == 2
+        assert recording.broken_off
+    assert "JPEG" not in capfd.readouterr().err

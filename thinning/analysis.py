@@ -161,6 +161,12 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
                 Code.RECORD_BROKEN_OFF, Severity.DOUBTFUL,
                 f"The recording broke off after frame {recording.frames_read - 1} of "
                 f"{recording.n_frames} expected; it was analysed up to its last good frame."))
+        if recording.left_out:
+            names = recording.left_out
+            findings.append(Finding(
+                Code.FILES_LEFT_OUT, Severity.NOTE,
+                f"{len(names)} file(s) of the folder that are not image frames were left out "
+                f"({', '.join(names[:3])}{', …' if len(names) > 3 else ''}); only the images were analysed."))
         sha256 = hashing.result()
         source_info = SourceInfo(path=str(source), sha256=sha256, n_frames=int(recording.frames_read),
                                  width_px=int(recording.shape[1]), height_px=int(recording.shape[0]),

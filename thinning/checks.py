@@ -103,6 +103,9 @@ class Code(str, enum.Enum):
         "part of the background is at the camera's maximum grey level, so edges may read inward; "
         "above 85 % of it the light level is unknown, edges come from the steepest light gradient "
         "and the record is doubtful")
+    FILES_LEFT_OUT = (
+        "files-left-out", "no",
+        "the image folder holds other files (videos, text, unknown types) that were not read as frames")
     NO_FILAMENT_FRAMES = (
         "no-filament-frames", "no", "the first frames show no connected filament")
 

@@ -164,6 +164,8 @@ class FrameSource:
     ``trigger_frame`` (index of the trigger frame within the record) and
     ``clock`` (``"file"`` when ``fps`` comes from a native camera header,
     ``"container"`` when from a video container, None without a rate).
+    ``left_out``: names of files beside the frames that were not read as
+    frames (an image folder's other files), sorted.
     """
 
     path: str
@@ -176,6 +178,7 @@ class FrameSource:
     exposure_s: float | None = None
     trigger_frame: int | None = None
     clock: str | None = None
+    left_out: tuple[str, ...] = ()
     #: Frames in one item of ``_frames()`` (a batch decoded by one task), for the read-ahead depth.
     _frames_per_item = 1
 
@@ -393,9 +396,7 @@ class ImageFolderSource(FrameSource):
             raise UnusableSource(f"{path}: the folder holds no image files (PNG, TIFF, BMP, JPEG)"
                                  f"{hint}.")
         ignored = [p for p in entries if p not in files and p.suffix.lower() != ".json"]
-        if ignored:
-            log.warning("%s: %d file(s) that are not frames were left out (e.g. %s)", path,
-                        len(ignored), sorted(ignored)[0].name)
+        self.left_out = tuple(sorted(p.name for p in ignored))
         for file in files:
             require_text_path(file, "image file")
         self._files = sorted(files, key=lambda p: natural_key(p.name))
@@ -412,6 +413,8 @@ class ImageFolderSource(FrameSource):
     def _read(file):
         import cv2
 
+        if Path(file).suffix.lower() in JPEG_SUFFIXES:
+            return _read_jpeg(file)
         try:
             image = cv2.imread(str(file), cv2.IMREAD_UNCHANGED)
         except cv2.error:  # e.g. a header claiming more pixels than OpenCV will allocate
@@ -428,6 +431,25 @@ class ImageFolderSource(FrameSource):
 
     def _hashed_files(self):
         return self._files
+
+
+JPEG_SUFFIXES = (".jpg", ".jpeg")
+
+
+def _read_jpeg(file) -> np.ndarray | None:
+    """A JPEG frame in grey, or None when it is truncated or corrupt. Read with Pillow, whose
+    decoder reports damage as an error: OpenCV's prints libjpeg's warnings on the terminal and
+    returns the damaged image as if whole."""
+    from PIL import Image, UnidentifiedImageError
+
+    try:
+        with Image.open(file) as image:
+            image.load()
+            if image.mode == "L":
+                return np.asarray(image)
+            return _to_grey(np.ascontiguousarray(np.asarray(image.convert("RGB"))[:, :, ::-1]))
+    except (OSError, UnidentifiedImageError, ValueError, Image.DecompressionBombError):
+        return None
 
 
 def require_text_path(path, what="recording") -> None:
