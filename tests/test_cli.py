@@ -96,6 +96,7 @@ def test_reference_width_calibration(recording, tmp_path):
     ("roi-outside", "leaves less than 8×8 pixels"),
     ("out-inside-source", "inside the image folder"),
     ("decimal-comma", "comma"),
+    ("out-name-too-long", "give a name of at most 207 bytes"),
 ])
 def test_bad_input_is_one_sentence_and_exit_2(tmp_path, recording, case, message):
     import numpy as np
@@ -157,6 +158,8 @@ def test_bad_input_is_one_sentence_and_exit_2(tmp_path, recording, case, message
     elif case == "decimal-comma":
         args = analyse_args(good, tmp_path / "o")
         args[args.index("--fps") + 1] = "2,5kHz"
+    elif case == "out-name-too-long":   # 230 bytes fit a file system, not beside a staging name
+        args = analyse_args(good, tmp_path / ("a" * 230))
     elif case == "no-surface-tension":
         args = ["analyse", good, "--out", tmp_path / "o", "--fps", "2kHz", "--pixel-size", "5um"]
     if args is None:

@@ -110,9 +110,11 @@ def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> R
     -------
     Result
     """
+    from .atomic import require_fitting_name
     from .frames import require_text_path
 
     require_text_path(out_dir, "output folder")
+    require_fitting_name(out_dir)
     source_path, out_path = Path(source).resolve(), Path(out_dir).resolve()
     if source_path.is_dir() and (out_path == source_path or source_path in out_path.parents):
         raise UnusableInput(f"{out_dir}: the output folder lies inside the image folder {source}, "

@@ -20,6 +20,8 @@ import shutil
 import tempfile
 from pathlib import Path
 
+from .errors import ThinningError
+
 #: The suffix of every temporary folder the tool stages beside its target.
 TEMP_SUFFIX = ".thinning-tmp"
 
@@ -65,6 +67,32 @@ def write_text(path, text: str):
     """Replace ``path`` by ``text`` (UTF-8, ``\\n`` line ends), atomically."""
     with replacing(path, "w", encoding="utf-8", newline="\n") as stream:
         stream.write(text)
+
+
+#: The longest file name (bytes) the common file systems take (ext4, XFS, NTFS, APFS).
+NAME_MAX_BYTES = 255
+#: Bytes a staging name adds to a folder's own name (``.NAME.new-PID-HEX.thinning-tmp``).
+STAGING_ROOM_BYTES = 48
+
+
+class UnusableOutputPath(ThinningError):
+    """An output path no file system can hold."""
+
+
+def require_fitting_name(folder, what: str = "output folder", *, staged: bool = True) -> None:
+    """Refuse an output folder with a name part too long to be written, or (``staged``) too long
+    to stage a new version beside it (raises :class:`UnusableOutputPath`, one sentence)."""
+    parts = Path(folder).parts
+    for k, part in enumerate(parts):
+        last = k == len(parts) - 1
+        room = NAME_MAX_BYTES - (STAGING_ROOM_BYTES if staged and last else 0)
+        size = len(os.fsencode(part))
+        if size > room:
+            why = (f", and thinning needs {STAGING_ROOM_BYTES} of them to stage results beside it"
+                   if staged and last else "")
+            raise UnusableOutputPath(
+                f"the {what}'s name part {part[:24]}… is {size} bytes long; file systems take "
+                f"{NAME_MAX_BYTES}{why}: give a name of at most {room} bytes.")
 
 
 def temp_sibling(folder: Path, tag: str) -> Path:

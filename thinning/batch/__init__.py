@@ -29,6 +29,7 @@ import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from ..atomic import require_fitting_name
 from ..errors import ThinningError
 from ..units import AnalysisOptions, BadQuantity
 from ..values import row_folder_name, safe_name
@@ -122,6 +123,7 @@ def run_batch(manifest, out_dir, *, defaults: dict | None = None, workers: int |
         One sentence each.
     """
     rows = read_manifest(manifest)
+    require_fitting_name(out_dir, "batch folder", staged=False)
     out = Path(out_dir).resolve()
     out.mkdir(parents=True, exist_ok=True)
     lock = _lock(out)
