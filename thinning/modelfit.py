@@ -146,17 +146,22 @@ def _rodas_step(m: _Batch, x, h, y):
     exe = math.exp(x + _FD)
     p = m.p0 * ex
     a4 = m.kr4 / (ex * ex)
-    pp = np.stack([p, p, p, m.p0 * exe])
-    aa = np.stack([a4, a4, a4, m.kr4 / (exe * exe)])
+    pp = np.empty((4, n))
+    pp[:3] = p
+    pp[3] = m.p0 * exe
+    aa = np.empty((4, n))
+    aa[:3] = a4
+    aa[3] = m.kr4 / (exe * exe)
     s4 = np.empty((4, n))
     s4[:] = y[0]
     s4[1] += _FD
     r4 = np.empty((4, n))
     r4[:] = y[1]
     r4[2] += _FD
-    fs, fr, ft = m.rates(pp, aa, s4, r4)
-    f0 = np.stack([fs[0], fr[0], ft[0]])
-    jac = (np.stack([fs, fr, ft])[:, 1:] - f0[:, None]) * (1.0 / _FD)   # (rate, [s, A_rr, x], B)
+    f4 = np.empty((3, 4, n))
+    f4[0], f4[1], f4[2] = m.rates(pp, aa, s4, r4)
+    f0 = f4[:, 0]
+    jac = (f4[:, 1:] - f0[:, None]) * (1.0 / _FD)   # (rate, [s, A_rr, x], B)
     q = 1.0 / (h * _GAMMA)
     m00 = q - jac[0, 0]
     m01 = jac[0, 1]
@@ -175,7 +180,8 @@ def _rodas_step(m: _Batch, x, h, y):
         else:
             yi = y + (_A[i, :i] @ k2[:i]).reshape(3, n)
             exi = math.exp(x + _CX[i] * h)
-            rhs = np.stack(m.rates(m.p0 * exi, m.kr4 / (exi * exi), yi[0], yi[1]))
+            rhs = np.empty((3, n))
+            rhs[0], rhs[1], rhs[2] = m.rates(m.p0 * exi, m.kr4 / (exi * exi), yi[0], yi[1])
             rhs += (ch[i, :i] @ k2[:i]).reshape(3, n)
             if _DX[i]:
                 rhs += _DX[i] * fx
