@@ -115,7 +115,11 @@ def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> R
 
     require_text_path(out_dir, "output folder")
     require_fitting_name(out_dir)
-    source_path, out_path = Path(source).resolve(), Path(out_dir).resolve()
+    try:
+        source_path, out_path = Path(source).resolve(), Path(out_dir).resolve()
+    except RuntimeError:   # Python's word for a symbolic link that leads back to itself
+        raise UnusableInput(f"{source} or {out_dir}: a symbolic link that leads back to itself; "
+                            "give the real file or folder.") from None
     if source_path.is_dir() and (out_path == source_path or source_path in out_path.parents):
         raise UnusableInput(f"{out_dir}: the output folder lies inside the image folder {source}, "
                             "whose frames it would mix with figures; choose an --out elsewhere.")

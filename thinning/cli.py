@@ -87,7 +87,15 @@ OPTION_NAMES = tuple(OPTION_FIELDS)
 
 
 def parse_analysis_options(values: dict):
-    """Command-line strings → :class:`~thinning.units.AnalysisOptions`, or a one-sentence exit 2."""
+    """Command-line strings → :class:`~thinning.units.AnalysisOptions`, or a one-sentence exit 2.
+
+    An option given with an empty value is refused (on the command line it is a slip, unlike an
+    empty manifest cell, which means "the batch's value")."""
+    for name in OPTION_NAMES:
+        text = values.get(name)
+        if isinstance(text, str) and not text.strip():
+            raise FriendlyError(f"--{name.replace('_', '-')} was given an empty value; give one, "
+                                "or leave the option out.")
     try:
         return options_from_text({name: values.get(name) for name in OPTION_NAMES})
     except BadQuantity as exc:

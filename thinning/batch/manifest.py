@@ -135,6 +135,9 @@ def read_manifest(path) -> list[ManifestRow]:
             identity={name: values.get(name, "") for name in IDENTITY_COLUMNS},
             cells={name: values.get(name, "") for name in OPTION_COLUMNS},
             problem=problem))
+    if not rows:
+        raise UnusableManifest(f"{path}: the manifest lists no recordings, only its header; add one "
+                               "row per recording.")
     return rows
 
 

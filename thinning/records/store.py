@@ -690,7 +690,7 @@ def open_records(url: str | None = None) -> Records:
     records = Records(engine)
     try:
         records._ensure_schema()
-    except OperationalError as exc:
+    except DBAPIError as exc:   # cannot connect, locked, or a file that is not a database
         engine.dispose()
         reason = str(exc.orig).strip().splitlines()[0] if exc.orig is not None else str(exc)
         raise RecordsError(f"cannot open the records database "
