@@ -261,3 +261,15 @@ def write_batch(batch_dir: Path, rows: list[dict], *, with_curves: bool = True) 
         for record in table:
             writer.writerow({k: _cell(v) for k, v in record.items()})
     return batch_dir
+
+
+def small_files(limit):
+    """A write-failing shim for a child process: writes past ``limit`` bytes fail (EFBIG), as on
+    a full disk (ENOSPC)."""
+    def apply():
+        import resource
+        import signal
+
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+        resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
+    return apply

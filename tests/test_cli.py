@@ -353,3 +353,23 @@ def test_a_mixed_folder_says_which_files_it_left_out(tmp_path, recording):
     (left,) = [f for f in data["findings"] if f["code"] == "files-left-out"]
     assert left["severity"] == "note" and "notes.txt, run.avi" in left["message"]
     assert data["source"]["n_frames"] == truth.n_frames and data["quality"] == "good"
+
+
+@pytest.mark.parametrize("limit", [3_000, 30_000, 150_000])   # at result.json, the figures, the report
+def test_a_full_disk_during_analyse_is_exit_2_and_keeps_the_earlier_folder(tmp_path, recording, limit):
+    import subprocess
+    import sys
+
+    from services import small_files
+
+    good, _ = recording
+    out = tmp_path / "o"
+    assert run(*analyse_args(good, out)).exit_code == 0
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    command = [sys.executable, "-m", "thinning.cli", *map(str, analyse_args(good, out))]
+    command[command.index("--surface-tension") + 1] = "55mN/m"
+    proc = subprocess.run(command, capture_output=True, text=True, preexec_fn=small_files(limit))
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr, proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1 and "full" in proc.stderr
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["o"]

@@ -579,3 +579,26 @@ def test_records_load_killed_at_twenty_moments_stores_all_or_nothing(tmp_path):
         assert load(db).wait() == 0
         assert state(db) == ([0.012], n, 2 * n), k
     assert 0.010 in outcomes        # at least one kill landed before the commit
+
+
+@pytest.mark.parametrize("limit", [10_000, 40_000])   # opening the database; the load's transaction
+def test_a_full_disk_during_records_load_is_exit_2_and_stores_nothing(tmp_path, limit):
+    import shutil
+
+    from services import small_files
+
+    first, second = tmp_path / "first", tmp_path / "second"
+    write_batch(first, lot_rows("ink-F", "F1", [0.010]))
+    write_batch(second, lot_rows("ink-F", "F2", [0.011] * 20))
+    seed = tmp_path / "seed.db"
+    with rec.open_records(f"sqlite:///{seed}") as store:
+        store.load_batch(first)
+    db = tmp_path / "r.db"
+    shutil.copy(seed, db)
+    proc = subprocess.run([sys.executable, "-m", "thinning.cli", "records", "load", str(second),
+                           "--db", f"sqlite:///{db}"], capture_output=True, text=True,
+                          preexec_fn=small_files(limit))
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr, proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1
+    with rec.open_records(f"sqlite:///{db}") as store:
+        assert [m["lot"] for m in store.export_rows()] == ["F1"]

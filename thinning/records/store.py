@@ -176,6 +176,14 @@ class Records:
                         conn.execute(text("SET LOCAL lock_timeout = '60s'"))
                     return work(conn)
             except (DBAPIError, _LostRace) as exc:
+                if isinstance(exc, OperationalError) and not _retryable(exc):
+                    # the machine's refusal (full disk, I/O error, read-only file), not a race:
+                    # the transaction was rolled back whole
+                    reason = str(exc.orig).strip().splitlines()[0] if exc.orig is not None else type(exc).__name__
+                    raise RecordsError(
+                        f"the records database {self.engine.url.render_as_string(hide_password=True)} "
+                        f"refused the change ({reason}); nothing of it was stored: free space or check "
+                        "the database, and run again.") from None
                 if attempt == self._retries - 1 or not _retryable(exc):
                     raise
                 delay = min(1.0, 0.02 * 2 ** attempt) * (0.5 + random.random())
