@@ -282,15 +282,24 @@ def test_killed_analyse_leaves_its_folder_wholly_old_or_wholly_new(tmp_path, rec
 
 def test_a_playback_rate_used_without_fps_makes_the_record_doubtful():
     # an AVI's 25/s playback rate, taken for the camera's clock, would scale λ 100-fold or more
-    from thinning.analysis import resolve_frame_rate
+    from types import SimpleNamespace
+
     from thinning.checks import Severity
+    from thinning.clock import resolve_clock
     from thinning.units import AnalysisOptions
 
-    fps, findings = resolve_frame_rate(AnalysisOptions(), 25.0)
-    assert fps == 25.0 and [f.code for f in findings] == ["container-frame-rate"]
+    def video(rate):
+        return SimpleNamespace(fps=rate, clock="container", timestamps_s=None, exposure_s=None,
+                               trigger_frame=None)
+
+    clock, findings = resolve_clock(AnalysisOptions(), video(25.0))
+    assert (clock.fps_hz, clock.source) == (25.0, "container")
+    assert [f.code for f in findings] == ["container-frame-rate"]
     assert findings[0].severity is Severity.DOUBTFUL
-    assert resolve_frame_rate(AnalysisOptions(), 10000.0) == (10000.0, [])
-    assert resolve_frame_rate(AnalysisOptions(fps_hz=5000.0), 25.0) == (5000.0, [])
+    clock, findings = resolve_clock(AnalysisOptions(), video(10000.0))
+    assert (clock.fps_hz, clock.source, findings) == (10000.0, "container", [])
+    clock, findings = resolve_clock(AnalysisOptions(fps_hz=5000.0), video(25.0))
+    assert (clock.fps_hz, clock.source, findings) == (5000.0, "option", [])
 
 
 @pytest.mark.parametrize("kind", ["tiff-pages", "image-bits"])

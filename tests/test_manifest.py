@@ -22,11 +22,12 @@ def write_stack(path, rng, n_frames=4, shape=(16, 24)):
 
 
 def test_columns_are_the_contracts():
-    # docs/contract.md, `thinning batch`: path, identity columns, every analyse option
+    # docs/contract.md, `thinning batch`: path, identity columns, every analyse option (with the
+    # version 2 additions --exposure and --fps-override)
     assert set(MANIFEST_COLUMNS) == {
         "path", "sample", "lot", "product", "replicate", "made_on", "notes", "fps", "pixel_size",
         "reference_width", "surface_tension", "density", "solvent_viscosity", "zero_shear_viscosity",
-        "geometry", "roi"}
+        "geometry", "roi", "exposure", "fps_override"}
 
 
 def test_rows_paths_and_identity(tmp_path):

@@ -21,15 +21,14 @@ import pandas as pd
 
 from . import __version__, atomic
 from .checks import Code, Finding, Severity
+from .clock import ClockConflict, motion_blur_finding, resolve_clock
 from .errors import ThinningError
 from .frames import UnusableSource, open_source
 from .result import MeasuredLayout, Result, SourceInfo
-from .units import AnalysisOptions, BadQuantity, Calibration, check_required
+from .units import AnalysisOptions, BadQuantity, check_required
 
 log = logging.getLogger(__name__)
 
-#: Without --fps, a container rate below this (1/s) is used with a warning (likely a playback rate).
-PLAYBACK_RATE_LIMIT_HZ = 500.0
 #: Modules of the stages after the measurement, imported in the background while it runs.
 LATER_STAGES = ("thinning.characterisation", "thinning.plots", "thinning.report.recording")
 DIAMETER_COLUMNS = ["frame", "time_s", "diameter_m", "neck_position_m", "strain_rate_1_s",
@@ -43,21 +42,6 @@ class UnusableInput(ThinningError, ValueError):
 def seed_from_sha256(sha256: str) -> int:
     """Seed for anything random (bootstrap), from the source's content hash."""
     return int(sha256[:16], 16)
-
-
-def resolve_frame_rate(options: AnalysisOptions, container_fps):
-    """Frame rate (1/s) to use and the findings about where it came from."""
-    if options.fps_hz is not None:
-        return options.fps_hz, []
-    if container_fps is None:
-        raise UnusableInput("The recording carries no frame rate; pass --fps with the camera's "
-                            "recording rate, e.g. --fps 10kHz.")
-    if container_fps >= PLAYBACK_RATE_LIMIT_HZ:
-        return container_fps, []
-    message = (f"No --fps given: the container's rate of {container_fps:g}/s was used, but for "
-               "high-speed cameras it is usually a playback rate, and every time and λ scale with "
-               "it; pass --fps with the camera's recording rate.")
-    return container_fps, [Finding(Code.CONTAINER_FRAME_RATE, Severity.DOUBTFUL, message)]
 
 
 def analyse(source, options: AnalysisOptions, *, progress=None) -> Result:
@@ -148,8 +132,12 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
     # while the frames are measured: the file's hash, and the imports of the later stages
     # (both mostly outside the GIL or on an idle core; about a second on a laptop)
     threading.Thread(target=_import_later_stages, name="thinning-imports", daemon=True).start()
+    try:  # the clock is checked against the file's header before any frame is decoded
+        clock, findings = resolve_clock(options, recording)
+    except ClockConflict as exc:
+        recording.close()
+        raise UnusableInput(str(exc)) from None
     with recording, ThreadPoolExecutor(max_workers=1) as hasher:
-        fps_hz, findings = resolve_frame_rate(options, recording.fps)
         hashing = hasher.submit(lambda: recording.sha256)
         frames = _counted(recording, progress)
         try:
@@ -182,11 +170,13 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
     from .uncertainty import reference_width_uncertainty
 
     pixel_size_m = _pixel_size(options, series)
-    calibration = Calibration(fps_hz=fps_hz, pixel_size_m=pixel_size_m)
+    calibration = clock.calibration(pixel_size_m, source_info.n_frames)
+    fps_hz = calibration.fps_hz
     table = to_physical(series, calibration)
     findings.extend(series.findings)
-    free_start_s = float(series.free_thinning_start_frame) / fps_hz
-    breakup_s = None if series.breakup_frame is None else float(series.breakup_frame) / fps_hz
+    free_start_s = float(calibration.time_s(series.free_thinning_start_frame))
+    breakup_s = (None if series.breakup_frame is None
+                 else float(calibration.time_s(series.breakup_frame)))
     rheo = characterise(
         table["time_s"].to_numpy(), table["diameter_m"].to_numpy(),
         surface_tension=options.surface_tension_N_m, pixel_size_m=pixel_size_m, fps_hz=fps_hz,
@@ -198,11 +188,17 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
         pixel_size_rel=(0.0 if options.pixel_size_m is not None
                         else reference_width_uncertainty(series.layout.plate_width_px)))
     findings.extend(rheo.findings)
+    blur = motion_blur_finding(
+        table["time_s"].to_numpy(), table["diameter_m"].to_numpy(), exposure_s=clock.exposure_s,
+        pixel_size_m=pixel_size_m, floor_m=rheo.resolution_floor_m,
+        t_range_s=(free_start_s, breakup_s if breakup_s is not None else float(table["time_s"].iloc[-1])))
+    if blur is not None:
+        findings.append(blur)
     for column in rheo.curves.columns:
         table[column] = rheo.curves[column].to_numpy()
     layout = series.layout
     return Result(source=source_info, calibration=calibration, options=options,
-                  characterisation=rheo, findings=tuple(findings),
+                  characterisation=rheo, findings=tuple(findings), clock=clock,
                   layout=MeasuredLayout(orientation=layout.orientation, roi_px=tuple(layout.roi),
                                         plate_width_px=layout.plate_width_px),
                   tool_version=__version__, neck=series, table=table)

@@ -106,6 +106,18 @@ class Code(str, enum.Enum):
     FILES_LEFT_OUT = (
         "files-left-out", "no",
         "the image folder holds other files (videos, text, unknown types) that were not read as frames")
+    CLOCK_OVERRIDDEN = (
+        "clock-overridden", "no",
+        "--fps-override: --fps, not the native camera file's recording rate, set the clock")
+    EXPOSURE_OPTION_UNUSED = (
+        "exposure-option-unused", "no",
+        "--exposure differs from the exposure in the file's header, which was used")
+    FRAMES_DROPPED = (
+        "frames-dropped", "no",
+        "the file's time stamps show frames the camera did not save; times come from the stamps")
+    MOTION_BLUR = (
+        "motion-blur", "no",
+        "at the neck's measured speed an edge moves more than 0.3 px during one exposure")
     NO_FILAMENT_FRAMES = (
         "no-filament-frames", "no", "the first frames show no connected filament")
 

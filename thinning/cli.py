@@ -28,8 +28,10 @@ _LAZY_COMMANDS = {
 }
 
 ANALYSIS_OPTION_HELP = {
-    "fps": "Camera frame rate, e.g. '10kHz' or '25000/s'. Overrides the container's rate, which "
-           "for high-speed cameras is usually a playback rate.",
+    "fps": "Camera frame rate, e.g. '10kHz' or '25000/s'. Overrides a video container's rate, which "
+           "for high-speed cameras is usually a playback rate; a native camera file (.cine, .mraw) "
+           "carries its recording rate, and an --fps more than 0.1 % off it is refused unless "
+           "--fps-override is given.",
     "pixel_size": "Image scale: object size of one pixel, e.g. '4.2um' or '4.2 µm/px'.",
     "reference_width": "Instead of --pixel-size: true width of the plates (or the nozzle's outer "
                        "diameter) seen in the frame, e.g. '3mm'; the tool measures it in pixels.",
@@ -39,6 +41,8 @@ ANALYSIS_OPTION_HELP = {
     "solvent_viscosity": "Solvent viscosity, e.g. '1.2mPa*s' (optional: regime checks).",
     "zero_shear_viscosity": "Zero-shear viscosity, e.g. '5mPa*s' (optional: Ohnesorge number and "
                             "Trouton ratio; falls back to the solvent viscosity).",
+    "exposure": "Exposure time of each frame, e.g. '20us', for sources whose file does not carry it "
+                "(a native camera file's own exposure wins); used to warn of motion blur.",
 }
 
 
@@ -72,6 +76,11 @@ def analysis_options(func):
         click.option("--zero-shear-viscosity",
                      help=f"{ANALYSIS_OPTION_HELP['zero_shear_viscosity']} Default unit: mPa·s; "
                           f"plausible range {plausible_range('zero_shear_viscosity')}."),
+        click.option("--exposure", help=f"{ANALYSIS_OPTION_HELP['exposure']} Default unit: µs; "
+                          f"plausible range {plausible_range('exposure')}."),
+        click.option("--fps-override", is_flag=True, default=False,
+                     help="Use --fps as the clock even where a native camera file's header gives "
+                          "another recording rate (its time stamps are then not used)."),
         click.option("--geometry", type=click.Choice(GEOMETRIES), default=None,
                      help="'plates': step stretch between two end plates (default); "
                           "'dripping': dripping onto a substrate from a nozzle."),

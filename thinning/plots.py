@@ -291,7 +291,7 @@ def _legend(ax):
         ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
 
 
-def plot_frame_strip(snapshots, *, orientation="vertical", fps_hz=None, fig=None):
+def plot_frame_strip(snapshots, *, orientation="vertical", fps_hz=None, frame_time_s=None, fig=None):
     """A row of frames with the detected edges drawn over them.
 
     ``snapshots`` is a list of ``(frame_index, image, profile)``; ``image`` a
@@ -299,8 +299,9 @@ def plot_frame_strip(snapshots, *, orientation="vertical", fps_hz=None, fig=None
     and ``right_px`` arrays (or None; edges are drawn only where its
     ``connected`` is true or absent). ``orientation`` says how the filament
     runs: ``"vertical"`` (axial = image row, edges = columns) or
-    ``"horizontal"`` (axial = column, edges = rows). With ``fps_hz`` each
-    panel gives its time. Returns the Figure.
+    ``"horizontal"`` (axial = column, edges = rows). With ``frame_time_s``
+    (frame index → s, e.g. :meth:`thinning.units.Calibration.time_s`) or
+    ``fps_hz`` each panel gives its time. Returns the Figure.
     """
     if orientation not in ("vertical", "horizontal"):
         raise ValueError(f"orientation must be 'vertical' or 'horizontal', not {orientation!r}")
@@ -332,7 +333,9 @@ def plot_frame_strip(snapshots, *, orientation="vertical", fps_hz=None, fig=None
             ax.set_xlim(-0.5, img.shape[1] - 0.5)
             ax.set_ylim(img.shape[0] - 0.5, -0.5)
             title = f"frame {index}"
-            if _number(fps_hz):
+            if frame_time_s is not None:
+                title += f"\n{_format_time(float(frame_time_s(index)))}"
+            elif _number(fps_hz):
                 title += f"\n{_format_time(index / float(fps_hz))}"
             ax.set_title(title, fontsize=8)
             ax.set_xticks([])
@@ -383,7 +386,7 @@ def write_figures(out_dir, result):
         "extensional_viscosity": lambda: plot_extensional_viscosity(result).figure,
         "strain_rate": lambda: plot_strain_rate(result).figure,
         "frames": lambda: plot_frame_strip(snapshots, orientation=orientation,
-                                           fps_hz=result.calibration.fps_hz),
+                                           frame_time_s=result.calibration.time_s),
     }
     paths = {}
     for name, make in makers.items():  # one figure in memory at a time

@@ -22,6 +22,7 @@ from typing import TYPE_CHECKING
 import pandas as pd
 
 from .checks import Code, Finding, Severity, quality_of, warning_sentences
+from .clock import RecordingClock
 from .units import AnalysisOptions, Calibration
 from .values import json_plain
 
@@ -71,6 +72,8 @@ class Result:
     SI with the derived curves (the columns of ``diameter.csv`` and more);
     both are None for a result read back from ``result.json`` alone.
     ``findings`` are all of the record's, in the order they were raised.
+    ``clock`` says where the clock came from, with the exposure and trigger
+    frame (:class:`thinning.clock.RecordingClock`; read back without stamps).
     """
 
     source: SourceInfo
@@ -80,6 +83,7 @@ class Result:
     findings: tuple[Finding, ...] = ()
     layout: MeasuredLayout | None = None
     tool_version: str = ""
+    clock: RecordingClock | None = None
     neck: object | None = field(default=None, compare=False, repr=False)
     table: pd.DataFrame | None = field(default=None, compare=False, repr=False)
 
@@ -117,7 +121,7 @@ class Result:
         worker hands back to its coordinator."""
         return Result(self.source, self.calibration, self.options,
                       _without_curves(self.characterisation), self.findings, self.layout,
-                      self.tool_version)
+                      self.tool_version, self.clock)
 
     # --- result.json ------------------------------------------------------------------------
     def to_json(self) -> dict:
@@ -128,6 +132,9 @@ class Result:
             "source": self.source.to_dict(),
             "fps_hz": self.calibration.fps_hz,
             "pixel_size_m": self.calibration.pixel_size_m,
+            "clock_source": None if self.clock is None else self.clock.source,
+            "exposure_s": None if self.clock is None else self.clock.exposure_s,
+            "trigger_frame": None if self.clock is None else self.clock.trigger_frame,
             "options": self.options.to_dict(),
             **self.characterisation.result_fields(),
             "warnings": self.warnings,
@@ -168,6 +175,9 @@ class Result:
                 orientation=layout["orientation"], roi_px=tuple(layout["roi_px"]),
                 plate_width_px=layout.get("plate_width_px")),
             tool_version=str(data.get("tool_version") or ""),
+            clock=None if not data.get("clock_source") else RecordingClock(
+                fps_hz=data.get("fps_hz"), source=str(data["clock_source"]),
+                exposure_s=data.get("exposure_s"), trigger_frame=data.get("trigger_frame")),
             table=table)
 
 

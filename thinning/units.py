@@ -11,7 +11,7 @@ from __future__ import annotations
 import functools
 import math
 import re
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 
 from .errors import ThinningError
 
@@ -40,6 +40,7 @@ QUANTITIES = {
     "density": QuantitySpec("kg/m^3", "kg/m^3", "density"),
     "solvent_viscosity": QuantitySpec("mPa*s", "Pa*s", "solvent viscosity"),
     "zero_shear_viscosity": QuantitySpec("mPa*s", "Pa*s", "zero-shear viscosity"),
+    "exposure": QuantitySpec("us", "s", "exposure time"),
 }
 
 
@@ -65,6 +66,8 @@ BOUNDS = {
                                      "thins in a recording"),
     "zero_shear_viscosity": (1e-5, 1e6, "liquids lie above about 0.2 mPa·s; above 10⁶ Pa·s "
                                         "nothing thins in a recording"),
+    "exposure": (1e-8, 10.0, "high-speed cameras expose from about 0.1 µs; an exposure is never "
+                             "longer than the 10 s between the slowest frames"),
 }
 
 _PER_PIXEL = re.compile(r"\s*/\s*(px|pixels?|pix)\s*$", re.IGNORECASE)
@@ -156,11 +159,11 @@ def plausible_range(name) -> str:
 
 #: One default unit in SI (kept here so that --help needs no unit registry).
 _DEFAULT_UNIT_IN_SI = {"1/s": 1.0, "um": 1e-6, "mm": 1e-3, "mN/m": 1e-3, "kg/m^3": 1.0,
-                       "mPa*s": 1e-3}
+                       "mPa*s": 1e-3, "us": 1e-6}
 
 
 def _unit_text(unit):
-    return {"um": "µm", "kg/m^3": "kg/m³", "mPa*s": "mPa·s"}.get(unit, unit)
+    return {"um": "µm", "us": "µs", "kg/m^3": "kg/m³", "mPa*s": "mPa·s"}.get(unit, unit)
 
 
 def _plain_number(v):
@@ -176,7 +179,8 @@ def _plain_number(v):
 def _example(name):
     return {"fps": "10kHz", "pixel_size": "4.2um", "reference_width": "3mm",
             "surface_tension": "35mN/m", "density": "998kg/m^3",
-            "solvent_viscosity": "1.2mPa*s", "zero_shear_viscosity": "5mPa*s"}[name]
+            "solvent_viscosity": "1.2mPa*s", "zero_shear_viscosity": "5mPa*s",
+            "exposure": "20us"}[name]
 
 
 def parse_roi(text):
@@ -189,6 +193,22 @@ def parse_roi(text):
         raise BadQuantity(f"--roi '{text}' is not x0,y0,x1,y1 in pixels with x0 < x1 and y0 < y1, "
                           "e.g. '100,0,400,256'.")
     return tuple(parts)
+
+
+#: How a yes/no option may be written (a manifest cell; on the command line it is a flag).
+SWITCH_WORDS = {"yes": True, "true": True, "1": True, "on": True,
+                "no": False, "false": False, "0": False, "off": False}
+
+
+def parse_switch(text, name):
+    """A yes/no option: True or False from ``yes``/``no``, ``true``/``false``, ``1``/``0``, ``on``/``off``."""
+    if isinstance(text, bool):
+        return text
+    value = SWITCH_WORDS.get(str(text).strip().lower())
+    if value is None:
+        raise BadQuantity(f"'{shown_text(text)}' is not yes or no (for {name.replace('_', '-')}: "
+                          "write yes or no).")
+    return value
 
 
 def parse_geometry(text):
@@ -215,6 +235,8 @@ class AnalysisOptions:
     zero_shear_viscosity_Pa_s: float | None = None
     geometry: str = "plates"
     roi_px: tuple[int, int, int, int] | None = None
+    exposure_s: float | None = None
+    fps_override: bool = False
 
     def to_dict(self):
         d = asdict(self)
@@ -234,6 +256,8 @@ OPTION_FIELDS = {
     "zero_shear_viscosity": "zero_shear_viscosity_Pa_s",
     "geometry": "geometry",
     "roi": "roi_px",
+    "exposure": "exposure_s",
+    "fps_override": "fps_override",
 }
 
 
@@ -243,6 +267,8 @@ def parse_option(name, text):
         return parse_geometry(text)
     if name == "roi":
         return parse_roi(text)
+    if name == "fps_override":
+        return parse_switch(text, name)
     return parse_quantity(text, name)
 
 
@@ -271,11 +297,23 @@ def check_required(options: AnalysisOptions, *, container_fps=None):
 
 @dataclass(frozen=True)
 class Calibration:
-    """Camera frame rate (1/s) and object pixel size (m) actually used."""
+    """Camera frame rate (1/s) and object pixel size (m) actually used, and the per-frame times
+    (s from frame 0) where a native file's time stamps are the clock (else None)."""
 
     fps_hz: float
     pixel_size_m: float
+    frame_times_s: object = field(default=None, compare=False, repr=False)
 
     def time_s(self, frame):
-        """Recording clock: t = frame / fps."""
-        return frame / self.fps_hz
+        """Time (s) of frame index ``frame`` (number or array) on the recording's clock: the
+        stamp where there are stamps (interpolated between, and beyond the last at the nominal
+        rate), else frame / fps."""
+        import numpy as np
+
+        frames = np.asarray(frame, dtype=float)
+        times = self.frame_times_s
+        if times is None:
+            return frames / self.fps_hz
+        inside = np.interp(frames, np.arange(len(times), dtype=float), times)
+        beyond = times[-1] + (frames - (len(times) - 1)) / self.fps_hz
+        return np.where(frames > len(times) - 1, beyond, inside)

@@ -226,17 +226,35 @@ def check_manifest(path, defaults: dict | None = None) -> list[Problem]:
             continue
         bad = row_option_problems(row, defaults)
         problems.extend(Problem(row.row, message) for message in bad)
-        container_fps = None
+        container_fps = clock_problem = None
         try:
             with open_source(row.source) as recording:
                 container_fps = recording.fps
+                if not bad:
+                    clock_problem = _clock_problem(row_options(row, defaults), recording)
         except UnusableSource as exc:
             problems.append(Problem(row.row, str(exc)))
             continue
         if bad:
+            continue
+        if clock_problem:
+            problems.append(Problem(row.row, clock_problem))
             continue
         try:
             check_required(row_options(row, defaults), container_fps=container_fps)
         except BadQuantity as exc:
             problems.append(Problem(row.row, str(exc)))
     return problems
+
+
+def _clock_problem(options: AnalysisOptions, recording) -> str | None:
+    """What the row's frame-rate options contradict in the recording's own clock, or None."""
+    from ..clock import ClockConflict, resolve_clock
+
+    if options.fps_hz is None and not options.fps_override:
+        return None   # a missing rate is check_required's to name
+    try:
+        resolve_clock(options, recording)
+    except ClockConflict as exc:
+        return str(exc)
+    return None

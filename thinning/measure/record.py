@@ -483,7 +483,8 @@ def _clipping_findings(layout: Layout):
 
 
 def to_physical(series: NeckSeries, calibration) -> pd.DataFrame:
-    """The per-frame table in SI units on the recording's clock (t = frame / fps).
+    """The per-frame table in SI units on the recording's clock (``calibration.time_s``: the
+    file's time stamps where they are the clock, else t = frame / fps).
 
     Columns: ``frame, time_s, diameter_m, neck_position_m, axis_angle_deg,
     thread_connected, min_contrast, plate_gap_m``.
@@ -492,7 +493,7 @@ def to_physical(series: NeckSeries, calibration) -> pd.DataFrame:
     px = calibration.pixel_size_m
     return pd.DataFrame({
         "frame": t["frame"].to_numpy(int),
-        "time_s": t["frame"].to_numpy(float) / calibration.fps_hz,
+        "time_s": calibration.time_s(t["frame"].to_numpy(float)),
         "diameter_m": t["diameter_px"].to_numpy(float) * px,
         "neck_position_m": t["neck_position_px"].to_numpy(float) * px,
         "axis_angle_deg": t["axis_angle_deg"].to_numpy(float),
