@@ -179,3 +179,27 @@ def test_manifest_rows_of_native_files(native_files, tmp_path):
     assert [p.row for p in problems] == [2, 4]
     assert "differs from the recording rate in the file's header" in problems[0].message
     assert "is not yes or no" in problems[1].message
+
+
+def test_a_batch_of_native_files_reports_clock_and_trigger(native_files, tmp_path):
+    # a manifest row with an empty fps cell: the header is the clock; the lot report's provenance
+    # says how each recording was clocked and started, the recording report too
+    manifest = tmp_path / "m.csv"
+    manifest.write_text(
+        "path,product,lot,sample,replicate,pixel_size,surface_tension,fps\n"
+        f"{native_files.whole},clock-test,CT-1,S1,1,{PIXEL},{SIGMA},\n"
+        f"{native_files.mraw.with_suffix('.cih')},clock-test,CT-1,S1,2,{PIXEL},{SIGMA},\n",
+        encoding="utf-8")
+    db = f"sqlite:///{tmp_path / 'r.db'}"
+    run = CliRunner().invoke(cli, ["batch", str(manifest), "--out", str(tmp_path / "out"), "--db", db,
+                                   "--workers", "1"])
+    assert run.exit_code == 0, run.output
+    run = CliRunner().invoke(cli, ["report", "CT-1", "--db", db, "--out", str(tmp_path / "reports")])
+    assert run.exit_code == 0, run.output
+    html = (tmp_path / "reports" / "CT-1.html").read_text(encoding="utf-8")
+    assert "header 4000/s · trigger at frame 12 · exposure 20 µs" in html
+    assert "header 4000/s · trigger at frame 30 · exposure 50 µs" in html
+    row_report = tmp_path / "out" / "1-S1" / "report.html"
+    text = row_report.read_text(encoding="utf-8")
+    assert "the camera file&#39;s header" in text or "the camera file's header" in text
+    assert "frame 12 of the record" in text

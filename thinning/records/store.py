@@ -626,9 +626,13 @@ def _named(row: Mapping) -> str:
 
 def _measurement_row(row: Mapping) -> dict:
     """A stored measurement as a dict, with ``warning_codes`` (its findings' codes, one per
-    warning, joined by ``; ``) read from the stored ``result.json``."""
+    warning, joined by ``; ``), ``clock_source``, ``exposure_s`` and ``trigger_frame`` read from
+    the stored ``result.json``."""
     out = dict(row)
-    result = Result.from_json(json.loads(row["result_json"]))
+    data = json.loads(row["result_json"])
+    result = Result.from_json(data)
+    for key in ("clock_source", "exposure_s", "trigger_frame"):   # null for results before them
+        out[key] = data.get(key) if isinstance(data, dict) else None
     out["warning_codes"] = "; ".join(result.warning_codes)
     out["doubtful_codes"] = tuple(dict.fromkeys(f.code.value for f in result.findings if f.doubtful))
     return out

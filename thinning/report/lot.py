@@ -150,7 +150,7 @@ def _replicate_rows(detail) -> list[dict]:
             if m["warning_codes"] else [("", w) for w in json.loads(m["warnings"])],
             "sha256": m["sha256"], "analysed_at": m["analysed_at"],
             "tool_version": m["tool_version"] or MISSING, "notes": m["notes"] or "",
-            "source_path": m["source_path"] or MISSING,
+            "source_path": m["source_path"] or MISSING, "clock": clock_text(m),
         })
     for f in detail.failures:
         rows.append({"label": replicate_label(f), "sample": f["sample"], "replicate": f["replicate"] or MISSING,
@@ -158,8 +158,25 @@ def _replicate_rows(detail) -> list[dict]:
                      "lifetime": MISSING, "eta_e": MISSING, "valid": "no", "is_valid": False,
                      "warnings": [("failed", f["reason"])], "sha256": f["sha256"] or MISSING,
                      "analysed_at": f["analysed_at"], "tool_version": f["tool_version"] or MISSING,
-                     "notes": f["notes"] or "", "source_path": f["source_path"] or MISSING})
+                     "notes": f["notes"] or "", "source_path": f["source_path"] or MISSING,
+                     "clock": MISSING})
     return rows
+
+
+def clock_text(m) -> str:
+    """How the recording was clocked and started, in words: ``header 4000/s · trigger at frame 12 ·
+    exposure 20 µs`` (— for results stored before the clock was recorded)."""
+    source = m.get("clock_source")
+    if not source:
+        return MISSING
+    words = {"file": "header", "option": "--fps", "container": "container"}.get(source, source)
+    parts = [f"{words} {fmt(m.get('fps_hz'), None)}/s"]
+    trigger = m.get("trigger_frame")
+    parts.append("trigger outside the record" if trigger is None and source == "file"
+                 else (f"trigger at frame {trigger}" if trigger is not None else "no trigger recorded"))
+    if m.get("exposure_s") is not None:
+        parts.append(f"exposure {fmt(m['exposure_s'], 's')}")
+    return " · ".join(parts)
 
 
 def _lot_rows(detail) -> list[dict]:

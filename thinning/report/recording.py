@@ -62,6 +62,15 @@ _OPTION_LABELS = {
     "zero_shear_viscosity_Pa_s": ("zero-shear viscosity η_0", "Pa·s"),
     "geometry": ("geometry", None),
     "roi_px": ("region of interest x0, y0, x1, y1 (px)", None),
+    "exposure_s": ("exposure (as given)", "s"),
+    "fps_override": ("--fps over a native file's clock", None),
+}
+
+#: ``clock_source`` → what set the clock, in words.
+CLOCK_WORDS = {
+    "file": "the camera file's header (its recording rate and per-frame time stamps where it has them)",
+    "option": "--fps (time = frame / fps)",
+    "container": "the video container's rate (time = frame / fps)",
 }
 
 MISSING = "—"
@@ -212,6 +221,8 @@ def _option_value(value, unit):
         return f"{MISSING} (not given)"
     if unit is not None:
         return format_quantity(value, unit)
+    if isinstance(value, bool):
+        return "yes" if value else "no"
     if isinstance(value, (list, tuple)):
         return ", ".join(str(v) for v in value)
     return str(value)
@@ -224,6 +235,14 @@ def _calibration(result):
         {"label": "pixel size used", "value": format_quantity(result.calibration.pixel_size_m, "m",
                                                               missing="not recorded")},
     ]
+    clock = result.clock
+    if clock is not None:
+        rows[1:1] = [
+            {"label": "clock", "value": CLOCK_WORDS.get(clock.source, clock.source)},
+            {"label": "exposure", "value": format_quantity(clock.exposure_s, "s", missing="not known")},
+            {"label": "trigger frame", "value": MISSING if clock.trigger_frame is None
+             else f"frame {clock.trigger_frame} of the record"},
+        ]
     for key, value in result.options.to_dict().items():
         label, unit = _OPTION_LABELS.get(key, (str(key), None))
         rows.append({"label": label, "value": _option_value(value, unit)})
