@@ -195,8 +195,9 @@ def summary_text(result, out_dir) -> str:
     c = result.characterisation
     lam = c.relaxation_time_s
     ci = c.relaxation_time_ci95_s
+    clock = " (the file's clock)" if result.clock is not None and result.clock.source == "file" else ""
     lines = [f"{result.source.path}: {result.source.n_frames} frames at "
-             f"{result.calibration.fps_hz:g}/s, {result.calibration.pixel_size_m * 1e6:.4g} µm per pixel"]
+             f"{result.calibration.fps_hz:g}/s{clock}, {result.calibration.pixel_size_m * 1e6:.4g} µm per pixel"]
     if lam is not None:
         scale, unit = (1e3, "ms") if lam < 1 else (1.0, "s")
         interval = f" (95 % interval {ci[0] * scale:.3g}–{ci[1] * scale:.3g} {unit})" if ci else ""

@@ -4,8 +4,12 @@ The scenario is invented: a water-based inkjet ink, product ``harbour-cyan``,
 made in lots of which three replicate bridges are filmed between 3 mm plates
 at 2,500 frames/s. Lots HC-0101 … HC-0106 are routine; HC-0107 drifted (its
 polymer degraded, the relaxation time fell below specification); HC-0108 has
-one spoiled recording (the camera stopped mid-record). The recordings come
-from :mod:`thinning.synth`; ``scripts/make_sample_videos.py`` regenerates them.
+one spoiled recording (the camera stopped mid-record); in HC-0109 the third
+replicate was saved straight from the camera as a 12-bit packed ``.cine``
+(its header carries the clock, so its ``fps`` cell is empty). The recordings
+come from :mod:`thinning.synth` (the ``.cine`` through
+:func:`thinning.frames.writers.write_cine`); ``scripts/make_sample_videos.py``
+regenerates them.
 """
 
 from __future__ import annotations
@@ -33,9 +37,13 @@ LOTS = [
     ("HC-0106", "2026-10-12", 5.05e-3),
     ("HC-0107", "2026-10-19", 3.9e-3),
     ("HC-0108", "2026-10-26", 5.0e-3),
+    ("HC-0109", "2026-11-02", 5.05e-3),
 ]
 REPLICATES = 3
 SPOILED = ("HC-0108", 2)  # this replicate's file breaks off partway
+NATIVE = ("HC-0109", 3)   # this replicate is the camera's own .cine file
+#: The native recording's exposure (s) and its trigger: the plates' stop, the start of free thinning.
+NATIVE_EXPOSURE_S = 100e-6
 
 SPECS_TOML = f"""# Product specifications for the demo (invented). Keep the real one under version control.
 [[product]]
@@ -75,24 +83,46 @@ def write_sample_videos(folder) -> Path:
             lam_rep = lam * (1.0 + 0.03 * rng.standard_normal())
             optics = synth.Optics(blur_sigma_px=float(rng.uniform(0.7, 1.4)),
                                   tilt_deg=float(rng.uniform(-1.0, 1.0)))
-            name = f"{lot}-r{replicate}.avi"
             seed = 1000 * lot_index + replicate
-            synth.write_recording(_scene(lam_rep), optics, folder / name, fmt="avi-mjpg",
-                                  seed=seed, quality=80)
+            native = (lot, replicate) == NATIVE
+            name = f"{lot}-r{replicate}.{'cine' if native else 'avi'}"
+            if native:
+                _write_native(_scene(lam_rep), optics, folder / name, seed=seed)
+            else:
+                synth.write_recording(_scene(lam_rep), optics, folder / name, fmt="avi-mjpg",
+                                      seed=seed, quality=80)
             if (lot, replicate) == SPOILED:
                 data = (folder / name).read_bytes()
                 (folder / name).write_bytes(data[: int(len(data) * 0.35)])
+            notes = {SPOILED: "camera stopped early", NATIVE: "saved as the camera's .cine file"}
             rows.append({"path": name, "sample": f"{lot}-r{replicate}", "lot": lot,
                          "product": PRODUCT, "replicate": replicate, "made_on": made_on,
-                         "notes": "camera stopped early" if (lot, replicate) == SPOILED else ""})
+                         "notes": notes.get((lot, replicate), ""),
+                         "fps": "" if native else FRAME_RATE})
     with open(folder / "manifest.csv", "w", newline="", encoding="utf-8") as fh:
-        writer = csv.DictWriter(fh, fieldnames=list(rows[0]) + ["fps", "pixel_size", "surface_tension"])
+        writer = csv.DictWriter(fh, fieldnames=list(rows[0]) + ["pixel_size", "surface_tension"])
         writer.writeheader()
         for row in rows:
-            writer.writerow({**row, "fps": FRAME_RATE, "pixel_size": PIXEL_SIZE,
-                             "surface_tension": SURFACE_TENSION})
+            writer.writerow({**row, "pixel_size": PIXEL_SIZE, "surface_tension": SURFACE_TENSION})
     (folder / "specs.toml").write_text(SPECS_TOML, encoding="utf-8")
     return folder
+
+
+def _write_native(scene, optics, path, *, seed):
+    """The recording as the camera saves it: 12-bit packed .cine, the header's clock, exposure and
+    trigger (the frame where the plates stop); the truth beside it."""
+    from dataclasses import replace
+
+    from . import synth
+    from .frames.writers import write_cine
+    from .synth_io import truth_path, write_truth
+
+    frames, truth = synth.render_recording(scene, replace(optics, bit_depth=12), seed=seed)
+    trigger = int(round((scene.pre_roll_s + scene.stretch_duration_s) * scene.fps_hz))
+    write_cine(path, frames, fps=int(scene.fps_hz), bit_depth=12, packing="packed",
+               exposure_s=NATIVE_EXPOSURE_S, trigger_frame=trigger,
+               timestamps_s=np.arange(truth.n_frames) / scene.fps_hz)
+    write_truth(truth, truth_path(path))
 
 
 def find_sample_videos() -> Path | None:
