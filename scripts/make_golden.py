@@ -78,11 +78,31 @@ def cases():
         "plates-12bit-streak-mp4": (
             synth.dilute_polymer_plates(**plates),
             synth.Optics(bit_depth=12, streak_strength=0.9, flicker=0.05), "mp4-ffv1", 22),
+        "plates-12bit-cine-dropped-frames": (
+            synth.dilute_polymer_plates(**plates), synth.Optics(bit_depth=12, blur_sigma_px=1.2),
+            "cine-dropped", 23),
     }
 
 
 SUFFIX = {"avi-raw": ".avi", "avi-mjpg": ".avi", "tiff": ".tif", "png-folder": "",
-          "mkv-ffv1": ".mkv", "mp4-ffv1": ".mp4"}
+          "mkv-ffv1": ".mkv", "mp4-ffv1": ".mp4", "cine-dropped": ".cine"}
+#: In the "cine-dropped" case every this-many-th frame is left out of the file (its stamps keep
+#: the clock), and the analysis takes the header's clock (no --fps).
+DROPPED_EVERY = 7
+
+
+def _write_cine_dropped(scene, optics, path, *, seed):
+    """The recording as a 12-bit packed .cine with every DROPPED_EVERY-th frame missing."""
+    import numpy as np
+
+    from thinning.frames.writers import write_cine
+
+    frames, truth = synth.render_recording(scene, optics, seed=seed)
+    kept = [i for i in range(truth.n_frames) if i % DROPPED_EVERY != DROPPED_EVERY - 1]
+    wanted = set(kept)
+    write_cine(path, (f for i, f in enumerate(frames) if i in wanted), fps=int(scene.fps_hz),
+               bit_depth=12, packing="packed", exposure_s=50e-6, trigger_frame=5,
+               timestamps_s=np.array(kept) / scene.fps_hz)
 
 
 def run_case(name, folder: Path) -> dict:
@@ -92,8 +112,12 @@ def run_case(name, folder: Path) -> dict:
 
     scene, optics, fmt, seed = cases()[name]
     source = f"rec{SUFFIX[fmt]}"
-    synth.write_recording(scene, optics, folder / source, fmt=fmt, seed=seed)
-    options = AnalysisOptions(fps_hz=scene.fps_hz, pixel_size_m=scene.pixel_size_m,
+    if fmt == "cine-dropped":
+        _write_cine_dropped(scene, optics, folder / source, seed=seed)
+    else:
+        synth.write_recording(scene, optics, folder / source, fmt=fmt, seed=seed)
+    options = AnalysisOptions(fps_hz=None if fmt == "cine-dropped" else scene.fps_hz,
+                              pixel_size_m=scene.pixel_size_m,
                               surface_tension_N_m=scene.fluid.surface_tension,
                               density_kg_m3=scene.fluid.density, geometry=scene.geometry)
     here = os.getcwd()
