@@ -183,6 +183,37 @@ def rewrite_with_digests(folder):
     (folder / ROW_FILE).write_text(json.dumps(record))
 
 
+def native(ws, kind):
+    """The workspace's recording as a camera's own file: ``cine`` or ``mraw`` (+ ``.cih``)."""
+    import cv2
+
+    from thinning.frames.writers import write_cine, write_mraw
+
+    cap = cv2.VideoCapture(str(ws / "rec.avi"))
+    frames = []
+    while True:
+        ok, frame = cap.read()
+        if not ok:
+            break
+        frames.append(cv2.cvtColor(frame, cv2.COLOR_BGR2GRAY))
+    if kind == "cine":
+        write_cine(ws / "rec.cine", frames, fps=2500, bit_depth=8, packing="unpacked", exposure_s=40e-6)
+        return ws / "rec.cine"
+    write_mraw(ws / "rec.mraw", frames, fps=2500, bit_depth=8, shutter_s=40e-6)
+    return ws / "rec.mraw"
+
+
+def without_data(path: Path) -> Path:
+    """The .cih of an .mraw whose data file was deleted."""
+    path.unlink()
+    return path.with_suffix(".cih")
+
+
+def without_header(path: Path) -> Path:
+    path.with_suffix(".cih").unlink()
+    return path
+
+
 GOOD_ROW = "path,sample,lot,product,replicate\nrec.avi,S1,L1,ink,1\n"
 
 #: (id, arguments from the workspace, exit status, words the message holds, extra check or None)
@@ -338,6 +369,33 @@ CASES = [
     ("demo-out-not-a-demo-folder", lambda ws: ["demo", "--out", ws / "earlier"], 2, "not a previous demo", None),
     ("demo-samples-missing", lambda ws: ["demo", "--out", ws / "d", "--samples", ws / "none"], 2, "", None),
     ("unknown-command", lambda ws: ["analyze", ws / "rec.avi"], 2, "analyze", None),
+    # ---- native camera files and their clock (issue 15)
+    ("cine-fps-disagrees", lambda ws: analyse(ws, native(ws, "cine"), calibration=with_option("--fps", "2.6kHz")),
+     2, "differs from the recording rate in the file's header", None),
+    ("cine-fps-override-without-fps", lambda ws: analyse(ws, native(ws, "cine"), "--fps-override",
+                                                          calibration=CALIBRATION[2:]), 2, "without --fps", None),
+    ("cine-cut-in-its-header", lambda ws: analyse(ws, write(ws / "c.cine", native(ws, "cine").read_bytes()[:100])),
+     2, "c.cine", None),
+    ("cine-of-junk", lambda ws: analyse(ws, write(ws / "j.cine", b"CI" + b"\xff" * 3000)), 2, "j.cine", None),
+    ("mraw-without-its-header", lambda ws: analyse(ws, without_header(native(ws, "mraw"))), 2,
+     "no .cih or .cihx header", None),
+    ("cih-naming-no-data", lambda ws: analyse(ws, without_data(native(ws, "mraw"))), 2, "rec.cih", None),
+    ("mraw-fps-disagrees", lambda ws: analyse(ws, native(ws, "mraw"), calibration=with_option("--fps", "5kHz")),
+     2, "differs from the recording rate", None),
+    ("exposure-percent", lambda ws: analyse(ws, ws / "rec.avi", calibration=with_option("--exposure", "20%")),
+     2, "exposure time", None),
+    ("exposure-zero", lambda ws: analyse(ws, ws / "rec.avi", calibration=with_option("--exposure", "0us")),
+     2, "positive", None),
+    ("exposure-a-length", lambda ws: analyse(ws, ws / "rec.avi", calibration=with_option("--exposure", "3mm")),
+     2, "exposure time", None),
+    ("exposure-an-hour", lambda ws: analyse(ws, ws / "rec.avi", calibration=with_option("--exposure", "1h")),
+     2, "plausible range", None),
+    ("manifest-fps-override-maybe", lambda ws: manifest(ws, GOOD_ROW.replace("replicate", "replicate,fps_override")
+                                                        .replace(",1\n", ",1,maybe\n"), check=True),
+     2, "", None),
+    ("manifest-cine-fps-disagrees", lambda ws: manifest(
+        ws, f"path,sample,lot,product,replicate,fps\n{native(ws, 'cine')},S1,L1,ink,1,3kHz\n", check=True),
+     2, "", None),
 ]
 
 
