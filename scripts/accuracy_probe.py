@@ -180,7 +180,10 @@ def compare(truth: dict, result) -> dict:
         "truth": lam, "measured": ch.relaxation_time_s,
         "rel_error": _rel(ch.relaxation_time_s, lam), **_interval(ch.relaxation_time_ci95_s, lam),
         "model": {"measured": model_lam, "rel_error": _rel(model_lam, lam),
-                  **_interval(model.relaxation_time_ci95_s if model_lam is not None else None, lam)}}
+                  **_interval(model.relaxation_time_ci95_s if model_lam is not None else None, lam)},
+        "budget": {key: dict(terms) for key, terms in ch.uncertainty_budget.items()
+                   if key in ("relaxation_time_s", "model_fit")},
+        "regime": ch.regime, "finding_codes": result.finding_codes}
     eta = truth["fluid"]["solvent_viscosity"]
     model_eta = model.solvent_viscosity_Pa_s if model is not None and model.model == "newtonian" else None
     out["viscosity"] = None if kind != "viscous" else {
