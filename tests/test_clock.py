@@ -203,3 +203,21 @@ def test_a_batch_of_native_files_reports_clock_and_trigger(native_files, tmp_pat
     text = row_report.read_text(encoding="utf-8")
     assert "the camera file&#39;s header" in text or "the camera file's header" in text
     assert "frame 12 of the record" in text
+
+
+def test_a_colour_camera_file_says_how_it_was_made_grey(rendered, native_files, tmp_path):
+    # interpolated colour with equal channels: its luma is the grey frame itself, so the
+    # analysis matches the grey file's; the record says the frames were read as luma
+    from thinning.frames.writers import write_cine
+
+    frames, _ = rendered
+    colour = tmp_path / "colour.cine"
+    write_cine(colour, [np.repeat(f[:, :, None], 3, axis=2) for f in frames], fps=FPS, bit_depth=12,
+               packing="unpacked", exposure_s=20e-6, trigger_frame=12)
+    run, data = _analyse(colour, tmp_path / "c")
+    assert run.exit_code == 0, run.output
+    (note,) = [f for f in data["findings"] if f["code"] == "colour-as-grey"]
+    assert note["severity"] == "note" and "luma" in note["message"]
+    run, grey = _analyse(native_files.whole, tmp_path / "g")
+    assert "colour-as-grey" not in grey["finding_codes"]
+    assert abs(data["relaxation_time_s"] / grey["relaxation_time_s"] - 1) < 0.005

@@ -31,6 +31,13 @@ log = logging.getLogger(__name__)
 
 #: Modules of the stages after the measurement, imported in the background while it runs.
 LATER_STAGES = ("thinning.characterisation", "thinning.plots", "thinning.report.recording")
+#: How a colour camera's frames were made grey (``FrameSource.colour``), for the record.
+COLOUR_WORDS = {
+    "luma-bt601": "The camera's interpolated colour frames were read as grey by their luma, "
+                  "0.299 R + 0.587 G + 0.114 B (ITU-R BT.601 weights).",
+    "bayer-2x2-mean": "The camera's raw colour-filter mosaic was read as grey by the mean of each "
+                      "pixel's 2 × 2 block, (R + 2 G + B) / 4, which evens out the filter pattern.",
+}
 DIAMETER_COLUMNS = ["frame", "time_s", "diameter_m", "neck_position_m", "strain_rate_1_s",
                     "hencky_strain", "apparent_extensional_viscosity_Pa_s"]
 
@@ -155,6 +162,9 @@ def _analyse(source, options: AnalysisOptions, progress) -> Result:
                 Code.RECORD_BROKEN_OFF, Severity.DOUBTFUL,
                 f"The recording broke off after frame {recording.frames_read - 1} of "
                 f"{recording.n_frames} expected; it was analysed up to its last good frame."))
+        if recording.colour:
+            findings.append(Finding(Code.COLOUR_AS_GREY, Severity.NOTE, COLOUR_WORDS.get(
+                recording.colour, f"The colour frames were read as grey ({recording.colour}).")))
         if recording.left_out:
             names = recording.left_out
             findings.append(Finding(

@@ -115,6 +115,10 @@ class Code(str, enum.Enum):
     FRAMES_DROPPED = (
         "frames-dropped", "no",
         "the file's time stamps show frames the camera did not save; times come from the stamps")
+    COLOUR_AS_GREY = (
+        "colour-as-grey", "no",
+        "a colour camera's frames were read as grey (luma of interpolated colour, or the 2 × 2 "
+        "mean of a raw colour-filter mosaic)")
     MOTION_BLUR = (
         "motion-blur", "no",
         "at the neck's measured speed an edge moves more than 0.3 px during one exposure")

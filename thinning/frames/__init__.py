@@ -165,7 +165,9 @@ class FrameSource:
     ``clock`` (``"file"`` when ``fps`` comes from a native camera header,
     ``"container"`` when from a video container, None without a rate).
     ``left_out``: names of files beside the frames that were not read as
-    frames (an image folder's other files), sorted.
+    frames (an image folder's other files), sorted. ``colour``: how a
+    native file's colour frames were made grey (``"luma-bt601"`` or
+    ``"bayer-2x2-mean"``, :mod:`.cine`), None for grey frames.
     """
 
     path: str
@@ -179,6 +181,7 @@ class FrameSource:
     trigger_frame: int | None = None
     clock: str | None = None
     left_out: tuple[str, ...] = ()
+    colour: str | None = None
     #: Frames in one item of ``_frames()`` (a batch decoded by one task), for the read-ahead depth.
     _frames_per_item = 1
 
