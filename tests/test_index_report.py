@@ -205,6 +205,16 @@ def test_without_batch_folders_the_recordings_are_listed_unlinked(sqlite_filled,
     assert "none was given" in html
 
 
+def test_a_batch_folder_without_its_table_is_exit_2(sqlite_filled, tmp_path):
+    url, _, _ = sqlite_filled
+    (tmp_path / "not-a-batch").mkdir()
+    result = _run("--all", "--db", url, "--out", tmp_path / "out", "--batch", tmp_path / "not-a-batch")
+    assert result.exit_code == 2
+    assert result.output.strip() == (f"thinning: {tmp_path / 'not-a-batch'} has no readable results.csv; give the "
+                                     "folder of a finished batch.")
+    assert not (tmp_path / "out").exists()
+
+
 @pytest.mark.parametrize("args, message", [
     (["L1", "--all"], "thinning: give either a lot id or --all, not both."),
     ([], "thinning: name the lot to report, or give --all for every lot and an index of them."),

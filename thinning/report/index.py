@@ -160,11 +160,11 @@ def write_reports(records, out_dir: str | Path, *, product: str | None = None, b
     how to name the records on the page (a URL without its password), if at all. Each file is
     written atomically; the index last, so it never links a report not yet written.
     """
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    pages = recording_reports(batch_dirs)   # an unusable batch folder is refused before anything is written
     summaries = records.lots(product=product)
     names = lot_report_names(summaries)
-    pages = recording_reports(batch_dirs)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
     stamp = generated_at or utc_text()
     lots, written = [], []
     for summary in summaries:
