@@ -330,19 +330,36 @@ def verify_command(db_url, batch_dir):
 
 
 @click.command("report", cls=FriendlyCommand)
-@click.argument("lot")
+@click.argument("lot", required=False)
 @db_option
 @product_option
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
-              help="Folder for LOT.html (created if needed).")
-def report(lot, db_url, product, out_dir):
-    """Write the self-contained HTML report of one lot: verdict, curves, numbers, control chart.
+              help="Folder for LOT.html, or with --all every lot's report and index.html (created if needed).")
+@click.option("--all", "all_lots", is_flag=True,
+              help="Every lot (of --product, if given): each lot's report and index.html listing and linking "
+                   "them and their recordings' reports.")
+@click.option("--batch", "batch_dirs", multiple=True, type=click.Path(file_okay=False, exists=True),
+              help="With --all: a batch folder whose recording reports the index links (the records do not "
+                   "keep where they are); repeat for several.")
+def report(lot, db_url, product, out_dir, all_lots, batch_dirs):
+    """Write the self-contained HTML report of one lot: verdict, curves, numbers, control chart;
+    or, with --all, every lot's report and an index of them.
 
-    Example:
+    Examples:
 
     \b
       thinning report HC-0107 --product harbour-cyan --out reports
+      thinning report --all --out reports --batch results/2026-10
     """
+    if all_lots and lot is not None:
+        raise FriendlyError("give either a lot id or --all, not both.")
+    if not all_lots and lot is None:
+        raise FriendlyError("name the lot to report, or give --all for every lot and an index of them.")
+    if batch_dirs and not all_lots:
+        raise FriendlyError("--batch tells the index where the recording reports are: give it with --all.")
+    if all_lots:
+        _report_all(db_url, product, out_dir, batch_dirs)
+        return
     from .report.lot import write_lot_report
 
     with _open(db_url) as store:
@@ -351,3 +368,27 @@ def report(lot, db_url, product, out_dir):
         except OSError as exc:
             raise FriendlyError(f"cannot write the report into {out_dir} ({exc.strerror}).") from None
     click.echo(f"wrote {path}")
+
+
+def _report_all(db_url, product, out_dir, batch_dirs):
+    from .records import default_db_url
+    from .report.index import write_reports
+
+    url = _shown_url(db_url or default_db_url())
+    with _open(db_url) as store:
+        if not store.lots(product=product):
+            raise FriendlyError(f"no lots in the records yet (database {url}; pass --db to read another, "
+                                "e.g. the demo's sqlite:///thinning-demo/records.db).")
+        try:
+            written = write_reports(store, out_dir, product=product, batch_dirs=batch_dirs, database=url)
+        except OSError as exc:
+            raise FriendlyError(f"cannot write the reports into {out_dir} ({exc.strerror}).") from None
+    click.echo(f"wrote {len(written.lot_reports)} lot report{'s' if len(written.lot_reports) != 1 else ''} "
+               f"into {out_dir}")
+    if not batch_dirs:
+        click.echo("recordings not linked to their reports: the records do not keep their batch folders; "
+                   "give them with --batch DIR")
+    elif written.recordings_linked < written.recordings:
+        click.echo(f"linked {written.recordings_linked} of {written.recordings} recordings to their reports "
+                   "(the others are not in the batch folders given, or failed)")
+    click.echo(f"wrote {written.index}")

@@ -172,7 +172,7 @@ def demo(out_dir, samples, workers):
     from .batch import run_batch
     from .cli_batch import Progress
     from .records import open_records
-    from .report.lot import write_lot_report
+    from .report.index import write_reports
 
     with open_records(db_url) as records:
         records.load_specs(sample_dir / "specs.toml")
@@ -191,10 +191,10 @@ def demo(out_dir, samples, workers):
             if lot.chart_flags:
                 line += f" [control chart: {'; '.join(lot.chart_flags)}]"
             click.echo(line)
-        for lot in lots:
-            write_lot_report(records, lot.lot, product=lot.product, out_dir=out / "reports")
+        index = write_reports(records, out / "reports", batch_dirs=[out / "batch"], database=db_url).index
     click.echo("")
     click.echo(f"Lot reports: {(out / 'reports').resolve()}/<lot>.html")
+    click.echo(f"Index of the lots: {index.resolve()}")
     click.echo(f"Per-recording results: {(out / 'batch').resolve()}")
     click.echo(f"Records database: {db_url}")
 

@@ -58,6 +58,13 @@ SOURCES = (
     ("95 % interval of a lot mean: mean ± t(0.975, n − 1) · sd/√n", "Student's t distribution"),
 )
 
+#: What each verdict means, in the words under the verdict (the lot report and the index of lots).
+VERDICT_LINES = {
+    "pass": "every replicate valid and every limit met",
+    "fail": "a lot mean is outside its limit",
+    "review": "a person should look at this lot",
+}
+
 #: display scales per SI unit, tried from the largest down
 _SCALES = {
     "s": ((1.0, "s"), (1e-3, "ms"), (1e-6, "µs")),
@@ -216,6 +223,7 @@ def lot_report_html(detail, *, generated_at: str | None = None) -> str:
         "product": summary.product, "lot": summary.lot, "made_on": summary.made_on or MISSING,
         "first_analysed_at": summary.first_analysed_at,
         "verdict": summary.verdict.verdict, "reasons": summary.verdict.reasons,
+        "verdict_line": VERDICT_LINES[summary.verdict.verdict],
         "n_valid": summary.verdict.n_valid, "n_replicates": summary.verdict.n_replicates,
         "required": detail.spec.replicates if detail.spec is not None else None,
         "max_cv": fmt(detail.spec.max_cv, None, 3) if detail.spec is not None else None,
