@@ -25,7 +25,7 @@ import struct
 import numpy as np
 
 from . import FrameSource, UnusableSource
-from ._raw import MappedFile, packed_size, unpack
+from ._raw import FRAMES_PER_BATCH, MappedFile, batch, packed_size, unpack
 
 log = logging.getLogger(__name__)
 
@@ -85,6 +85,7 @@ class CineSource(FrameSource):
     """
 
     clock = "file"
+    _frames_per_item = FRAMES_PER_BATCH
 
     def __init__(self, path):
         super().__init__(path)
@@ -102,8 +103,7 @@ class CineSource(FrameSource):
         raise UnusableSource(f"{self.path}: {what}.")
 
     def _struct(self, offset, layout):
-        raw = self._file.read(offset, layout.size)
-        return None if raw is None else layout.unpack(raw.tobytes())
+        return self._file.unpack_from(layout, offset)
 
     def _read_headers(self):
         size = self._file.size
@@ -243,22 +243,27 @@ class CineSource(FrameSource):
         if self.fps is None:
             self.clock = None
 
-    def _image(self, index):
-        """Frame ``index`` as a 2-D array, or None when it is missing, cut short or inconsistent."""
+    def _pixels_at(self, index):
+        """Position of the pixels of image ``index``, or None when it is missing, cut short or
+        inconsistent."""
         if index >= self._offsets.size:
             return None
         position = int(self._offsets[index])
-        annotation = self._struct(position, DWORD)
+        annotation = self._file.unpack_from(DWORD, position)
         if annotation is None or annotation[0] < 8:
             return None
-        image_size = self._struct(position + annotation[0] - 4, DWORD)
+        image_size = self._file.unpack_from(DWORD, position + annotation[0] - 4)
         if image_size is None or image_size[0] != self._image_bytes:
             return None
-        raw = self._file.read(position + annotation[0], self._image_bytes)
-        if raw is None:
+        start = position + annotation[0]
+        return start if start + self._image_bytes <= self._file.size else None
+
+    def _image(self, index):
+        """Frame ``index`` as a 2-D array, or None when it is missing, cut short or inconsistent."""
+        position = self._pixels_at(index)
+        if position is None:
             return None
-        self._last_read = position + annotation[0] + self._image_bytes
-        return self._decode(raw)
+        return self._decode(self._file.read(position, self._image_bytes))
 
     def _decode(self, raw):
         height, width = self.shape
@@ -280,14 +285,43 @@ class CineSource(FrameSource):
         return np.ascontiguousarray(pixels, dtype=self.dtype)
 
     def _frames(self):
+        """Done futures of lists of up to :data:`FRAMES_PER_BATCH` frames; packed grey images evenly
+        spaced in the file are unpacked together, straight from the mapping."""
         self._file.rewind()
-        for index in range(self.n_frames):
-            frame = self._image(index)
-            if frame is None:
-                log.warning("%s: image %d missing or cut short, stream stops here", self.path, index)
+        for start in range(0, self.n_frames, FRAMES_PER_BATCH):
+            positions = []
+            for index in range(start, min(start + FRAMES_PER_BATCH, self.n_frames)):
+                position = self._pixels_at(index)
+                if position is None:
+                    break
+                positions.append(position)
+            frames = self._decoded(positions) if positions else []
+            if frames:
+                self._file.release_before(positions[len(frames) - 1] + self._image_bytes)
+                yield batch(frames)
+            if start + len(frames) < min(start + FRAMES_PER_BATCH, self.n_frames):
+                log.warning("%s: image %d missing or cut short, stream stops here", self.path,
+                            start + len(frames))
                 return
-            self._file.release_before(self._last_read)
-            yield frame
+
+    def _decoded(self, positions):
+        """The frames whose pixels start at ``positions`` (each known to lie in the file), up to
+        the first that cannot be read (the file closed meanwhile)."""
+        height, width = self.shape
+        count = len(positions)
+        step = positions[1] - positions[0] if count > 1 else 0
+        if (self.colour is None and self._bits in (10, 12)
+                and all(b - a == step for a, b in zip(positions, positions[1:]))):
+            rows = self._file.rows(positions[0], self._image_bytes, count, step)
+            if rows is not None:  # (None: images that overlap in the file)
+                return list(unpack(rows, self._bits).reshape(count, height, width))
+        frames = []
+        for position in positions:
+            raw = self._file.read(position, self._image_bytes)
+            if raw is None:
+                break
+            frames.append(self._decode(raw))
+        return frames
 
     def close(self):
         self._file.close()

@@ -40,7 +40,7 @@ from pathlib import Path
 import numpy as np
 
 from . import FrameSource, UnusableSource
-from ._raw import MappedFile, packed_size, unpack
+from ._raw import FRAMES_PER_BATCH, MappedFile, batch, packed_size, unpack
 
 log = logging.getLogger(__name__)
 
@@ -101,6 +101,8 @@ class MrawSource(FrameSource):
     ``record_rate_hz / save_step``), ``start_frame`` (number of frame 0, the
     trigger being number 0), ``color_bit`` (bits stored per pixel).
     """
+
+    _frames_per_item = FRAMES_PER_BATCH
 
     def __init__(self, path):
         super().__init__(path)
@@ -249,24 +251,30 @@ class MrawSource(FrameSource):
         return seconds if math.isfinite(seconds) and seconds > 0 else None
 
     def _frames(self):
+        """Done futures of lists of up to :data:`FRAMES_PER_BATCH` frames, read (12-bit: unpacked
+        straight from the mapping) together."""
         height, width = self.shape
+        size = self._frame_bytes
+        whole = min(self.n_frames, self._file.size // size)
         self._file.rewind()
-        for index in range(self.n_frames):
-            offset = index * self._frame_bytes
-            raw = self._file.read(offset, self._frame_bytes)
-            if raw is None:
-                log.warning("%s: frame %d cut short, stream stops here", self.path, index)
+        for start in range(0, whole, FRAMES_PER_BATCH):
+            count = min(FRAMES_PER_BATCH, whole - start)
+            raw = (self._file.rows(start * size, size, count, size) if self.color_bit == 12
+                   else self._file.read(start * size, count * size))
+            if raw is None:  # the file closed meanwhile
+                log.warning("%s: frame %d cut short, stream stops here", self.path, start)
                 return
-            if self.color_bit == 8:
-                pixels = raw
-            elif self.color_bit == 16:
-                pixels = raw.view("<u2").astype(np.uint16, copy=False)
-            else:
+            if self.color_bit == 12:
                 pixels = unpack(raw, 12)
+            else:
+                raw = raw.reshape(count, size)
+                pixels = raw if self.color_bit == 8 else raw.view("<u2").astype(np.uint16, copy=False)
             if self._shift:
                 pixels = pixels >> self._shift
-            self._file.release_before(offset + self._frame_bytes)
-            yield pixels.reshape(height, width)
+            self._file.release_before((start + count) * size)
+            yield batch(list(pixels.reshape(count, height, width)))
+        if whole < self.n_frames:
+            log.warning("%s: frame %d cut short, stream stops here", self.path, whole)
 
     def _hashed_files(self):
         return [self.header_path, self.data_path]
