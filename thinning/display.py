@@ -44,11 +44,17 @@ class Unit:
         """``si_value`` in this unit."""
         return si_value / self.scale
 
+    @property
+    def bare(self) -> "Unit":
+        """The same scale without its label: for the cells of a column whose heading names it."""
+        return Unit("", self.scale)
+
 
 S = Unit("s", 1.0)
 MS = Unit("ms", 1e-3)
 US = Unit("µs", 1e-6)
 UM = Unit("µm", 1e-6)
+MM = Unit("mm", 1e-3)
 PA_S = Unit("Pa·s", 1.0)
 MPA_S = Unit("mPa·s", 1e-3)
 PA = Unit("Pa", 1.0)
@@ -293,7 +299,7 @@ def timestamp(moment) -> str:
     return moment.astimezone(timezone.utc).strftime(STAMP_FORMAT)
 
 
-__all__ = ["Unit", "MISSING", "DASH", "S", "MS", "US", "UM", "PA_S", "MPA_S", "PA", "MN_M", "KG_M3",
+__all__ = ["Unit", "MISSING", "DASH", "S", "MS", "US", "UM", "MM", "PA_S", "MPA_S", "PA", "MN_M", "KG_M3",
            "FRAMES_S", "NONE", "time_unit", "viscosity_unit", "view_unit", "fixed", "significant",
            "plain", "uncertainty_decimals", "quantity", "given", "estimate", "span",
            "with_interval", "spread", "percent", "given_percent", "distinct", "frame_rate", "limits",

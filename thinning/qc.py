@@ -303,12 +303,11 @@ class _ShownWords(_StoredWords):
         return display.estimate(st.mean, st.ci95, self.units[key])
 
     def cv(self, x, limit) -> str:
-        shown = display.percent(x)
-        figures = 2
-        while shown == display.given_percent(limit) and figures < display.MAX_FIGURES:
+        figures = 2  # more where two would print the limit itself ("10 % exceeds 10 %")
+        while figures < display.MAX_FIGURES and \
+                float(display.significant(100 * x, figures)) == float(display.plain(100 * limit)):
             figures += 1
-            shown = display.percent(x, figures=figures)
-        return shown
+        return display.percent(x, figures=figures)
 
     def max_cv(self, x) -> str:
         return display.given_percent(x)
