@@ -197,8 +197,8 @@ def test_a_batch_of_native_files_reports_clock_and_trigger(native_files, tmp_pat
     run = CliRunner().invoke(cli, ["report", "CT-1", "--db", db, "--out", str(tmp_path / "reports")])
     assert run.exit_code == 0, run.output
     html = (tmp_path / "reports" / "CT-1.html").read_text(encoding="utf-8")
-    assert "header 4000/s · trigger at frame 12 · exposure 20 µs" in html
-    assert "header 4000/s · trigger at frame 30 · exposure 50 µs" in html
+    assert "header 4000 frames/s · trigger at frame 12 · exposure 20 µs" in html
+    assert "header 4000 frames/s · trigger at frame 30 · exposure 50 µs" in html
     row_report = tmp_path / "out" / "1-S1" / "report.html"
     text = row_report.read_text(encoding="utf-8")
     assert "the camera file&#39;s header" in text or "the camera file's header" in text

@@ -74,9 +74,10 @@ def test_the_report_states_the_verdict_first_and_escapes_user_text(store, tmp_pa
     verdict_at = html.index('id="verdict"')
     assert verdict_at < html.index("<h2>")
     assert 'class="verdict verdict-fail"' in html
-    # guard-band rule (the default): 0.0129 ± 0.0005 s (t-interval, 2 dof) lies wholly above 0.012 s
-    assert ("lot mean relaxation time 0.0129 s (95 % interval 0.0124–0.0134 s) is wholly above the "
-            "maximum 0.012 s") in html[verdict_at:html.index("<h2>")]
+    # guard-band rule (the default): 12.9 ± 0.497 ms (t-interval, 2 dof) lies wholly above 12 ms;
+    # shown in the house style: ms, to two figures of the half-width (0.50 ms)
+    assert ("lot mean relaxation time 12.90 ms (95 % interval 12.40–13.40 ms) is wholly above the "
+            "maximum 12 ms") in html[verdict_at:html.index("<h2>")]
     assert HOSTILE_SAMPLE not in html and "<img src=x" not in html
     assert "&lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt;" in html
     assert "&lt;img src=x onerror=&#34;alert(1)&#34;&gt; &amp; more" in html

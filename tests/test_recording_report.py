@@ -10,7 +10,7 @@ import pytest
 
 from thinning.report import recording
 from thinning.result import Result
-from thinning.report.recording import format_interval, format_quantity, write_recording_report
+from thinning.report.recording import write_recording_report
 
 EVIL = "<script>alert('x')</script>"
 
@@ -67,8 +67,10 @@ def test_report_is_written_with_the_numbers(tmp_path, figures):
     path = write_recording_report(tmp_path / "out", _result(), figures, name=EVIL)
     assert path == tmp_path / "out" / "report.html"
     html = _visible(path.read_text(encoding="utf-8"))
-    for text in ("5.2 ms", "5 – 5.4 ms", "12.5 Pa", "84.2 Pa·s", "83.1 ms", "82.1 ms", "450 µm",
-                 "4 – 28 ms (241 frames)", "35 mN/m", "4.2 µm", "10 kHz", "0.1.0",
+    # the house style (thinning.display): λ to its interval's precision (half-width 0.20 ms), the
+    # other values to three figures, every time in ms, a window's ends at one decimal place
+    for text in ("5.20 ms", "5.00–5.40 ms", "12.5 Pa", "84.2 Pa·s", "83.1 ms", "82.1 ms", "450 µm",
+                 "4.0–28.0 ms (241 frames)", "35 mN/m", "4.2 µm", "10000 frames/s", "0.1.0",
                  "0123456789abcdef" * 4, "elasto-capillary", "Beads form on the thread after 25 ms."):
         assert text in html, text
     for caution in ("reference fluid", "hazardous liquids", "quality decisions"):
@@ -140,30 +142,15 @@ def test_name_falls_back_to_the_source_file_name():
     assert recording.recording_name(_result(source={"path": "", "sha256": ""})) == "recording"
 
 
-@pytest.mark.parametrize(("value", "unit", "text"), [
-    # hand-checked conversions (common practice for SI prefixes)
-    (0.0052, "s", "5.2 ms"),
-    (2.5e-5, "s", "25 µs"),
-    (1.5, "s", "1.5 s"),
-    (4.5e-4, "m", "450 µm"),
-    (0.0012, "m", "1.2 mm"),
-    (0.0012, "Pa·s", "1.2 mPa·s"),
-    (1234.5, "Pa·s", "1.234 kPa·s"),
-    (0.035, "N/m", "35 mN/m"),
-    (0.0, "s", "0 s"),
-    (None, "s", "—"),
-    (float("nan"), "Pa", "—"),
-    (float("inf"), "Pa", "—"),
-])
-def test_format_quantity(value, unit, text):
-    assert format_quantity(value, unit) == text
-
-
-def test_format_quantity_reason_and_interval():
-    assert format_quantity(None, "s", missing="not given") == "— (not given)"
-    assert format_interval([0.005, 0.0054], "s", like=0.0052) == "5 – 5.4 ms"
-    assert format_interval([0.005, None], "s") is None
-    assert format_interval(None, "s") is None
+def test_one_time_unit_on_a_page_of_slow_liquid(tmp_path, figures):
+    # a Boger-like record: the breakup comes after 12 s, so every time on the page is in s,
+    # λ of 0.4 s included (thinning.display.time_unit)
+    result = _result(relaxation_time_s=0.4, relaxation_time_ci95_s=[0.38, 0.42], breakup_time_s=12.3,
+                     filament_lifetime_s=12.2, fit_window_s=[0.5, 4.0])
+    html = _visible(write_recording_report(tmp_path, result, figures).read_text("utf-8"))
+    for text in ("0.400 s", "0.380–0.420 s", "12.3 s", "12.2 s", "0.50–4.00 s (241 frames)"):
+        assert text in html, text
+    assert " ms<" not in html and "400 ms" not in html
 
 
 def test_intervals_come_from_the_headline_fits(tmp_path, figures):
@@ -180,6 +167,6 @@ def test_intervals_come_from_the_headline_fits(tmp_path, figures):
     result = _result(fits={"visco-capillary": other, "elasto-capillary": ec, "finite-extensibility": fe},
                      extensional_viscosity_terminal_Pa_s=99.0)
     html = write_recording_report(tmp_path, result, figures).read_text("utf-8")
-    assert "11 – 14 Pa" in html
-    assert "90 – 110 Pa·s" in html
-    assert "1 – 2 Pa" not in html  # an interval of another value is never borrowed
+    assert "11.0–14.0 Pa" in html  # the half-width 1.5 Pa: two figures, one decimal place
+    assert "90–110 Pa·s" in html and "99 Pa·s" in html  # half-width 10 Pa·s: no decimal place
+    assert "1.0–2.0 Pa" not in html and "1–2 Pa" not in html  # another value's interval is never borrowed

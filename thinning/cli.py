@@ -183,34 +183,33 @@ def analyse(source, out_dir, **values):
     click.echo(summary_text(result, out_dir))
 
 
-def _fmt(value, unit, scale=1.0, digits=3):
-    if value is None:
-        return "—"
-    return f"{value * scale:.{digits}g} {unit}"
-
-
 def summary_text(result, out_dir) -> str:
-    """A few human lines of a :class:`~thinning.result.Result`: λ with its interval, regime,
-    quality, warnings."""
+    """A few human lines of a :class:`~thinning.result.Result` in the house style
+    (:mod:`thinning.display`): λ with its interval, regime, quality, warnings."""
+    from . import display
+
     c = result.characterisation
-    lam = c.relaxation_time_s
-    ci = c.relaxation_time_ci95_s
+    time = display.time_unit(c.relaxation_time_s, c.breakup_time_s)
     clock = " (the file's clock)" if result.clock is not None and result.clock.source == "file" else ""
     lines = [f"{result.source.path}: {result.source.n_frames} frames at "
-             f"{result.calibration.fps_hz:g}/s{clock}, {result.calibration.pixel_size_m * 1e6:.4g} µm per pixel"]
-    if lam is not None:
-        scale, unit = (1e3, "ms") if lam < 1 else (1.0, "s")
-        interval = f" (95 % interval {ci[0] * scale:.3g}–{ci[1] * scale:.3g} {unit})" if ci else ""
-        lines.append(f"  relaxation time      {lam * scale:.4g} {unit}{interval}")
+             f"{display.frame_rate(result.calibration.fps_hz)}{clock}, "
+             f"{display.given(result.calibration.pixel_size_m, display.UM)} per pixel"]
+    if c.relaxation_time_s is not None:
+        lines.append("  relaxation time      "
+                     + display.with_interval(c.relaxation_time_s, c.relaxation_time_ci95_s, time))
     else:
         lines.append("  relaxation time      — (no elasto-capillary stretch located)")
     lines.append(f"  regime               {c.regime}")
     if c.shear_viscosity_Pa_s is not None:
-        lines.append(f"  shear viscosity      {_fmt(c.shear_viscosity_Pa_s, 'mPa·s', 1e3, 4)}")
+        lines.append("  shear viscosity      " + display.with_interval(
+            c.shear_viscosity_Pa_s, c.interval("shear_viscosity_Pa_s"),
+            display.viscosity_unit(c.shear_viscosity_Pa_s)))
     if c.extensional_viscosity_max_Pa_s is not None:
-        lines.append(f"  ext. viscosity max   {_fmt(c.extensional_viscosity_max_Pa_s, 'Pa·s')}")
+        lines.append("  ext. viscosity max   " + display.with_interval(
+            c.extensional_viscosity_max_Pa_s, c.interval("extensional_viscosity_max_Pa_s"),
+            display.viscosity_unit(c.extensional_viscosity_max_Pa_s)))
     faded = " (lower bound: the thread faded first)" if c.breakup_seen == "faded" else ""
-    lines.append(f"  breakup time         {_fmt(c.breakup_time_s, 'ms', 1e3, 4)}{faded}")
+    lines.append(f"  breakup time         {display.quantity(c.breakup_time_s, time)}{faded}")
     lines.append(f"  quality              {result.quality}")
     for code, warning in zip(result.warning_codes, result.warnings):
         lines.append(f"  warning [{code}]: {warning}")

@@ -16,7 +16,7 @@ import sys
 import click
 from platformdirs import user_data_dir
 
-from . import atomic
+from . import atomic, display
 from .cli import FriendlyCommand, FriendlyError, FriendlyGroup
 from .values import spreadsheet_safe
 
@@ -91,15 +91,6 @@ def _write_csv(handle, columns, rows) -> None:
         writer.writerow([csv_cell(row[col]) for col in columns])
 
 
-def _ms(value, digits=4) -> str:
-    return "—" if value is None else f"{value * 1e3:.{digits}g}"
-
-
-def _when(stamp: str) -> str:
-    """A stored UTC ISO time, shortened for tables: 2026-02-01 10:00."""
-    return stamp[:16].replace("T", " ")
-
-
 def _console():
     from rich.console import Console
 
@@ -155,16 +146,18 @@ def lots_command(db_url, product, as_csv):
         return
     from rich.table import Table
 
+    time = display.time_unit(*(s.relaxation_time.mean for s in summaries))
     table = Table(show_lines=False)
-    for header in ("product", "lot", "made on", "valid", "λ mean (ms)", "λ sd (ms)", "CV", "verdict",
-                   "rule", "reasons", "chart flags"):
+    for header in ("product", "lot", "made on", "valid", f"λ mean ({time.label})", f"λ sd ({time.label})",
+                   "CV", "verdict", "rule", "reasons", "chart flags"):
         table.add_column(header, overflow="fold")
-    for row in rows:
-        cv = "—" if row["relaxation_time_cv"] is None else f"{row['relaxation_time_cv']:.3f}"
+    for summary, row in zip(summaries, rows):
+        lam = summary.relaxation_time
         table.add_row(row["product"], row["lot"], row["made_on"] or "—", str(row["n_valid"]),
-                      _ms(row["relaxation_time_mean_s"]), _ms(row["relaxation_time_sd_s"], 3), cv,
+                      display.estimate(lam.mean, lam.ci95, time.bare)[0], display.spread(lam.sd, time.bare),
+                      display.percent(lam.cv),
                       f"[{_VERDICT_STYLE[row['verdict']]}]{row['verdict']}[/]",
-                      row["decision_rule"] or "—", row["reasons"].replace("; ", "\n") or "—",
+                      row["decision_rule"] or "—", "\n".join(summary.verdict.shown_reasons) or "—",
                       row["chart_flags"].replace("; ", "\n") or "—")
     _console().print(table)
 
@@ -198,39 +191,44 @@ def show_command(lot, db_url, product, as_csv, history):
     lam = summary.relaxation_time
     console = _console()
     console.print(f"[bold]{escape(summary.product)}[/] lot [bold]{escape(summary.lot)}[/]  made on "
-                  f"{summary.made_on or '—'}  first analysed {summary.first_analysed_at}")
+                  f"{summary.made_on or '—'}  first analysed {display.timestamp(summary.first_analysed_at)}")
     rule = f", decision rule {verdict.decision_rule}" if verdict.decision_rule else ""
     console.print(f"verdict: [{_VERDICT_STYLE[verdict.verdict]}]{verdict.verdict}[/]  "
                   f"({verdict.n_valid} valid of {verdict.n_replicates} replicates{rule})")
-    for reason in verdict.reasons:
+    for reason in verdict.shown_reasons:
         console.print(f"  - {escape(reason)}")
     for c in detail.verdict_changes:
-        console.print(f"  re-evaluated {c['changed_at']} ({escape(c['cause'])}): {c['old_verdict']} → "
+        console.print(f"  re-evaluated {display.timestamp(c['changed_at'])} ({escape(c['cause'])}): "
+                      f"{c['old_verdict']} → "
                       f"{c['new_verdict']}, decision rule {c['old_decision_rule'] or 'simple'} → "
                       f"{c['new_decision_rule'] or 'simple'}")
     if summary.chart_flags:
         console.print("chart flags: " + ", ".join(summary.chart_flags))
+    time = dict(verdict.units).get("relaxation_time_s") or display.time_unit(
+        lam.mean, *(m["relaxation_time_s"] for m in detail.measurements))
     if lam.mean is not None:
-        extra = f", sd {_ms(lam.sd, 3)} ms, CV {lam.cv:.3f}" if lam.sd is not None and lam.cv is not None else ""
-        interval = f", 95 % interval {_ms(lam.ci95[0])}–{_ms(lam.ci95[1])} ms" if lam.ci95 else ""
-        console.print(f"relaxation time: mean {_ms(lam.mean)} ms{extra}{interval}")
+        extra = (f", sd {display.spread(lam.sd, time)}, CV {display.percent(lam.cv)}"
+                 if lam.sd is not None and lam.cv is not None else "")
+        console.print(f"relaxation time: mean {display.with_interval(lam.mean, lam.ci95, time)}{extra}")
     table = Table(title="measurements")
-    for header in ("sample", "rep.", "λ (ms)", "95 % CI (ms)", "quality", "regime", "valid",
-                   "warnings", "analysed at (UTC)", "tool", "sha256"):
-        table.add_column(header, overflow="fold", no_wrap=header in ("regime", "analysed at (UTC)", "sha256"))
+    for header in ("sample", "rep.", f"λ ({time.label})", f"95 % CI ({time.label})", "quality", "regime",
+                   "valid", "warnings", "analysed at", "tool", "sha256"):
+        table.add_column(header, overflow="fold", no_wrap=header in ("regime", "analysed at", "sha256"))
     valid = dict(zip((m["id"] for m in detail.measurements), verdict.valid))
     why = dict(zip((m["id"] for m in detail.measurements), verdict.invalid_reasons))
     for m in detail.measurements:
-        interval = ("—" if m["relaxation_time_ci95_low_s"] is None else
-                    f"{_ms(m['relaxation_time_ci95_low_s'])}–{_ms(m['relaxation_time_ci95_high_s'])}")
-        table.add_row(escape(m["sample"]), escape(m["replicate"]), _ms(m["relaxation_time_s"]), interval,
+        shown, interval = display.estimate(
+            m["relaxation_time_s"], (m["relaxation_time_ci95_low_s"], m["relaxation_time_ci95_high_s"]),
+            time.bare)
+        table.add_row(escape(m["sample"]), escape(m["replicate"]), shown, interval or "—",
                       m["quality"] or "—", m["regime"] or "—",
                       "yes" if valid[m["id"]] else f"no: {escape(why[m['id']] or '')}",
-                      escape(m["warning_codes"]) or "—", _when(m["analysed_at"]), m["tool_version"] or "—",
-                      m["sha256"][:12])
+                      escape(m["warning_codes"]) or "—", display.timestamp(m["analysed_at"]),
+                      m["tool_version"] or "—", m["sha256"][:12])
     for f in detail.failures:
         table.add_row(escape(f["sample"]), escape(f["replicate"]), "—", "—", "failed", "—", "no", "—",
-                      _when(f["analysed_at"]), f["tool_version"] or "—", (f["sha256"] or "—")[:12])
+                      display.timestamp(f["analysed_at"]), f["tool_version"] or "—",
+                      (f["sha256"] or "—")[:12])
     console.print(table)
     for f in detail.failures:
         console.print(f"failed: {escape(replicate_label(f))}: {escape(f['reason'])}")
@@ -238,9 +236,9 @@ def show_command(lot, db_url, product, as_csv, history):
         if not detail.history:
             console.print("no superseded measurements.")
         for h in detail.history:
-            console.print(f"superseded {h['superseded_at']}: {escape(replicate_label(h))} λ "
-                          f"{_ms(h['relaxation_time_s'])} ms, tool {h['tool_version'] or '—'}, "
-                          f"analysed {h['analysed_at']}, options {escape(h['options'])}")
+            console.print(f"superseded {display.timestamp(h['superseded_at'])}: {escape(replicate_label(h))} "
+                          f"λ {display.quantity(h['relaxation_time_s'], time)}, tool {h['tool_version'] or '—'}, "
+                          f"analysed {display.timestamp(h['analysed_at'])}, options {escape(h['options'])}")
 
 
 @records.command("export")

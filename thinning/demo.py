@@ -181,15 +181,10 @@ def demo(out_dir, samples, workers):
             report = run_batch(manifest, out / "batch", workers=workers, records=records,
                                on_row=lambda row, outcome, folder: progress.advance(row, outcome))
         click.echo(f"{report.n_rows} rows: {report.n_ok} ok, {report.n_failed} failed; "
-                   f"table in {report.results_csv}")
+                   f"table in {Path(report.results_csv).resolve()}")
         lots = records.lots()
         click.echo("\nLot verdicts:")
-        for lot in lots:
-            line = f"  {lot.lot:<10} {lot.verdict.verdict:<7}"
-            if lot.verdict.reasons:
-                line += f" {lot.verdict.reasons[0]}"
-            if lot.chart_flags:
-                line += f" [control chart: {'; '.join(lot.chart_flags)}]"
+        for line in verdict_lines(lots):
             click.echo(line)
         index = write_reports(records, out / "reports", batch_dirs=[out / "batch"], database=db_url).index
     click.echo("")
@@ -197,6 +192,20 @@ def demo(out_dir, samples, workers):
     click.echo(f"Index of the lots: {index.resolve()}")
     click.echo(f"Per-recording results: {(out / 'batch').resolve()}")
     click.echo(f"Records database: {db_url}")
+
+
+def verdict_lines(lots) -> list[str]:
+    """The demo's lines for lot verdicts: ``HC-0101  pass``, and under a ``review`` or ``fail``
+    each reason as shown to people (naming the replicate where one is the cause) and the
+    control-chart flags."""
+    width = max((len(lot.lot) for lot in lots), default=0)
+    lines = []
+    for lot in lots:
+        lines.append(f"  {lot.lot:<{width}}  {lot.verdict.verdict}")
+        lines += [f"      - {reason}" for reason in lot.verdict.shown_reasons]
+        if lot.chart_flags:
+            lines.append(f"      - control chart: {', '.join(lot.chart_flags)}")
+    return lines
 
 
 def _row_count(manifest) -> int:

@@ -43,6 +43,7 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 from scipy import stats
 
+from . import display
 from .errors import ThinningError
 
 #: quantities a specification may limit: key → (plain name for sentences, SI unit)
@@ -221,6 +222,10 @@ class LotVerdict:
     invalid_reasons: tuple[str | None, ...] = ()
     #: the specification's decision rule (None without a specification)
     decision_rule: str | None = None
+    #: ``reasons`` with their numbers in the house style (:mod:`thinning.display`), for people
+    shown_reasons: tuple[str, ...] = ()
+    #: the display unit of each limited quantity in this lot's views
+    units: Mapping[str, "display.Unit"] = field(default_factory=dict)
 
 
 def quantity_stats(values: Sequence[float]) -> QuantityStats:
@@ -238,14 +243,85 @@ def quantity_stats(values: Sequence[float]) -> QuantityStats:
     return QuantityStats(n, mean, sd, cv, (mean - half, mean + half))
 
 
-def _outside(value: float, limits: tuple[float, float]) -> str | None:
-    """'below the minimum …' / 'above the maximum …' or None when inside (inclusive)."""
+def _outside(value: float, limits: tuple[float, float]) -> tuple[str, float] | None:
+    """('below the minimum', min) / ('above the maximum', max), or None inside (inclusive)."""
     low, high = limits
     if not math.isnan(low) and value < low:
-        return f"below the minimum {low:.4g}"
+        return "below the minimum", low
     if not math.isnan(high) and value > high:
-        return f"above the maximum {high:.4g}"
+        return "above the maximum", high
     return None
+
+
+class _StoredWords:
+    """How the ``reasons`` of a verdict write numbers: SI, four significant figures (the text of
+    ``records lots`` and its CSV, which the contract keeps)."""
+
+    def unit(self, key) -> str:
+        return LIMITED_QUANTITIES[key][1]
+
+    def bare(self, key, x) -> str:
+        return f"{x:.4g}"
+
+    def value(self, key, x, limit=None) -> str:
+        return f"{x:.4g} {self.unit(key)}"
+
+    def limit(self, key, x) -> str:
+        return f"{x:.4g} {self.unit(key)}"
+
+    def mean_interval(self, key, st) -> tuple[str, str]:
+        low, high = st.ci95
+        return f"{st.mean:.4g} {self.unit(key)}", f"{low:.4g}–{high:.4g} {self.unit(key)}"
+
+    def cv(self, x, limit) -> str:
+        return f"{x:.3g}"
+
+    def max_cv(self, x) -> str:
+        return f"{x:.3g}"
+
+
+class _ShownWords(_StoredWords):
+    """How the ``shown_reasons`` write numbers: the house style (:mod:`thinning.display`) in the
+    lot's view units."""
+
+    def __init__(self, units):
+        self.units = units
+
+    def unit(self, key) -> str:
+        return self.units[key].label
+
+    def bare(self, key, x) -> str:
+        return display.plain(self.units[key].of(x))
+
+    def value(self, key, x, limit=None) -> str:
+        return display.distinct(x, limit, self.units[key])
+
+    def limit(self, key, x) -> str:
+        return display.given(x, self.units[key])
+
+    def mean_interval(self, key, st) -> tuple[str, str]:
+        return display.estimate(st.mean, st.ci95, self.units[key])
+
+    def cv(self, x, limit) -> str:
+        figures = 2  # more where two would print the limit itself ("10 % exceeds 10 %")
+        while figures < display.MAX_FIGURES and \
+                float(display.significant(100 * x, figures)) == float(display.plain(100 * limit)):
+            figures += 1
+        return display.percent(x, figures=figures)
+
+    def max_cv(self, x) -> str:
+        return display.given_percent(x)
+
+
+def view_units(spec: "Spec | None", replicates: Sequence["Replicate"]) -> dict[str, display.Unit]:
+    """The display unit of each limited quantity for one lot's view (its replicates' values and
+    its limits), by the rules of :func:`thinning.display.view_unit`."""
+    units = {}
+    for key, (_, si_unit) in LIMITED_QUANTITIES.items():
+        values = [rep.values.get(key) for rep in replicates]
+        limits = spec.limits.get(key) if spec is not None else None
+        units[key] = display.view_unit(si_unit, *values, *(limits or ()))
+    return units
 
 
 def _invalid_because(rep: Replicate, limited: Iterable[str]) -> str | None:
@@ -265,42 +341,84 @@ def _clean(text: str) -> str:
     return " ".join(str(text).replace(";", ",").split())
 
 
-def _simple_judgement(key, st: QuantityStats, limits) -> list[str]:
+def _simple_judgement(key, st: QuantityStats, limits, words) -> list[str]:
     """The simple rule: the lot mean itself against the limits (fail reasons)."""
-    name, unit = LIMITED_QUANTITIES[key]
+    name = LIMITED_QUANTITIES[key][0]
     where = _outside(st.mean, limits) if st.mean is not None else None
-    return [f"lot mean {name} {st.mean:.4g} {unit} is {where} {unit}"] if where else []
+    if not where:
+        return []
+    side, limit = where
+    return [f"lot mean {name} {words.value(key, st.mean, limit)} is {side} {words.limit(key, limit)}"]
 
 
-def _guard_band_judgement(key, st: QuantityStats, limits) -> tuple[list[str], list[str]]:
+def _guard_band_judgement(key, st: QuantityStats, limits, words) -> tuple[list[str], list[str]]:
     """The guard-band rule: the lot mean's 95 % interval against the limits (fail and review
     reasons). A limit inside the interval is straddled: the lot may lie on either side."""
-    name, unit = LIMITED_QUANTITIES[key]
+    name = LIMITED_QUANTITIES[key][0]
     if st.mean is None:
         return [], []
     if st.ci95 is None:  # a single valid replicate
         where = _outside(st.mean, limits)
-        state = f"is {where} {unit}" if where else "lies inside the limits"
-        return [], [f"lot mean {name} {st.mean:.4g} {unit} {state}, but a single valid replicate "
+        if where:
+            side, limit = where
+            mean, state = words.value(key, st.mean, limit), f"is {side} {words.limit(key, limit)}"
+        else:
+            mean, state = words.value(key, st.mean), "lies inside the limits"
+        return [], [f"lot mean {name} {mean} {state}, but a single valid replicate "
                     "gives no 95 % interval to judge it by"]
     low, high = st.ci95
     lo_limit, hi_limit = limits
-    interval = f"{low:.4g}–{high:.4g} {unit}"
+    mean, interval = words.mean_interval(key, st)
     if not math.isnan(lo_limit) and high < lo_limit:
-        return [f"lot mean {name} {st.mean:.4g} {unit} (95 % interval {interval}) is wholly below the "
-                f"minimum {lo_limit:.4g} {unit}"], []
+        return [f"lot mean {name} {mean} (95 % interval {interval}) is wholly below the "
+                f"minimum {words.limit(key, lo_limit)}"], []
     if not math.isnan(hi_limit) and low > hi_limit:
-        return [f"lot mean {name} {st.mean:.4g} {unit} (95 % interval {interval}) is wholly above the "
-                f"maximum {hi_limit:.4g} {unit}"], []
+        return [f"lot mean {name} {mean} (95 % interval {interval}) is wholly above the "
+                f"maximum {words.limit(key, hi_limit)}"], []
     straddled = []
     if not math.isnan(lo_limit) and low < lo_limit:
-        straddled.append(f"the minimum {lo_limit:.4g}")
+        straddled.append(f"the minimum {words.bare(key, lo_limit)}")
     if not math.isnan(hi_limit) and high > hi_limit:
-        straddled.append(f"the maximum {hi_limit:.4g}")
+        straddled.append(f"the maximum {words.bare(key, hi_limit)}")
     if straddled:
         return [], [f"the 95 % interval of the lot mean {name} ({interval}) straddles "
-                    f"{' and '.join(straddled)} {unit}"]
+                    f"{' and '.join(straddled)} {words.unit(key)}"]
     return [], []
+
+
+def _reasons(spec, replicates, invalid, good, lot_stats, product, words) -> tuple[list[str], list[str]]:
+    """The fail and review reasons of one lot, their numbers written by ``words``."""
+    fails: list[str] = []
+    reviews: list[str] = []
+    if spec is None:
+        reviews.append(f"no specification loaded for product {product!r}")
+    else:
+        for key, limits in spec.limits.items():
+            if spec.decision_rule == "simple":
+                fails += _simple_judgement(key, lot_stats[key], limits, words)
+            else:
+                failed, reviewed = _guard_band_judgement(key, lot_stats[key], limits, words)
+                fails += failed
+                reviews += reviewed
+        if len(good) < spec.replicates:
+            reviews.append(f"{len(good)} valid replicate{'s' if len(good) != 1 else ''} "
+                           f"of {spec.replicates} required")
+        cv = lot_stats["relaxation_time_s"].cv
+        if cv is not None and cv > spec.max_cv:
+            reviews.append(f"coefficient of variation of the relaxation time {words.cv(cv, spec.max_cv)} "
+                           f"exceeds {words.max_cv(spec.max_cv)}")
+        for rep in good:
+            for key, limits in spec.limits.items():
+                where = _outside(rep.values[key], limits)
+                if where:
+                    side, limit = where
+                    name = LIMITED_QUANTITIES[key][0]
+                    reviews.append(f"replicate {rep.label}: {name} {words.value(key, rep.values[key], limit)} "
+                                   f"is {side} {words.limit(key, limit)}")
+    for rep, why in zip(replicates, invalid):
+        if why is not None:
+            reviews.append(f"replicate {rep.label} is not valid: {why}")
+    return fails, reviews
 
 
 def lot_verdict(spec: Spec | None, replicates: Sequence[Replicate], *, product: str = "") -> LotVerdict:
@@ -316,37 +434,12 @@ def lot_verdict(spec: Spec | None, replicates: Sequence[Replicate], *, product: 
     quantities = tuple(dict.fromkeys(("relaxation_time_s", *limited)))
     lot_stats = {key: quantity_stats([rep.values[key] for rep in good if rep.values.get(key) is not None])
                  for key in quantities}
-    fails: list[str] = []
-    reviews: list[str] = []
-    if spec is None:
-        reviews.append(f"no specification loaded for product {product!r}")
-    else:
-        for key, limits in spec.limits.items():
-            if spec.decision_rule == "simple":
-                fails += _simple_judgement(key, lot_stats[key], limits)
-            else:
-                failed, reviewed = _guard_band_judgement(key, lot_stats[key], limits)
-                fails += failed
-                reviews += reviewed
-        if len(good) < spec.replicates:
-            reviews.append(f"{len(good)} valid replicate{'s' if len(good) != 1 else ''} "
-                           f"of {spec.replicates} required")
-        cv = lot_stats["relaxation_time_s"].cv
-        if cv is not None and cv > spec.max_cv:
-            reviews.append(f"coefficient of variation of the relaxation time {cv:.3g} "
-                           f"exceeds {spec.max_cv:.3g}")
-        for rep in good:
-            for key, limits in spec.limits.items():
-                where = _outside(rep.values[key], limits)
-                if where:
-                    name, unit = LIMITED_QUANTITIES[key]
-                    reviews.append(f"replicate {rep.label}: {name} {rep.values[key]:.4g} {unit} "
-                                   f"is {where} {unit}")
-    for rep, why in zip(replicates, invalid):
-        if why is not None:
-            reviews.append(f"replicate {rep.label} is not valid: {why}")
+    fails, reviews = _reasons(spec, replicates, invalid, good, lot_stats, product, _StoredWords())
+    units = view_units(spec, replicates)
+    shown = _reasons(spec, replicates, invalid, good, lot_stats, product, _ShownWords(units))
     verdict = "fail" if fails else ("review" if reviews else "pass")
     return LotVerdict(verdict=verdict, reasons=tuple(_clean(r) for r in fails + reviews),
+                      shown_reasons=tuple(_clean(r) for r in shown[0] + shown[1]), units=units,
                       n_replicates=len(replicates), n_valid=len(good), valid=valid, stats=lot_stats,
                       invalid_reasons=tuple(invalid),
                       decision_rule=None if spec is None else spec.decision_rule)

@@ -29,9 +29,9 @@ from urllib.parse import quote
 
 import jinja2
 
-from .. import __version__, atomic
+from .. import __version__, atomic, display
 from ..values import from_spreadsheet_safe, safe_name, utc_text
-from .lot import MISSING, TEMPLATE_DIR, VERDICT_LINES, fmt, lot_report_html, report_filename
+from .lot import MISSING, TEMPLATE_DIR, VERDICT_LINES, display_units, lot_report_html, report_filename
 
 INDEX_FILENAME = "index.html"
 
@@ -124,10 +124,13 @@ def _recordings(detail, pages: dict[tuple, Path], out_dir: Path) -> list[dict]:
     from ..records import replicate_label
 
     summary, verdict = detail.summary, detail.summary.verdict
+    unit = display_units(detail)["relaxation_time_s"]   # as the lot's own report shows λ
     rows = []
     for m, is_valid, why in zip(detail.measurements, verdict.valid, verdict.invalid_reasons):
         page = pages.get((summary.product, summary.lot, m["sample"], m["replicate"], m["sha256"]))
-        rows.append({"label": replicate_label(m), "lam": fmt(m["relaxation_time_s"], "s"),
+        lam, _ = display.estimate(m["relaxation_time_s"],
+                                  (m["relaxation_time_ci95_low_s"], m["relaxation_time_ci95_high_s"]), unit)
+        rows.append({"label": replicate_label(m), "lam": lam,
                      "quality": m["quality"] or MISSING, "is_valid": is_valid,
                      "valid": "yes" if is_valid else f"no: {why}",
                      "source_path": m["source_path"] or MISSING,
@@ -149,7 +152,7 @@ def index_html(lots: list[dict], *, database: str | None = None, batch_dirs=(),
         lots=lots, counts=counts, n_recordings=len(recordings),
         n_linked=sum(r["href"] is not None for r in recordings),
         batch_dirs=[str(b) for b in batch_dirs], database=database, verdict_lines=VERDICT_LINES,
-        version=__version__, generated_at=generated_at or utc_text())
+        version=__version__, generated_at=display.timestamp(generated_at or utc_text()))
 
 
 def write_reports(records, out_dir: str | Path, *, product: str | None = None, batch_dirs=(),
@@ -176,10 +179,11 @@ def write_reports(records, out_dir: str | Path, *, product: str | None = None, b
         verdict = detail.summary.verdict
         lots.append({
             "product": summary.product, "lot": summary.lot, "made_on": summary.made_on or MISSING,
-            "verdict": verdict.verdict, "reasons": verdict.reasons, "n_valid": verdict.n_valid,
+            "verdict": verdict.verdict, "reasons": verdict.shown_reasons, "n_valid": verdict.n_valid,
             "n_replicates": verdict.n_replicates,
             "required": detail.spec.replicates if detail.spec is not None else None,
-            "lam_mean": fmt(summary.relaxation_time.mean, "s"), "chart_flags": summary.chart_flags,
+            "lam_mean": display.quantity(summary.relaxation_time.mean, display_units(detail)["relaxation_time_s"]),
+            "chart_flags": summary.chart_flags,
             "href": quote(name), "file": name, "recordings": _recordings(detail, pages, out)})
     index = out / INDEX_FILENAME
     atomic.write_text(index, index_html(lots, database=database, batch_dirs=batch_dirs, generated_at=stamp))

@@ -14,18 +14,16 @@ from __future__ import annotations
 import base64
 import io
 import json
-import math
 from pathlib import Path
 
 import jinja2
 import numpy as np
 
-from .. import __version__, atomic, qc
+from .. import __version__, atomic, display, qc
+from ..display import MISSING
 from ..values import utc_text
 
 TEMPLATE_DIR = Path(__file__).parent / "templates"
-
-MISSING = "—"
 
 CAUTIONS = (
     "Check the calibration of the set-up (pixel size, frame rate) regularly with a reference fluid of "
@@ -64,39 +62,6 @@ VERDICT_LINES = {
     "fail": "a lot mean is outside its limit",
     "review": "a person should look at this lot",
 }
-
-#: display scales per SI unit, tried from the largest down
-_SCALES = {
-    "s": ((1.0, "s"), (1e-3, "ms"), (1e-6, "µs")),
-    "Pa·s": ((1e3, "kPa·s"), (1.0, "Pa·s"), (1e-3, "mPa·s")),
-    "Pa": ((1e3, "kPa"), (1.0, "Pa")),
-}
-
-
-def fmt(value, unit: str | None = None, digits: int = 4) -> str:
-    """A number for people: ``digits`` significant digits in a convenient unit, "—" if missing."""
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return MISSING
-    if unit is None:
-        return f"{value:.{digits}g}"
-    for scale, label in _SCALES.get(unit, ((1.0, unit),)):
-        if abs(value) >= scale:
-            break  # otherwise the smallest scale is used
-    return f"{value / scale:.{digits}g} {label}"
-
-
-def fmt_limits(limits) -> str:
-    if limits is None:
-        return "not limited"
-    low, high = limits
-    if math.isnan(low) and math.isnan(high):
-        return "no limit (must be measured)"
-    if math.isnan(low):
-        return f"at most {high:.4g}"
-    if math.isnan(high):
-        return f"at least {low:.4g}"
-    return f"{low:.4g} to {high:.4g}"
-
 
 def _png(figure) -> str:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -138,24 +103,33 @@ def _drawable_curves(detail):
     return [m for m in drawn if np.any(np.isfinite(detail.curves[m["id"]][1]) & (detail.curves[m["id"]][1] > 0))]
 
 
+def display_units(detail) -> dict[str, display.Unit]:
+    """The display unit of each limited quantity on this page (chosen with the verdict, from the
+    lot's values and limits: :func:`thinning.qc.view_units`)."""
+    return dict(detail.summary.verdict.units) or qc.view_units(detail.spec, [])
+
+
 def _replicate_rows(detail) -> list[dict]:
     from ..records import replicate_label
 
     verdict = detail.summary.verdict
+    units = display_units(detail)
     rows = []
     for m, is_valid, why in zip(detail.measurements, verdict.valid, verdict.invalid_reasons):
-        low, high = m["relaxation_time_ci95_low_s"], m["relaxation_time_ci95_high_s"]
+        lam, ci = display.estimate(m["relaxation_time_s"],
+                                   (m["relaxation_time_ci95_low_s"], m["relaxation_time_ci95_high_s"]),
+                                   units["relaxation_time_s"])
         rows.append({
             "label": replicate_label(m), "sample": m["sample"], "replicate": m["replicate"] or MISSING,
-            "lam": fmt(m["relaxation_time_s"], "s"),
-            "ci": MISSING if low is None or high is None else f"{fmt(low, 's')} – {fmt(high, 's')}",
+            "lam": lam, "ci": ci or MISSING,
             "quality": m["quality"] or MISSING, "regime": m["regime"] or MISSING,
-            "lifetime": fmt(m["filament_lifetime_s"], "s"),
-            "eta_e": fmt(m["extensional_viscosity_max_Pa_s"], "Pa·s"),
+            "lifetime": display.quantity(m["filament_lifetime_s"], units["filament_lifetime_s"]),
+            "eta_e": display.quantity(m["extensional_viscosity_max_Pa_s"],
+                                      units["extensional_viscosity_max_Pa_s"]),
             "valid": "yes" if is_valid else f"no: {why}", "is_valid": is_valid,
             "warnings": list(zip(m["warning_codes"].split("; "), json.loads(m["warnings"])))
             if m["warning_codes"] else [("", w) for w in json.loads(m["warnings"])],
-            "sha256": m["sha256"], "analysed_at": m["analysed_at"],
+            "sha256": m["sha256"], "analysed_at": display.timestamp(m["analysed_at"]),
             "tool_version": m["tool_version"] or MISSING, "notes": m["notes"] or "",
             "source_path": m["source_path"] or MISSING, "clock": clock_text(m),
         })
@@ -164,39 +138,40 @@ def _replicate_rows(detail) -> list[dict]:
                      "lam": MISSING, "ci": MISSING, "quality": "failed", "regime": MISSING,
                      "lifetime": MISSING, "eta_e": MISSING, "valid": "no", "is_valid": False,
                      "warnings": [("failed", f["reason"])], "sha256": f["sha256"] or MISSING,
-                     "analysed_at": f["analysed_at"], "tool_version": f["tool_version"] or MISSING,
+                     "analysed_at": display.timestamp(f["analysed_at"]),
+                     "tool_version": f["tool_version"] or MISSING,
                      "notes": f["notes"] or "", "source_path": f["source_path"] or MISSING,
                      "clock": MISSING})
     return rows
 
 
 def clock_text(m) -> str:
-    """How the recording was clocked and started, in words: ``header 4000/s · trigger at frame 12 ·
-    exposure 20 µs`` (— for results stored before the clock was recorded)."""
+    """How the recording was clocked and started, in words: ``header 4000 frames/s · trigger at
+    frame 12 · exposure 20 µs`` (— for results stored before the clock was recorded)."""
     source = m.get("clock_source")
     if not source:
         return MISSING
     words = {"file": "header", "option": "--fps", "container": "container"}.get(source, source)
-    parts = [f"{words} {fmt(m.get('fps_hz'), None)}/s"]
+    parts = [f"{words} {display.frame_rate(m.get('fps_hz'))}"]
     trigger = m.get("trigger_frame")
     parts.append("trigger outside the record" if trigger is None and source == "file"
                  else (f"trigger at frame {trigger}" if trigger is not None else "no trigger recorded"))
     if m.get("exposure_s") is not None:
-        parts.append(f"exposure {fmt(m['exposure_s'], 's')}")
+        parts.append(f"exposure {display.given(m['exposure_s'], display.US)}")
     return " · ".join(parts)
 
 
 def _lot_rows(detail) -> list[dict]:
-    units = {"relaxation_time_s": "s", "filament_lifetime_s": "s", "extensional_viscosity_max_Pa_s": "Pa·s"}
     limits = detail.spec.limits if detail.spec is not None else {}
+    units = display_units(detail)
     rows = []
     for key, stats in detail.summary.verdict.stats.items():
         unit = units[key]
-        rows.append({"name": qc.LIMITED_QUANTITIES[key][0], "n": stats.n, "mean": fmt(stats.mean, unit),
-                     "sd": fmt(stats.sd, unit, 3), "cv": fmt(stats.cv, None, 3),
-                     "ci": MISSING if stats.ci95 is None else
-                     f"{fmt(stats.ci95[0], unit)} – {fmt(stats.ci95[1], unit)}",
-                     "limits": fmt_limits(limits.get(key)) + (f" ({unit})" if key in limits else "")})
+        mean, ci = display.estimate(stats.mean, stats.ci95, unit)
+        rows.append({"name": qc.LIMITED_QUANTITIES[key][0], "n": stats.n, "mean": mean,
+                     "sd": display.spread(stats.sd, unit), "cv": display.percent(stats.cv),
+                     "ci": ci or MISSING,
+                     "limits": display.limits(*limits[key], unit) if key in limits else "not limited"})
     return rows
 
 
@@ -206,9 +181,10 @@ def _chart_context(detail) -> dict:
         return {"state": "no-mean"}
     if point.centre is None:
         return {"state": "too-few", "n_baseline": point.n_baseline, "needed": qc.MIN_BASELINE_LOTS}
-    return {"state": "limits", "n_baseline": point.n_baseline, "centre": fmt(point.centre, "s"),
-            "ucl": fmt(point.ucl, "s"), "lcl": fmt(point.lcl, "s"), "mr_ucl": fmt(point.mr_ucl, "s"),
-            "moving_range": fmt(point.moving_range, "s")}
+    unit = display_units(detail)["relaxation_time_s"]
+    shown = {name: display.quantity(getattr(point, name), unit)
+             for name in ("centre", "ucl", "lcl", "mr_ucl", "moving_range")}
+    return {"state": "limits", "n_baseline": point.n_baseline, **shown}
 
 
 def lot_report_html(detail, *, generated_at: str | None = None) -> str:
@@ -219,31 +195,36 @@ def lot_report_html(detail, *, generated_at: str | None = None) -> str:
     replicates = _replicate_rows(detail)
     warnings = [(row["label"], code, w) for row in replicates for code, w in row["warnings"]]
     tool_versions = sorted({row["tool_version"] for row in replicates if row["tool_version"] != MISSING})
+    units = display_units(detail)
     context = {
         "product": summary.product, "lot": summary.lot, "made_on": summary.made_on or MISSING,
-        "first_analysed_at": summary.first_analysed_at,
-        "verdict": summary.verdict.verdict, "reasons": summary.verdict.reasons,
+        "first_analysed_at": display.timestamp(summary.first_analysed_at),
+        "verdict": summary.verdict.verdict, "reasons": summary.verdict.shown_reasons,
         "verdict_line": VERDICT_LINES[summary.verdict.verdict],
         "n_valid": summary.verdict.n_valid, "n_replicates": summary.verdict.n_replicates,
         "required": detail.spec.replicates if detail.spec is not None else None,
-        "max_cv": fmt(detail.spec.max_cv, None, 3) if detail.spec is not None else None,
+        "max_cv": display.given_percent(detail.spec.max_cv) if detail.spec is not None else None,
         "has_spec": detail.spec is not None,
         "decision_rule": detail.spec.decision_rule if detail.spec is not None else None,
-        "verdict_changes": detail.verdict_changes,
+        "verdict_changes": [{**c, "changed_at": display.timestamp(c["changed_at"])}
+                            for c in detail.verdict_changes],
         "chart_flags": [(name, qc.CHART_RULES[name]) for name in summary.chart_flags],
-        "lam_mean": fmt(summary.relaxation_time.mean, "s"),
-        "lam_cv": fmt(summary.relaxation_time.cv, None, 3),
+        "lam_mean": display.estimate(summary.relaxation_time.mean, summary.relaxation_time.ci95,
+                                     units["relaxation_time_s"])[0],
+        "lam_cv": display.percent(summary.relaxation_time.cv),
         "replicates": replicates, "lot_rows": _lot_rows(detail), "warnings": warnings,
         "notes": [(row["label"], row["notes"]) for row in replicates if row["notes"]],
         "curves_png": curves_figure(detail), "chart_png": chart_figure(detail),
         "chart": _chart_context(detail), "rules": qc.CHART_RULES,
         "history": [{"label": f"{h['sample']} #{h['replicate']}" if h["replicate"] else h["sample"],
-                     "lam": fmt(h["relaxation_time_s"], "s"), "tool_version": h["tool_version"] or MISSING,
-                     "analysed_at": h["analysed_at"], "superseded_at": h["superseded_at"],
+                     "lam": display.quantity(h["relaxation_time_s"], units["relaxation_time_s"]),
+                     "tool_version": h["tool_version"] or MISSING,
+                     "analysed_at": display.timestamp(h["analysed_at"]),
+                     "superseded_at": display.timestamp(h["superseded_at"]),
                      "options": h["options"]} for h in detail.history],
         "cautions": CAUTIONS, "sources": SOURCES, "version": __version__,
         "measurement_versions": ", ".join(tool_versions) or MISSING,
-        "generated_at": generated_at or utc_text(),
+        "generated_at": display.timestamp(generated_at or utc_text()),
     }
     return environment.get_template("lot.html").render(**context)
 

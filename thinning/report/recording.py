@@ -4,8 +4,9 @@
 :func:`thinning.plots.write_figures` into ``report.html``: self-contained (the
 figures are embedded as base64, no external file, font or script), printable,
 and escaped throughout (names and paths come from users). Numbers are shown
-with three or four significant digits in convenient units; a missing number
-is shown as "—" with the reason. The file is written atomically and is the
+in the house style (:mod:`thinning.display`: one unit per quantity on the page,
+a value to its interval's precision); a missing number is shown as "—" with
+the reason. The file is written atomically and is the
 same byte for byte for the same input.
 """
 
@@ -15,7 +16,9 @@ import base64
 from pathlib import Path, PurePath
 
 import jinja2
-from .. import atomic
+
+from .. import atomic, display
+from ..display import MISSING
 from ..result import RESULT_SCHEMA
 from ..values import finite_number as _number
 
@@ -39,30 +42,19 @@ CAUTIONS = (
     "on them.",
 )
 
-#: Display units per SI unit: (scale, label), tried from the largest down.
-_UNITS = {
-    "s": ((1.0, "s"), (1e-3, "ms"), (1e-6, "µs")),
-    "m": ((1e-3, "mm"), (1e-6, "µm"), (1e-9, "nm")),
-    "Pa": ((1e6, "MPa"), (1e3, "kPa"), (1.0, "Pa"), (1e-3, "mPa")),
-    "Pa·s": ((1e3, "kPa·s"), (1.0, "Pa·s"), (1e-3, "mPa·s")),
-    "N/m": ((1e-3, "mN/m"),),
-    "kg/m³": ((1.0, "kg/m³"),),
-    "1/s": ((1.0, "1/s"),),
-    "Hz": ((1e3, "kHz"), (1.0, "Hz")),
-}
-
-#: Known ``options`` keys → (label, SI unit or None).
+#: Known ``options`` keys → (label, display unit: a :class:`~thinning.display.Unit`, "shear" for
+#: the page's unit of shear viscosities, or None for no number).
 _OPTION_LABELS = {
-    "fps_hz": ("frame rate (as given)", "Hz"),
-    "pixel_size_m": ("pixel size (as given)", "m"),
-    "reference_width_m": ("reference width", "m"),
-    "surface_tension_N_m": ("surface tension σ", "N/m"),
-    "density_kg_m3": ("density ρ", "kg/m³"),
-    "solvent_viscosity_Pa_s": ("solvent viscosity η_s", "Pa·s"),
-    "zero_shear_viscosity_Pa_s": ("zero-shear viscosity η_0", "Pa·s"),
+    "fps_hz": ("frame rate (as given)", display.FRAMES_S),
+    "pixel_size_m": ("pixel size (as given)", display.UM),
+    "reference_width_m": ("reference width", display.MM),
+    "surface_tension_N_m": ("surface tension σ", display.MN_M),
+    "density_kg_m3": ("density ρ", display.KG_M3),
+    "solvent_viscosity_Pa_s": ("solvent viscosity η_s", "shear"),
+    "zero_shear_viscosity_Pa_s": ("zero-shear viscosity η_0", "shear"),
     "geometry": ("geometry", None),
     "roi_px": ("region of interest x0, y0, x1, y1 (px)", None),
-    "exposure_s": ("exposure (as given)", "s"),
+    "exposure_s": ("exposure (as given)", display.US),
     "fps_override": ("--fps over a native file's clock", None),
 }
 
@@ -73,91 +65,68 @@ CLOCK_WORDS = {
     "container": "the video container's rate (time = frame / fps)",
 }
 
-MISSING = "—"
-
-def _digits(x):
-    """Four significant digits, with a ×10ⁿ exponent instead of e-notation."""
-    text = f"{x:.4g}"
-    if "e" not in text:
-        return text
-    mantissa, exponent = text.split("e")
-    return f"{mantissa} × 10^{int(exponent)}"
-
-
-def _scale_for(value, unit):
-    for scale, label in _UNITS.get(unit, ((1.0, unit),)):
-        if abs(value) >= scale:
-            return scale, label
-    return _UNITS.get(unit, ((1.0, unit),))[-1]
-
-
-def format_quantity(value, unit, *, missing=None):
-    """``value`` (SI, in ``unit``) for display, e.g. ``format_quantity(0.0052, "s")`` → ``"5.2 ms"``.
-
-    Returns ``"—"``, followed by `` (missing)`` when a reason is given, for a
-    missing or non-finite value.
-    """
-    x = _number(value)
-    if x is None:
-        return f"{MISSING} ({missing})" if missing else MISSING
-    if x == 0:
-        return f"0 {unit}"
-    scale, label = _scale_for(x, unit)
-    return f"{_digits(x / scale)} {label}"
+def page_units(result) -> dict[str, display.Unit]:
+    """The page's unit of each kind of quantity, from its values: ``time`` (λ, breakup, lifetimes,
+    windows, regimes), ``extensional`` and ``shear`` viscosities; the others are fixed
+    (:mod:`thinning.display`)."""
+    c = result.characterisation
+    fit = c.model_fit
+    options = result.options.to_dict()
+    times = [c.relaxation_time_s, c.breakup_time_s, c.filament_lifetime_s, c.filament_lifetime_min_s,
+             c.free_thinning_start_s, *(c.fit_window_s or ())]
+    times += [t for regime in c.regimes for t in (regime.t_start_s, regime.t_end_s)]
+    shear = [c.shear_viscosity_Pa_s, options.get("solvent_viscosity_Pa_s"),
+             options.get("zero_shear_viscosity_Pa_s")]
+    if fit:
+        times.append(fit.relaxation_time_s)
+        shear.append(fit.solvent_viscosity_Pa_s)
+    return {"time": display.time_unit(*times),
+            "extensional": display.viscosity_unit(c.extensional_viscosity_max_Pa_s,
+                                                  c.extensional_viscosity_terminal_Pa_s),
+            "shear": display.viscosity_unit(*shear),
+            "modulus": display.PA, "length": display.UM}
 
 
-def format_interval(interval, unit, like=None):
-    """``[low, high]`` (SI) for display in the units of ``like`` (or of ``low``), else None."""
-    if not interval or len(interval) != 2:
-        return None
-    low, high = (_number(v) for v in interval)
-    if low is None or high is None:
-        return None
-    ref = _number(like) or low or high
-    scale, label = _scale_for(ref, unit) if ref else (1.0, unit)
-    return f"{_digits(low / scale)} – {_digits(high / scale)} {label}"
-
-
-def _headline(result):
+def _headline(result, units):
     """Rows of the headline table: dicts with label, value, interval (strings)."""
     c = result.characterisation
     broke = _number(c.breakup_time_s) is not None
     lam = _number(c.relaxation_time_s) is not None
-    #: (label, key, SI unit, reason when missing); an interval is expected for the first five
+    time = units["time"]
+    #: (label, key, kind of unit, reason when missing); an interval is expected for the first five
     rows = [
-        ("relaxation time λ", "relaxation_time_s", "s",
+        ("relaxation time λ", "relaxation_time_s", "time",
          "no elasto-capillary fit in this record"),
-        ("apparent elastic modulus G", "elastic_modulus_Pa", "Pa",
+        ("apparent elastic modulus G", "elastic_modulus_Pa", "modulus",
          "needs an elasto-capillary fit"),
-        ("largest apparent extensional viscosity η_E,max", "extensional_viscosity_max_Pa_s", "Pa·s",
+        ("largest apparent extensional viscosity η_E,max", "extensional_viscosity_max_Pa_s", "extensional",
          "none resolved above the resolution floor"),
-        ("terminal extensional viscosity η_E,∞", "extensional_viscosity_terminal_Pa_s", "Pa·s",
+        ("terminal extensional viscosity η_E,∞", "extensional_viscosity_terminal_Pa_s", "extensional",
          "no finite-extensibility stretch located"),
-        ("shear viscosity from visco-capillary thinning", "shear_viscosity_Pa_s", "Pa·s",
+        ("shear viscosity from visco-capillary thinning", "shear_viscosity_Pa_s", "shear",
          "no visco-capillary fit"),
         ("breakup time" + (" (lower bound: the thread faded first)"
                            if c.breakup_seen == "faded" else ""),
-         "breakup_time_s", "s", "the filament did not break within the record"),
+         "breakup_time_s", "time", "the filament did not break within the record"),
         ("filament lifetime" + (" (extrapolated)" if c.filament_lifetime_basis == "extrapolated"
-                                else ""), "filament_lifetime_s", "s",
+                                else ""), "filament_lifetime_s", "time",
          "no breakup within the record" if not broke else
-         (f"at least {format_quantity(c.filament_lifetime_min_s, 's')}: the thread faded below the "
+         (f"at least {display.quantity(c.filament_lifetime_min_s, time)}: the thread faded below the "
           "optical resolution with no law to extrapolate" if c.filament_lifetime_basis == "lower-bound"
           else "start of free thinning unknown")),
-        ("initial diameter D0", "initial_diameter_m", "m", "not measured"),
-        ("start of free thinning", "free_thinning_start_s", "s", "not located"),
+        ("initial diameter D0", "initial_diameter_m", "length", "not measured"),
+        ("start of free thinning", "free_thinning_start_s", "time", "not located"),
     ]
     out = []
-    for i, (label, key, unit, reason) in enumerate(rows):
+    for i, (label, key, kind, reason) in enumerate(rows):
         value = getattr(c, key)
-        interval = format_interval(c.interval(key), unit, like=value)
+        shown, interval = display.estimate(value, c.interval(key), units[kind], missing=reason)
         if interval is None and _number(value) is not None and i < 5:
             interval = f"{MISSING} (not computed)"
-        out.append({"label": label, "value": format_quantity(value, unit, missing=reason),
-                    "interval": interval or "", "missing": _number(value) is None})
-    out += _model_rows(c)
-    window = c.fit_window_s
-    window_text = format_interval(window, "s", like=(window or [None, None])[1])
+        out.append({"label": label, "value": shown, "interval": interval or "",
+                    "missing": _number(value) is None})
+    out += _model_rows(c, units)
+    window_text = display.span(c.fit_window_s, time)
     frames = c.fit_window_frames
     if window_text and frames is not None:
         window_text += f" ({frames} frames)"
@@ -167,40 +136,40 @@ def _headline(result):
     return out
 
 
-def _model_rows(c):
+def _model_rows(c, units):
     """Headline rows of the whole-curve filament model fit, beside the local-slope numbers."""
     fit = c.model_fit
     if not fit:
         return [{"label": "whole-curve filament model", "value": f"{MISSING} (no fit could be made)",
                  "interval": "", "missing": True}]
     chi2 = _number(fit.reduced_chi2)
-    note = f" ({fit.model}, reduced χ² {_digits(chi2)})" if chi2 is not None else f" ({fit.model})"
+    note = (f" ({fit.model}, reduced χ² {display.significant(chi2)})" if chi2 is not None
+            else f" ({fit.model})")
     if not fit.describes_record:
         return [{"label": "whole-curve filament model" + note,
                  "value": f"{MISSING} (the model does not describe this record)", "interval": "",
                  "missing": True}]
     rows = []
     if fit.model == "viscoelastic":
+        shown, interval = display.estimate(fit.relaxation_time_s, fit.relaxation_time_ci95_s,
+                                           units["time"])
         rows.append({"label": "relaxation time λ, whole-curve filament model" + note,
-                     "value": format_quantity(fit.relaxation_time_s, "s"),
-                     "interval": format_interval(fit.relaxation_time_ci95_s, "s",
-                                                 like=fit.relaxation_time_s) or "",
-                     "missing": False})
+                     "value": shown, "interval": interval or "", "missing": False})
     label = "solvent viscosity η_s, whole-curve filament model"
+    shown, interval = display.estimate(fit.solvent_viscosity_Pa_s, fit.solvent_viscosity_ci95_Pa_s,
+                                       units["shear"])
     rows.append({"label": label + (" (given, held fixed)" if fit.solvent_viscosity_fixed else
                                    ("" if rows else note)),
-                 "value": format_quantity(fit.solvent_viscosity_Pa_s, "Pa·s"),
-                 "interval": "" if fit.solvent_viscosity_fixed else
-                 format_interval(fit.solvent_viscosity_ci95_Pa_s, "Pa·s",
-                                 like=fit.solvent_viscosity_Pa_s) or "",
+                 "value": shown, "interval": "" if fit.solvent_viscosity_fixed else interval or "",
                  "missing": _number(fit.solvent_viscosity_Pa_s) is None})
     return rows
 
 
-def _regimes(result):
+def _regimes(result, units):
     c = result.characterisation
     headline = c.regime
     window = [_number(w) for w in (c.fit_window_s or [])]
+    time = units["time"]
     rows = []
     for regime in c.regimes:
         t0, t1 = _number(regime.t_start_s), _number(regime.t_end_s)
@@ -208,9 +177,9 @@ def _regimes(result):
                   and t0 is not None and t1 is not None and t0 < window[1] and window[0] < t1)
         rows.append({
             "kind": regime.kind,
-            "start": format_quantity(t0, "s"),
-            "end": format_quantity(t1, "s"),
-            "duration": format_quantity(t1 - t0, "s") if t0 is not None and t1 is not None else MISSING,
+            "start": display.quantity(t0, time),
+            "end": display.quantity(t1, time),
+            "duration": display.quantity(t1 - t0, time) if t0 is not None and t1 is not None else MISSING,
             "headline": in_fit,
         })
     return rows
@@ -220,7 +189,7 @@ def _option_value(value, unit):
     if value is None:
         return f"{MISSING} (not given)"
     if unit is not None:
-        return format_quantity(value, unit)
+        return display.given(value, unit)
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, (list, tuple)):
@@ -228,24 +197,25 @@ def _option_value(value, unit):
     return str(value)
 
 
-def _calibration(result):
+def _calibration(result, units):
     rows = [
-        {"label": "frame rate used", "value": format_quantity(result.calibration.fps_hz, "Hz",
-                                                              missing="not recorded")},
-        {"label": "pixel size used", "value": format_quantity(result.calibration.pixel_size_m, "m",
-                                                              missing="not recorded")},
+        {"label": "frame rate used", "value": display.frame_rate(result.calibration.fps_hz,
+                                                                 missing="not recorded")},
+        {"label": "pixel size used", "value": display.given(result.calibration.pixel_size_m, display.UM,
+                                                            missing="not recorded")},
     ]
     clock = result.clock
     if clock is not None:
         rows[1:1] = [
             {"label": "clock", "value": CLOCK_WORDS.get(clock.source, clock.source)},
-            {"label": "exposure", "value": format_quantity(clock.exposure_s, "s", missing="not known")},
+            {"label": "exposure", "value": display.given(clock.exposure_s, display.US, missing="not known")},
             {"label": "trigger frame", "value": MISSING if clock.trigger_frame is None
              else f"frame {clock.trigger_frame} of the record"},
         ]
     for key, value in result.options.to_dict().items():
         label, unit = _OPTION_LABELS.get(key, (str(key), None))
-        rows.append({"label": label, "value": _option_value(value, unit)})
+        rows.append({"label": label, "value": _option_value(value, units.get(unit, unit)
+                                                             if isinstance(unit, str) else unit)})
     return rows
 
 
@@ -298,6 +268,7 @@ def _environment():
 def render_recording_report(result, figures, *, name=None, details=None):
     """The report's HTML text (see :func:`write_recording_report`)."""
     quality = result.quality
+    units = page_units(result)
     context = {
         "name": name if name is not None else recording_name(result),
         "details": [{"label": str(k), "value": MISSING if v is None else str(v)}
@@ -306,12 +277,12 @@ def render_recording_report(result, figures, *, name=None, details=None):
         "quality": quality,
         "doubtful": quality != "good",
         "quality_reasons": list(result.quality_reasons),
-        "headline": _headline(result),
-        "regimes": _regimes(result),
+        "headline": _headline(result, units),
+        "regimes": _regimes(result, units),
         "figures": _embed(figures or {}),
         "warnings": [{"code": code, "message": message}
                      for code, message in zip(result.warning_codes, result.warnings)],
-        "calibration": _calibration(result),
+        "calibration": _calibration(result, units),
         "provenance": _provenance(result),
         "cautions": CAUTIONS,
     }
