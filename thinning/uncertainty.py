@@ -17,8 +17,10 @@ leaves out is systematic, and on real recordings larger:
   filament model's (:mod:`thinning.modelfit`), when that fit describes the
   record (:attr:`thinning.modelfit.ModelFit.describes_record`): the model accounts for
   the solvent and finite extensibility the window's line ignores, so the
-  interval reaches the model's value and its own interval (the difference
-  plus the model's relative half-width);
+  interval reaches the model's value and its own interval (the gap plus the
+  model's half-width, both relative to the local value); for λ, a model whose
+  own half-width exceeds ``ELASTIC_TOLERANCE`` cannot narrow the question, and
+  the term is that tolerance, or the gap where larger;
 - ``unchecked_model_departure`` (λ only, in place of the former when no
   whole-curve fit describes the record): the local λ is accepted as constant
   within ±:data:`ELASTIC_TOLERANCE` across the elastic stretch
@@ -127,12 +129,21 @@ def _bias_term(x, d, w, bias_m, *, log):
     return math.hypot(moved(np.full(x.size, bias_m)), moved(ramp))
 
 
-def _model_term(local, model_value, model_fit):
+def _model_term(local, model_value, model_fit, *, prior=None):
+    """The whole-curve term, relative to the local value (the budget scales every term by it):
+    the gap to the model's value plus the model's own half-width, so the interval reaches the
+    model's value and its interval. With ``prior`` (the bound that holds without a model), a
+    model whose own half-width exceeds it cannot narrow the question: the term is then the
+    prior, or the gap where that is larger. None when no usable model fit describes the record."""
     if model_fit is None or not model_fit or model_value is None or not np.isfinite(model_value):
         return None
     if not model_fit.describes_record:
         return None
-    return abs(local / model_value - 1.0) + _half_width(model_fit, model_value)
+    gap = abs(model_value - local) / abs(local)
+    reach = _half_width(model_fit, model_value) * abs(model_value) / abs(local)
+    if prior is not None and reach > prior:
+        return max(gap, prior)
+    return gap + reach
 
 
 def _half_width(model_fit, value):
@@ -151,7 +162,7 @@ def relaxation_time_budget(t, d, fit, *, noise_m, floor_m, pixel_size_m, model_f
     terms = {"diameter_bias": _bias_term(tw, dw, w, EDGE_BIAS_PX * pixel_size_m, log=True),
              "local_drift": _drift_of_slope(tw, np.log(dw), w)}
     model_lam = model_fit.relaxation_time_s if model_fit and model_fit.model == "viscoelastic" else None
-    difference = _model_term(lam, model_lam, model_fit)
+    difference = _model_term(lam, model_lam, model_fit, prior=ELASTIC_TOLERANCE)
     if difference is not None:
         terms["whole_curve_difference"] = difference
     else:
