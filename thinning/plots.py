@@ -479,10 +479,10 @@ def strip_snapshots(result, *, n=STRIP_FRAMES):
     def caption(k):
         if k == last and tb is not None:
             return "last with a thread"
-        if window is not None and window[0] <= t[k] <= window[1]:
-            return "fit window"
         if k == chosen[0] and start is not None:
             return "free thinning"
+        if window is not None and window[0] <= t[k] <= window[1]:
+            return "fit window"
         if window is not None and t[k] > window[1]:
             return "towards breakup"
         return ""
@@ -725,7 +725,7 @@ def plot_lot_curves(detail, *, ax=None):
             if k < len(valid) and not valid[k]:
                 why = reasons[k] if k < len(reasons) and reasons[k] else "see the verdict"
                 label = textwrap.shorten(f"{label} (not valid: {why})", width=70, placeholder=" …")
-                ax.plot(t[keep] * 1e3, d[keep] * 1e6, ls=(0, (4, 2)), lw=1.3, color=BELOW_COLOUR,
+                ax.plot(t[keep] * 1e3, d[keep] * 1e6, ls="--", lw=1.3, color=BELOW_COLOUR,
                         label=label, gid="not-valid", zorder=2)
                 continue
             colour = REPLICATE_COLOURS[drawn % len(REPLICATE_COLOURS)]
