@@ -619,8 +619,8 @@ def _scale_bar(ax, shape, pixel_size_m):
     outline = [patheffects.Stroke(linewidth=3.6, foreground="black"), patheffects.Normal()]
     ax.plot([x0, x0 + length_px], [y, y], "-", color="white", lw=2.2, solid_capstyle="butt",
             gid="scale-bar", label="scale bar", path_effects=outline, zorder=5)
-    ax.text(x0 + 0.5 * length_px, y - 0.035 * height, display.given(length_um * 1e-6, display.UM),
-            ha="center", va="bottom", fontsize=7, color="white", gid="scale-bar-label", zorder=5,
+    ax.text(x0, y - 0.035 * height, display.given(length_um * 1e-6, display.UM),
+            ha="left", va="bottom", fontsize=7, color="white", gid="scale-bar-label", zorder=5,
             path_effects=[patheffects.Stroke(linewidth=2.2, foreground="black"), patheffects.Normal()])
 
 
