@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 
 from thinning.measure import NoFilament
-from thinning.measure.record import (TABLE_COLUMNS, diameter_noise, free_thinning_start, measure_recording,
-                           to_physical)
+from thinning.measure.record import (SNAPSHOT_CANDIDATES, TABLE_COLUMNS, diameter_noise, free_thinning_start,
+                                     measure_recording, to_physical)
 from thinning.checks import Severity
 from thinning.units import Calibration
 
@@ -46,7 +46,10 @@ def test_thinning_record_to_breakup():
     assert np.median(err) < 0.1
     assert np.percentile(err, 95) < 0.3
     assert series.free_thinning_start_frame == 0.0
-    assert 1 <= len(series.snapshots) <= 6
+    # the strip's candidates: frames with a thread only, spread over its life, the last one kept
+    kept = [index for index, _, _ in series.snapshots]
+    assert 1 <= len(kept) <= SNAPSHOT_CANDIDATES + 1 and kept == sorted(kept)
+    assert kept[-1] == last and all(table["thread_connected"].iloc[kept])
     assert abs(table["neck_position_px"].iloc[0] - 100.27) < 10
     # the reported noise matches the scatter about the truth within a factor of two
     scatter = np.std(table["diameter_px"].to_numpy()[good] - diameters[good])

@@ -38,6 +38,9 @@ COLOUR_WORDS = {
     "bayer-2x2-mean": "The camera's raw colour-filter mosaic was read as grey by the mean of each "
                       "pixel's 2 × 2 block, (R + 2 G + B) / 4, which evens out the filter pattern.",
 }
+#: The formats the figures can be written in (PNG always: the contract names the files and the
+#: report embeds them).
+FIGURE_FORMATS = ("png", "svg")
 DIAMETER_COLUMNS = ["frame", "time_s", "diameter_m", "neck_position_m", "strain_rate_1_s",
                     "hencky_strain", "apparent_extensional_viscosity_Pa_s"]
 
@@ -87,7 +90,8 @@ def analyse(source, options: AnalysisOptions, *, progress=None) -> Result:
         return _analyse(source, options, progress)
 
 
-def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> Result:
+def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None,
+               figures=("png",)) -> Result:
     """Analyse one recording and write its files: the ``thinning analyse`` job.
 
     Parameters
@@ -96,6 +100,8 @@ def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> R
         As for :func:`analyse`.
     out_dir : str or path
         The output folder (created if needed); see :func:`write_outputs`.
+    figures : iterable of str or str
+        The formats of the figures, as for :func:`write_outputs`.
 
     Returns
     -------
@@ -114,8 +120,12 @@ def analyse_to(source, out_dir, options: AnalysisOptions, *, progress=None) -> R
     if source_path.is_dir() and (out_path == source_path or source_path in out_path.parents):
         raise UnusableInput(f"{out_dir}: the output folder lies inside the image folder {source}, "
                             "whose frames it would mix with figures; choose an --out elsewhere.")
+    try:
+        figures = figure_formats(figures)
+    except ValueError as exc:
+        raise UnusableInput(f"--figures: {exc}.") from None
     result = analyse(source, options, progress=progress)
-    write_outputs(result, out_dir)
+    write_outputs(result, out_dir, figures=figures)
     return result
 
 
@@ -245,7 +255,21 @@ def diameter_csv_text(table: pd.DataFrame) -> str:
     return frame.to_csv(index=False, na_rep="", lineterminator="\n", float_format=lambda v: repr(float(v)))
 
 
-def write_outputs(result: Result, out_dir) -> Path:
+def figure_formats(formats):
+    """The formats to write, in :data:`FIGURE_FORMATS` order, PNG always among them; ``formats``
+    an iterable of names or one comma-separated text (``"png,svg"``). Raises ValueError for an
+    unknown one."""
+    if isinstance(formats, str):
+        formats = formats.split(",")
+    wanted = {str(f).strip().lower().lstrip(".") for f in formats} - {""}
+    unknown = sorted(wanted - set(FIGURE_FORMATS))
+    if unknown:
+        raise ValueError(f"unknown figure format {', '.join(map(repr, unknown))}: choose from "
+                         f"{', '.join(FIGURE_FORMATS)} (e.g. png,svg)")
+    return tuple(f for f in FIGURE_FORMATS if f in wanted | {"png"})
+
+
+def write_outputs(result: Result, out_dir, *, figures=("png",)) -> Path:
     """Write every file of one analysed recording.
 
     Parameters
@@ -257,6 +281,10 @@ def write_outputs(result: Result, out_dir) -> Path:
         ``report.html`` and ``result.json`` are written into a staging folder
         beside it, which then replaces it in one step (:func:`thinning.atomic.replacing_folder`):
         the folder is wholly old or wholly new, and other files in it are kept.
+    figures : iterable of str or str
+        The formats of the figures (:func:`figure_formats`): ``"png"`` (always
+        written) and ``"svg"`` (``diameter.svg`` … besides the PNGs). The SVGs of an earlier
+        run are removed when this one writes none.
 
     Returns
     -------
@@ -267,10 +295,11 @@ def write_outputs(result: Result, out_dir) -> Path:
     from .report.recording import write_recording_report
 
     out = Path(out_dir)
-    own = {"diameter.csv", "report.html", "result.json"} | {f"{n}.png" for n in FIGURE_NAMES}
+    own = {"diameter.csv", "report.html", "result.json"} | {
+        f"{n}.{fmt}" for n in FIGURE_NAMES for fmt in FIGURE_FORMATS}
     with atomic.replacing_folder(out, own) as stage:
         atomic.write_bytes(stage / "diameter.csv", diameter_csv_text(result.table).encode())
-        figures = write_figures(stage, result)
-        write_recording_report(stage, result, figures)
+        pngs = write_figures(stage, result, formats=figures)
+        write_recording_report(stage, result, pngs)
         atomic.write_bytes(stage / "result.json", result.to_json_text().encode())
     return out

@@ -163,8 +163,11 @@ def cli(verbose):
 @click.argument("source", type=click.Path())
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
               help="Output folder (created if needed); the tool's files in it are replaced atomically.")
+@click.option("--figures", "figure_formats", default="png", show_default=True, metavar="FORMATS",
+              help="Formats of the figures, comma-separated: png, svg (e.g. 'png,svg' also writes "
+                   "diameter.svg …). The PNGs are always written: the report embeds them.")
 @analysis_options
-def analyse(source, out_dir, **values):
+def analyse(source, out_dir, figure_formats, **values):
     """Analyse one recording: a video file, a multi-page TIFF or a folder of images.
 
     Writes OUT/result.json, OUT/diameter.csv, figures and OUT/report.html, and
@@ -176,10 +179,14 @@ def analyse(source, out_dir, **values):
       thinning analyse bridge.avi --out results/bridge \\
           --fps 10kHz --pixel-size 8um --surface-tension 38mN/m
     """
-    from .analysis import analyse_to
+    from .analysis import analyse_to, figure_formats as formats_of
 
+    try:
+        formats = formats_of(figure_formats)
+    except ValueError as exc:
+        raise FriendlyError(f"--figures: {exc}.") from None
     options = parse_analysis_options(values)
-    result = analyse_to(source, out_dir, options)
+    result = analyse_to(source, out_dir, options, figures=formats)
     click.echo(summary_text(result, out_dir))
 
 

@@ -56,8 +56,12 @@ PARTED_MIN_PX = 2.0
 PARTED_MIN_BLUR = 1.5
 
 
-#: Number of frames kept for the picture strip.
+#: Number of frames shown in the picture strip (:func:`thinning.plots.strip_snapshots` picks
+#: them once the start of free thinning, the fit window and the breakup are known).
 SNAPSHOTS = 6
+#: Most frames with a thread kept, spread evenly, as the strip's candidates (besides the last
+#: frame with a thread): constant memory whatever the length of the record.
+SNAPSHOT_CANDIDATES = 16
 
 
 #: Weight of a new frame in the running estimate of the shadow level.
@@ -98,7 +102,9 @@ class NeckSeries:
     tells a thread seen parting (its last diameter resolved) from one that
     faded below the optical resolution, whose breakup is only a lower bound
     (None without breakup); ``diameter_noise_px`` is the per-frame noise of ``diameter_px``;
-    ``snapshots`` a few ``(frame index, frame, profile)`` spread over the record.
+    ``snapshots`` a few ``(frame index, frame, profile)`` of frames with a connected thread,
+    spread evenly from the first such frame, and the last one with a thread (never one from
+    the breakup on): the candidates of the picture strip.
     """
 
     table: pd.DataFrame
@@ -127,30 +133,42 @@ def _gaps(profiles: ProfileBlock, layout: Layout):
 
 
 class _Snapshots:
-    """A few frames spread over the record, in constant memory."""
+    """Frames with a connected thread for the picture strip, in constant memory.
 
-    def __init__(self, n_frames):
-        self.n_frames = n_frames
+    Every ``step``-th frame counted from the first one with a thread is kept, the step doubling
+    (and every other kept frame dropped) whenever more than :data:`SNAPSHOT_CANDIDATES` are held,
+    so they stay spread evenly over the thread's life so far; the last frame with a thread is
+    kept besides. Which of them the strip shows is chosen later, when the start of free
+    thinning, the fit window and the breakup are known (:func:`thinning.plots.strip_snapshots`).
+    Frames without a thread (before the bridge forms, gaps, after breakup) are never kept.
+    """
+
+    def __init__(self):
         self.kept = []
+        self.origin = None
         self.step = 1
-        if n_frames:
-            self.targets = set(np.unique(np.round(np.linspace(0, n_frames - 1, SNAPSHOTS))).astype(int))
+        self.last = None
 
     def wants(self, index):
-        """Whether frame ``index`` is to be kept."""
-        return index in self.targets if self.n_frames else index % self.step == 0
+        """Whether frame ``index``, which has a connected thread, is one of the spread frames."""
+        if self.origin is None:
+            self.origin = index
+        return (index - self.origin) % self.step == 0
 
     def keep(self, index, frame, profile):
         self.kept.append((index, np.array(frame, copy=True), profile))
-        if not self.n_frames and len(self.kept) > 2 * SNAPSHOTS:
+        if len(self.kept) > SNAPSHOT_CANDIDATES:
             self.step *= 2
-            self.kept = [s for s in self.kept if s[0] % self.step == 0]
+            self.kept = [s for s in self.kept if (s[0] - self.origin) % self.step == 0]
+
+    def keep_last(self, index, frame, profile_of):
+        """Frame ``index`` is the latest with a thread (``profile_of()`` gives its profile)."""
+        self.last = (index, np.array(frame, copy=True), profile_of())
 
     def result(self):
-        if self.n_frames or len(self.kept) <= SNAPSHOTS:
-            return self.kept
-        pick = np.unique(np.round(np.linspace(0, len(self.kept) - 1, SNAPSHOTS)).astype(int))
-        return [self.kept[i] for i in pick]
+        if self.last is None or any(s[0] == self.last[0] for s in self.kept):
+            return list(self.kept)
+        return self.kept + [self.last]
 
 
 def measure_recording(frames: Iterable[np.ndarray], *, geometry="plates", roi=None,
@@ -165,8 +183,8 @@ def measure_recording(frames: Iterable[np.ndarray], *, geometry="plates", roi=No
     roi : tuple of int, optional
         ``(x0, y0, x1, y1)`` in full-frame pixels; found automatically otherwise.
     n_frames : int, optional
-        The expected count, for spreading the picture strip (taken from
-        ``len(frames)`` when possible).
+        The expected count; accepted for compatibility and no longer needed (the frames of the
+        picture strip are spread over the thread's life as it is measured).
 
     Returns
     -------
@@ -192,16 +210,12 @@ def measure_recording(frames: Iterable[np.ndarray], *, geometry="plates", roi=No
 
 
 def _measure_stream(frames, *, geometry, roi, n_frames) -> NeckSeries:
-    if n_frames is None:
-        try:
-            n_frames = len(frames)  # type: ignore[arg-type]
-        except TypeError:
-            n_frames = None
+    del n_frames  # the strip's frames no longer depend on the expected count
     layout = None
     fraction = None
     records = []
     pending = []  # (index, frame) waiting to be measured with the current layout
-    snaps = _Snapshots(n_frames)
+    snaps = _Snapshots()
     defects = DefectivePixels()
     for index, frame in enumerate(frames):
         if index % CHECK_EVERY == 0 or layout is None:
@@ -263,9 +277,13 @@ def _measure_pending(pending, layout, fraction, row_noise, records, snaps, liqui
     remeasure_necks(bands, layout, rows, record, liquid, row_noise_px=row_noise)
     record["frame"] = np.array(frames)
     records.append(record)
+    connected = np.asarray(record["thread_connected"], dtype=bool)
     for b, (index, frame) in enumerate(pending):
-        if snaps.wants(index):
+        if connected[b] and snaps.wants(index):
             snaps.keep(index, frame, profile_of(b))
+    if connected.any():
+        b = int(np.flatnonzero(connected)[-1])
+        snaps.keep_last(pending[b][0], pending[b][1], lambda: profile_of(b))
     pending.clear()
     return fraction
 

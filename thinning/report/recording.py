@@ -26,11 +26,14 @@ TEMPLATE_DIR = Path(__file__).parent / "templates"
 
 #: The order and captions of the figures written by :func:`thinning.plots.write_figures`.
 FIGURE_CAPTIONS = {
-    "diameter": "Minimum neck diameter against time; shaded: the located regimes; lines: the fits.",
+    "diameter": "Minimum neck diameter against time; filled points: in the fit window, open: outside "
+                "it, grey triangles: below the resolution floor; shaded: the located regimes; lines: "
+                "the fits.",
     "strain_rate": "Strain rate against time; the elasto-capillary plateau 2/(3λ) over the fit window.",
     "extensional_viscosity": "Apparent extensional viscosity η_E = σ/(−dD/dt) against Hencky strain "
                              "ε = 2 ln(D0/D).",
-    "frames": "Frames through the record with the detected filament edges.",
+    "frames": "Frames from the start of free thinning through the fit window to the last frame with "
+              "a thread, with the filament edges where they were measured; the bar gives the scale.",
 }
 
 CAUTIONS = (
