@@ -335,8 +335,8 @@ def test_a_phase_one_baseline_is_read_from_the_specification_file():
     ink, open_ended = qc.parse_specs(BASELINE_TOML)
     assert ink.baseline == qc.Baseline(name="phase I", lots=("A1", "A2")) and open_ended.baseline is None
     assert ink.baseline.covers("A2", None) and not ink.baseline.covers("A3", "2026-01-01")
-    dated = qc.parse_specs(SPEC_TOML.replace(
-        'max_cv = 0.10\n', 'max_cv = 0.10\n[product.baseline]\nname = "Q1"\nfrom = 2026-01-01\nto = "2026-03-31"\n', 1))[0]
+    table = '[product.baseline]\nname = "Q1"\nfrom = 2026-01-01\nto = "2026-03-31"\n'
+    dated = qc.parse_specs(SPEC_TOML.replace('max_cv = 0.10\n', f'max_cv = 0.10\n{table}', 1))[0]
     assert dated.baseline == qc.Baseline(name="Q1", made_from="2026-01-01", made_to="2026-03-31")
     assert dated.baseline.covers("X", "2026-03-31") and not dated.baseline.covers("X", "2026-04-01")
     assert not dated.baseline.covers("X", None)
