@@ -1,6 +1,7 @@
 """The lot report (thinning.report.lot): content, escaping, self-containment, and how Chromium shows it."""
 
 import base64
+import html as html_module
 import re
 
 import numpy as np
@@ -89,7 +90,7 @@ def test_the_report_states_the_verdict_first_and_escapes_user_text(store, tmp_pa
                   "Western Electric", "Nelson", "Montgomery", "@media print"):
         assert words in html, words
     # limits for this lot come from its 6 earlier lots
-    assert "Limits for this lot from 6 earlier lots" in html
+    assert "Control limits for this lot from 6 earlier lots" in html
 
 
 def test_the_report_is_the_same_for_the_same_records(store, tmp_path):
@@ -100,7 +101,7 @@ def test_the_report_is_the_same_for_the_same_records(store, tmp_path):
 
 def test_a_lot_without_enough_history_says_so(store):
     html = lot_report_html(store.lot_detail("L2"), generated_at="t")
-    assert "No control limits yet: this lot has 2 earlier lots with a mean, and 5 are needed." in html
+    assert "No control limits yet: the baseline of this lot holds 2 earlier lots, and 5 are needed." in html
     assert 'class="verdict verdict-pass"' in html
 
 
@@ -154,3 +155,120 @@ def test_the_console_check_sees_errors(tmp_path, chromium_path):
     page.write_text("<html><body><script>undefinedFunction();</script></body></html>")
     process = run_chromium(chromium_path, page, tmp_path / "profile", "--dump-dom")
     assert any("Uncaught" in line for line in _console_messages(process.stderr))
+
+
+# ---------------------------------------------------------------------------------------------- the control chart
+def _artefact_dir():
+    import os
+    from pathlib import Path
+
+    folder = Path(os.environ.get("THINNING_TEST_ARTEFACTS") or Path(__file__).parent / "artefacts")
+    folder.mkdir(parents=True, exist_ok=True)
+    return folder
+
+
+def _baseline_paragraph(html):
+    start = html.index('id="baseline"')
+    text = re.sub(r"<[^>]+>", "", html[html.index(">", start) + 1:html.index("Run rules checked", start)])
+    return re.sub(r"\s+", " ", html_module.unescape(text)).strip()
+
+
+def test_a_failed_flagged_lot_stays_out_of_the_next_lots_limits_and_the_report_says_so(sqlite_store):
+    from thinning import qc
+
+    summaries = {s.lot: s for s in sqlite_store.lots()}
+    failed = summaries["A/B 7"]
+    assert failed.verdict.verdict == "fail" and "beyond-3-sigma" in failed.chart_flags
+    detail = sqlite_store.lot_detail("NEW")
+    history = [(s.lot, s.relaxation_time.mean) for s, _ in detail.chart]
+    assert [lot for lot, _ in history] == ["L0", "L1", "L2", "L3", "L4", "L5", "A/B 7", "NEW"]
+    # NEW's limits are those computed as if A/B 7 had never been charted
+    without = qc.control_chart([lot for lot in history if lot[0] != "A/B 7"])[-1]
+    point = detail.summary.chart
+    assert (point.centre, point.sigma, point.mr_mean, point.mr_ucl) == (
+        without.centre, without.sigma, without.mr_mean, without.mr_ucl)
+    html = lot_report_html(detail, generated_at="t")
+    words = _baseline_paragraph(html)
+    assert ("The default baseline: earlier lots that passed without a chart flag, and not excluded. "
+            "Formed by 6 lots: L0, L1, L2, L3, L4, L5. Left out: A/B 7: verdict fail; chart flags "
+            "beyond-3-sigma, moving-range-above-limit") in words
+    assert "Control limits for this lot from 6 earlier lots" in html
+    assert "Specification limits of λ: 8 to 12 ms." in html
+
+
+def test_an_exclusion_with_its_reason_changes_the_limits_and_is_named_in_the_report(sqlite_store):
+    before = sqlite_store.lot_detail("NEW").summary.chart
+    sqlite_store.exclude("L3", reason='viscometer out of calibration <see CAPA 7>', by="A. Chemist")
+    detail = sqlite_store.lot_detail("NEW")
+    assert detail.summary.chart.baseline == ("L0", "L1", "L2", "L4", "L5")
+    assert detail.summary.chart.centre != before.centre
+    html = lot_report_html(detail, generated_at="t")
+    words = _baseline_paragraph(html)
+    assert "Formed by 5 lots: L0, L1, L2, L4, L5." in words
+    assert re.search(r"L3: excluded from the baseline by A\. Chemist on \d{4}-\d\d-\d\d \d\d:\d\d UTC: "
+                     r"viscometer out of calibration <see CAPA 7>", words), words
+    assert "viscometer out of calibration &lt;see CAPA 7&gt;" in html   # escaped, as all user text
+    assert "Control limits for this lot from 5 earlier lots" in html
+
+
+def test_a_phase_one_baseline_of_the_specification_is_named_in_the_report(sqlite_store, tmp_path):
+    (tmp_path / "phase-one.toml").write_text(SPECS + '\n[product.baseline]\nname = "validation 2026"\n'
+                                             'lots = ["L0", "L1", "L2", "L3", "L4", "GONE"]\n')
+    sqlite_store.load_specs(tmp_path / "phase-one.toml")
+    html = lot_report_html(sqlite_store.lot_detail("NEW"), generated_at="t")
+    words = _baseline_paragraph(html)
+    assert ("The phase-I baseline “validation 2026” of the specification (lots L0, L1, L2, L3, L4, GONE): "
+            "its lots made before this one. Formed by 5 lots: L0, L1, L2, L3, L4.") in words
+    assert "L5: not in the baseline 'validation 2026'" in words
+    assert "Named in the baseline but without a lot mean in the records: GONE." in words
+
+
+def test_the_chart_draws_specification_and_control_limits_apart(sqlite_store):
+    from matplotlib.colors import to_hex
+
+    from thinning.plots import plot_control_chart
+
+    detail = sqlite_store.lot_detail("NEW")
+    ax_x, ax_mr = plot_control_chart(detail)
+    legend = [text.get_text() for text in ax_x.get_legend().get_texts()]
+    assert "specification limit" in legend and "control limit (3σ)" in legend
+    handles = dict(zip(*reversed(ax_x.get_legend_handles_labels())))
+    spec, control = handles["specification limit"], handles["control limit (3σ)"]
+    assert spec.get_linestyle() == "-" and control.get_linestyle() == "--"
+    assert to_hex(spec.get_color()) != to_hex(control.get_color())
+    # both from the Okabe–Ito colour-blind-safe palette
+    okabe_ito = {"#e69f00", "#56b4e9", "#009e73", "#f0e442", "#0072b2", "#d55e00", "#cc79a7", "#000000"}
+    assert {to_hex(spec.get_color()), to_hex(control.get_color())} <= okabe_ito
+    # the specification limits at 8 and 12 ms, both drawn, one legend entry
+    spec_lines = [line for line in ax_x.get_lines() if to_hex(line.get_color()) == to_hex(spec.get_color())]
+    assert sorted(line.get_ydata()[0] for line in spec_lines) == [8.0, 12.0]
+    assert legend.count("specification limit") == 1
+    assert "lot mean λ (ms)" == ax_x.get_ylabel()
+    assert "control limit (D4 × mean MR)" in [t.get_text() for t in ax_mr.get_legend().get_texts()]
+    # the lot left out of NEW's baseline is marked
+    assert "left out of this lot's baseline" in legend
+
+
+@pytest.mark.chromium
+def test_chromium_shows_the_control_chart_with_both_limits(sqlite_store, tmp_path, chromium_path):
+    from matplotlib.image import imread, imsave
+
+    page = write_lot_report(sqlite_store, "NEW", out_dir=tmp_path / "out")
+    shot = tmp_path / "whole-page.png"
+    process = run_chromium(chromium_path, page, tmp_path / "profile", f"--screenshot={shot}", window=(1280, 4200))
+    assert process.returncode == 0, process.stderr[-2000:]
+    assert _console_messages(process.stderr) == []
+    pixels = imread(shot)[..., :3] * 255
+
+    def near(rgb):
+        return np.all(np.abs(pixels - np.array(rgb)) < 12, axis=-1)
+
+    spec_blue, control_red = near((0x00, 0x72, 0xB2)), near((0xD5, 0x5E, 0x00))
+    assert spec_blue.sum() > 300 and control_red.sum() > 100
+    rows = np.nonzero(spec_blue.any(axis=1) | control_red.any(axis=1))[0]
+    cols = np.nonzero(spec_blue.any(axis=0) | control_red.any(axis=0))[0]
+    top, bottom = max(rows.min() - 60, 0), min(rows.max() + 120, pixels.shape[0])
+    left, right = max(cols.min() - 90, 0), min(cols.max() + 40, pixels.shape[1])
+    chart = pixels[top:bottom, left:right] / 255
+    assert chart.shape[0] > 200 and chart.shape[1] > 400
+    imsave(_artefact_dir() / "lot-report-control-chart.png", chart)

@@ -260,3 +260,135 @@ def test_a_binary_specifications_file_is_one_sentence_and_exit_2(tmp_path):
                            "--db", f"sqlite:///{tmp_path / 'r.db'}"], capture_output=True, text=True)
     assert proc.returncode == 2 and "not UTF-8 text" in proc.stderr
     assert len(proc.stderr.strip().splitlines()) == 1
+
+
+# ---------------------------------------------------------------------------------------------- baselines
+STEADY = [0.0100, 0.0102, 0.0099, 0.0101, 0.0100, 0.0098]
+
+
+def _limits(point):
+    return point.centre, point.sigma, point.mr_mean, point.mr_ucl
+
+
+def test_a_failed_flagged_lot_leaves_the_baseline_of_the_lots_after_it():
+    # six steady lots, L6 far above them (it fails its specification and breaks the 3-sigma rule),
+    # then L7: its limits are those computed as if L6 had never been made (Montgomery, phase I)
+    values = STEADY + [0.0125, 0.0101]
+    lots = [(f"L{i}", v) for i, v in enumerate(values)]
+    verdicts = {key: "pass" for key, _ in lots} | {"L6": "fail"}
+    points = qc.control_chart(lots, verdicts=verdicts)
+    assert "beyond-3-sigma" in points[6].flags
+    without = qc.control_chart([lot for lot in lots if lot[0] != "L6"])
+    assert _limits(points[7]) == _limits(without[6])
+    assert points[7].centre == pytest.approx(statistics.fmean(STEADY), rel=1e-12)
+    assert points[7].baseline == tuple(f"L{i}" for i in range(6)) and points[7].n_baseline == 6
+    assert points[7].left_out == (("L6", "verdict fail; chart flags beyond-3-sigma, moving-range-above-limit"),)
+    assert points[7].baseline_name is None
+    # the lot's own moving range is still its change from the lot charted before it
+    assert points[7].moving_range == pytest.approx(0.0125 - 0.0101)
+    # with every earlier lot in the baseline (the old rule) L6 would have pulled the centre up
+    assert qc.control_chart(lots, verdicts=verdicts)[7].centre < statistics.fmean(values[:7])
+
+
+def test_a_lot_in_review_or_flagged_alone_stays_out_and_a_product_without_spec_keeps_its_chart():
+    values = STEADY + [0.0101, 0.0100]
+    lots = [(f"L{i}", v) for i, v in enumerate(values)]
+    points = qc.control_chart(lots, verdicts={key: "pass" for key, _ in lots} | {"L2": "review"})
+    assert points[-1].baseline == ("L0", "L1", "L3", "L4", "L5", "L6")
+    assert points[-1].left_out == (("L2", "verdict review"),)
+    # no verdicts (a product without a specification, whose lots cannot pass): flags alone decide
+    assert qc.control_chart(lots)[-1].baseline == tuple(f"L{i}" for i in range(7))
+
+
+def test_an_excluded_lot_changes_the_limits_and_says_why():
+    values = STEADY + [0.0104, 0.0100]
+    lots = [(f"L{i}", v) for i, v in enumerate(values)]
+    plain = qc.control_chart(lots)
+    excluded = qc.control_chart(lots, excluded={"L3": "pump seal replaced mid-lot"})
+    assert _limits(excluded[-1]) != _limits(plain[-1])
+    assert _limits(excluded[-1]) == _limits(qc.control_chart([lot for lot in lots if lot[0] != "L3"])[-1])
+    assert excluded[-1].left_out == (("L3", "excluded: pump seal replaced mid-lot"),)
+    # five lots are still needed: with L3 out, L5 has only four before it
+    assert excluded[5].centre is None and excluded[5].n_baseline == 4
+
+
+def test_a_phase_one_baseline_fixes_the_limits_for_the_lots_after_it():
+    values = STEADY + [0.0125, 0.0101, 0.0103]
+    lots = [(f"L{i}", v) for i, v in enumerate(values)]
+    named = ["L0", "L1", "L2", "L3", "L4"]
+    points = qc.control_chart(lots, verdicts={k: "fail" for k, _ in lots}, phase_one=("Q1 2026", named))
+    fixed = qc.control_limits(values[:5])
+    # phase II: every lot after the baseline is judged against the same limits, whatever the verdicts
+    assert all(_limits(p) == fixed for p in points[5:])
+    assert all(p.baseline == tuple(named) and p.baseline_name == "Q1 2026" for p in points[5:])
+    assert points[-1].left_out == (("L5", "not in the baseline 'Q1 2026'"), ("L6", "not in the baseline 'Q1 2026'"),
+                                   ("L7", "not in the baseline 'Q1 2026'"))
+    # a baseline lot itself is judged only against the baseline lots before it (never itself)
+    assert points[4].centre is None and points[4].n_baseline == 4
+
+
+BASELINE_TOML = SPEC_TOML.replace('max_cv = 0.10\n', 'max_cv = 0.10\n\n[product.baseline]\nname = "phase I"\n'
+                                  'lots = ["A1", "A2"]\n', 1)
+
+
+def test_a_phase_one_baseline_is_read_from_the_specification_file():
+    ink, open_ended = qc.parse_specs(BASELINE_TOML)
+    assert ink.baseline == qc.Baseline(name="phase I", lots=("A1", "A2")) and open_ended.baseline is None
+    assert ink.baseline.covers("A2", None) and not ink.baseline.covers("A3", "2026-01-01")
+    table = '[product.baseline]\nname = "Q1"\nfrom = 2026-01-01\nto = "2026-03-31"\n'
+    dated = qc.parse_specs(SPEC_TOML.replace('max_cv = 0.10\n', f'max_cv = 0.10\n{table}', 1))[0]
+    assert dated.baseline == qc.Baseline(name="Q1", made_from="2026-01-01", made_to="2026-03-31")
+    assert dated.baseline.covers("X", "2026-03-31") and not dated.baseline.covers("X", "2026-04-01")
+    assert not dated.baseline.covers("X", None)
+    assert dated.baseline.described() == "lots made 2026-01-01 to 2026-03-31"
+    assert qc.baseline_from_mapping("p", dated.baseline.as_mapping()) == dated.baseline
+    assert qc.baseline_from_mapping("p", ink.baseline.as_mapping()) == ink.baseline
+
+
+@pytest.mark.parametrize("table, words", [
+    ('lots = ["A1"]', "needs a name"),
+    ('name = "b"', "needs lots"),
+    ('name = "b"\nlots = ["A1"]\nfrom = 2026-01-01', "not both"),
+    ('name = "b"\nlots = []', "list of lot ids"),
+    ('name = "b"\nlots = ["A1", "A1"]', "twice"),
+    ('name = "b"\nfrom = "January"', "must be a date"),
+    ('name = "b"\nfrom = 2026-02-01\nto = 2026-01-01', "is after"),
+    ('name = "b"\nlot = ["A1"]', "unknown baseline key 'lot'"),
+])
+def test_bad_baselines_are_one_sentence_errors(table, words):
+    text = SPEC_TOML.replace('max_cv = 0.10\n', f'max_cv = 0.10\n[product.baseline]\n{table}\n', 1)
+    with pytest.raises(qc.SpecError) as caught:
+        qc.parse_specs(text)
+    assert words in str(caught.value) and "\n" not in str(caught.value)
+
+
+def _summary_inputs(values, *, made_on=None, verdict_of=None):
+    rows, measurements, failures = [], {}, {}
+    for i, v in enumerate(values):
+        key = ("ink", f"L{i}")
+        rows.append({"product": "ink", "lot": f"L{i}", "made_on": (made_on or {}).get(i, f"2026-01-{i + 1:02d}"),
+                     "first_analysed_at": "2026-02-01T00:00:00Z"})
+        measurements[key] = [{"sample": "S", "replicate": str(r), "sha256": f"{i}{r}", "status": "ok",
+                              "quality": "good", "relaxation_time_s": v, "filament_lifetime_s": None,
+                              "extensional_viscosity_max_Pa_s": None} for r in range(3)]
+        failures[key] = []
+    return rows, measurements, failures
+
+
+def test_lot_summaries_use_the_specification_baseline_and_the_exclusions():
+    values = STEADY + [0.0125, 0.0101]
+    rows, measurements, failures = _summary_inputs(values)
+    spec = qc.Spec(name="ink", relaxation_time_s=(0.008, 0.012))
+    default = qc.lot_summaries(rows, measurements, failures, {"ink": spec})
+    assert default[6].verdict.verdict == "fail" and default[7].chart.baseline == tuple(f"L{i}" for i in range(6))
+    dated = qc.Spec(name="ink", relaxation_time_s=(0.008, 0.012),
+                    baseline=qc.Baseline(name="Jan", made_from="2026-01-02", made_to="2026-01-07"))
+    by_date = qc.lot_summaries(rows, measurements, failures, {"ink": dated})
+    # L6 (made 2026-01-07, failed) is in the named range: a named baseline takes its lots as named
+    assert by_date[7].chart.baseline == ("L1", "L2", "L3", "L4", "L5", "L6")
+    assert by_date[7].chart.left_out == (("L0", "not in the baseline 'Jan'"),)
+    excluded = qc.lot_summaries(rows, measurements, failures, {"ink": dated}, {("ink", "L6"): "seal"})
+    assert excluded[7].chart.baseline == ("L1", "L2", "L3", "L4", "L5")
+    assert dict(excluded[7].chart.left_out)["L6"] == "excluded: seal"
+    # the verdicts never move with the baseline
+    assert [s.verdict for s in default] == [s.verdict for s in by_date] == [s.verdict for s in excluded]

@@ -424,11 +424,13 @@ def test_a_database_of_schema_version_1_keeps_its_verdicts_until_the_specificati
         store.load_specs(_specs(tmp_path))
         store.load_batch(tmp_path / "b")
     engine = create_engine(db_url)
-    with engine.begin() as conn:  # back to version 1: no decision_rule column, no version 2 or 3
+    with engine.begin() as conn:  # back to version 1: no decision_rule column, no version 2, 3 or 4
         conn.exec_driver_sql("ALTER TABLE products DROP COLUMN decision_rule")
+        conn.exec_driver_sql("ALTER TABLE products DROP COLUMN baseline_json")
         conn.exec_driver_sql("ALTER TABLE measurements DROP COLUMN outputs_json")
         conn.exec_driver_sql("UPDATE schema_version SET version = 1")
         conn.exec_driver_sql("DROP TABLE verdict_changes")
+        conn.exec_driver_sql("DROP TABLE baseline_exclusions")
     engine.dispose()
     with rec.open_records(db_url) as store:
         (lot,) = store.lots()
@@ -442,7 +444,7 @@ def test_a_database_of_schema_version_1_keeps_its_verdicts_until_the_specificati
         (change,) = store.lot_detail("A1").verdict_changes
         assert (change["old_verdict"], change["new_verdict"], change["cause"]) == (
             "pass", "review", "specification loaded")
-    assert count(db_url, rec.schema_version) == 3
+    assert count(db_url, rec.schema_version) == 4   # versions 1 to 4
     shown = run(["show", "A1"], db_url)
     assert "re-evaluated" in shown.output and "pass → review" in shown.output
     from thinning.report.lot import write_lot_report
@@ -455,6 +457,137 @@ def test_a_database_of_schema_version_1_keeps_its_verdicts_until_the_specificati
     assert "re-evaluated" not in again.output
     with rec.open_records(db_url) as store:
         assert len(store.lot_detail("A1").verdict_changes) == 1
+
+
+BASELINE_SPECS = SPECS.replace('max_cv = 0.10\n', 'max_cv = 0.10\n\n[product.baseline]\nname = "phase I"\n'
+                               'lots = ["P0", "P1", "P2", "P3", "P4"]\n', 1)
+#: six steady lots, a seventh far above them (it fails [8, 12] ms and breaks the 3-sigma rule), an eighth
+BASELINE_LAMS = [0.0100, 0.0102, 0.0099, 0.0101, 0.0100, 0.0098, 0.0125, 0.0101]
+
+
+def _baseline_batch(tmp_path):
+    rows = []
+    for i, lam in enumerate(BASELINE_LAMS):
+        rows += lot_rows("ink-A", f"P{i}", [lam * 0.99, lam, lam * 1.01], made_on=f"2026-01-{i + 10:02d}")
+    return write_batch(tmp_path / "b", rows)
+
+
+def test_a_phase_one_baseline_is_stored_with_the_specification(db_url, tmp_path):
+    batch = _baseline_batch(tmp_path)
+    (tmp_path / "phase-one.toml").write_text(BASELINE_SPECS)
+    with rec.open_records(db_url) as store:
+        store.load_specs(_specs(tmp_path))
+        store.load_batch(batch)
+        default = {s.lot: s for s in store.lots()}
+        assert default["P6"].verdict.verdict == "fail" and "beyond-3-sigma" in default["P6"].chart_flags
+        assert default["P7"].chart.baseline == ("P0", "P1", "P2", "P3", "P4", "P5")   # P6 failed and flagged
+        changes = []
+        store.load_specs(tmp_path / "phase-one.toml", changes=changes)
+        assert changes == []   # a baseline changes no verdict
+        assert store.specs()["ink-A"].baseline == rec_baseline("phase I", lots=("P0", "P1", "P2", "P3", "P4"))
+        named = {s.lot: s for s in store.lots()}
+    assert all(named[f"P{i}"].chart.baseline == ("P0", "P1", "P2", "P3", "P4") for i in (5, 6, 7))
+    assert named["P7"].chart.baseline_name == "phase I"
+    assert named["P5"].chart.centre == named["P7"].chart.centre == pytest.approx(np.mean(BASELINE_LAMS[:5]))
+    assert {k: s.verdict.verdict for k, s in named.items()} == {k: s.verdict.verdict for k, s in default.items()}
+    # a date range instead; loading the plain specification again returns to the default baseline
+    (tmp_path / "phase-one.toml").write_text(SPECS.replace(
+        'max_cv = 0.10\n', 'max_cv = 0.10\n[product.baseline]\nname = "Jan"\nfrom = 2026-01-11\n', 1))
+    with rec.open_records(db_url) as store:
+        store.load_specs(tmp_path / "phase-one.toml")
+        assert store.lots()[-1].chart.baseline == ("P1", "P2", "P3", "P4", "P5", "P6")
+        store.load_specs(_specs(tmp_path))
+        assert store.specs()["ink-A"].baseline is None
+        assert store.lots()[-1].chart.baseline == ("P0", "P1", "P2", "P3", "P4", "P5")
+
+
+def rec_baseline(name, **kwargs):
+    from thinning.qc import Baseline
+
+    return Baseline(name=name, **kwargs)
+
+
+def test_an_exclusion_with_a_reason_changes_the_limits_and_is_kept_with_who_when_why(db_url, tmp_path):
+    batch = _baseline_batch(tmp_path)
+    assert run(["load-specs", str(_specs(tmp_path))], db_url).exit_code == 0
+    assert run(["load", str(batch)], db_url).exit_code == 0
+    with rec.open_records(db_url) as store:
+        before = {s.lot: s for s in store.lots()}
+    done = run(["exclude", "P3", "--reason", "pump seal  replaced mid-lot", "--by", "A. Chemist"], db_url)
+    assert done.exit_code == 0, done.output
+    assert done.output.splitlines()[0] == "ink-A lot P3 is excluded from its control-chart baselines: pump seal " \
+                                          "replaced mid-lot"
+    with rec.open_records(db_url) as store:
+        after = {s.lot: s for s in store.lots()}
+        detail = store.lot_detail("P7")
+    assert after["P7"].chart.baseline == ("P0", "P1", "P2", "P4", "P5")
+    assert after["P7"].chart.centre != before["P7"].chart.centre
+    assert dict(after["P7"].chart.left_out)["P3"] == "excluded: pump seal replaced mid-lot"
+    assert {k: s.verdict for k, s in after.items()} == {k: s.verdict for k, s in before.items()}
+    (e,) = detail.exclusions
+    assert (e["lot"], e["reason"], e["excluded_by"]) == ("P3", "pump seal replaced mid-lot", "A. Chemist")
+    assert e["excluded_at"] and e["withdrawn_at"] is None
+    shown = run(["show", "P3"], db_url)
+    assert "excluded from the control-chart baseline" in shown.output and "by A. Chemist: pump seal" in shown.output
+    again = run(["exclude", "P3", "--reason", "twice"], db_url)
+    assert again.exit_code == 2 and "already excluded" in again.output
+    empty = run(["exclude", "P2", "--reason", "  "], db_url)
+    assert empty.exit_code == 2 and "--reason" in empty.output and "Traceback" not in empty.output
+    unknown = run(["exclude", "NOPE", "--reason", "x"], db_url)
+    assert unknown.exit_code == 2 and "no lot 'NOPE'" in unknown.output
+    back = run(["exclude", "P3", "--withdraw", "--reason", "seal was not the cause", "--by", "QA"], db_url)
+    assert back.exit_code == 0, back.output
+    assert "may enter its control-chart baselines again" in back.output
+    with rec.open_records(db_url) as store:
+        restored = {s.lot: s for s in store.lots()}
+        (kept,) = store.lot_detail("P3").exclusion_history
+    assert restored["P7"].chart == before["P7"].chart
+    assert (kept["withdrawn_by"], kept["withdrawn_reason"]) == ("QA", "seal was not the cause")
+    assert count(db_url, rec.baseline_exclusions) == 1
+    not_excluded = run(["exclude", "P3", "--withdraw", "--reason", "x"], db_url)
+    assert not_excluded.exit_code == 2 and "is not excluded" in not_excluded.output
+
+
+def test_excluding_a_lot_prints_the_chart_flags_it_moves(db_url, tmp_path):
+    # Q2 is high but early (no limits yet, so no flag): in the baseline it widens the limits and Q6
+    # passes unflagged; excluded, the limits narrow (centre 10.04 ms, sigma 0.1/1.128 ms) and Q6 at
+    # 10.45 ms lies beyond 3 sigma
+    lams = [0.0100, 0.0101, 0.0106, 0.0100, 0.0101, 0.0100, 0.01045]
+    rows = []
+    for i, lam in enumerate(lams):
+        rows += lot_rows("ink-A", f"Q{i}", [lam] * 3, made_on=f"2026-01-{i + 10:02d}")
+    write_batch(tmp_path / "b", rows)
+    with rec.open_records(db_url) as store:
+        store.load_batch(tmp_path / "b")
+        assert all(s.chart_flags == () for s in store.lots())
+    done = run(["exclude", "Q2", "--reason", "trial lot", "--by", "me"], db_url)
+    assert done.exit_code == 0, done.output
+    assert done.output.splitlines()[1] == ("chart flags of lot Q6: none → beyond-3-sigma, "
+                                           "moving-range-above-limit")
+    with rec.open_records(db_url) as store:
+        (q6,) = [s for s in store.lots() if s.lot == "Q6"]
+        # the verdict stays (no specification: review), the flag is new
+        assert q6.verdict.verdict == "review" and q6.chart.centre == pytest.approx(0.01004)
+
+
+def test_a_version_3_database_gains_the_baseline_tables_in_place(db_url, tmp_path):
+    write_batch(tmp_path / "b", lot_rows("ink-A", "V3", [0.010]))
+    with rec.open_records(db_url) as store:
+        store.load_batch(tmp_path / "b")
+    engine = create_engine(db_url)
+    with engine.begin() as conn:  # back to version 3: no baseline_json, no baseline_exclusions
+        conn.exec_driver_sql("ALTER TABLE products DROP COLUMN baseline_json")
+        conn.exec_driver_sql("DROP TABLE baseline_exclusions")
+        conn.exec_driver_sql("UPDATE schema_version SET version = 3")
+    engine.dispose()
+    (tmp_path / "specs.toml").write_text(BASELINE_SPECS)
+    with rec.open_records(db_url) as store:
+        store.load_specs(tmp_path / "specs.toml")
+        assert store.specs()["ink-A"].baseline.name == "phase I"
+        store.exclude("V3", reason="migrated", by="test")
+        assert store.lot_detail("V3").exclusions[0]["reason"] == "migrated"
+    assert count(db_url, rec.schema_version) == 2   # versions 3 and 4
+    assert rec.SCHEMA_VERSION == 4
 
 
 def test_a_result_json_that_is_not_an_object_is_refused_by_name(db_url, tmp_path):
@@ -516,12 +649,13 @@ def test_a_version_2_database_gains_output_digests_on_the_next_load(tmp_path):
     engine = create_engine(db_url)
     with engine.begin() as conn:
         conn.exec_driver_sql("ALTER TABLE measurements DROP COLUMN outputs_json")
+        conn.exec_driver_sql("ALTER TABLE products DROP COLUMN baseline_json")
         conn.exec_driver_sql("UPDATE schema_version SET version = 2")
     engine.dispose()
     _with_row_records(batch)
     with rec.open_records(db_url) as store:
         assert store.load_batch(batch)["unchanged"] == 1
-    assert count(db_url, rec.schema_version) == 2   # versions 2 and 3
+    assert count(db_url, rec.schema_version) == 3   # versions 2, 3 and 4
     assert count(db_url, rec.measurements, rec.measurements.c.outputs_json.is_not(None)) == 1
 
 

@@ -114,6 +114,7 @@ def records():
       thinning records lots --product harbour-cyan
       thinning records show HC-0107
       thinning records export --out all.csv
+      thinning records exclude HC-0107 --reason "pump seal replaced mid-lot"
     """
 
 
@@ -204,6 +205,11 @@ def show_command(lot, db_url, product, as_csv, history):
                       f"{c['new_decision_rule'] or 'simple'}")
     if summary.chart_flags:
         console.print("chart flags: " + ", ".join(summary.chart_flags))
+    for e in detail.exclusion_history:
+        console.print(f"excluded from the control-chart baseline {display.timestamp(e['excluded_at'])} by "
+                      f"{escape(e['excluded_by'])}: {escape(e['reason'])}"
+                      + (f"; withdrawn {display.timestamp(e['withdrawn_at'])} by {escape(e['withdrawn_by'])}: "
+                         f"{escape(e['withdrawn_reason'] or '')}" if e["withdrawn_at"] else ""))
     time = dict(verdict.units).get("relaxation_time_s") or display.time_unit(
         lam.mean, *(m["relaxation_time_s"] for m in detail.measurements))
     if lam.mean is not None:
@@ -288,6 +294,45 @@ def load_specs_command(specs_file, db_url):
                 f" (decision rule {c['old_decision_rule'] or 'simple'} → {c['new_decision_rule']})")
         click.echo(f"re-evaluated: {c['product']} lot {c['lot']}: {c['old_verdict']} → "
                    f"{c['new_verdict']}{rule}")
+
+
+def _who() -> str:
+    import getpass
+
+    try:
+        return getpass.getuser()
+    except Exception:  # no login name (some containers): --by is then needed
+        return ""
+
+
+@records.command("exclude")
+@click.argument("lot")
+@click.option("--reason", required=True, help="Why (kept with the exclusion, shown in lot reports).")
+@click.option("--by", "by", default=None, metavar="NAME",
+              help="Who decides (kept with the exclusion). Default: your login name.")
+@click.option("--withdraw", is_flag=True, help="End the lot's exclusion instead (kept as history).")
+@db_option
+@product_option
+def exclude_command(lot, reason, by, withdraw, db_url, product):
+    """Exclude a lot from its product's control-chart baselines, with the reason (or, with
+    --withdraw, let it back in). Verdicts do not change; the chart flags of later lots may, and
+    are printed.
+
+    Example:
+
+    \b
+      thinning records exclude HC-0107 --reason "pump seal replaced mid-lot"
+      thinning records exclude HC-0107 --withdraw --reason "seal was not the cause (CAPA 12)"
+    """
+    with _open(db_url) as store:
+        done = store.exclude(lot, reason=reason, by=by if by is not None else _who(), product=product,
+                             withdraw=withdraw)
+    what = "may enter its control-chart baselines again" if withdraw else \
+        "is excluded from its control-chart baselines"
+    click.echo(f"{done['product']} lot {done['lot']} {what}: {' '.join(reason.split())}")
+    for c in done["flag_changes"]:
+        click.echo(f"chart flags of lot {c['lot']}: {', '.join(c['old']) or 'none'} → "
+                   f"{', '.join(c['new']) or 'none'}")
 
 
 @records.command("load")

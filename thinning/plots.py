@@ -747,8 +747,15 @@ def plot_control_chart(detail, *, axes=None):
 
     ``detail`` a :class:`thinning.records.LotDetail`; ``axes`` two Axes (the
     chart of lot means above, the moving ranges below), else a new figure's.
-    Returns the two Axes.
+    Returns the two Axes. The X chart draws each lot's control limits (centre ±
+    3σ from that lot's baseline: :func:`thinning.qc.control_chart`, after
+    Montgomery, *Introduction to Statistical Quality Control*) dashed, and the
+    product's specification limits of λ solid in another colour, both named in
+    the legend; the lots left out of this lot's baseline are marked. Values in
+    the unit of the lot's view (:mod:`thinning.display`).
     """
+    from . import display
+
     if axes is None:
         fig = Figure(figsize=(7.0, 4.6), dpi=DPI, layout="constrained")
         axes = fig.subplots(2, 1, sharex=True, height_ratios=(3, 2))
@@ -757,27 +764,49 @@ def plot_control_chart(detail, *, axes=None):
     lots = [summary.lot for summary, _ in detail.chart]
     x = np.arange(len(points))
     nan = float("nan")
+    unit = dict(detail.summary.verdict.units).get("relaxation_time_s") or \
+        display.time_unit(*(p.value for p in points))
 
     def series(name):
-        return np.array([nan if getattr(p, name) is None else getattr(p, name) for p in points]) * 1e3
+        return np.array([nan if getattr(p, name) is None else unit.of(getattr(p, name)) for p in points])
 
+    # colours from the Okabe–Ito palette (safe for the common colour-vision deficiencies; Okabe M.,
+    # Ito K. (2002), Color Universal Design); the two kinds of limit differ in line style too
+    # (specification solid, control dashed), so they part even in grey print
+    colours = {"value": "#000000", "centre": "#999999", "control": "#D55E00", "spec": "#0072B2",
+               "flag": "#CC79A7", "this": "#E69F00", "left_out": "#56B4E9"}
     value, centre, ucl, lcl = series("value"), series("centre"), series("ucl"), series("lcl")
     mr, mr_ucl = series("moving_range"), series("mr_ucl")
     flagged = np.array([bool(p.flags) for p in points], dtype=bool)
     this = np.array([lot == detail.summary.lot for lot in lots], dtype=bool)
-    ax_x.plot(x, value, "-o", color="#3d5a80", ms=4, lw=1, label="lot mean λ")
-    ax_x.step(x, centre, where="mid", color="#555555", lw=1, label="centre (earlier lots)")
-    ax_x.step(x, ucl, where="mid", color="#b42318", lw=1, ls="--", label="±3 sigma")
-    ax_x.step(x, lcl, where="mid", color="#b42318", lw=1, ls="--")
-    ax_x.plot(x[flagged], value[flagged], "s", color="#b42318", ms=6, label="chart flag")
-    ax_mr.plot(x[1:], mr[1:], "-o", color="#3d5a80", ms=4, lw=1, label="moving range")
-    ax_mr.step(x, mr_ucl, where="mid", color="#b42318", lw=1, ls="--", label="D4 × mean MR")
+    own = detail.summary.chart
+    left_out = {key for key, _ in own.left_out} if own is not None else set()
+    outside = np.array([lot in left_out for lot in lots], dtype=bool)
+    ax_x.plot(x, value, "-o", color=colours["value"], ms=4, lw=1, label="lot mean λ")
+    ax_x.step(x, centre, where="mid", color=colours["centre"], lw=1.2, ls=":", label="centre line")
+    ax_x.step(x, ucl, where="mid", color=colours["control"], lw=1.3, ls="--", label="control limit (3σ)")
+    ax_x.step(x, lcl, where="mid", color=colours["control"], lw=1.3, ls="--")
+    spec = detail.spec.limits.get("relaxation_time_s") if detail.spec is not None else None
+    drawn = False
+    for limit in spec or ():
+        if np.isfinite(limit):
+            ax_x.axhline(unit.of(limit), color=colours["spec"], lw=1.8, ls="-",
+                         label=None if drawn else "specification limit")
+            drawn = True
+    ax_x.plot(x[flagged], value[flagged], "s", color=colours["flag"], ms=7, label="chart flag")
+    if outside.any():
+        ax_x.plot(x[outside], value[outside], "x", color=colours["left_out"], ms=9, mew=2,
+                  label="left out of this lot's baseline")
+    ax_mr.plot(x[1:], mr[1:], "-o", color=colours["value"], ms=4, lw=1, label="moving range")
+    ax_mr.step(x, mr_ucl, where="mid", color=colours["control"], lw=1.3, ls="--",
+               label="control limit (D4 × mean MR)")
     for ax, y in ((ax_x, value), (ax_mr, mr)):
-        ax.plot(x[this], y[this], "o", ms=13, mfc="none", mec="#e07a1f", mew=2.2, label="this lot")
+        ax.plot(x[this], y[this], "o", ms=13, mfc="none", mec=colours["this"], mew=2.2, label="this lot")
         ax.grid(True, alpha=0.3)
-        ax.legend(fontsize=7, frameon=False, loc="best", ncol=3)
-    ax_x.set_ylabel("lot mean λ (ms)")
-    ax_mr.set_ylabel("moving range (ms)")
+    ax_x.legend(fontsize=7, frameon=False, loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=4)
+    ax_mr.legend(fontsize=7, frameon=False, loc="best", ncol=3)
+    ax_x.set_ylabel(f"lot mean λ ({unit.label})")
+    ax_mr.set_ylabel(f"moving range ({unit.label})")
     ax_mr.set_xticks(x, lots, rotation=45 if len(lots) > 6 else 0, ha="right" if len(lots) > 6 else "center",
                      fontsize=7)
     ax_mr.set_xlabel("lot, in production order")

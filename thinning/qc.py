@@ -25,9 +25,19 @@ The rules are those of the contract (``docs/contract.md``, "Verdicts"):
   interval), the other ``review`` reasons as above.
 
 Control charts (:func:`control_chart`) are individuals (X) and moving-range
-(MR) charts of the lot means of λ, one product at a time, in production order.
-The limits for a lot come from the product's earlier lots only (at least
-:data:`MIN_BASELINE_LOTS` of them) and never include the lot itself. A lot
+(MR) charts of the lot means of λ, one product at a time, in production order
+(Montgomery D.C., *Introduction to Statistical Quality Control*, Wiley: the
+Shewhart control chart for individual measurements and its moving-range chart).
+The limits for a lot come from its **baseline**: earlier lots of the product
+only (at least :data:`MIN_BASELINE_LOTS` of them), never the lot itself. By
+default the baseline is every earlier lot that passed without a chart flag and
+is not excluded (Montgomery's phase I practice: points with an assignable
+cause are removed before the limits are computed, so that a failed, flagged
+lot does not pull the centre line or widen the limits for the lots after it).
+A product's specification may instead fix a named phase-I baseline
+(:class:`Baseline`: lots listed, or a ``made_on`` date range); the lots after it
+are then judged against limits that no longer move (phase II). A lot excluded
+from baselines with a recorded reason (``records exclude``) enters none. A lot
 that breaks a run rule keeps its verdict and gets ``chart_flags``; the rule
 names are :data:`CHART_RULES`.
 """
@@ -103,6 +113,9 @@ class Spec:
     replicates: int = 3
     max_cv: float = 0.10
     decision_rule: str = DECISION_RULES[0]
+    #: a fixed phase-I baseline for the control chart (``[product.baseline]``), else None: the
+    #: default baseline (earlier lots that passed without a chart flag)
+    baseline: "Baseline | None" = None
 
     @property
     def limits(self) -> dict[str, tuple[float, float]]:
@@ -112,6 +125,103 @@ class Spec:
 
 #: More valid replicates per lot than this is no lab's plan: a typing mistake.
 MAX_REPLICATES = 100
+
+
+@dataclass(frozen=True)
+class Baseline:
+    """A named phase-I baseline of a product's control chart (``[product.baseline]``).
+
+    Either ``lots`` (lot ids, as in the manifest) or a ``made_on`` range
+    ``made_from`` … ``made_to`` (ISO dates, inclusive; one end may be open).
+    A lot is judged against the baseline lots that come before it in production
+    order (the contract: limits come from earlier lots, never the lot itself), so
+    every lot after the baseline sees the same, fixed limits (Montgomery's phase II).
+    """
+
+    name: str
+    lots: tuple[str, ...] = ()
+    made_from: str | None = None
+    made_to: str | None = None
+
+    def covers(self, lot: str, made_on: str | None) -> bool:
+        """Whether the lot belongs to the baseline."""
+        if self.lots:
+            return lot in self.lots
+        if made_on is None:
+            return False
+        return ((self.made_from is None or made_on >= self.made_from)
+                and (self.made_to is None or made_on <= self.made_to))
+
+    def described(self) -> str:
+        """``lots A, B, C`` or ``lots made 2026-01-01 to 2026-01-31`` (for sentences)."""
+        if self.lots:
+            return "lots " + ", ".join(self.lots)
+        if self.made_from and self.made_to:
+            return f"lots made {self.made_from} to {self.made_to}"
+        if self.made_from:
+            return f"lots made on or after {self.made_from}"
+        return f"lots made on or before {self.made_to}"
+
+    def as_mapping(self) -> dict:
+        """The TOML keys (``name``, ``lots`` or ``from`` / ``to``), e.g. to store as JSON."""
+        found: dict = {"name": self.name}
+        if self.lots:
+            found["lots"] = list(self.lots)
+        if self.made_from:
+            found["from"] = self.made_from
+        if self.made_to:
+            found["to"] = self.made_to
+        return found
+
+
+def _iso_date(name: str, key: str, value) -> str:
+    import datetime as _dt
+
+    if isinstance(value, _dt.datetime):
+        value = value.date()
+    if isinstance(value, _dt.date):
+        return value.isoformat()
+    if isinstance(value, str):
+        try:
+            return _dt.date.fromisoformat(value.strip()).isoformat()
+        except ValueError:
+            pass
+    raise SpecError(f"product {name!r}: baseline {key} must be a date such as 2026-01-31.")
+
+
+def baseline_from_mapping(name: str, entry) -> Baseline:
+    """One ``[product.baseline]`` table → :class:`Baseline`, checking every field."""
+    if not isinstance(entry, Mapping):
+        raise SpecError(f"product {name!r}: baseline must be a table ([product.baseline]) with a name "
+                        "and lots = [...] or from = / to = dates.")
+    known = {"name", "lots", "from", "to"}
+    unknown = sorted(set(entry) - known)
+    if unknown:
+        raise SpecError(f"product {name!r}: unknown baseline key {unknown[0]!r} (known: "
+                        f"{', '.join(sorted(known))}).")
+    label = entry.get("name")
+    if not isinstance(label, str) or not label.strip():
+        raise SpecError(f"product {name!r}: the baseline needs a name (text), such as \"phase I 2026\".")
+    lots = entry.get("lots")
+    has_range = "from" in entry or "to" in entry
+    if lots is not None and has_range:
+        raise SpecError(f"product {name!r}: give the baseline either lots = [...] or from = / to = "
+                        "dates, not both.")
+    if lots is not None:
+        if (not isinstance(lots, list) or not lots
+                or not all(isinstance(lot, str) and lot.strip() for lot in lots)):
+            raise SpecError(f"product {name!r}: baseline lots must be a list of lot ids (text).")
+        lots = [lot.strip() for lot in lots]
+        if len(set(lots)) != len(lots):
+            raise SpecError(f"product {name!r}: baseline lots name a lot twice.")
+        return Baseline(name=label.strip(), lots=tuple(lots))
+    if not has_range:
+        raise SpecError(f"product {name!r}: the baseline needs lots = [...] or from = / to = dates.")
+    made_from = _iso_date(name, "from", entry["from"]) if "from" in entry else None
+    made_to = _iso_date(name, "to", entry["to"]) if "to" in entry else None
+    if made_from and made_to and made_from > made_to:
+        raise SpecError(f"product {name!r}: baseline from {made_from} is after to {made_to}.")
+    return Baseline(name=label.strip(), made_from=made_from, made_to=made_to)
 
 
 def _limit(name: str, key: str, value) -> tuple[float, float]:
@@ -135,7 +245,7 @@ def spec_from_mapping(entry: Mapping) -> Spec:
     name = entry.get("name")
     if not isinstance(name, str) or not name.strip():
         raise SpecError("every [[product]] needs a name (text).")
-    known = {"name", "replicates", "max_cv", "decision_rule", *LIMITED_QUANTITIES}
+    known = {"name", "replicates", "max_cv", "decision_rule", "baseline", *LIMITED_QUANTITIES}
     unknown = sorted(set(entry) - known)
     if unknown:
         raise SpecError(f"product {name!r}: unknown key {unknown[0]!r} (known: {', '.join(sorted(known))}).")
@@ -155,7 +265,9 @@ def spec_from_mapping(entry: Mapping) -> Spec:
         raise SpecError(f"product {name!r}: decision_rule must be one of "
                         f"{', '.join(repr(r) for r in DECISION_RULES)}, not {rule!r}.")
     limits = {key: _limit(name, key, entry[key]) for key in LIMITED_QUANTITIES if key in entry}
-    return Spec(name=name, replicates=replicates, max_cv=float(max_cv), decision_rule=rule, **limits)
+    baseline = baseline_from_mapping(name, entry["baseline"]) if "baseline" in entry else None
+    return Spec(name=name, replicates=replicates, max_cv=float(max_cv), decision_rule=rule,
+                baseline=baseline, **limits)
 
 
 def parse_specs(text: str) -> list[Spec]:
@@ -450,9 +562,13 @@ class ChartPoint:
     """One lot on the X / MR charts of its product.
 
     ``value`` is the lot mean of λ (s); ``moving_range`` its absolute change from
-    the previous charted lot. The limits (None until enough earlier lots exist)
-    come from the earlier lots only: ``centre`` ± 3 ``sigma`` for X, ``mr_ucl``
-    for MR. ``flags`` are the names of :data:`CHART_RULES` the lot breaks.
+    the previous charted lot. The limits (None until the baseline holds enough
+    lots) come from the lot's baseline, earlier lots only: ``centre`` ± 3
+    ``sigma`` for X, ``mr_ucl`` for MR. ``flags`` are the names of
+    :data:`CHART_RULES` the lot breaks. ``baseline`` holds the keys of the
+    earlier lots that formed the limits (``n_baseline`` of them), ``left_out``
+    each earlier charted lot that did not, with why; ``baseline_name`` names a
+    fixed phase-I baseline (None: the default baseline).
     """
 
     key: object
@@ -464,6 +580,9 @@ class ChartPoint:
     mr_mean: float | None
     mr_ucl: float | None
     flags: tuple[str, ...]
+    baseline: tuple = ()
+    left_out: tuple[tuple[object, str], ...] = ()
+    baseline_name: str | None = None
 
     @property
     def ucl(self) -> float | None:
@@ -472,6 +591,10 @@ class ChartPoint:
     @property
     def lcl(self) -> float | None:
         return None if self.centre is None else self.centre - 3 * self.sigma
+
+
+#: how the default baseline is described in sentences (README, lot report)
+DEFAULT_BASELINE = "earlier lots that passed without a chart flag"
 
 
 def _zone_side(value: float, centre: float, sigma: float, k: float) -> int:
@@ -524,35 +647,86 @@ def run_rule_flags(values: Sequence[float], centre: float, sigma: float) -> tupl
     return tuple(flags)
 
 
+def control_limits(baseline_values: Sequence[float]) -> tuple[float, float, float, float]:
+    """``(centre, sigma, mr_mean, mr_ucl)`` of an individuals / moving-range chart from the
+    baseline's lot means in production order (Montgomery, *Introduction to Statistical Quality
+    Control*, control chart for individual measurements): centre = their mean, MR̄ = the mean of
+    the moving ranges of two consecutive baseline lots, sigma = MR̄ / d2, MR upper limit D4 · MR̄.
+    """
+    baseline = np.asarray(baseline_values, dtype=float)
+    mr_mean = float(np.mean(np.abs(np.diff(baseline))))
+    centre = float(np.mean(baseline))
+    sigma = mr_mean / D2  # sigma estimated from the mean moving range (d2 for n = 2)
+    return centre, sigma, mr_mean, D4 * mr_mean  # D4: upper limit of the MR chart for n = 2
+
+
 def control_chart(lots: Sequence[tuple[object, float]], *,
-                  min_baseline: int = MIN_BASELINE_LOTS) -> list[ChartPoint]:
+                  min_baseline: int = MIN_BASELINE_LOTS,
+                  verdicts: Mapping[object, str] | None = None,
+                  excluded: Mapping[object, str] | None = None,
+                  phase_one: tuple[str, Iterable[object]] | None = None) -> list[ChartPoint]:
     """X and MR chart points for one product's lots, given in production order.
 
     ``lots`` holds ``(key, lot mean of λ in s)`` ordered by made_on, then by
     first analysis time; lots without a mean are left out by the caller. For
-    lot i the limits use lots 0 … i−1 only: centre = their mean, sigma =
-    MR̄ / d2 with MR̄ the mean of their moving ranges of two, X limits centre ±
-    3 sigma, MR upper limit D4 · MR̄ (no MR lower limit for n = 2). A lot with
-    fewer than ``min_baseline`` earlier lots gets no limits and no flags.
+    lot i the limits come from its baseline, a subset of lots 0 … i−1
+    (:func:`control_limits`; the moving ranges are those of consecutive
+    baseline lots, so a lot left out is as if it had never been charted); a lot
+    whose baseline holds fewer than ``min_baseline`` lots gets no limits and no
+    flags. The baseline (Montgomery's phase I: remove the points with an
+    assignable cause, then compute the limits):
+
+    * by default, the earlier lots that passed (``verdicts[key] == "pass"``;
+      ``verdicts`` None: every lot counts as passed, e.g. a product without a
+      specification, whose lots cannot pass) and got no chart flag themselves;
+    * with ``phase_one = (name, keys)``, a fixed phase-I baseline: the earlier
+      lots among ``keys``, whatever their verdict, so that the lots after it
+      are judged against fixed limits (phase II);
+    * never a lot of ``excluded`` (key → the recorded reason).
+
+    The run rules (:func:`run_rule_flags`) look at every charted lot in order.
     """
+    verdicts = verdicts or {}
+    excluded = excluded or {}
+    named = None if phase_one is None else (phase_one[0], set(phase_one[1]))
     values = [float(v) for _, v in lots]
-    points = []
+    keys = [key for key, _ in lots]
+    points: list[ChartPoint] = []
+    why_not: list[str | None] = []  # per charted lot: why it enters no later baseline (None: it does)
     for i, (key, value) in enumerate(lots):
         moving_range = abs(values[i] - values[i - 1]) if i > 0 else None
-        if i < min_baseline:
-            points.append(ChartPoint(key, float(value), moving_range, i, None, None, None, None, ()))
-            continue
-        baseline = np.asarray(values[:i])
-        mr_mean = float(np.mean(np.abs(np.diff(baseline))))
-        centre = float(np.mean(baseline))
-        sigma = mr_mean / D2  # sigma estimated from the mean moving range (d2 for n = 2)
-        mr_ucl = D4 * mr_mean  # upper limit of the moving-range chart (D4 for n = 2)
-        flags = list(run_rule_flags(values[: i + 1], centre, sigma))
-        if moving_range > mr_ucl:
-            flags.append("moving-range-above-limit")
-        points.append(ChartPoint(key, float(value), moving_range, i, centre, sigma, mr_mean, mr_ucl,
-                                 tuple(flags)))
+        baseline = tuple(j for j in range(i) if why_not[j] is None)
+        left_out = tuple((keys[j], why_not[j]) for j in range(i) if why_not[j] is not None)
+        common = dict(baseline=tuple(keys[j] for j in baseline), left_out=left_out,
+                      baseline_name=None if named is None else named[0])
+        if len(baseline) < min_baseline:
+            point = ChartPoint(key, float(value), moving_range, len(baseline), None, None, None, None, (),
+                               **common)
+        else:
+            centre, sigma, mr_mean, mr_ucl = control_limits([values[j] for j in baseline])
+            flags = list(run_rule_flags(values[: i + 1], centre, sigma))
+            if moving_range > mr_ucl:
+                flags.append("moving-range-above-limit")
+            point = ChartPoint(key, float(value), moving_range, len(baseline), centre, sigma, mr_mean,
+                               mr_ucl, tuple(flags), **common)
+        points.append(point)
+        why_not.append(_left_out_because(key, point.flags, verdicts, excluded, named))
     return points
+
+
+def _left_out_because(key, flags, verdicts, excluded, named) -> str | None:
+    """Why a lot enters no later lot's baseline, in words (None: it enters)."""
+    if key in excluded:
+        return f"excluded: {excluded[key]}"
+    if named is not None:
+        return None if key in named[1] else f"not in the baseline {named[0]!r}"
+    why = []
+    verdict = verdicts.get(key, "pass")
+    if verdict != "pass":
+        why.append(f"verdict {verdict}")
+    if flags:
+        why.append(f"chart flag{'s' if len(flags) > 1 else ''} {', '.join(flags)}")
+    return "; ".join(why) or None
 
 
 # --- lots of a product ----------------------------------------------------------------
@@ -620,23 +794,38 @@ def replicates_of(rows: Sequence[Mapping], failed: Sequence[Mapping]) -> list[Re
     return reps
 
 
-def lot_summaries(lot_rows, measurements, failures, specs) -> list[LotSummary]:
+def lot_summaries(lot_rows, measurements, failures, specs, exclusions=None) -> list[LotSummary]:
     """Every lot's verdict and control-chart point, by product then production order (pure).
 
     ``lot_rows``: mappings with ``product, lot, made_on, first_analysed_at``;
     ``measurements`` / ``failures``: ``{(product, lot): [row mapping, …]}`` of
     the current measurements (``sample, replicate, sha256, status, quality`` and
     the limited quantities) and the open failures (with ``reason``);
-    ``specs``: ``{product: Spec}``. A lot's chart point takes its limits from
-    the product's earlier lots only (:func:`control_chart`).
+    ``specs``: ``{product: Spec}``; ``exclusions``: ``{(product, lot): reason}``
+    of the lots excluded from control-chart baselines. A lot's chart point takes
+    its limits from its baseline of earlier lots (:func:`control_chart`): the
+    specification's phase-I baseline when it names one, else the earlier lots
+    that passed without a chart flag (any lot without a flag for a product
+    without a specification); never an excluded lot.
     """
+    exclusions = exclusions or {}
     verdicts = {key: lot_verdict(specs.get(key[0]), replicates_of(measurements[key], failures[key]),
                                  product=key[0]) for key in measurements}
     summaries = []
     for product in sorted({r["product"] for r in lot_rows}):
         ordered = sorted((r for r in lot_rows if r["product"] == product), key=production_order)
         charted = [(r["lot"], verdicts[(product, r["lot"])].stats["relaxation_time_s"].mean) for r in ordered]
-        points = {p.key: p for p in control_chart([(k, v) for k, v in charted if v is not None])}
+        spec = specs.get(product)
+        phase_one = None
+        if spec is not None and spec.baseline is not None:
+            phase_one = (spec.baseline.name,
+                         [r["lot"] for r in ordered if spec.baseline.covers(r["lot"], r["made_on"])])
+        points = {p.key: p for p in control_chart(
+            [(k, v) for k, v in charted if v is not None],
+            verdicts=None if spec is None else {r["lot"]: verdicts[(product, r["lot"])].verdict
+                                                for r in ordered},
+            excluded={lot: why for (name, lot), why in exclusions.items() if name == product},
+            phase_one=phase_one)}
         summaries += [LotSummary(product, r["lot"], r["made_on"], r["first_analysed_at"],
                                  verdicts[(product, r["lot"])], points.get(r["lot"])) for r in ordered]
     return summaries

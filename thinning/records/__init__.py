@@ -32,6 +32,12 @@ Tables (schema version :data:`SCHEMA_VERSION`, kept in ``schema_version``):
 ``verdict_changes``
     each lot whose verdict a reloaded specification changed: old and new
     verdict and decision rule, cause, ``changed_at`` (version 2).
+``baseline_exclusions``
+    lots excluded from their product's control-chart baselines
+    (``records exclude``): ``reason``, ``excluded_by``, ``excluded_at``; a
+    withdrawn exclusion keeps its row with ``withdrawn_at``, ``withdrawn_by``
+    and ``withdrawn_reason`` (version 4). ``products.baseline_json`` keeps a
+    specification's phase-I baseline (version 4).
 ``failures``
     rows of a batch that failed (not measurements): the reason, so that the
     verdict can count the replicate as invalid. A failure counts only while
@@ -44,7 +50,8 @@ writer at a time, waiting up to a minute) in WAL mode.
 """
 
 from ..qc import LotSummary, replicate_label
-from .schema import SCHEMA_VERSION, curves, failures, lots, measurements, products, samples, schema_version
+from .schema import (SCHEMA_VERSION, baseline_exclusions, curves, failures, lots, measurements, products, samples,
+                     schema_version)
 from .store import (ENV_DB, EXPORT_COLUMNS, LOT_COLUMNS, AmbiguousLot, LotDetail, LotNotFound, Records,
                     RecordsError, default_db_path, default_db_url, normalise_timestamp, open_records,
                     result_fingerprint)
@@ -52,4 +59,4 @@ from .store import (ENV_DB, EXPORT_COLUMNS, LOT_COLUMNS, AmbiguousLot, LotDetail
 __all__ = ["open_records", "Records", "RecordsError", "LotNotFound", "AmbiguousLot", "LotDetail",
            "LotSummary", "replicate_label", "EXPORT_COLUMNS", "LOT_COLUMNS", "ENV_DB", "default_db_path",
            "default_db_url", "normalise_timestamp", "result_fingerprint", "SCHEMA_VERSION", "products",
-           "lots", "samples", "measurements", "curves", "failures", "schema_version"]
+           "lots", "samples", "measurements", "curves", "failures", "schema_version", "baseline_exclusions"]

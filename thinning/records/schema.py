@@ -10,10 +10,12 @@ from sqlalchemy import (Boolean, Column, Double, ForeignKey, Index, Integer, Lar
 
 from .. import qc
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 #: What each version added (:meth:`thinning.records.Records` migrates older databases in place).
 SCHEMA_CHANGES = {2: "products.decision_rule; the verdict_changes table",
-                  3: "measurements.outputs_json: the digests of the row folder's files"}
+                  3: "measurements.outputs_json: the digests of the row folder's files",
+                  4: "products.baseline_json (a phase-I control-chart baseline); the "
+                     "baseline_exclusions table"}
 
 
 #: headline numbers copied from result.json into columns of the same name
@@ -46,6 +48,9 @@ products = Table(
     #: NULL: a specification stored before decision rules existed, judged by the simple rule
     Column("decision_rule", String(20)),
     Column("spec_loaded_at", String(40)),
+    #: the specification's ``[product.baseline]`` as JSON (``name`` and ``lots`` or ``from`` /
+    #: ``to``); NULL: the default baseline (version 4)
+    Column("baseline_json", Text),
 )
 
 lots = Table(
@@ -148,3 +153,19 @@ verdict_changes = Table(
     Column("changed_at", String(40), nullable=False),
 )
 Index("ix_verdict_changes_product_lot", verdict_changes.c.product_id, verdict_changes.c.lot)
+
+#: lots excluded from the control-chart baselines of their product, with who, when and why; an
+#: exclusion is withdrawn (never deleted) with who, when and why too (version 4)
+baseline_exclusions = Table(
+    "baseline_exclusions", metadata,
+    Column("id", Integer, primary_key=True),
+    Column("product_id", Integer, ForeignKey("products.id"), nullable=False),
+    Column("lot", String(200), nullable=False),
+    Column("reason", Text, nullable=False),
+    Column("excluded_by", String(200), nullable=False),
+    Column("excluded_at", String(40), nullable=False),
+    Column("withdrawn_at", String(40)),
+    Column("withdrawn_by", String(200)),
+    Column("withdrawn_reason", Text),
+)
+Index("ix_baseline_exclusions_product_lot", baseline_exclusions.c.product_id, baseline_exclusions.c.lot)

@@ -23,8 +23,8 @@ from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, Operationa
 from .. import qc
 from ..errors import ThinningError
 from ..result import Result
-from .schema import (SCHEMA_VERSION, curves, failures, lots, measurements, metadata, products, samples,
-                     schema_version, verdict_changes, NUMBER_KEYS)
+from .schema import (SCHEMA_VERSION, baseline_exclusions, curves, failures, lots, measurements, metadata,
+                     products, samples, schema_version, verdict_changes, NUMBER_KEYS)
 from ..values import finite_number as _number
 from ..values import json_plain, utc_text
 from ..batch.table import read_batch, read_curve, recorded_outputs
@@ -135,6 +135,12 @@ class LotDetail:
     #: re-evaluations that changed the lot's verdict (oldest first): old/new verdict and rule,
     #: cause, changed_at
     verdict_changes: list[dict] = field(default_factory=list)
+    #: the product's lots excluded from control-chart baselines now (``lot, reason,
+    #: excluded_by, excluded_at``), oldest first
+    exclusions: list[dict] = field(default_factory=list)
+    #: every exclusion of this lot, withdrawn ones too (with ``withdrawn_at``, ``withdrawn_by``,
+    #: ``withdrawn_reason``), oldest first
+    exclusion_history: list[dict] = field(default_factory=list)
 
 
 T = TypeVar("T")
@@ -212,6 +218,11 @@ class Records:
                     # version 2 → 3: measurements stored so far have no output digests (NULL)
                     conn.execute(text("ALTER TABLE measurements ADD COLUMN outputs_json TEXT"))
                     conn.execute(schema_version.insert().values(version=3, applied_at=utc_text()))
+                if found < 4:
+                    # version 3 → 4: specifications stored so far name no phase-I baseline (NULL:
+                    # the default baseline); baseline_exclusions was created above, empty
+                    conn.execute(text("ALTER TABLE products ADD COLUMN baseline_json TEXT"))
+                    conn.execute(schema_version.insert().values(version=4, applied_at=utc_text()))
         self._transaction(work)
 
     # ------------------------------------------------------------------ specifications
@@ -249,7 +260,8 @@ class Records:
             product_ids = {}
             for spec in specs:
                 values = {"has_spec": True, "replicates": spec.replicates, "max_cv": spec.max_cv,
-                          "decision_rule": spec.decision_rule, "spec_loaded_at": now}
+                          "decision_rule": spec.decision_rule, "spec_loaded_at": now,
+                          "baseline_json": None if spec.baseline is None else _json(spec.baseline.as_mapping())}
                 for key in qc.LIMITED_QUANTITIES:
                     limits = getattr(spec, key)
                     values[f"{key}_limited"] = limits is not None
@@ -292,8 +304,10 @@ class Records:
                 if row[f"{key}_limited"]:
                     low, high = row[f"{key}_min"], row[f"{key}_max"]
                     limits[key] = (math.nan if low is None else low, math.nan if high is None else high)
+            baseline = (qc.baseline_from_mapping(row["name"], json.loads(row["baseline_json"]))
+                        if row["baseline_json"] else None)
             found[row["name"]] = qc.Spec(name=row["name"], replicates=row["replicates"],
-                                         max_cv=row["max_cv"],
+                                         max_cv=row["max_cv"], baseline=baseline,
                                          decision_rule=row["decision_rule"] or "simple", **limits)
         return found
 
@@ -501,8 +515,65 @@ class Records:
         failures_by_lot = {key: sorted(v.values(), key=qc.row_order) for key, v in open_failures.items()}
         for rows in by_lot.values():
             rows.sort(key=qc.row_order)
-        summaries = qc.lot_summaries(lot_rows, by_lot, failures_by_lot, specs)
+        excluded = {(r["product"], r["lot"]): r["reason"] for r in self._exclusions(conn)}
+        summaries = qc.lot_summaries(lot_rows, by_lot, failures_by_lot, specs, excluded)
         return summaries, by_lot, failures_by_lot
+
+    @staticmethod
+    def _exclusions(conn: Connection, *, product: str | None = None, lot: str | None = None,
+                    withdrawn: bool = False) -> list[dict]:
+        """The exclusions from control-chart baselines (in force only, unless ``withdrawn``),
+        oldest first, with the product's name."""
+        query = (select(products.c.name.label("product"), *baseline_exclusions.c)
+                 .select_from(baseline_exclusions.join(products)).order_by(baseline_exclusions.c.id))
+        if not withdrawn:
+            query = query.where(baseline_exclusions.c.withdrawn_at.is_(None))
+        if product is not None:
+            query = query.where(products.c.name == product)
+        if lot is not None:
+            query = query.where(baseline_exclusions.c.lot == lot)
+        return [dict(r) for r in conn.execute(query).mappings()]
+
+    def exclude(self, lot: str, *, reason: str, by: str, product: str | None = None,
+                withdraw: bool = False) -> dict:
+        """Exclude a lot from its product's control-chart baselines (or, with ``withdraw``, end
+        its exclusion), keeping who, when and why; one transaction.
+
+        Verdicts do not change (chart flags never feed them); the chart flags of later lots may.
+        Returns ``{"product", "lot", "flag_changes": [{"lot", "old", "new"}, …]}``, the lots whose
+        chart flags the change moves. Raises :class:`RecordsError` for an empty reason, a lot
+        already excluded (or, withdrawing, not excluded)."""
+        reason, by = " ".join(str(reason or "").split()), " ".join(str(by or "").split())
+        if not reason:
+            raise RecordsError("give the reason with --reason: it is kept with the exclusion.")
+        if not by:
+            raise RecordsError("say who decides with --by NAME: it is kept with the exclusion.")
+        product, lot = self.resolve_lot(lot, product=product)
+
+        def work(conn: Connection) -> dict:
+            before = {s.lot: s.chart_flags for s in self._summaries(conn)[0] if s.product == product}
+            open_ = self._exclusions(conn, product=product, lot=lot)
+            now = utc_text()
+            if withdraw:
+                if not open_:
+                    raise RecordsError(f"lot {lot!r} of product {product!r} is not excluded from the "
+                                       "control-chart baseline.")
+                conn.execute(update(baseline_exclusions).where(
+                    baseline_exclusions.c.id.in_([e["id"] for e in open_])).values(
+                    withdrawn_at=now, withdrawn_by=by, withdrawn_reason=reason))
+            else:
+                if open_:
+                    raise RecordsError(f"lot {lot!r} of product {product!r} is already excluded from the "
+                                       f"control-chart baseline ({open_[0]['reason']}); withdraw that "
+                                       "first with --withdraw.")
+                product_id = conn.execute(select(products.c.id).where(products.c.name == product)).scalar()
+                conn.execute(baseline_exclusions.insert().values(
+                    product_id=product_id, lot=lot, reason=reason, excluded_by=by, excluded_at=now))
+            after = {s.lot: s.chart_flags for s in self._summaries(conn)[0] if s.product == product}
+            moved = [{"lot": name, "old": before.get(name, ()), "new": flags}
+                     for name, flags in after.items() if before.get(name, ()) != flags]
+            return {"product": product, "lot": lot, "flag_changes": moved}
+        return self._transaction(work)
 
     def lots(self, *, product: str | None = None) -> list[qc.LotSummary]:
         """Every lot (of ``product``), by product then production order, with verdicts."""
@@ -553,10 +624,13 @@ class Records:
                 select(verdict_changes).select_from(verdict_changes.join(products))
                 .where(products.c.name == product, verdict_changes.c.lot == lot)
                 .order_by(verdict_changes.c.id)).mappings()]
+            exclusions = self._exclusions(conn, product=product)
+            exclusion_history = self._exclusions(conn, product=product, lot=lot, withdrawn=True)
         summary = next(s for s in summaries if (s.product, s.lot) == (product, lot))
         chart = [(s, s.chart) for s in summaries if s.product == product and s.chart is not None]
         return LotDetail(summary=summary, spec=spec, measurements=rows, failures=failures_by_lot[(product, lot)],
-                         curves=curve_map, chart=chart, history=history, verdict_changes=changed)
+                         curves=curve_map, chart=chart, history=history, verdict_changes=changed,
+                         exclusions=exclusions, exclusion_history=exclusion_history)
 
     def export_rows(self, *, product: str | None = None) -> list[dict]:
         """Every current measurement as a dict of :data:`EXPORT_COLUMNS`."""

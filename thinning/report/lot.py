@@ -48,6 +48,9 @@ SOURCES = (
     ("Individuals and moving-range charts; constants d2 = 1.128 and D4 = 3.267 for ranges of two",
      "Montgomery D.C., Introduction to Statistical Quality Control (Wiley), tables of control-chart "
      "factors"),
+    ("Baselines: limits computed from lots free of assignable causes (phase I), then held to judge "
+     "later lots (phase II)", "Montgomery D.C., Introduction to Statistical Quality Control (Wiley), "
+     "phase I and phase II of control-chart use"),
     ("Run rules beyond-3-sigma, 2-of-3-beyond-2-sigma, 4-of-5-beyond-1-sigma, 8-on-one-side",
      "Western Electric Co. (1956), Statistical Quality Control Handbook; as given by Montgomery"),
     ("Run rule 6-trending (six lots in a row rising or falling)",
@@ -175,16 +178,45 @@ def _lot_rows(detail) -> list[dict]:
     return rows
 
 
-def _chart_context(detail) -> dict:
+def _baseline_context(detail) -> dict | None:
+    """Which lots formed this lot's control limits and which earlier lots were left out, and why
+    (an exclusion with who, when and why)."""
     point = detail.summary.chart
     if point is None:
-        return {"state": "no-mean"}
-    if point.centre is None:
-        return {"state": "too-few", "n_baseline": point.n_baseline, "needed": qc.MIN_BASELINE_LOTS}
+        return None
+    named = detail.spec.baseline if detail.spec is not None else None
+    if point.baseline_name is None:
+        named = None
+    excluded = {e["lot"]: e for e in detail.exclusions}
+    left_out = []
+    for lot, why in point.left_out:
+        e = excluded.get(lot)
+        if e is not None and why.startswith("excluded: "):
+            why = (f"excluded from the baseline by {e['excluded_by']} on "
+                   f"{display.timestamp(e['excluded_at'])}: {e['reason']}")
+        left_out.append((lot, why))
+    charted = {summary.lot for summary, _ in detail.chart}
+    return {"named": named is not None,
+            "name": named.name if named is not None else None,
+            "described": named.described() if named is not None else qc.DEFAULT_BASELINE,
+            "lots": list(point.baseline), "left_out": left_out,
+            # lots the specification names that have no lot mean in the records
+            "missing": [lot for lot in (named.lots if named is not None else ()) if lot not in charted]}
+
+
+def _chart_context(detail) -> dict:
+    point = detail.summary.chart
     unit = display_units(detail)["relaxation_time_s"]
+    spec = detail.spec.limits.get("relaxation_time_s") if detail.spec is not None else None
+    common = {"baseline": _baseline_context(detail),
+              "spec_limits": display.limits(*spec, unit) if spec is not None else None}
+    if point is None:
+        return {"state": "no-mean", **common}
+    if point.centre is None:
+        return {"state": "too-few", "n_baseline": point.n_baseline, "needed": qc.MIN_BASELINE_LOTS, **common}
     shown = {name: display.quantity(getattr(point, name), unit)
              for name in ("centre", "ucl", "lcl", "mr_ucl", "moving_range")}
-    return {"state": "limits", "n_baseline": point.n_baseline, **shown}
+    return {"state": "limits", "n_baseline": point.n_baseline, **shown, **common}
 
 
 def lot_report_html(detail, *, generated_at: str | None = None) -> str:
