@@ -333,24 +333,19 @@ pd.DataFrame([{"lot": lot.lot, "made on": lot.made_on, "valid replicates": lot.v
 ### The control chart
 
 An individuals (X) and moving-range (MR) chart of the lot means of λ, in production order. The
-limits for a lot come **only from the product's earlier lots** (at least 5 of them; the lot itself
-is never included): centre line = their mean, σ estimated from their mean moving range, limits =
-centre ± 3σ. The run rules are the Western Electric zone rules and a six-point trend rule. The
-first five lots therefore carry no limits; HC-0107 is judged against the five before it. The
-control limits say whether the process changed; the specification limits whether a lot is fit to
-ship.'''),
+limits for a lot come **only from its baseline**: by default the product's earlier lots that passed
+without a chart flag (at least 5 of them; the lot itself is never included), or a named phase-I
+baseline fixed in the specification file: centre line = their mean, σ estimated from their mean
+moving range, limits = centre ± 3σ. The run rules are the Western Electric zone rules and a
+six-point trend rule. The first five lots therefore carry no limits; HC-0107 is judged against the
+five before it. The chart draws the specification limits beside the control limits: the control
+limits say whether the process changed; the specification limits whether a lot is fit to ship.'''),
     ("code", '''\
 with thinning.open_records(DB_URL) as records:
     detail = records.lot_detail(REPORT_LOT, product=PRODUCT)
 fig, axes = plt.subplots(2, 1, sharex=True, figsize=(7.6, 4.8), height_ratios=(3, 2), layout="constrained")
 thinning.plot_control_chart(detail, axes=axes)
 low, high = detail.spec.relaxation_time_s
-# Drawn by hand for now: plot_control_chart will draw the specification limits itself (being added in
-# the same release); then these lines go.
-for limit in (low, high):
-    axes[0].axhline(limit * 1e3, color="#6c4f9e", lw=1, ls=":")
-axes[0].annotate("specification", (0, high * 1e3), xytext=(2, -9), textcoords="offset points",
-                 color="#6c4f9e", fontsize=7)
 point = detail.summary.chart
 print(f"{REPORT_LOT}: limits from {point.n_baseline} earlier lots, "
       f"centre {display.quantity(point.centre, display.MS)}, "
