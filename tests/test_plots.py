@@ -599,3 +599,30 @@ def test_chromium_shows_the_recording_report_with_its_frame_strip(analysed, tmp_
     assert "scale-bar" in seen[0][0]["gids"]
     html = page.read_text()
     assert html.count("data:image/png;base64,") == len(plots.FIGURE_NAMES)
+
+
+def test_batch_figures_png_svg_writes_svgs_and_reanalyses_rows_without_them(analysed, tmp_path):
+    # a finished batch row without the SVGs asked for is analysed again; with them it is kept
+    import json
+
+    from click.testing import CliRunner
+
+    from thinning.cli import cli
+
+    source, _, _ = analysed
+    manifest = tmp_path / "m.csv"
+    manifest.write_text(f"path,sample\n{source},S1\n", encoding="utf-8")
+    args = ["batch", str(manifest), "--out", str(tmp_path / "b"), "--workers", "1", "--fps", "2.5kHz",
+            "--pixel-size", "25um", "--surface-tension", "62mN/m"]
+    assert CliRunner().invoke(cli, args).exit_code == 0
+    (row,) = [p for p in (tmp_path / "b").iterdir() if p.is_dir()]
+    assert not list(row.glob("*.svg"))
+    run = CliRunner().invoke(cli, [*args, "--figures", "png,svg"])
+    assert run.exit_code == 0, run.output
+    assert "already up to date" not in run.output      # analysed again for its SVGs
+    assert sorted(p.name for p in row.glob("*.svg")) == [
+        "diameter.svg", "extensional_viscosity.svg", "frames.svg", "strain_rate.svg"]
+    assert "diameter.svg" in json.loads((row / "row.json").read_text())["outputs"]
+    again = CliRunner().invoke(cli, [*args, "--figures", "png,svg"])
+    assert "already up to date" in again.output
+    assert CliRunner().invoke(cli, [*args, "--figures", "tiff"]).exit_code == 2

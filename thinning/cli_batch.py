@@ -33,8 +33,12 @@ from .cli import OPTION_NAMES, FriendlyCommand, FriendlyError, analysis_options,
 @click.option("--check", is_flag=True,
               help="Validate the manifest and every source, report all problems by row, analyse nothing.")
 @click.option("--redo", is_flag=True, help="Re-analyse every row, even those already finished.")
+@click.option("--figures", "figure_formats", default="png", show_default=True, metavar="FORMATS",
+              help="Formats of every row's figures, comma-separated: png, svg (the PNGs are always "
+                   "written); a finished row without the SVGs asked for is analysed again.")
 @analysis_options
-def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo, **values):
+def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo, figure_formats,
+          **values):
     """Analyse every recording listed in MANIFEST (CSV, one row per recording).
 
     Columns: path (required, relative to the manifest's folder), sample, lot,
@@ -49,7 +53,13 @@ def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo
     \b
       thinning batch lots.csv --out batch-out --surface-tension 62mN/m --workers 2
     """
+    from .analysis import figure_formats as formats_of
+
     parse_analysis_options(values)  # a bad command-line option is bad usage (exit 2)
+    try:
+        formats = formats_of(figure_formats)
+    except ValueError as exc:
+        raise FriendlyError(f"--figures: {exc}.") from None
     defaults = {name: values.get(name) for name in OPTION_NAMES if values.get(name)}
     if check:
         _check(manifest, defaults)
@@ -65,7 +75,7 @@ def batch(manifest, out_dir, workers, scheduler, db_url, specs_file, check, redo
     try:
         with Progress(n_rows) as progress:
             report = run_batch(manifest, out_dir, defaults=defaults, workers=workers,
-                               scheduler=scheduler, redo=redo, records=records,
+                               scheduler=scheduler, redo=redo, records=records, figures=formats,
                                on_row=lambda row, outcome, folder: progress.advance(row, outcome))
     finally:
         if records is not None:

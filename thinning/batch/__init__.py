@@ -83,7 +83,8 @@ def _clean_leftovers(out: Path):
 
 def run_batch(manifest, out_dir, *, defaults: dict | None = None, workers: int | None = None,
               scheduler: str | None = None, redo: bool = False, on_row=None, records=None,
-              analyser: str = DEFAULT_ANALYSER, connect_timeout_s: float = 20.0) -> BatchReport:
+              analyser: str = DEFAULT_ANALYSER, connect_timeout_s: float = 20.0,
+              figures=("png",)) -> BatchReport:
     """Analyse every row of a manifest into a folder; ``results.csv`` is rewritten as rows finish.
 
     Parameters
@@ -111,6 +112,9 @@ def run_batch(manifest, out_dir, *, defaults: dict | None = None, workers: int |
         (the default), imported in the workers.
     connect_timeout_s : float
         How long to wait for the Dask scheduler (s).
+    figures : iterable of str or str
+        The formats of every row's figures (``"png"``, ``"svg"``; PNG always), as for
+        :func:`thinning.analysis.write_outputs`.
 
     Returns
     -------
@@ -129,14 +133,17 @@ def run_batch(manifest, out_dir, *, defaults: dict | None = None, workers: int |
     lock = _lock(out)
     try:
         _clean_leftovers(out)
+        from ..analysis import figure_formats
+
         return _run(rows, out, defaults=defaults or {}, workers=workers or os.cpu_count() or 1,
                     scheduler=scheduler, redo=redo, on_row=on_row, records=records, analyser=analyser,
-                    connect_timeout_s=connect_timeout_s)
+                    connect_timeout_s=connect_timeout_s, figures=figure_formats(figures))
     finally:
         lock.close()
 
 
-def _run(rows, out, *, defaults, workers, scheduler, redo, on_row, records, analyser, connect_timeout_s):
+def _run(rows, out, *, defaults, workers, scheduler, redo, on_row, records, analyser, connect_timeout_s,
+         figures):
     width = len(str(max((r.row for r in rows), default=1)))
     by_row = {r.row: r for r in rows}
     folders = {r.row: row_folder_name(r.row, r.name, width) for r in rows}
@@ -167,7 +174,8 @@ def _run(rows, out, *, defaults, workers, scheduler, redo, on_row, records, anal
             empty = RowTask(row.row, str(row.source), AnalysisOptions(), folder, redo, analyser)
             record(write_failed_folder(empty, str(exc)))
             continue
-        tasks.append(RowTask(row.row, str(row.source.resolve()), options, folder, redo, analyser))
+        tasks.append(RowTask(row.row, str(row.source.resolve()), options, folder, redo, analyser,
+                             figures))
     try:
         if tasks:
             if scheduler:

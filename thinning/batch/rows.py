@@ -50,6 +50,7 @@ class RowTask:
     folder: str
     redo: bool = False
     analyser: str = DEFAULT_ANALYSER
+    figures: tuple = ("png",)
 
 
 @dataclass(frozen=True)
@@ -92,7 +93,8 @@ def run_row(task: RowTask) -> RowOutcome:
         temp.mkdir(parents=True)
         with _cleared(temp):
             try:
-                result = _analyser(task.analyser)(task.source, temp, task.options).summary()
+                extra = {} if tuple(task.figures) == ("png",) else {"figures": tuple(task.figures)}
+                result = _analyser(task.analyser)(task.source, temp, task.options, **extra).summary()
                 status, reason = "ok", ""
             except ThinningError as exc:
                 result, status, reason = None, "failed", str(exc)
@@ -173,6 +175,12 @@ def _up_to_date(task: RowTask) -> RowOutcome | None:
     if not isinstance(record, dict) or record.get("status") != "ok" \
             or record.get("options") != _plain_options(task.options):
         return None
+    other_formats = [fmt for fmt in task.figures if fmt != "png"]
+    if other_formats:   # figures asked for that the earlier run may not have written
+        from ..plots import FIGURE_NAMES
+
+        if any(not (folder / f"{name}.{fmt}").is_file() for fmt in other_formats for name in FIGURE_NAMES):
+            return None
     changed = changed_outputs(folder, record)
     if changed:
         log.warning("row %d: %s changed since its analysis; analysing it again", task.row,
