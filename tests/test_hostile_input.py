@@ -138,7 +138,8 @@ def backlight(ws):
     return path
 
 
-def mixed_bits(ws):
+def grey_frames(ws):
+    """The workspace recording's frames, grey."""
     import cv2
 
     cap = cv2.VideoCapture(str(ws / "rec.avi"))
@@ -148,6 +149,11 @@ def mixed_bits(ws):
         if not ok:
             break
         frames.append(cv2.cvtColor(frame, cv2.COLOR_BGR2GRAY))
+    return frames
+
+
+def mixed_bits(ws):
+    frames = grey_frames(ws)
     half = len(frames) // 2
     images = frames[:half] + [f.astype(np.uint16) * 257 for f in frames[half:]]
     return frames_folder(ws, "mixed", images)
@@ -185,17 +191,9 @@ def rewrite_with_digests(folder):
 
 def native(ws, kind):
     """The workspace's recording as a camera's own file: ``cine`` or ``mraw`` (+ ``.cih``)."""
-    import cv2
-
     from thinning.frames.writers import write_cine, write_mraw
 
-    cap = cv2.VideoCapture(str(ws / "rec.avi"))
-    frames = []
-    while True:
-        ok, frame = cap.read()
-        if not ok:
-            break
-        frames.append(cv2.cvtColor(frame, cv2.COLOR_BGR2GRAY))
+    frames = grey_frames(ws)
     if kind == "cine":
         write_cine(ws / "rec.cine", frames, fps=2500, bit_depth=8, packing="unpacked", exposure_s=40e-6)
         return ws / "rec.cine"
