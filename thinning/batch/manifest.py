@@ -226,22 +226,23 @@ def check_manifest(path, defaults: dict | None = None) -> list[Problem]:
             continue
         bad = row_option_problems(row, defaults)
         problems.extend(Problem(row.row, message) for message in bad)
+        options = None if bad else options_from_text(_merged(row, defaults))
         container_fps = clock_problem = None
         try:
             with open_source(row.source) as recording:
                 container_fps = recording.fps
-                if not bad:
-                    clock_problem = _clock_problem(row_options(row, defaults), recording)
+                if options is not None:
+                    clock_problem = _clock_problem(options, recording)
         except UnusableSource as exc:
             problems.append(Problem(row.row, str(exc)))
             continue
-        if bad:
+        if options is None:
             continue
         if clock_problem:
             problems.append(Problem(row.row, clock_problem))
             continue
         try:
-            check_required(row_options(row, defaults), container_fps=container_fps)
+            check_required(options, container_fps=container_fps)
         except BadQuantity as exc:
             problems.append(Problem(row.row, str(exc)))
     return problems
