@@ -74,6 +74,33 @@ def test_dropped_frames_are_timed_by_their_stamps(native_files, tmp_path):
     assert abs(counted["relaxation_time_s"] / true_lam - (1 - 1 / DROP_EVERY)) < 0.03
 
 
+def test_dropped_frames_on_the_refracting_renderer_too(tmp_path):
+    # the same check on the second renderer (thinning.raysynth: a ray-traced transparent thread,
+    # n 1.40): on the stamps λ within 1 % of the truth, on frame / fps off by the dropped fraction
+    from thinning import laws, raysynth
+    from thinning.frames.writers import write_cine
+
+    fluid = laws.Fluid(surface_tension=0.062, solvent_viscosity=1.0e-3, density=1000.0,
+                       polymer_modulus=2.0, relaxation_time=5e-3, extensibility=2.0e4)
+    scene = raysynth.RayScene(fluid=fluid, plate_diameter_m=3e-3, initial_diameter_m=0.8e-3,
+                              pixel_size_m=15e-6, fps_hz=float(FPS), frame_size_px=(240, 216),
+                              stretch_duration_s=5e-3, pre_roll_s=1e-3)
+    optics = raysynth.RayOptics(numerical_aperture=0.06, illumination_half_angle_deg=0.4, bit_depth=12)
+    frames, truth = raysynth.render_recording(scene, optics, seed=5)
+    frames = list(frames)
+    kept = [i for i in range(len(frames)) if i % DROP_EVERY != DROP_EVERY - 1]
+    dropped = tmp_path / "dropped.cine"
+    write_cine(dropped, [frames[i] for i in kept], fps=FPS, bit_depth=12, packing="packed",
+               exposure_s=20e-6, timestamps_s=np.array(kept) / FPS)
+    run, stamped = _analyse(dropped, tmp_path / "stamped")
+    assert run.exit_code == 0, run.output
+    assert stamped["clock_source"] == "file" and "frames-dropped" in stamped["finding_codes"]
+    assert abs(stamped["relaxation_time_s"] / truth.relaxation_time_s - 1) < 0.01
+    run, counted = _analyse(dropped, tmp_path / "counted", "--fps", str(FPS), "--fps-override")
+    assert run.exit_code == 0, run.output
+    assert abs(counted["relaxation_time_s"] / truth.relaxation_time_s - (1 - 1 / DROP_EVERY)) < 0.03
+
+
 def test_the_header_is_the_clock_and_a_disagreeing_fps_is_refused(native_files, tmp_path):
     run, whole = _analyse(native_files.whole, tmp_path / "a")
     assert run.exit_code == 0, run.output
